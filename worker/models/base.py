@@ -1,0 +1,137 @@
+"""The shape every catalogue model follows.
+
+A model is a small declarative class: its parameters (name, canonical unit,
+bounds, meaning), a static ``evaluate`` and an analytic ``jacobian`` that
+broadcast over a leading batch axis, a batch initial-guess rule, and, where
+the model defines them, its saturation capacity and Henry limit.
+
+Shapes used throughout (n = isotherms in the batch, m = padded points):
+
+* ``x``            (n, m)  pressure in Pa, or p/p0 when ``relative_pressure``
+* ``temperature_k`` (n, 1)  temperature of each isotherm
+* each parameter   (n, 1)  so that ``evaluate`` broadcasts to (n, m)
+* ``mask``         (n, m)  True where a point is real (not padding)
+
+Padding points carry a harmless in-range ``x`` (the engine repeats the last
+real point) so models never see zeros or NaN they did not ask for.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Param:
+    name: str
+    unit: str
+    lower: float
+    upper: float
+    meaning: str
+    # positive scale parameters spanning decades are fitted in log space by
+    # the engine; this only declares the fact, it does not change the result
+    log_scale: bool = False
+
+
+class IsothermModel:
+    """Base class; subclasses declare class attributes and implement statics."""
+
+    id: ClassVar[str]
+    title: ClassVar[str]
+    equation: ClassVar[str]          # plain text, canonical units
+    reference: ClassVar[str]
+    params: ClassVar[tuple[Param, ...]]
+    relative_pressure: ClassVar[bool] = False  # True: x is p/p0, needs p0
+
+    @staticmethod
+    def evaluate(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    @staticmethod
+    def jacobian(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> tuple[np.ndarray, ...]:
+        """d loading / d param, one array per parameter, each shaped like x."""
+        raise NotImplementedError
+
+    @classmethod
+    def initial_guesses(cls, x: np.ndarray, q: np.ndarray, mask: np.ndarray,
+                        temperature_k: np.ndarray) -> np.ndarray:
+        """Seeds for the whole batch: array (n_seeds, n, n_params), inside bounds."""
+        raise NotImplementedError
+
+    @classmethod
+    def saturation_capacity(cls, params: np.ndarray) -> np.ndarray | None:
+        """Saturation capacity in mol/kg from params (n, k); None if undefined."""
+        return None
+
+    @classmethod
+    def henry_constant(cls, params: np.ndarray, temperature_k: np.ndarray,
+                       saturation_pressure_pa: np.ndarray | None = None) -> np.ndarray | None:
+        """dq/dp at p -> 0 in mol/kg/Pa from params (n, k); None if undefined.
+
+        Entries may be inf (the model's slope diverges at zero, e.g.
+        Freundlich with n > 1) or nan (not defined for that isotherm).
+        """
+        return None
+
+    # -- helpers shared by every model -------------------------------------
+    @classmethod
+    def param_names(cls) -> list[str]:
+        return [p.name for p in cls.params]
+
+    @classmethod
+    def lower_bounds(cls) -> np.ndarray:
+        return np.array([p.lower for p in cls.params], dtype=float)
+
+    @classmethod
+    def upper_bounds(cls) -> np.ndarray:
+        return np.array([p.upper for p in cls.params], dtype=float)
+
+    @classmethod
+    def clip_to_bounds(cls, guesses: np.ndarray) -> np.ndarray:
+        """Pull guesses strictly inside the bounds (last axis = parameters)."""
+        lo, hi = cls.lower_bounds(), cls.upper_bounds()
+        span = np.where(np.isfinite(hi - lo), hi - lo, np.abs(lo) + 1.0)
+        eps = 1e-9 * np.maximum(span, 1e-300)
+        inner_lo = np.where(np.isfinite(lo), lo + eps, -np.inf)
+        inner_hi = np.where(np.isfinite(hi), hi - eps, np.inf)
+        out = np.where(np.isfinite(guesses), guesses, np.where(np.isfinite(lo), inner_lo, 1.0))
+        return np.clip(out, inner_lo, inner_hi)
+
+    @classmethod
+    def describe(cls) -> dict:
+        """A JSON-able description for the catalogue endpoint."""
+        return {
+            "id": cls.id,
+            "title": cls.title,
+            "equation": cls.equation,
+            "reference": cls.reference,
+            "relative_pressure": cls.relative_pressure,
+            "parameters": [
+                {
+                    "name": p.name,
+                    "unit": p.unit,
+                    "lower": _json_bound(p.lower),
+                    "upper": _json_bound(p.upper),
+                    "meaning": p.meaning,
+                }
+                for p in cls.params
+            ],
+            "has_saturation_capacity": cls.saturation_capacity.__func__ is not IsothermModel.saturation_capacity.__func__,
+            "has_henry_limit": cls.henry_constant.__func__ is not IsothermModel.henry_constant.__func__,
+        }
+
+
+def _json_bound(v: float) -> float | None:
+    return None if not np.isfinite(v) else float(v)
+
+
+def masked_max(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """Row-wise maximum over real points, shape (n, 1)."""
+    return np.max(np.where(mask, values, -np.inf), axis=1, keepdims=True)
+
+
+def masked_min(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """Row-wise minimum over real points, shape (n, 1)."""
+    return np.min(np.where(mask, values, np.inf), axis=1, keepdims=True)
