@@ -75,6 +75,13 @@ class IsothermModel:
         """
         return None
 
+    @classmethod
+    def canonical(cls, params: np.ndarray) -> np.ndarray:
+        """Put fitted params (n, k) in a canonical order (e.g. dual-site models
+        list the stronger site first). The engine calls it after fitting; the
+        default is the identity."""
+        return params
+
     # -- helpers shared by every model -------------------------------------
     @classmethod
     def param_names(cls) -> list[str]:
