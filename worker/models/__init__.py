@@ -2,10 +2,30 @@
 from __future__ import annotations
 
 from .base import IsothermModel, Param
+from .bet import BET, GAB
+from .dual_site_langmuir import DualSiteLangmuir
+from .dubinin import DubininAstakhov, DubininRadushkevich
+from .freundlich import Freundlich
+from .henry import Henry
 from .langmuir import Langmuir
+from .redlich_peterson import RedlichPeterson
+from .sips import Sips
+from .temkin import Temkin
+from .toth import Toth
 
 _MODELS: list[type[IsothermModel]] = [
+    Henry,
     Langmuir,
+    DualSiteLangmuir,
+    Freundlich,
+    Sips,
+    Toth,
+    RedlichPeterson,
+    Temkin,
+    BET,
+    GAB,
+    DubininRadushkevich,
+    DubininAstakhov,
 ]
 
 CATALOGUE: dict[str, type[IsothermModel]] = {m.id: m for m in _MODELS}

@@ -103,6 +103,12 @@ class IsothermModel:
         eps = 1e-9 * np.maximum(span, 1e-300)
         inner_lo = np.where(np.isfinite(lo), lo + eps, -np.inf)
         inner_hi = np.where(np.isfinite(hi), hi - eps, np.inf)
+        # log-scale parameters span decades (an affinity may be 1e-9 1/Pa), so
+        # their margin is relative: an absolute 1e-9 would swamp small values
+        log_scale = np.array([p.log_scale for p in cls.params], dtype=bool)
+        log_lo = np.where(lo > 0, lo * (1.0 + 1e-9), np.finfo(float).tiny)
+        inner_lo = np.where(log_scale & (lo >= 0), log_lo, inner_lo)
+        inner_hi = np.where(log_scale & np.isfinite(hi) & (hi > 0), hi * (1.0 - 1e-9), inner_hi)
         out = np.where(np.isfinite(guesses), guesses, np.where(np.isfinite(lo), inner_lo, 1.0))
         return np.clip(out, inner_lo, inner_hi)
 

@@ -3,15 +3,20 @@ from __future__ import annotations
 
 import numpy as np
 
-from .base import IsothermModel, Param, masked_max
+from .base import IsothermModel, Param
 from .linear import masked_linear_fit
+from .seeding import best_scale, data_scales, keep_best, log_grid, row
+
+# affinity grid spans 1/(100 p_max) .. 100/p_min: from barely curved to
+# saturated before the first point
+_AFFINITY_GRID_POINTS = 13
 
 
 class Langmuir(IsothermModel):
     id = "langmuir"
     title = "Langmuir"
     equation = "q = q_sat * affinity * p / (1 + affinity * p)"
-    reference = ("I. Langmuir, J. Am. Chem. Soc. 40 (1918) 1361-1403")
+    reference = "I. Langmuir, J. Am. Chem. Soc. 40 (1918) 1361-1403"
     params = (
         Param("q_sat", "mol/kg", 0.0, np.inf, "saturation capacity (monolayer)"),
         Param("affinity", "1/Pa", 0.0, np.inf, "affinity constant b", log_scale=True),
@@ -31,27 +36,35 @@ class Langmuir(IsothermModel):
 
     @classmethod
     def initial_guesses(cls, x, q, mask, temperature_k):
-        n = x.shape[0]
-        seeds = []
+        return keep_best(cls, cls.candidate_seeds(x, q, mask), x, q, mask, temperature_k)
+
+    @classmethod
+    def candidate_seeds(cls, x, q, mask):
+        """Unranked candidates [(n, 2), ...]; the dual-site model reuses them."""
+        x_lo, x_hi, q_hi = data_scales(x, q, mask)
+        candidates = []
         # double-reciprocal line 1/q = (1/(q_sat b)) (1/p) + 1/q_sat
         ok = mask & (x > 0) & (q > 0)
         slope, intercept, _ = masked_linear_fit(1.0 / np.where(ok, x, 1.0),
                                                 1.0 / np.where(ok, q, 1.0), ok)
         good = (intercept > 0) & (slope > 0)
-        q_lin = np.where(good, 1.0 / np.where(good, intercept, 1.0), np.nan)
-        b_lin = np.where(good, intercept / np.where(good, slope, 1.0), np.nan)
-        seeds.append(np.stack([q_lin, b_lin], axis=-1))
-        # half-loading rule: q_sat ~ 1.2 max(q), b ~ 1 / (pressure at half max)
-        q_max = masked_max(np.where(ok, q, -np.inf), ok)[:, 0]
-        p_max = masked_max(np.where(ok, x, -np.inf), ok)[:, 0]
-        seeds.append(np.stack([1.2 * q_max, 1.0 / np.maximum(p_max, 1e-300)], axis=-1))
-        seeds.append(np.stack([3.0 * q_max, 0.1 / np.maximum(p_max, 1e-300)], axis=-1))
-        out = np.stack(seeds, axis=0).reshape(len(seeds), n, 2)
-        return cls.clip_to_bounds(out)
+        q_lin = np.where(good, 1.0 / np.where(good, intercept, 1.0), 1.2 * q_hi[:, 0])
+        b_lin = np.where(good, intercept / np.where(good, slope, 1.0), 1.0 / x_hi[:, 0])
+        candidates.append(row(q_lin[:, None], b_lin[:, None]))
+        # half-loading rule: b ~ 1 / (pressure where q first reaches half its maximum)
+        reached = mask & (q >= 0.5 * q_hi)
+        p_half = np.min(np.where(reached, x, np.inf), axis=1, keepdims=True)
+        p_half = np.where(np.isfinite(p_half) & (p_half > 0), p_half, x_hi)
+        candidates.append(row(2.0 * q_hi, 1.0 / p_half))
+        # affinity grid, each with its least-squares capacity
+        for b in log_grid(0.01 / x_hi, 100.0 / x_lo, _AFFINITY_GRID_POINTS):
+            shape = cls.evaluate(x, None, 1.0, b)
+            candidates.append(row(best_scale(q, shape, mask, q_hi), b))
+        return candidates
 
     @classmethod
     def saturation_capacity(cls, params):
-        return params[:, 0]
+        return params[:, 0].copy()
 
     @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):

@@ -1,0 +1,68 @@
+"""Toth (1971): heterogeneous-surface isotherm that keeps Henry's law at p -> 0."""
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import expit
+
+from .base import IsothermModel, Param
+from .langmuir import Langmuir
+from .seeding import best_scale, data_scales, keep_best, log_grid, row
+
+_AFFINITY_GRID_POINTS = 9
+_T_GRID = (1.0, 0.7, 0.45, 0.3)
+
+
+def _log_bp(x, affinity):
+    with np.errstate(divide="ignore"):
+        return np.log(affinity * x)
+
+
+class Toth(IsothermModel):
+    id = "toth"
+    title = "Toth"
+    equation = "q = q_sat * affinity * p / (1 + (affinity * p)^t)^(1/t)"
+    reference = ("J. Toth, Acta Chim. Acad. Sci. Hung. 69 (1971) 311-328 "
+                 "(page range from memory)")
+    params = (
+        Param("q_sat", "mol/kg", 0.0, np.inf, "saturation capacity"),
+        Param("affinity", "1/Pa", 0.0, np.inf, "affinity constant b", log_scale=True),
+        # 1 is Langmuir, < 1 heterogeneous; 0.1..5 keeps (1 + (bp)^t)^(1/t) tame
+        Param("t", "-", 0.1, 5.0, "heterogeneity exponent (1 = Langmuir)"),
+    )
+
+    # written as exp(ln(bp) - ln(1 + (bp)^t) / t) so large bp cannot overflow
+    @staticmethod
+    def evaluate(x, temperature_k, q_sat, affinity, t):
+        log_bp = _log_bp(x, affinity)
+        return q_sat * np.exp(log_bp - np.logaddexp(0.0, t * log_bp) / t)
+
+    @staticmethod
+    def jacobian(x, temperature_k, q_sat, affinity, t):
+        log_bp = _log_bp(x, affinity)
+        log_denom = np.logaddexp(0.0, t * log_bp)   # ln(1 + (bp)^t)
+        theta = np.exp(log_bp - log_denom / t)
+        q = q_sat * theta
+        d_aff = q * expit(-t * log_bp) / affinity   # (1 + (bp)^t)^-1
+        with np.errstate(invalid="ignore"):
+            d_t = np.where(x > 0, q * (log_denom / t**2 - log_bp * expit(t * log_bp) / t), 0.0)
+        return theta, d_aff, d_t
+
+    @classmethod
+    def initial_guesses(cls, x, q, mask, temperature_k):
+        x_lo, x_hi, q_hi = data_scales(x, q, mask)
+        # t = 1 is Langmuir, so its linear-form seeds are Toth seeds too
+        candidates = [np.concatenate([c, np.ones_like(c[:, :1])], axis=1)
+                      for c in Langmuir.candidate_seeds(x, q, mask)[:2]]
+        for t in _T_GRID:
+            for b in log_grid(0.01 / x_hi, 100.0 / x_lo, _AFFINITY_GRID_POINTS):
+                shape = cls.evaluate(x, None, 1.0, b, t)
+                candidates.append(row(best_scale(q, shape, mask, q_hi), b, t))
+        return keep_best(cls, candidates, x, q, mask, temperature_k)
+
+    @classmethod
+    def saturation_capacity(cls, params):
+        return params[:, 0].copy()
+
+    @classmethod
+    def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):
+        return params[:, 0] * params[:, 1]
