@@ -1,0 +1,28 @@
+#!/usr/bin/env bash
+# The whole test suite from a fresh clone: venv, dependencies, services, pytest.
+# Usage: bash tests/run.sh [pytest args...]
+set -euo pipefail
+cd "$(dirname "$0")/.."
+
+PY="${PYTHON:-python3}"
+if [ ! -x .venv/bin/python ]; then
+    "$PY" -m venv .venv
+fi
+.venv/bin/python -m pip install -q --disable-pip-version-check --upgrade pip >/dev/null
+.venv/bin/python -m pip install -q --disable-pip-version-check -e '.[test]'
+
+# System programs the integration tests start themselves (on free loopback
+# ports): redis-server. Installed from Debian's packages when missing.
+need_apt=()
+command -v redis-server >/dev/null 2>&1 || need_apt+=(redis-server)
+if [ "${#need_apt[@]}" -gt 0 ]; then
+    if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
+        echo "installing ${need_apt[*]} from Debian's packages" >&2
+        apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq "${need_apt[@]}" >/dev/null
+    else
+        echo "missing ${need_apt[*]}: install it (apt-get install ${need_apt[*]}) and re-run" >&2
+        exit 1
+    fi
+fi
+
+exec .venv/bin/python -m pytest "$@"
