@@ -1,0 +1,127 @@
+"""Capacity, monolayer volume and site density against scipy.constants and the
+delta method computed directly; truth-known synthetic isotherms (invented)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import constants, stats
+
+from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
+from worker.metrics import summarize
+from worker.metrics.capacity import (CAPACITY_EXTRAPOLATION_FRACTION, gas_volume_cm3stp_per_g,
+                                     sites_per_g)
+
+P_PA = np.geomspace(1e2, 1e6, 15)
+
+CONTRACT = ["q_sat_mol_per_kg", "monolayer_volume_cm3stp_per_g", "sites_per_g",
+            "henry_mol_per_kg_pa", "bet_area_m2_per_g", "bet_c",
+            "bet_range_relative_pressure_low", "bet_range_relative_pressure_high", "flags"]
+
+
+def test_stp_volume_to_moles_and_molecules_follows_the_ideal_gas_law():
+    # source: ideal gas law n = pV/(RT) with R, N_A from scipy.constants (CODATA);
+    # STP = 273.15 K, 101.325 kPa (common practice in volumetric adsorption, no single source)
+    volume_cm3_per_g = 123.4
+    moles_per_g = constants.atm * volume_cm3_per_g * 1e-6 / (constants.R * constants.zero_Celsius)
+    loading_mol_per_kg = moles_per_g * 1000.0
+    assert gas_volume_cm3stp_per_g(loading_mol_per_kg) == pytest.approx(volume_cm3_per_g, rel=1e-12)
+    assert sites_per_g(loading_mol_per_kg) == pytest.approx(moles_per_g * constants.Avogadro,
+                                                           rel=1e-12)
+
+
+def test_molar_volume_matches_the_codata_table_entry():
+    # source: CODATA "molar volume of ideal gas (273.15 K, 101.325 kPa)" via scipy.constants
+    codata_m3_per_mol = constants.physical_constants[
+        "molar volume of ideal gas (273.15 K, 101.325 kPa)"][0]
+    assert gas_volume_cm3stp_per_g(1000.0) == pytest.approx(codata_m3_per_mol * 1e6, rel=1e-9)
+
+
+def test_worked_monolayer_volume_to_site_count_and_area_per_site():
+    # Worked case; every number is computed here from scipy.constants (CODATA), not typed:
+    # V_m = 50 cm3(STP)/g on a 400 m2/g solid.
+    v_m_cm3_per_g, area_m2_per_g = 50.0, 400.0
+    n_m_mol_per_g = constants.atm * v_m_cm3_per_g * 1e-6 / (constants.R * constants.zero_Celsius)
+    expected_sites_per_g = n_m_mol_per_g * constants.Avogadro
+    expected_area_per_site_nm2 = area_m2_per_g * 1e18 / expected_sites_per_g
+
+    q_sat = n_m_mol_per_g * 1000.0
+    iso = langmuir_isotherm("a", "m", "CO2", 298.0, q_sat, 1e-4, P_PA,
+                            surface_area_m2_per_g=area_m2_per_g)
+    batch, packed = batch_of([iso])
+    out = summarize(packed, {"langmuir": truth_fits("langmuir", [[q_sat, 1e-4]])},
+                    selection_of(["langmuir"]), batch)
+    assert out["monolayer_volume_cm3stp_per_g"][0] == pytest.approx(v_m_cm3_per_g, rel=1e-12)
+    assert out["sites_per_g"][0] == pytest.approx(expected_sites_per_g, rel=1e-12)
+    assert out["area_per_site_nm2"][0] == pytest.approx(expected_area_per_site_nm2, rel=1e-12)
+    assert out["sites_per_nm2"][0] == pytest.approx(1 / expected_area_per_site_nm2, rel=1e-12)
+    assert out["surface_area_source"][0] == "given"
+
+
+def test_delta_method_interval_for_langmuir_equals_direct_computation():
+    # Langmuir q_sat is the first parameter: the delta-method variance is C[0, 0];
+    # 95 % two-sided normal quantile from scipy.stats (general-purpose reference)
+    cov = np.array([[[0.04, 1e-7], [1e-7, 1e-12]], [[0.09, -2e-7], [-2e-7, 4e-12]]])
+    params = [[5.0, 1e-4], [2.0, 3e-5]]
+    isos = [langmuir_isotherm(f"i{k}", "m", "CO2", 298.0, *params[k], P_PA) for k in range(2)]
+    batch, packed = batch_of(isos)
+    out = summarize(packed, {"langmuir": truth_fits("langmuir", params, cov)},
+                    selection_of(["langmuir", "langmuir"]), batch)
+    half_width = stats.norm.ppf(0.975) * np.sqrt(cov[:, 0, 0])
+    q = np.array(params)[:, 0]
+    np.testing.assert_allclose(out["q_sat_ci95_low_mol_per_kg"], q - half_width, rtol=1e-9)
+    np.testing.assert_allclose(out["q_sat_ci95_high_mol_per_kg"], q + half_width, rtol=1e-9)
+
+
+def test_dual_site_capacity_is_the_sum_with_the_covariance_of_the_sum():
+    # var(q1 + q2) = C11 + C33 + 2 C13 (parameter order q_sat_1, affinity_1, q_sat_2, affinity_2)
+    params = [[1.5, 1e-3, 3.0, 1e-5]]
+    cov = np.diag([0.01, 1e-9, 0.04, 1e-13])
+    cov[0, 2] = cov[2, 0] = -0.015
+    p = P_PA
+    q = 1.5 * 1e-3 * p / (1 + 1e-3 * p) + 3.0 * 1e-5 * p / (1 + 1e-5 * p)
+    from worker.isotherm import Isotherm
+    batch, packed = batch_of([Isotherm("d", "m", "CO2", 298.0, p, q)])
+    out = summarize(packed, {"dual_site_langmuir": truth_fits("dual_site_langmuir", params, [cov])},
+                    selection_of(["dual_site_langmuir"]), batch)
+    se = np.sqrt(0.01 + 0.04 + 2 * -0.015)
+    assert out["q_sat_mol_per_kg"][0] == pytest.approx(4.5, rel=1e-12)
+    assert out["q_sat_stderr_mol_per_kg"][0] == pytest.approx(se, rel=1e-6)
+
+
+def test_capacity_extrapolated_only_when_data_stay_below_half_of_q_sat():
+    # truth-known: q_sat = 10 mol/kg; isotherm 'low' reaches q_sat * b * p/(1+bp) with
+    # bp <= 0.5 -> at most 3.3 mol/kg (< half); isotherm 'high' reaches 9 mol/kg
+    low = langmuir_isotherm("low", "m", "CO2", 298.0, 10.0, 1e-5, np.linspace(1e3, 5e4, 8))
+    high = langmuir_isotherm("high", "m", "CO2", 298.0, 10.0, 1e-5, np.linspace(1e3, 9e5, 8))
+    batch, packed = batch_of([low, high])
+    out = summarize(packed, {"langmuir": truth_fits("langmuir", [[10.0, 1e-5]] * 2)},
+                    selection_of(["langmuir"] * 2), batch)
+    assert CAPACITY_EXTRAPOLATION_FRACTION == 0.5
+    assert "capacity_extrapolated" in out["flags"][0]
+    assert "capacity_extrapolated" not in out["flags"][1]
+
+
+def test_no_selected_model_and_models_without_capacity_give_nan_and_flags():
+    p = P_PA
+    isos = [langmuir_isotherm(f"i{k}", "m", "CO2", 298.0, 4.0, 1e-5, p) for k in range(3)]
+    batch, packed = batch_of(isos)
+    fits, selection = stack_fits([("langmuir", [4.0, 1e-5]), (None, None), ("henry", [4e-5])])
+    out = summarize(packed, fits, selection, batch)
+    for name in CONTRACT:
+        assert len(out[name]) == 3
+    assert np.isfinite(out["q_sat_mol_per_kg"][0])
+    assert np.isnan(out["q_sat_mol_per_kg"][1]) and np.isnan(out["q_sat_mol_per_kg"][2])
+    assert np.isnan(out["monolayer_volume_cm3stp_per_g"][1])
+    assert "no_selected_model" in out["flags"][1]
+    assert "no_saturation_capacity" in out["flags"][2]
+    assert "no_saturation_capacity" not in out["flags"][0]
+
+
+def test_bad_input_gives_nan_not_an_exception():
+    # a negative capacity and a nan covariance must not raise nor give a silent number
+    iso = langmuir_isotherm("x", "m", "CO2", 298.0, 1.0, 1e-5, P_PA)
+    batch, packed = batch_of([iso])
+    fits = {"langmuir": truth_fits("langmuir", [[-1.0, 1e-5]], np.full((1, 2, 2), np.nan))}
+    out = summarize(packed, fits, selection_of(["langmuir"]), batch)
+    assert np.isnan(out["q_sat_mol_per_kg"][0])
+    assert "no_saturation_capacity" in out["flags"][0]

@@ -1,0 +1,85 @@
+"""Screening metrics from each isotherm's selected model (and, for BET, its raw data).
+
+Two entry points, called by the pipeline after selection:
+
+* ``summarize``        one value per isotherm per column (arrays of length n);
+* ``material_metrics`` rows per material and gas (isosteric heat, temperature
+                       swing) and per mixture (IAST).
+
+A figure the data cannot support is nan with a flag naming why; nothing here
+raises on bad input.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from ..isotherm import Batch
+from ..packing import Packed
+from ..results import ModelFits, Selection
+from .bet import bet_columns
+from .capacity import capacity_columns, gas_volume_cm3stp_per_g, site_density_columns
+from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags
+from .henry import henry_columns
+from .iast import iast_rows
+from .isosteric import isosteric_heat_rows
+from .working import loading_columns, temperature_swing_rows
+
+
+def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+              batch: Batch) -> dict[str, np.ndarray]:
+    """Summary columns, each an array of length ``packed.n``, canonical units in the names."""
+    flags = new_flags(packed.n)
+    add_flag(flags, ~has_selected_fit(selection, fits), "no_selected_model")
+    columns: dict[str, np.ndarray] = {}
+    columns.update(capacity_columns(packed, fits, selection, flags))
+    columns.update(henry_columns(packed, fits, selection, flags))
+    columns.update(loading_columns(packed, fits, selection, batch, flags))
+    columns.update(bet_columns(packed, flags))
+    # The BET monolayer (raw data, N2/Ar/Kr) is the monolayer where one was
+    # measured; otherwise the selected model's saturation capacity stands in.
+    bet_monolayer = columns["bet_monolayer_mol_per_kg"]
+    has_bet = np.isfinite(bet_monolayer)
+    columns["monolayer_volume_cm3stp_per_g"] = np.where(
+        has_bet, gas_volume_cm3stp_per_g(bet_monolayer), columns["monolayer_volume_cm3stp_per_g"])
+    columns["monolayer_source"] = np.where(
+        has_bet, "bet", np.where(np.isfinite(columns["monolayer_volume_cm3stp_per_g"]),
+                                 "q_sat", None)).astype(object)
+    area, source = surface_area_for_sites(packed, columns["bet_area_m2_per_g"])
+    columns["surface_area_used_m2_per_g"] = area
+    columns["surface_area_source"] = source
+    columns.update(site_density_columns(columns["sites_per_g"], area))
+    columns["flags"] = flags_as_object_array(flags)
+    return columns
+
+
+def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
+                           ) -> tuple[np.ndarray, np.ndarray]:
+    """Area (n,) in m2/g to spread the sites over, and where it came from.
+
+    A surface area given with the isotherm wins; otherwise the mean of the
+    valid BET areas measured on the same material in this batch.
+    """
+    given = np.isfinite(packed.surface_area_m2_per_g) & (packed.surface_area_m2_per_g > 0)
+    area = np.where(given, packed.surface_area_m2_per_g, np.nan)
+    source = np.where(given, "given", None).astype(object)
+    materials = np.asarray(packed.material_ids, dtype=object)
+    measured = np.isfinite(bet_area_m2_per_g)
+    for material_id in set(materials[measured]):
+        same = materials == material_id
+        fill = same & ~given
+        area[fill] = np.mean(bet_area_m2_per_g[same & measured])
+        source[fill] = "bet"
+    return area, source
+
+
+def material_metrics(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                     batch: Batch) -> list[dict]:
+    """Flat rows per material and gas, and per mixture request."""
+    usable = has_selected_fit(selection, fits)
+    rows = isosteric_heat_rows(packed, fits, selection, usable)
+    rows += temperature_swing_rows(packed, fits, selection, batch, usable)
+    rows += iast_rows(packed, fits, selection, batch.mixtures, usable)
+    return rows
+
+
+__all__ = ["summarize", "material_metrics"]

@@ -1,0 +1,96 @@
+"""Saturation capacity with its delta-method interval, monolayer volume, site density."""
+from __future__ import annotations
+
+import numpy as np
+from scipy import constants, stats
+
+from ..packing import Packed
+from ..results import ModelFits, Selection
+from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading,
+                     selected_groups)
+
+# A capacity is an extrapolation when the data never reach half of it.
+CAPACITY_EXTRAPOLATION_FRACTION = 0.5
+# Two-sided 95 % normal quantile: the delta method is an asymptotic argument.
+Z_95 = stats.norm.ppf(0.975)
+
+
+def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
+    """d q_sat / d params (g, k) by central differences of ``model.saturation_capacity``.
+
+    Differences keep this generic over the catalogue; q_sat is a sum of
+    parameters for every model that defines it, where the difference is exact.
+    """
+    g, k = params.shape
+    grad = np.full((g, k), np.nan)
+    for j in range(k):
+        step = 1e-6 * np.maximum(np.abs(params[:, j]), 1e-12)
+        up, down = params.copy(), params.copy()
+        up[:, j] += step
+        down[:, j] -= step
+        grad[:, j] = (model.saturation_capacity(up) - model.saturation_capacity(down)) / (2 * step)
+    return grad
+
+
+def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                     flags: list[list[str]]) -> dict[str, np.ndarray]:
+    """q_sat (mol/kg) with 95 % delta-method interval, monolayer volume and sites per gram."""
+    n = packed.n
+    q_sat = np.full(n, np.nan)
+    q_sat_se = np.full(n, np.nan)
+    for model, model_fits, rows in selected_groups(selection, fits):
+        params = model_fits.params[rows]
+        try:
+            value = model.saturation_capacity(params)
+        except Exception:
+            value = None
+        if value is None:
+            continue
+        q_sat[rows] = value
+        grad = saturation_capacity_gradient(model, params)
+        cov = model_fits.covariance[rows]
+        variance = np.einsum("gi,gij,gj->g", grad, cov, grad)
+        with np.errstate(invalid="ignore"):
+            q_sat_se[rows] = np.sqrt(np.where(variance >= 0, variance, np.nan))
+
+    with np.errstate(invalid="ignore"):
+        has_q_sat = np.isfinite(q_sat) & (q_sat > 0)
+    q_sat = np.where(has_q_sat, q_sat, np.nan)
+    add_flag(flags, ~has_q_sat, "no_saturation_capacity")
+    add_flag(flags, has_q_sat & ~np.isfinite(q_sat_se), "q_sat_interval_unavailable")
+    with np.errstate(invalid="ignore"):
+        extrapolated = has_q_sat & (max_measured_loading(packed)
+                                    < CAPACITY_EXTRAPOLATION_FRACTION * q_sat)
+    add_flag(flags, extrapolated, "capacity_extrapolated")
+
+    return {
+        "q_sat_mol_per_kg": q_sat,
+        "q_sat_stderr_mol_per_kg": np.where(has_q_sat, q_sat_se, np.nan),
+        "q_sat_ci95_low_mol_per_kg": q_sat - Z_95 * q_sat_se,
+        "q_sat_ci95_high_mol_per_kg": q_sat + Z_95 * q_sat_se,
+        "monolayer_volume_cm3stp_per_g": gas_volume_cm3stp_per_g(q_sat),
+        "sites_per_g": sites_per_g(q_sat),
+    }
+
+
+def gas_volume_cm3stp_per_g(loading_mol_per_kg: np.ndarray) -> np.ndarray:
+    """Ideal-gas volume at 273.15 K, 101.325 kPa of a loading, in cm3(STP)/g."""
+    return np.asarray(loading_mol_per_kg) / 1000.0 * MOLAR_VOLUME_STP_CM3_PER_MOL
+
+
+def sites_per_g(q_sat_mol_per_kg: np.ndarray) -> np.ndarray:
+    """Adsorption sites per gram: one molecule per site at saturation."""
+    return np.asarray(q_sat_mol_per_kg) / 1000.0 * constants.Avogadro
+
+
+def site_density_columns(sites: np.ndarray, surface_area_m2_per_g: np.ndarray
+                         ) -> dict[str, np.ndarray]:
+    """Sites per nm2 and nm2 per site where a surface area is known."""
+    area_nm2_per_g = np.asarray(surface_area_m2_per_g) * 1e18
+    with np.errstate(divide="ignore", invalid="ignore"):
+        known = np.isfinite(area_nm2_per_g) & (area_nm2_per_g > 0) & np.isfinite(sites) & (sites > 0)
+        per_nm2 = np.where(known, sites / area_nm2_per_g, np.nan)
+        return {
+            "sites_per_nm2": per_nm2,
+            "area_per_site_nm2": np.where(known, 1.0 / per_nm2, np.nan),
+        }

@@ -1,0 +1,88 @@
+"""Loadings at process pressures, pressure-swing and temperature-swing working capacity."""
+from __future__ import annotations
+
+import numpy as np
+
+from ..isotherm import Batch
+from ..packing import Packed
+from ..results import ModelFits, Selection
+from .common import (SAME_TEMPERATURE_TOLERANCE_K, add_flag, measured_pressure_range,
+                     pressure_label, selected_loading)
+
+
+def outside_measured_range(packed: Packed, pressure_pa: np.ndarray) -> np.ndarray:
+    """(n, k) bool: pressure (n, k) lies outside each isotherm's measured pressure range."""
+    low, high = measured_pressure_range(packed)
+    return (pressure_pa < low[:, None]) | (pressure_pa > high[:, None])
+
+
+def loading_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                    batch: Batch, flags: list[list[str]]) -> dict[str, np.ndarray]:
+    """Loadings (mol/kg) at the adsorption, desorption and reference pressures, and
+    the pressure-swing working capacity q(p_ads) - q(p_des) at the isotherm's temperature."""
+    cond = batch.conditions
+    named = [cond.adsorption_pressure_pa, cond.desorption_pressure_pa,
+             *cond.reference_pressures_pa]
+    pressure = np.broadcast_to(np.asarray(named, dtype=float), (packed.n, len(named)))
+    loading = selected_loading(packed, fits, selection, pressure)
+    outside = outside_measured_range(packed, pressure)
+    with np.errstate(invalid="ignore"):
+        columns = {
+            "loading_ads_mol_per_kg": loading[:, 0],
+            "loading_des_mol_per_kg": loading[:, 1],
+            "working_capacity_mol_per_kg": loading[:, 0] - loading[:, 1],
+        }
+    add_flag(flags, outside[:, 0], "extrapolated_adsorption_pressure")
+    add_flag(flags, outside[:, 1], "extrapolated_desorption_pressure")
+    for j, p in enumerate(named[2:], start=2):
+        label = pressure_label(p)
+        columns[f"loading_at_{label}_pa_mol_per_kg"] = loading[:, j]
+        add_flag(flags, outside[:, j], f"extrapolated_loading_at_{label}_pa")
+    return columns
+
+
+def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                           batch: Batch, usable: np.ndarray) -> list[dict]:
+    """Per material and gas: q(p_ads, T_ads) - q(p_des, T_des) when both temperatures were fitted."""
+    cond = batch.conditions
+    t_ads, t_des = cond.adsorption_temperature_k, cond.desorption_temperature_k
+    if t_ads is None or t_des is None:
+        return []
+    at_ads = usable & (np.abs(packed.temperature_k - t_ads) <= SAME_TEMPERATURE_TOLERANCE_K)
+    at_des = usable & (np.abs(packed.temperature_k - t_des) <= SAME_TEMPERATURE_TOLERANCE_K)
+    # each isotherm at its own temperature; the swing pressure applies at that end
+    pressure = np.where(at_ads, cond.adsorption_pressure_pa, cond.desorption_pressure_pa)[:, None]
+    loading = selected_loading(packed, fits, selection, pressure)[:, 0]
+    outside = outside_measured_range(packed, pressure)[:, 0]
+
+    rows = []
+    keys = sorted({(packed.material_ids[i], packed.adsorbates[i])
+                   for i in np.flatnonzero(at_ads | at_des)})
+    for material_id, adsorbate in keys:
+        same = np.array([(m, a) == (material_id, adsorbate)
+                         for m, a in zip(packed.material_ids, packed.adsorbates)])
+        ads_rows = np.flatnonzero(same & at_ads)
+        des_rows = np.flatnonzero(same & at_des)
+        if ads_rows.size == 0 or des_rows.size == 0:
+            continue
+        i, k = ads_rows[0], des_rows[0]  # first isotherm of the batch at each temperature
+        flags = []
+        if outside[i]:
+            flags.append("extrapolated_adsorption_pressure")
+        if outside[k]:
+            flags.append("extrapolated_desorption_pressure")
+        rows.append({
+            "material_id": material_id,
+            "adsorbate": adsorbate,
+            "kind": "temperature_swing",
+            "adsorption_temperature_k": float(packed.temperature_k[i]),
+            "desorption_temperature_k": float(packed.temperature_k[k]),
+            "adsorption_pressure_pa": float(cond.adsorption_pressure_pa),
+            "desorption_pressure_pa": float(cond.desorption_pressure_pa),
+            "loading_ads_mol_per_kg": float(loading[i]),
+            "loading_des_mol_per_kg": float(loading[k]),
+            "working_capacity_mol_per_kg": float(loading[i] - loading[k]),
+            "isotherm_ids": [packed.isotherm_ids[i], packed.isotherm_ids[k]],
+            "flags": flags,
+        })
+    return rows
