@@ -94,3 +94,14 @@ def test_single_temperature_and_no_model_give_no_row_or_flags():
     isos2, fit_list2 = langmuir_rows((273.15, 298.15), material="gap")
     fit_list2[1] = (None, None)  # the second isotherm has no selected model
     assert qst_rows(isos + isos2, fit_list + fit_list2) == []
+
+
+def test_cryogenic_isotherm_is_not_combined_with_ambient_ones():
+    # Clausius-Clapeyron needs a narrow temperature span; a 77 K isotherm of the
+    # same material and gas must not enter the ambient group (common practice).
+    from worker.metrics.isosteric import _temperature_window
+    t = np.array([298.15, 77.35, 273.15, 323.15])
+    rows = _temperature_window(np.arange(4), t)
+    assert sorted(t[rows]) == [273.15, 298.15, 323.15]
+    # a pair far apart has no window holding both: only one isotherm remains
+    assert _temperature_window(np.arange(2), np.array([77.35, 298.15])).size == 1

@@ -22,6 +22,11 @@ QST_GRID_LOW_FRACTION = 0.05
 QST_GRID_HIGH_FRACTION = 0.95
 QST_GRID_POINTS = 11
 QST_REFERENCE_FRACTION = 0.5
+# Clausius-Clapeyron assumes Qst does not change over the temperature span, so
+# only isotherms within a window T_max <= ratio * T_min are combined; a 77 K
+# BET isotherm is never paired with ambient ones (common practice, no single
+# source for the exact ratio).
+QST_MAX_TEMPERATURE_RATIO = 1.5
 
 
 def isosteric_groups(packed: Packed, usable: np.ndarray) -> list[tuple[str, str, np.ndarray]]:
@@ -33,10 +38,22 @@ def isosteric_groups(packed: Packed, usable: np.ndarray) -> list[tuple[str, str,
         groups.setdefault((packed.material_ids[i], packed.adsorbates[i]), []).append(i)
     out = []
     for (material_id, adsorbate), rows in sorted(groups.items()):
-        rows = np.array(rows)
+        rows = _temperature_window(np.array(rows), packed.temperature_k)
         if _distinct_temperatures(packed.temperature_k[rows]) >= 2:
             out.append((material_id, adsorbate, rows))
     return out
+
+
+def _temperature_window(rows: np.ndarray, temperature_k: np.ndarray) -> np.ndarray:
+    """The rows of the largest set whose temperatures span at most
+    QST_MAX_TEMPERATURE_RATIO (ties: the warmer set, where screening happens)."""
+    rows = rows[np.argsort(temperature_k[rows], kind="stable")]
+    t = temperature_k[rows]
+    # for each start i, the end of the window [t_i, ratio * t_i]
+    ends = np.searchsorted(t, QST_MAX_TEMPERATURE_RATIO * t, side="right")
+    sizes = ends - np.arange(t.size)
+    best = int(np.flatnonzero(sizes == sizes.max())[-1])
+    return rows[best:ends[best]]
 
 
 def _distinct_temperatures(temperature_k: np.ndarray) -> int:
