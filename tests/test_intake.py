@@ -1,0 +1,530 @@
+"""Intake: formats, unit normalisation and every validation rule.
+
+The isotherm values here are invented (truth-known synthetic data); unit
+factors are checked against scipy.constants, saturation pressures against
+CoolProp.
+"""
+import io
+import json
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from CoolProp.CoolProp import PropsSI
+from scipy import constants
+
+from worker.intake import Limits, read_batch
+from worker.isotherm import IntakeError
+from worker.units import MOLAR_VOLUME_STP_CM3_PER_MOL
+
+HEADER = "material_id,adsorbate,temperature_k,pressure,loading"
+UNITS = "# pressure_unit: kPa\n# loading_unit: mmol/g\n"
+
+
+def csv_of(*rows, header=HEADER, units=UNITS):
+    return units + header + "\n" + "\n".join(rows) + "\n"
+
+
+def good_rows(material="m1", adsorbate="CO2", t="298.15", extra=""):
+    return [f"{material},{adsorbate},{t},{p},{q}{extra}"
+            for p, q in ((10, 0.5), (50, 1.5), (100, 2.0), (200, 2.5))]
+
+
+def only_issue(batch):
+    assert batch.isotherms == []
+    assert len(batch.rejected) == 1, [str(i) for i in batch.rejected]
+    return batch.rejected[0]
+
+
+# --- reading and normalising ------------------------------------------------
+
+def test_csv_is_normalised_to_canonical_units_and_sorted():
+    rows = ["m1,CO2,298.15,100,2.0", "m1,CO2,298.15,10,0.5", "m1,CO2,298.15,50,1.5"]
+    batch = read_batch(csv_of(*rows), batch_label="b1")
+    assert batch.rejected == []
+    (iso,) = batch.isotherms
+    np.testing.assert_array_equal(iso.pressure_pa, [1e4, 5e4, 1e5])
+    np.testing.assert_array_equal(iso.loading_mol_per_kg, [0.5, 1.5, 2.0])
+    assert (iso.material_id, iso.adsorbate, iso.temperature_k, iso.branch) == ("m1", "CO2", 298.15, "adsorption")
+    assert iso.batch_label == "b1"
+    assert iso.isotherm_id.startswith("m1|CO2|298.15K|adsorption|")
+    # CO2 at 298.15 K is below its critical temperature: p0 from CoolProp
+    assert iso.saturation_pressure_pa == pytest.approx(PropsSI("P", "T", 298.15, "Q", 0, "CO2"), rel=1e-12)
+    assert iso.flags == []
+    assert iso.original["rows"].tolist() == [1, 2, 3]
+    assert iso.original["pressure"].tolist() == [100.0, 10.0, 50.0]
+    assert (iso.original["pressure_unit"], iso.original["loading_unit"]) == ("kPa", "mmol/g")
+
+
+def test_derived_id_is_stable_and_content_dependent():
+    a = read_batch(csv_of(*good_rows())).isotherms[0].isotherm_id
+    b = read_batch(csv_of(*reversed(good_rows()))).isotherms[0].isotherm_id
+    c = read_batch(csv_of(*good_rows()[:3], "m1,CO2,298.15,200,2.6")).isotherms[0].isotherm_id
+    assert a == b != c
+
+
+def test_supercritical_isotherm_has_no_saturation_pressure():
+    batch = read_batch(csv_of(*good_rows(adsorbate="CH4", t="298.15")))
+    assert batch.isotherms[0].saturation_pressure_pa is None
+
+
+@pytest.mark.parametrize("unit, factor_pa", [
+    ("atm", constants.atm), ("torr", constants.torr), ("psi", constants.psi),
+    ("bar", constants.bar), ("mmHg", constants.mmHg), ("MPa", 1e6), ("mbar", 100.0),
+])
+def test_pressure_unit_column(unit, factor_pa):
+    rows = [f"m1,CH4,298.15,{p},{q},{unit}" for p, q in ((1, 0.5), (2, 1.0), (3, 1.2))]
+    batch = read_batch(csv_of(*rows, header=HEADER + ",pressure_unit", units="# loading_unit: mol/kg\n"))
+    np.testing.assert_allclose(batch.isotherms[0].pressure_pa, np.array([1, 2, 3]) * factor_pa, rtol=1e-15)
+
+
+def test_relative_pressure_uses_computed_saturation_pressure():
+    rows = [f"m1,nitrogen,77.355,{x},{q}" for x, q in ((0.05, 1.0), (0.1, 1.2), (0.2, 1.4))]
+    batch = read_batch(csv_of(*rows, units="# pressure_unit: p/p0\n# loading_unit: mmol/g\n"))
+    (iso,) = batch.isotherms
+    p0 = PropsSI("P", "T", 77.355, "Q", 0, "Nitrogen")  # CoolProp reference
+    np.testing.assert_allclose(iso.pressure_pa, np.array([0.05, 0.1, 0.2]) * p0, rtol=1e-12)
+    np.testing.assert_allclose(iso.relative_pressure, [0.05, 0.1, 0.2], rtol=1e-12)
+    assert iso.adsorbate == "N2"
+
+
+def test_relative_pressure_with_given_saturation_pressure_in_pa():
+    rows = [f"m1,CO2,195,{x},{q},150000" for x, q in ((0.1, 1.0), (0.2, 1.2), (0.5, 1.4))]
+    batch = read_batch(csv_of(*rows, header=HEADER + ",saturation_pressure",
+                              units="# pressure_unit: relative\n# loading_unit: mmol/g\n"))
+    np.testing.assert_allclose(batch.isotherms[0].pressure_pa, [15000, 30000, 75000])
+    assert batch.isotherms[0].saturation_pressure_pa == 150000
+
+
+def test_saturation_pressure_given_in_row_pressure_unit():
+    rows = [f"m1,CO2,273.15,{p},{q},3485" for p, q in ((10, 1.0), (20, 1.2), (50, 1.4))]
+    batch = read_batch(csv_of(*rows, header=HEADER + ",saturation_pressure"))
+    assert batch.isotherms[0].saturation_pressure_pa == 3485e3
+
+
+def test_absolute_loading_with_sample_mass_and_gas_volume():
+    rows = [f"m1,N2,77,{p},{v}" for p, v in ((1, 22.4), (2, 33.6), (3, 44.8))]
+    text = csv_of(*rows, units="# pressure_unit: kPa\n# loading_unit: cm3(STP)\n")
+    batch = read_batch(text, defaults={"sample_mass_g": "0.5"})
+    expected = np.array([22.4, 33.6, 44.8]) / MOLAR_VOLUME_STP_CM3_PER_MOL / 0.5e-3
+    np.testing.assert_allclose(batch.isotherms[0].loading_mol_per_kg, expected, rtol=1e-14)
+
+
+def test_sigma_is_converted_with_the_loading():
+    rows = [f"m1,CO2,298.15,{p},{q},{s}" for p, q, s in ((10, 44.0, 0.44), (20, 88.0, 0.88), (30, 99.0, 1.0))]
+    batch = read_batch(csv_of(*rows, header=HEADER + ",sigma", units="# pressure_unit: kPa\n# loading_unit: mg/g\n"))
+    iso = batch.isotherms[0]
+    np.testing.assert_allclose(iso.sigma_mol_per_kg, iso.loading_mol_per_kg / 100 * np.array([1, 1, 99 / 99.0 * 100 / 99]),
+                               rtol=1e-12)
+
+
+def test_grouping_by_isotherm_id_and_branches():
+    rows = [f"{i},m1,CO2,298.15,{p},{q},{b}" for i, b in (("ads1", "adsorption"), ("des1", "Desorption"))
+            for p, q in ((10, 0.5), (20, 0.9), (30, 1.2))]
+    batch = read_batch(csv_of(*rows, header="isotherm_id," + HEADER + ",branch"))
+    assert [(i.isotherm_id, i.branch) for i in batch.isotherms] == [("ads1", "adsorption"), ("des1", "desorption")]
+
+
+def test_settings_precedence_row_over_file_over_defaults():
+    rows = [f"m1,CH4,298.15,{p},{q},bar" for p, q in ((1, 0.5), (2, 1.0), (3, 1.2))]
+    text = "# pressure_unit: kPa\n" + HEADER + ",pressure_unit\n" + "\n".join(rows) + "\n"
+    batch = read_batch(text, defaults={"pressure_unit": "Pa", "loading_unit": "mol/kg", "batch_label": "d"})
+    np.testing.assert_allclose(batch.isotherms[0].pressure_pa, [1e5, 2e5, 3e5])
+    assert batch.label == "d"
+    assert read_batch(text, batch_label="arg", defaults={"loading_unit": "mol/kg", "batch_label": "d"}).label == "arg"
+
+
+def test_label_defaults_to_content_hash():
+    text = csv_of(*good_rows())
+    label = read_batch(text).label
+    assert label.startswith("batch-") and len(label) == 18
+    assert read_batch(text).label == label
+
+
+# --- the same data through three formats ------------------------------------
+
+def _same_data_three_ways(tmp_path):
+    points = {"iso-a": ([1, 10, 100, 10], [0.1, 0.9, 2.5, 1.0]), "iso-b": ([5, 50, 500], [0.2, 1.0, 1.9])}
+    csv_rows = [f"{iid},mat-{iid[-1]},nitrogen,77,{p},{q}" for iid, (ps, qs) in points.items()
+                for p, q in zip(ps, qs)]
+    csv_text = "# pressure_unit: torr\n# loading_unit: cm3(STP)/g\n# batch_label: same\n" \
+               "isotherm_id,material_id,adsorbate,temperature_k,pressure,loading\n" + "\n".join(csv_rows)
+    doc = {"batch_label": "same", "defaults": {"pressure_unit": "torr", "loading_unit": "cm3(STP)/g"},
+           "isotherms": [{"isotherm_id": iid, "material_id": f"mat-{iid[-1]}", "adsorbate": "nitrogen",
+                          "temperature_k": 77, "pressure": ps, "loading": qs}
+                         for iid, (ps, qs) in points.items()]}
+    table = pa.table({
+        "isotherm_id": [iid for iid, (ps, _) in points.items() for _ in ps],
+        "material_id": [f"mat-{iid[-1]}" for iid, (ps, _) in points.items() for _ in ps],
+        "adsorbate": ["nitrogen"] * 7,
+        "temperature_k": [77] * 7,
+        "pressure": [float(p) for ps, _ in points.values() for p in ps],
+        "loading": [q for _, qs in points.values() for q in qs],
+    }).replace_schema_metadata({"pressure_unit": "torr", "loading_unit": "cm3(STP)/g", "batch_label": "same"})
+    path = tmp_path / "same.parquet"
+    pq.write_table(table, path)
+    return csv_text, json.dumps(doc), path
+
+
+def test_csv_json_parquet_give_identical_isotherms(tmp_path):
+    csv_text, json_text, parquet_path = _same_data_three_ways(tmp_path)
+    batches = [read_batch(csv_text), read_batch(json_text), read_batch(parquet_path),
+               read_batch(parquet_path.read_bytes())]
+    reference = batches[0]
+    assert [i.isotherm_id for i in reference.isotherms] == ["iso-a", "iso-b"]
+    assert reference.isotherms[0].flags == ["duplicate_pressures_merged"]
+    for batch in batches[1:]:
+        assert batch.label == "same" and batch.rejected == []
+        for a, b in zip(reference.isotherms, batch.isotherms, strict=True):
+            for name in ("isotherm_id", "material_id", "adsorbate", "temperature_k", "branch",
+                         "saturation_pressure_pa", "surface_area_m2_per_g", "flags", "batch_label"):
+                assert getattr(a, name) == getattr(b, name), name
+            np.testing.assert_array_equal(a.pressure_pa, b.pressure_pa)
+            np.testing.assert_array_equal(a.loading_mol_per_kg, b.loading_mol_per_kg)
+
+
+def test_json_conditions_and_mixtures_are_canonical():
+    doc = {"defaults": {"pressure_unit": "bar", "loading_unit": "mmol/g"},
+           "isotherms": [{"material_id": "m", "adsorbate": "CO2", "temperature_k": 298,
+                          "pressure": [0.1, 0.5, 1.0], "loading": [1, 2, 3]}],
+           "conditions": {"pressure_unit": "kPa", "adsorption_pressure": 100, "desorption_pressure": 10,
+                          "reference_pressures": [15, 100], "adsorption_temperature_k": 298},
+           "mixtures": [{"components": ["carbon dioxide", "N2"], "mole_fractions": [0.15, 0.85],
+                         "total_pressure": 1, "temperature_k": 298}]}
+    batch = read_batch(json.dumps(doc))
+    c = batch.conditions
+    assert (c.adsorption_pressure_pa, c.desorption_pressure_pa, c.reference_pressures_pa) == (1e5, 1e4, (1.5e4, 1e5))
+    assert c.adsorption_temperature_k == 298 and c.desorption_temperature_k is None
+    (m,) = batch.mixtures
+    assert (m.components, m.mole_fractions, m.total_pressure_pa, m.temperature_k, m.material_id) == \
+        (["CO2", "N2"], [0.15, 0.85], 1e5, 298, None)
+
+
+@pytest.mark.parametrize("mixture, field", [
+    ({"components": ["CO2"], "mole_fractions": [1.0]}, "mixtures[0].components"),
+    ({"components": ["CO2", "N2"], "mole_fractions": [0.2, 0.7]}, "mixtures[0].mole_fractions"),
+    ({"components": ["CO2", "N3"], "mole_fractions": [0.2, 0.8]}, "mixtures[0].components"),
+    ({"components": ["CO2", "N2"], "mole_fractions": [0.2, 0.8], "total_pressure": -1}, "mixtures[0].total_pressure"),
+    ({"components": ["CO2", "N2"], "mole_fractions": [0.2, 0.8], "colour": 1}, "mixtures[0]"),
+])
+def test_bad_mixture_is_a_batch_error(mixture, field):
+    base = {"total_pressure": 1, "pressure_unit": "bar", "temperature_k": 298}
+    doc = {"defaults": {"pressure_unit": "bar", "loading_unit": "mmol/g"},
+           "isotherms": [{"material_id": "m", "adsorbate": "CO2", "temperature_k": 298,
+                          "pressure": [0.1, 0.5, 1.0], "loading": [1, 2, 3]}],
+           "mixtures": [{**base, **mixture}]}
+    with pytest.raises(IntakeError) as err:
+        read_batch(json.dumps(doc), batch_label="mx")
+    (issue,) = err.value.issues
+    assert (issue.code, issue.field, issue.batch) == ("invalid_mixture", field, "mx")
+
+
+# --- per-isotherm rules -------------------------------------------------------
+
+@pytest.mark.parametrize("bad_row, row, field, code, text", [
+    ("m1,CO2,298.15,,2.5", 4, "pressure", "missing_value", "'pressure' is missing"),
+    ("m1,CO2,298.15,abc,2.5", 4, "pressure", "not_a_number", "value 'abc' is not a number"),
+    ("m1,CO2,298.15,200,NaN", 4, "loading", "not_finite", "value 'NaN' is not finite"),
+    ("m1,CO2,298.15,200,-inf", 4, "loading", "not_finite", "value '-inf' is not finite"),
+    ("m1,CO2,298.15,1e999,2.5", 4, "pressure", "not_finite", "value '1e999' is not finite"),
+    ("m1,CO2,298.15,-200,2.5", 4, "pressure", "negative_value", "value '-200' is negative"),
+    ("m1,CO2,298.15,200,-2.5", 4, "loading", "negative_value", "value '-2.5' is negative"),
+])
+def test_bad_point_rejects_isotherm_with_exact_issue(bad_row, row, field, code, text):
+    batch = read_batch(csv_of(*good_rows()[:3], bad_row), batch_label="b")
+    issue = only_issue(batch)
+    assert (issue.batch, issue.row, issue.field, issue.code) == ("b", row, field, code)
+    assert issue.isotherm == "m1|CO2|298.15K|adsorption (from row 1)"
+    assert issue.message == (f"batch 'b', isotherm 'm1|CO2|298.15K|adsorption (from row 1)', "
+                             f"row {row}, field '{field}': {text}" + issue.message.split(text, 1)[1])
+
+
+@pytest.mark.parametrize("t, code", [("0", "non_positive_value"), ("-10", "non_positive_value"),
+                                     ("", "missing_value"), ("warm", "not_a_number")])
+def test_bad_temperature(t, code):
+    issues = read_batch(csv_of(*good_rows(t=t)), batch_label="b").rejected
+    assert {(i.code, i.field) for i in issues} == {(code, "temperature_k")}
+    assert [i.row for i in issues] == [1, 2, 3, 4]
+
+
+def test_unknown_adsorbate_suggests_name_once_per_isotherm():
+    issue = only_issue(read_batch(csv_of(*good_rows(adsorbate="nitrogn")), batch_label="b"))
+    assert (issue.code, issue.field, issue.row) == ("unknown_adsorbate", "adsorbate", 1)
+    assert issue.message.endswith("unknown adsorbate 'nitrogn'; did you mean 'nitrogen'?")
+
+
+def test_unknown_unit_suggests_name():
+    batch = read_batch(csv_of(*good_rows(extra=",kpaa"), header=HEADER + ",pressure_unit"), batch_label="b")
+    issue = only_issue(batch)
+    assert (issue.code, issue.field, issue.row) == ("unknown_unit", "pressure_unit", 1)
+    assert issue.message.endswith("unknown pressure unit 'kpaa'; did you mean 'kPa'?")
+
+
+def test_missing_unit_is_rejected_not_guessed():
+    issue = only_issue(read_batch(csv_of(*good_rows(), units="# loading_unit: mol/kg\n"), batch_label="b"))
+    assert (issue.code, issue.field) == ("missing_unit", "pressure_unit")
+
+
+def test_relative_pressure_above_one():
+    rows = [f"m1,N2,77,{x},{q}" for x, q in ((0.1, 1.0), (0.5, 1.2), (1.02, 1.4))]
+    issue = only_issue(read_batch(csv_of(*rows, units="# pressure_unit: p/p0\n# loading_unit: mmol/g\n")))
+    assert (issue.code, issue.field, issue.row) == ("relative_pressure_above_one", "pressure", 3)
+
+
+def test_relative_pressure_without_any_saturation_pressure():
+    rows = [f"m1,CH4,298.15,{x},{q}" for x, q in ((0.1, 1.0), (0.5, 1.2), (0.9, 1.4))]
+    issue = only_issue(read_batch(csv_of(*rows, units="# pressure_unit: p/p0\n# loading_unit: mmol/g\n")))
+    assert (issue.code, issue.field, issue.row) == ("missing_saturation_pressure", "saturation_pressure", None)
+    assert "CH4 at 298.15 K" in issue.message
+
+
+def test_absolute_loading_without_sample_mass():
+    issue = only_issue(read_batch(csv_of(*good_rows(), units="# pressure_unit: kPa\n# loading_unit: mmol\n")))
+    assert (issue.code, issue.field, issue.row) == ("missing_sample_mass", "sample_mass_g", None)
+
+
+def test_too_few_distinct_pressures_after_merging():
+    rows = ["m1,CO2,298.15,10,0.5", "m1,CO2,298.15,10,0.6", "m1,CO2,298.15,20,0.9"]
+    issue = only_issue(read_batch(csv_of(*rows)))
+    assert (issue.code, issue.row, issue.field) == ("too_few_points", None, None)
+    assert issue.message.endswith("2 distinct pressure(s); at least 3 are needed")
+
+
+def test_duplicate_pressures_are_merged_by_mean():
+    rows = ["m1,CO2,298.15,10,0.5", "m1,CO2,298.15,10,0.7", "m1,CO2,298.15,20,0.9", "m1,CO2,298.15,30,1.1"]
+    (iso,) = read_batch(csv_of(*rows)).isotherms
+    np.testing.assert_allclose(iso.loading_mol_per_kg, [0.6, 0.9, 1.1], rtol=1e-15)
+    assert iso.flags == ["duplicate_pressures_merged"]
+    assert iso.original["loading"].tolist() == [0.5, 0.7, 0.9, 1.1]
+
+
+def test_duplicate_pressures_merge_sigma_as_standard_error():
+    rows = ["m1,CO2,298.15,10,0.5,0.03", "m1,CO2,298.15,10,0.7,0.04", "m1,CO2,298.15,20,0.9,0.05",
+            "m1,CO2,298.15,30,1.1,0.05"]
+    (iso,) = read_batch(csv_of(*rows, header=HEADER + ",sigma")).isotherms
+    np.testing.assert_allclose(iso.sigma_mol_per_kg, [0.025, 0.05, 0.05], rtol=1e-12)  # sqrt(.03^2+.04^2)/2
+
+
+def test_mixed_units_inside_one_isotherm():
+    rows = [r + u for r, u in zip(good_rows(), (",kPa", ",kPa", ",bar", ",kPa"))]
+    issue = only_issue(read_batch(csv_of(*rows, header=HEADER + ",pressure_unit")))
+    assert (issue.code, issue.field, issue.row) == ("mixed_units", "pressure_unit", None)
+
+
+def test_same_unit_in_different_spelling_is_not_mixed():
+    rows = [r + u for r, u in zip(good_rows(), (",kPa", ",KPA", ",kilopascal", ",kPa"))]
+    assert read_batch(csv_of(*rows, header=HEADER + ",pressure_unit")).rejected == []
+
+
+def test_inconsistent_isotherm_level_value():
+    rows = [r + m for r, m in zip(good_rows(), (",1.0", ",1.0", ",1.1", ",1.0"))]
+    issue = only_issue(read_batch(csv_of(*rows, header=HEADER + ",sample_mass_g")))
+    assert (issue.code, issue.field) == ("inconsistent_value", "sample_mass_g")
+
+
+def test_too_many_points():
+    issue = only_issue(read_batch(csv_of(*good_rows()), limits=Limits(max_points_per_isotherm=3)))
+    assert (issue.code, issue.field, issue.row) == ("too_many_points", None, None)
+    assert issue.message.endswith("4 points, limit 3")
+
+
+@pytest.mark.parametrize("material, reason", [
+    ("a/b", "contains a path separator"), ("a\\b", "contains a path separator"),
+    ("..", "is a relative path name"), ("x" * 201, "is longer than 200 characters"),
+    ("a\x07b", "contains a control character"),
+])
+def test_invalid_material_id(material, reason):
+    issue = only_issue(read_batch(csv_of(*good_rows(material=material))))
+    assert (issue.code, issue.field, issue.row) == ("invalid_id", "material_id", 1)
+    assert issue.message.endswith(reason)
+
+
+def test_invalid_isotherm_id():
+    rows = [f"../etc,{r}" for r in good_rows()]
+    issue = only_issue(read_batch(csv_of(*rows, header="isotherm_id," + HEADER)))
+    assert (issue.code, issue.field) == ("invalid_id", "isotherm_id")
+
+
+def test_unknown_branch():
+    issue = only_issue(read_batch(csv_of(*good_rows(extra=",upwards"), header=HEADER + ",branch")))
+    assert (issue.code, issue.field, issue.row) == ("unknown_branch", "branch", 1)
+
+
+def test_non_monotonic_loading_is_accepted_with_flag():
+    # the third point falls 20 % below the second: beyond the 2 % allowance
+    rows = ["m1,CO2,298.15,10,1.0", "m1,CO2,298.15,20,2.0", "m1,CO2,298.15,30,1.6", "m1,CO2,298.15,40,2.1"]
+    (iso,) = read_batch(csv_of(*rows)).isotherms
+    assert iso.flags == ["non_monotonic_loading"]
+    # a 1 % dip is noise
+    rows[2] = "m1,CO2,298.15,30,1.98"
+    assert read_batch(csv_of(*rows)).isotherms[0].flags == []
+
+
+def test_non_monotonic_allowance_widens_with_sigma():
+    rows = ["m1,CO2,298.15,10,1.0,0.2", "m1,CO2,298.15,20,2.0,0.2", "m1,CO2,298.15,30,1.6,0.2",
+            "m1,CO2,298.15,40,2.1,0.2"]
+    assert read_batch(csv_of(*rows, header=HEADER + ",sigma")).isotherms[0].flags == []
+
+
+def test_pressure_above_saturation_is_flagged():
+    rows = [f"m1,N2,77,{p},{q}" for p, q in ((10, 1.0), (50, 1.5), (120, 9.0))]
+    (iso,) = read_batch(csv_of(*rows)).isotherms
+    assert iso.flags == ["pressure_above_saturation"]
+
+
+def test_mixed_batch_keeps_every_good_isotherm():
+    rows = (good_rows("good1") + ["bad1,CO2,298.15,10,x"] + good_rows("bad1")[1:] + good_rows("good2")
+            + good_rows("bad2", adsorbate="argn") + good_rows("good3", t="273.15"))
+    batch = read_batch(csv_of(*rows), batch_label="mix")
+    assert [i.material_id for i in batch.isotherms] == ["good1", "good2", "good3"]
+    assert [i.code for i in batch.rejected] == ["not_a_number", "unknown_adsorbate"]
+    assert batch.rejected_isotherms == ["bad1|CO2|298.15K|adsorption (from row 5)",
+                                        "bad2|argn|298.15K|adsorption (from row 13)"]
+
+
+def test_all_problems_of_one_isotherm_are_reported_and_capped():
+    rows = [f"m1,CO2,298.15,x{i},-1" for i in range(40)]
+    issues = read_batch(csv_of(*rows)).rejected
+    assert len(issues) == 26
+    assert issues[-1].code == "more_issues"
+    assert issues[-1].message.endswith("55 more issue(s) not listed")  # 80 problems, 25 listed
+
+
+# --- JSON specifics -----------------------------------------------------------
+
+def json_doc(*isotherms, **top):
+    return json.dumps({"defaults": {"pressure_unit": "kPa", "loading_unit": "mmol/g"},
+                       "isotherms": list(isotherms), **top})
+
+
+def iso_obj(**changes):
+    return {"material_id": "m1", "adsorbate": "CO2", "temperature_k": 298.15,
+            "pressure": [10, 50, 100], "loading": [0.5, 1.5, 2.0], **changes}
+
+
+def test_json_rows_are_point_indices_and_isotherms_named():
+    text = json_doc(iso_obj(), iso_obj(loading=[0.5, "x", 2.0]), iso_obj(isotherm_id="named", pressure=[1, 2, -3]))
+    batch = read_batch(text, batch_label="j")
+    assert len(batch.isotherms) == 1
+    assert [(i.isotherm, i.row, i.field, i.code) for i in batch.rejected] == [
+        ("isotherms[1]", 1, "loading", "not_a_number"), ("named", 2, "pressure", "negative_value")]
+    assert batch.rejected[0].message == \
+        "batch 'j', isotherm 'isotherms[1]', row 1, field 'loading': value '\"x\"' is not a number"
+
+
+def test_json_nan_and_infinity_tokens():
+    text = json_doc(iso_obj()).replace("[0.5, 1.5, 2.0]", "[0.5, NaN, Infinity]")
+    issues = read_batch(text).rejected
+    assert [(i.row, i.code) for i in issues] == [(1, "not_finite"), (2, "not_finite")]
+
+
+def test_json_isotherm_level_issue_has_no_row():
+    issue = only_issue(read_batch(json_doc(iso_obj(temperature_k=-1))))
+    assert (issue.row, issue.field, issue.code) == (None, "temperature_k", "non_positive_value")
+
+
+@pytest.mark.parametrize("changes, field, code", [
+    ({"loading": [1, 2]}, "loading", "length_mismatch"),
+    ({"pressure": None}, "pressure", "missing_value"),
+    ({"pressure": "1,2,3"}, "pressure", "wrong_type"),
+    ({"material_id": ["m"]}, "material_id", "wrong_type"),
+    ({"adsorbate": None}, "adsorbate", "missing_value"),
+    ({"temperature_k": True}, "temperature_k", "not_a_number"),
+    ({"temperature_k": 10 ** 400}, "temperature_k", "not_finite"),
+])
+def test_json_structural_problems(changes, field, code):
+    issues = read_batch(json_doc(iso_obj(**changes))).rejected
+    assert (issues[0].field, issues[0].code) == (field, code)
+
+
+def test_json_duplicate_isotherm_id():
+    batch = read_batch(json_doc(iso_obj(isotherm_id="a"), iso_obj(isotherm_id="a", loading=[1, 2, 3])))
+    assert [i.isotherm_id for i in batch.isotherms] == ["a"]
+    assert [(i.code, i.field) for i in batch.rejected] == [("duplicate_isotherm_id", "isotherm_id")]
+
+
+def test_json_element_that_is_not_an_object():
+    batch = read_batch(json_doc(iso_obj(), 42))
+    assert len(batch.isotherms) == 1
+    assert [(i.isotherm, i.code) for i in batch.rejected] == [("isotherms[1]", "wrong_type")]
+
+
+# --- whole-input errors ------------------------------------------------------
+
+def batch_error(source, **kw):
+    with pytest.raises(IntakeError) as err:
+        read_batch(source, **kw)
+    assert len(err.value.issues) == 1
+    return err.value.issues[0]
+
+
+def test_missing_required_column_names_it_with_hint():
+    issue = batch_error("material_id,adsorbate,temperature,pressure,loading\nm,CO2,1,2,3\n")
+    assert (issue.code, issue.field) == ("missing_column", "temperature_k")
+    assert "'temperature_k' (found 'temperature')" in issue.message
+
+
+@pytest.mark.parametrize("source, code", [
+    (b"material_id,adsorbate\xff,temperature_k,pressure,loading\n", "not_utf8"),
+    ("", "no_data"),
+    (HEADER + "\n", "no_data"),
+    (HEADER + "\nm,CO2,298,1,2\nm,CO2,298,1\n", "malformed_row"),
+    (HEADER + ",pressure\nm,CO2,298,1,2,3\n", "duplicate_column"),
+    ("{not json", "unparseable"),
+    ("[1, 2]", "missing_column"),          # not "{": read as CSV
+    ('{"isotherms": {}}', "wrong_type"),
+    ('{"isotherms": [], "extra": 1}', "unknown_field"),
+    ('{"isotherms": []}', "no_data"),
+    ("{" + '"a": [' * 100 + "]" * 100 + "}", "too_deeply_nested"),
+    (b"PAR1 not really parquet", "unparseable"),
+    (12345, "unsupported_source"),
+])
+def test_unreadable_inputs(source, code):
+    assert batch_error(source).code == code
+
+
+def test_json_top_level_must_be_an_object():
+    assert batch_error("[1, 2]", fmt="json").code == "wrong_type"
+
+
+def test_malformed_row_is_located():
+    issue = batch_error(HEADER + "\nm,CO2,298,1,2\n\n  \nm,CO2,298,1\n")
+    assert issue.message.endswith("data row 2 has 4 fields where the header has 5: 'm,CO2,298,1'")
+
+
+def test_batch_limits():
+    text = csv_of(*good_rows("a"), *good_rows("b"), *good_rows("c"))
+    assert batch_error(text, limits=Limits(max_isotherms=2)).code == "too_many_isotherms"
+    assert batch_error(text, limits=Limits(max_bytes=100)).code == "input_too_large"
+    wide = ",".join(f"c{i}" for i in range(70)) + "," + HEADER + "\n"
+    assert batch_error(wide).code == "too_many_columns"
+
+
+@pytest.mark.parametrize("defaults, code", [
+    ({"pressure_unt": "kPa"}, "unknown_setting"),
+    ({"pressure_unit": "kpaa"}, "unknown_unit"),
+    ({"sample_mass_g": "heavy"}, "invalid_setting"),
+    ({"batch_label": "a/b"}, "invalid_batch_label"),
+])
+def test_bad_batch_settings(defaults, code):
+    assert batch_error(csv_of(*good_rows()), defaults=defaults).code == code
+
+
+def test_path_source_and_format_inference(tmp_path):
+    path = tmp_path / "x.csv"
+    path.write_text(csv_of(*good_rows()))
+    assert len(read_batch(path).isotherms) == 1
+    assert batch_error(tmp_path / "missing.csv").code == "unreadable_file"
+    assert batch_error(csv_of(*good_rows()), fmt="xml").code == "unknown_format"
+    assert len(read_batch(csv_of(*good_rows()).encode(), fmt="csv").isotherms) == 1
+
+
+def test_parquet_typed_columns_and_nulls():
+    table = pa.table({"material_id": ["m"] * 4, "adsorbate": ["CO2"] * 4, "temperature_k": [298.15] * 4,
+                      "pressure": [10.0, None, 30.0, 40.0], "loading": [1, 2, 3, 4]})
+    buf = io.BytesIO()
+    pq.write_table(table.replace_schema_metadata({"pressure_unit": "kPa", "loading_unit": "mmol/g"}), buf)
+    issue = only_issue(read_batch(buf.getvalue()))
+    assert (issue.code, issue.row, issue.field) == ("missing_value", 2, "pressure")

@@ -1,0 +1,188 @@
+"""Unit conversions and the adsorbate table against outside references.
+
+References: scipy.constants (CODATA values and SI definitions of atm, torr,
+mmHg, psi, bar), CoolProp (a general thermophysical property library) for
+saturation pressures, critical temperatures and molar masses, and the NIST
+Chemistry WebBook for the normal boiling point of nitrogen.
+"""
+import math
+
+import numpy as np
+import pytest
+from CoolProp.CoolProp import PropsSI
+from scipy import constants
+
+from worker import adsorbates, units
+
+
+# --- pressure ---------------------------------------------------------------
+
+@pytest.mark.parametrize("unit, pa_per_unit", [
+    ("Pa", 1.0),
+    ("kPa", 1e3),
+    ("MPa", 1e6),
+    ("bar", constants.bar),          # scipy.constants: 1 bar = 1e5 Pa
+    ("mbar", constants.bar / 1e3),
+    ("atm", constants.atm),          # scipy.constants: 101325 Pa (standard atmosphere)
+    ("torr", constants.torr),        # scipy.constants: atm / 760
+    ("mmHg", constants.mmHg),        # scipy.constants: atm / 760
+    ("psi", constants.psi),          # scipy.constants: pound-force per square inch
+])
+def test_pressure_units_match_scipy_constants(unit, pa_per_unit):
+    values = np.array([0.0, 1.0, 2.5, 1234.5])
+    np.testing.assert_allclose(units.pressure_to_pa(values, unit), values * pa_per_unit, rtol=1e-15)
+
+
+def test_textbook_pressure_equivalences():
+    # 1 atm = 760 torr = 14.6959 psi (SI definitions via scipy.constants;
+    # 14.6959 psi to six figures is common practice, no single source)
+    assert units.pressure_to_pa(760, "torr") == pytest.approx(constants.atm, rel=1e-12)
+    assert units.pressure_to_pa(14.6959488, "psi") == pytest.approx(constants.atm, rel=1e-8)
+    assert units.pressure_to_pa(1.01325, "bar") == pytest.approx(constants.atm, rel=1e-12)
+
+
+def test_relative_pressure_needs_and_uses_saturation_pressure():
+    np.testing.assert_allclose(units.pressure_to_pa([0.1, 0.5], "p/p0", 2.0e5), [2.0e4, 1.0e5])
+    with pytest.raises(units.MissingReference) as err:
+        units.pressure_to_pa([0.1], "relative")
+    assert err.value.field == "saturation_pressure"
+    assert err.value.code == "missing_saturation_pressure"
+
+
+# --- STP and loading --------------------------------------------------------
+
+def test_stp_molar_volume_is_computed_from_codata_r():
+    # R T / p at 273.15 K, 101.325 kPa with R from scipy.constants (CODATA);
+    # R = N_A k exactly in the 2019 SI, which the value must also satisfy
+    expected = constants.R * 273.15 / 101325.0 * 1e6
+    assert units.MOLAR_VOLUME_STP_CM3_PER_MOL == pytest.approx(expected, rel=1e-15)
+    via_avogadro = constants.N_A * constants.k * 273.15 / 101325.0 * 1e6
+    assert units.MOLAR_VOLUME_STP_CM3_PER_MOL == pytest.approx(via_avogadro, rel=1e-12)
+    # CODATA 2018 molar volume of an ideal gas at 273.15 K, 101.325 kPa:
+    # 22.413 969 54 L/mol (from memory)
+    assert units.MOLAR_VOLUME_STP_CM3_PER_MOL == pytest.approx(22413.96954, rel=1e-9)
+    assert units.STP_TEMPERATURE_K == 273.15
+    assert units.STP_PRESSURE_PA == constants.atm
+
+
+CO2_G_PER_MOL = 44.009  # CIAAW atomic weights C 12.011 + 2 x O 15.999 (from memory)
+
+
+@pytest.mark.parametrize("value, unit, sample_mass_g, expected_mol_per_kg", [
+    (1.0, "mol/kg", None, 1.0),
+    (1.0, "mmol/g", None, 1.0),
+    (0.002, "mol/g", None, 2.0),
+    (CO2_G_PER_MOL, "mg/g", None, 1.0),                  # 44.009 mg of CO2 = 1 mmol, per g
+    (0.044009, "g/g", None, 1.0),
+    (10.0, "wt%", None, 100.0 / CO2_G_PER_MOL),          # 10 g CO2 per 100 g sorbent
+    (units.MOLAR_VOLUME_STP_CM3_PER_MOL / 1000, "cm3(STP)/g", None, 1.0),
+    (units.MOLAR_VOLUME_STP_CM3_PER_MOL / 1000, "mL(STP)/g", None, 1.0),
+    (5.0, "mmol", 2.5, 2.0),                             # 5 mmol on 2.5 g
+    (0.005, "mol", 2.5, 2.0),
+    (units.MOLAR_VOLUME_STP_CM3_PER_MOL * 0.005, "cm3(STP)", 2.5, 2.0),
+])
+def test_loading_conversions(value, unit, sample_mass_g, expected_mol_per_kg):
+    got = units.loading_to_mol_per_kg([value], unit, CO2_G_PER_MOL, sample_mass_g)
+    np.testing.assert_allclose(got, [expected_mol_per_kg], rtol=1e-12)
+
+
+def test_absolute_loading_without_sample_mass_names_the_field():
+    with pytest.raises(units.MissingReference) as err:
+        units.loading_to_mol_per_kg([1.0], "mmol", CO2_G_PER_MOL)
+    assert err.value.field == "sample_mass_g"
+    assert err.value.code == "missing_sample_mass"
+
+
+def test_every_alias_and_case_variant_is_accepted():
+    for kind, table in (("pressure", units.PRESSURE_UNITS), ("loading", units.LOADING_UNITS)):
+        for canonical, aliases in table.items():
+            for name in (canonical, *aliases):
+                for variant in (name, name.upper(), f"  {name.lower()} "):
+                    assert units.normalise_unit_name(variant, kind) == canonical
+
+
+def test_gas_volume_spellings():
+    for name in ("cm3(STP)/g", "cm^3(STP)/g", "cm³ (STP)/g", "cm3/g STP", "ccSTP/g", "mL(STP)/g"):
+        assert units.normalise_unit_name(name, "loading") == "cm3(STP)/g"
+
+
+def test_unknown_unit_suggests_nearest_name():
+    with pytest.raises(units.UnknownUnit) as err:
+        units.normalise_unit_name("kpaa", "pressure")
+    assert err.value.suggestion == "kPa"
+    assert str(err.value) == "unknown pressure unit 'kpaa'; did you mean 'kPa'?"
+    with pytest.raises(units.UnknownUnit) as err:
+        units.normalise_unit_name("furlongs", "loading")
+    assert err.value.suggestion is None
+
+
+# --- adsorbate table --------------------------------------------------------
+
+REQUIRED = ("N2", "Ar", "Kr", "CO2", "CH4", "H2", "H2O", "CO", "O2", "C2H6", "C3H8", "Xe")
+
+
+@pytest.mark.parametrize("formula", REQUIRED)
+def test_molar_mass_agrees_with_coolprop(formula):
+    ads = adsorbates.lookup(formula)
+    # CIAAW-based sums vs CoolProp's molar masses; both use standard atomic
+    # weights of slightly different vintages, hence 1e-4 relative
+    coolprop_g_per_mol = PropsSI("M", ads.coolprop_name) * 1000
+    assert ads.molar_mass_g_per_mol == pytest.approx(coolprop_g_per_mol, rel=1e-4)
+    assert set(ads.sources) >= {"molar_mass_g_per_mol", "critical_temperature_k", "cross_section_nm2"}
+
+
+@pytest.mark.parametrize("formula", REQUIRED)
+def test_critical_temperature_agrees_with_coolprop(formula):
+    ads = adsorbates.lookup(formula)
+    # typed from memory; CoolProp's equation-of-state value as the reference
+    assert ads.critical_temperature_k == pytest.approx(PropsSI("Tcrit", ads.coolprop_name), abs=0.05)
+
+
+def test_bet_cross_sections():
+    # IUPAC 2015 physisorption report (Thommes et al., Pure Appl. Chem. 87 (2015) 1051):
+    # N2 0.162 nm2; Ar 0.142 nm2 and Kr 0.202 nm2 (same report, from memory)
+    assert adsorbates.lookup("N2").cross_section_nm2 == 0.162
+    assert adsorbates.lookup("Ar").cross_section_nm2 == 0.142
+    assert adsorbates.lookup("Kr").cross_section_nm2 == 0.202
+    assert adsorbates.lookup("CO2").cross_section_nm2 is None
+
+
+@pytest.mark.parametrize("name, formula", [
+    ("nitrogen", "N2"), ("NITROGEN", "N2"), ("n2", "N2"), ("carbon dioxide", "CO2"),
+    ("Carbon_Dioxide", "CO2"), ("CarbonDioxide", "CO2"), ("water vapour", "H2O"),
+    ("n-propane", "C3H8"), ("propane", "C3H8"), ("xenon", "Xe"), ("co", "CO"),
+])
+def test_lookup_by_alias(name, formula):
+    assert adsorbates.lookup(name).id == formula
+
+
+def test_lookup_unknown_and_suggest():
+    assert adsorbates.lookup("unobtainium") is None
+    assert adsorbates.suggest("nitrogn") == "nitrogen"
+    assert adsorbates.suggest("carbon dioxid") == "carbon dioxide"
+    assert adsorbates.suggest("qqqqqqqqqq") is None
+
+
+def test_nitrogen_normal_boiling_point():
+    # NIST Chemistry WebBook: N2 boils at 77.355 K under 101.325 kPa (from memory);
+    # 0.1 % covers the last digit of the temperature (dp0/dT ~ 12 kPa/K)
+    assert adsorbates.saturation_pressure_pa("N2", 77.355) == pytest.approx(101325.0, rel=1e-3)
+
+
+@pytest.mark.parametrize("formula, temperature_k", [
+    ("N2", 77.0), ("Ar", 87.3), ("CO2", 273.15), ("CH4", 111.7), ("H2O", 298.15), ("Kr", 120.0),
+])
+def test_saturation_pressure_is_coolprop_value(formula, temperature_k):
+    ads = adsorbates.lookup(formula)
+    expected = PropsSI("P", "T", temperature_k, "Q", 0, ads.coolprop_name)  # CoolProp reference
+    assert adsorbates.saturation_pressure_pa(ads, temperature_k) == pytest.approx(expected, rel=1e-12)
+
+
+@pytest.mark.parametrize("adsorbate, temperature_k", [
+    ("N2", 300.0),        # supercritical
+    ("N2", 126.5),        # just above CoolProp's critical point, inside the +1 K shortcut
+    ("CO2", 195.0),       # below the triple point (216.6 K): sublimation, no liquid p0
+    ("N2", float("nan")), ("N2", -5.0), ("N2", "warm"), ("unobtainium", 77.0), (None, None),
+])
+def test_saturation_pressure_undefined_is_none_never_raises(adsorbate, temperature_k):
+    assert adsorbates.saturation_pressure_pa(adsorbate, temperature_k) is None

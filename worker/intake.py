@@ -1,0 +1,1398 @@
+"""Intake: read a batch of isotherms (CSV, JSON or Parquet), validate it and
+normalise it to canonical units (Pa, K, mol/kg).
+
+``read_batch`` raises only ``IntakeError``, and only when the input as a whole
+cannot be used (not UTF-8, not parseable, required columns missing, over the
+batch limits, bad batch-wide settings, bad conditions or mixtures). Problems of
+one isotherm never raise: every problem found becomes an ``Issue`` in
+``Batch.rejected`` and the good isotherms go on in ``Batch.isotherms``.
+
+Formats
+-------
+CSV (long, one row per point) and Parquet share the columns
+``material_id, adsorbate, temperature_k, pressure, loading`` (required) and
+``isotherm_id, branch, pressure_unit, loading_unit, saturation_pressure,
+sample_mass_g, sigma, surface_area_m2_per_g`` (optional); other columns are
+ignored. Column names are matched case-insensitively. Rows group into
+isotherms by ``isotherm_id`` where given, else by (material_id, adsorbate,
+temperature_k, branch). ``saturation_pressure`` is in the row's pressure unit,
+or in Pa when that unit is relative; ``sigma`` is in the loading unit.
+
+JSON: ``{"batch_label", "defaults", "isotherms": [...], "conditions",
+"mixtures"}``, one object per isotherm with arrays ``pressure``, ``loading``
+(and ``sigma``) and scalar fields named as the CSV columns. Unknown keys at
+the top level, in ``conditions`` and in ``mixtures`` are errors (they are
+usually typos); unknown keys inside an isotherm are ignored, like extra CSV
+columns.
+
+Row numbers in issues
+---------------------
+* CSV: ``row`` n is the n-th data row of the file, counted from 1. The header,
+  the leading ``#`` comment lines and blank (empty or whitespace-only) lines
+  are not counted.
+* Parquet: ``row`` n is the n-th row of the table, counted from 1.
+* JSON: ``row`` is the 0-based index of the point inside that isotherm's
+  ``pressure``/``loading`` arrays; ``None`` for isotherm-level fields. An
+  isotherm without ``isotherm_id`` is named ``isotherms[i]`` (0-based).
+
+Settings and their precedence
+-----------------------------
+``pressure_unit``, ``loading_unit``, ``sample_mass_g`` and ``batch_label`` may
+be given per row / per isotherm, once per file (CSV leading comment lines
+``# pressure_unit: kPa``; JSON ``"defaults"``; Parquet key-value metadata) or
+through ``read_batch(defaults=...)``. The most specific wins: row/isotherm,
+then file, then ``defaults``. The ``batch_label`` argument overrides all; with
+no label anywhere the label is ``batch-`` + the first 12 hex digits of the
+input's SHA-256. There is no default unit: an isotherm without a pressure or
+loading unit is rejected (``missing_unit``) rather than guessed.
+
+Units: see ``worker.units`` (wt% = g adsorbate per 100 g sorbent; STP =
+273.15 K, 101.325 kPa).
+
+Rules that change data (stated so nobody is surprised)
+------------------------------------------------------
+* Points are sorted by pressure.
+* Duplicate pressures: points of one isotherm whose pressures are exactly
+  equal after conversion to Pa are MERGED into one point whose loading is the
+  mean of theirs (sigma: the standard error of that mean,
+  sqrt(sum sigma_i^2)/k); the isotherm is flagged ``duplicate_pressures_merged``.
+* Non-monotonic loading is accepted but flagged ``non_monotonic_loading`` when
+  some point lies below the highest loading at lower pressure by more than
+  the noise allowance max(2 % of the isotherm's largest loading,
+  3 x that point's sigma). Applied to both branches, since on either branch
+  loading should not fall as pressure rises; excess isotherms at high
+  pressure can, hence a flag, not a rejection.
+* An isotherm given in absolute pressure that goes above the saturation
+  pressure is accepted and flagged ``pressure_above_saturation``.
+* ``Isotherm.original`` keeps, in input order, the numbers as sent (numpy
+  arrays for pressure, loading, sigma and the source ``rows``), their unit
+  names as sent, the adsorbate name as sent and the source format.
+* The saturation pressure comes from the input, else from
+  ``worker.adsorbates`` (None when the temperature is supercritical or out of
+  the property library's range).
+
+Issue codes
+-----------
+Per isotherm: missing_value, not_a_number, not_finite, negative_value,
+non_positive_value, wrong_type, length_mismatch, unknown_unit, missing_unit,
+mixed_units, inconsistent_value, unknown_adsorbate, unknown_branch,
+invalid_id, relative_pressure_above_one, missing_saturation_pressure,
+missing_sample_mass, too_few_points, too_many_points, duplicate_isotherm_id,
+more_issues (the list was cut at 25 issues), internal_error.
+Whole input (IntakeError): internal_error (a defect in intake, never bad
+input), input_too_large, not_utf8, unparseable,
+unknown_format, unsupported_source, unreadable_file, missing_column,
+duplicate_column, too_many_columns, unsupported_column_type, malformed_row,
+no_data, too_many_isotherms, too_deeply_nested, wrong_type, unknown_field,
+unknown_setting, invalid_setting, unknown_unit, invalid_batch_label,
+invalid_conditions, invalid_mixture.
+"""
+from __future__ import annotations
+
+import csv
+import hashlib
+import json
+import math
+import unicodedata
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pcsv
+import pyarrow.parquet as pq
+
+from . import adsorbates, units
+from .isotherm import Batch, Conditions, IntakeError, Isotherm, Issue, MixtureRequest
+
+
+@dataclass(frozen=True)
+class Limits:
+    max_isotherms: int = 20_000
+    max_points_per_isotherm: int = 2_000
+    max_columns: int = 64
+    max_bytes: int = 256 * 1024 * 1024
+    max_json_depth: int = 32
+
+
+REQUIRED_COLUMNS = ("material_id", "adsorbate", "temperature_k", "pressure", "loading")
+OPTIONAL_COLUMNS = ("isotherm_id", "branch", "pressure_unit", "loading_unit",
+                    "saturation_pressure", "sample_mass_g", "sigma", "surface_area_m2_per_g")
+TEXT_FIELDS = ("material_id", "adsorbate", "isotherm_id", "branch", "pressure_unit", "loading_unit")
+NUMBER_FIELDS = ("temperature_k", "pressure", "loading", "saturation_pressure",
+                 "sample_mass_g", "sigma", "surface_area_m2_per_g")
+SETTINGS = ("pressure_unit", "loading_unit", "sample_mass_g", "batch_label")
+BRANCHES = ("adsorption", "desorption")
+MAX_ID_CHARS = 200
+MAX_ISSUES_PER_ISOTHERM = 25
+NON_MONOTONIC_FRACTION = 0.02
+NON_MONOTONIC_SIGMAS = 3.0
+
+# problem codes of a number cell
+_OK, _MISSING, _NOT_NUMBER, _NOT_FINITE = 0, 1, 2, 3
+_PROBLEM_CODE = {_MISSING: "missing_value", _NOT_NUMBER: "not_a_number", _NOT_FINITE: "not_finite"}
+# text codes below zero
+_BLANK, _WRONG_TYPE = -1, -3
+
+_FINITE_NUMBER_RE = r"^[+-]?([0-9]+\.?[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?$"
+_NON_FINITE_RE = r"(?i)^[+-]?(nan|inf|infinity)$"
+
+
+# ---------------------------------------------------------------------------
+# column-wise intermediate form shared by the three formats
+
+@dataclass
+class _Text:
+    codes: np.ndarray          # per row: index into values, _BLANK or _WRONG_TYPE
+    values: list[str]
+
+
+@dataclass
+class _Numbers:
+    value: np.ndarray          # float64, nan unless problem == _OK
+    problem: np.ndarray        # int8 problem code per row
+    raw: Callable[[int], Any]  # row -> value as sent, for messages
+
+
+@dataclass
+class _Rows:
+    source: str
+    n_rows: int
+    text: dict[str, _Text]
+    numbers: dict[str, _Numbers]
+    row_label: np.ndarray
+    group: np.ndarray | None = None            # JSON: isotherm index per row
+    n_groups: int = 0
+    group_names: list[str] | None = None
+    isotherm_level: frozenset = frozenset()    # fields reported with row None
+    group_issues: list[tuple[int, str | None, str, str]] = field(default_factory=list)
+    settings: dict[str, Any] = field(default_factory=dict)
+
+
+# ---------------------------------------------------------------------------
+# public entry point
+
+def read_batch(source, fmt: str | None = None, *, batch_label: str | None = None,
+               defaults: dict | None = None, limits: Limits | None = None) -> Batch:
+    """Return the validated, unit-normalised Batch read from ``source``.
+
+    ``source`` is bytes, text or a pathlib.Path; ``fmt`` is "csv", "json",
+    "parquet" or None (inferred). Raises only IntakeError.
+    """
+    limits = limits or Limits()
+    fallback_label = batch_label or "(unlabelled)"
+    try:
+        data = _source_bytes(source, batch_label, limits)
+        fallback_label = batch_label or f"batch-{hashlib.sha256(data).hexdigest()[:12]}"
+        fmt = _format_of(source, data, fmt, fallback_label)
+        arg_settings = _checked_settings(defaults or {}, "defaults", fallback_label)
+        if fmt == "parquet":
+            rows = _rows_from_parquet(data, fallback_label, limits)
+            doc = None
+        else:
+            text = _decoded(data, fallback_label)
+            if fmt == "json":
+                doc = _parsed_json(text, fallback_label, limits)
+                rows = _rows_from_json(doc, fallback_label, limits)
+            else:
+                doc = None
+                rows = _rows_from_csv(data, text, fallback_label, limits)
+        file_settings = _checked_settings(rows.settings, "file", fallback_label)
+        settings = {**arg_settings, **file_settings}
+        label = batch_label or settings.get("batch_label") or fallback_label
+        _check_batch_label(label, fallback_label)
+        batch = _assemble(rows, settings, label, limits)
+        if doc is not None:
+            batch.conditions = _conditions(doc.get("conditions"), settings, label)
+            batch.mixtures = _mixtures(doc.get("mixtures"), settings, label)
+        return batch
+    except IntakeError:
+        raise
+    except RecursionError:
+        raise _batch_error(fallback_label, "too_deeply_nested", "input is nested too deeply")
+    except Exception as exc:  # noqa: BLE001 - the contract: only IntakeError leaves
+        # a distinct code, so that a defect here is never mistaken for bad input
+        raise _batch_error(fallback_label, "internal_error",
+                           f"input could not be read ({type(exc).__name__}: {_short(exc)})")
+
+
+# ---------------------------------------------------------------------------
+# source, format, settings
+
+def _batch_error(label: str, code: str, message: str, fld: str | None = None) -> IntakeError:
+    where = f"batch {label!r}" + (f", field {fld!r}" if fld else "")
+    return IntakeError(Issue(label, None, None, fld, code, f"{where}: {message}"))
+
+
+def _short(value: Any, limit: int = 60) -> str:
+    text = str(value)
+    return text if len(text) <= limit else text[:limit] + "..."
+
+
+def _source_bytes(source, batch_label: str | None, limits: Limits) -> bytes:
+    label = batch_label or "(unlabelled)"
+    if isinstance(source, Path):
+        try:
+            size = source.stat().st_size
+            if size > limits.max_bytes:
+                raise _batch_error(label, "input_too_large",
+                                   f"file is {size} bytes, limit {limits.max_bytes}")
+            return source.read_bytes()
+        except OSError as exc:
+            raise _batch_error(label, "unreadable_file", f"cannot read {str(source)!r}: {exc}")
+    if isinstance(source, str):
+        try:
+            data = source.encode("utf-8")
+        except UnicodeEncodeError as exc:
+            raise _batch_error(label, "not_utf8", f"text cannot be encoded as UTF-8: {exc.reason}")
+    elif isinstance(source, (bytes, bytearray, memoryview)):
+        data = bytes(source)
+    else:
+        raise _batch_error(label, "unsupported_source",
+                           f"source must be bytes, str or pathlib.Path, not {type(source).__name__}")
+    if len(data) > limits.max_bytes:
+        raise _batch_error(label, "input_too_large",
+                           f"input is {len(data)} bytes, limit {limits.max_bytes}")
+    return data
+
+
+def _format_of(source, data: bytes, fmt: str | None, label: str) -> str:
+    if fmt is not None:
+        fmt = str(fmt).lower()
+        if fmt not in ("csv", "json", "parquet"):
+            raise _batch_error(label, "unknown_format", f"format {fmt!r} is not csv, json or parquet")
+        return fmt
+    if isinstance(source, Path):
+        suffix = source.suffix.lower()
+        if suffix in (".csv", ".json"):
+            return suffix[1:]
+        if suffix in (".parquet", ".pq"):
+            return "parquet"
+    if data.startswith(b"PAR1"):
+        return "parquet"
+    return "json" if data.lstrip()[:1] == b"{" else "csv"
+
+
+def _decoded(data: bytes, label: str) -> str:
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise _batch_error(label, "not_utf8",
+                           f"input is not UTF-8 (invalid byte at offset {exc.start})")
+
+
+def _checked_settings(raw: dict, where: str, label: str) -> dict[str, Any]:
+    """Return the batch-wide settings in ``raw`` checked and typed."""
+    if not isinstance(raw, dict):
+        raise _batch_error(label, "wrong_type", f"{where} settings must be an object")
+    out: dict[str, Any] = {}
+    for key, value in raw.items():
+        if value is None:
+            continue
+        name = str(key).strip().lower()
+        if name not in SETTINGS:
+            near = _nearest(name, SETTINGS)
+            hint = f"; did you mean {near!r}?" if near else ""
+            raise _batch_error(label, "unknown_setting",
+                               f"unknown {where} setting {_short(key)!r}{hint}", fld=name)
+        if name in ("pressure_unit", "loading_unit"):
+            try:
+                out[name] = units.normalise_unit_name(str(value), name.split("_")[0])
+            except units.UnknownUnit as exc:
+                raise _batch_error(label, "unknown_unit", f"{where} setting: {exc}", fld=name)
+            out[name + "_as_sent"] = str(value)
+        elif name == "sample_mass_g":
+            mass = _positive_float(value)
+            if mass is None:
+                raise _batch_error(label, "invalid_setting",
+                                   f"{where} sample_mass_g {_short(value)!r} is not a positive number",
+                                   fld=name)
+            out[name] = mass
+        else:
+            out[name] = str(value)
+    return out
+
+
+def _positive_float(value: Any) -> float | None:
+    if isinstance(value, bool):
+        return None
+    try:
+        number = float(value)
+    except (TypeError, ValueError, OverflowError):
+        return None
+    return number if math.isfinite(number) and number > 0 else None
+
+
+def _nearest(name: str, choices) -> str | None:
+    import difflib
+    match = difflib.get_close_matches(str(name), list(choices), n=1, cutoff=0.6)
+    return match[0] if match else None
+
+
+def _id_problem(value: str) -> str | None:
+    """Why ``value`` cannot be an id (it may become a file name), or None."""
+    if len(value) > MAX_ID_CHARS:
+        return f"is longer than {MAX_ID_CHARS} characters"
+    if "/" in value or "\\" in value:
+        return "contains a path separator"
+    if value in (".", ".."):
+        return "is a relative path name"
+    if not value.isprintable() and any(unicodedata.category(ch) in ("Cc", "Zl", "Zp") for ch in value):
+        return "contains a control character"
+    return None
+
+
+def _check_batch_label(label: str, fallback: str) -> None:
+    problem = _id_problem(label) if label.strip() else "is empty"
+    if problem:
+        raise _batch_error(fallback, "invalid_batch_label", f"batch label {_short(label)!r} {problem}")
+
+
+# ---------------------------------------------------------------------------
+# CSV
+
+def _split_comment_header(text: str) -> tuple[dict[str, str], int]:
+    """Settings from leading ``# key: value`` lines, and where the rest starts."""
+    settings: dict[str, str] = {}
+    pos = 0
+    while pos < len(text):
+        end = text.find("\n", pos)
+        end = len(text) if end < 0 else end + 1
+        line = text[pos:end].strip()
+        if line and not line.startswith("#"):
+            break
+        key, sep, value = line[1:].partition(":")
+        # other comment lines are free text, and stay comments
+        if sep and key.strip().lower() in SETTINGS:
+            settings[key.strip().lower()] = value.strip()
+        pos = end
+    return settings, pos
+
+
+def _rows_from_csv(data: bytes, text: str, label: str, limits: Limits) -> _Rows:
+    """``text`` is ``data`` decoded (checked UTF-8, BOM removed)."""
+    settings, start = _split_comment_header(text)
+    header_end = text.find("\n", start)
+    header_line = text[start:header_end if header_end >= 0 else len(text)].rstrip("\r\n")
+    if not text[start:].strip():
+        raise _batch_error(label, "no_data", "no header and no data rows")
+    if header_line.count(",") + 1 > 4 * limits.max_columns:
+        raise _batch_error(label, "too_many_columns", f"more than {limits.max_columns} columns")
+    try:
+        names = next(csv.reader([header_line]))
+    except (csv.Error, StopIteration) as exc:
+        raise _batch_error(label, "unparseable", f"header cannot be read: {exc}")
+    columns = _known_columns(names, label, limits)
+
+    blank_skipped = [0]
+    bad_rows: list[str] = []
+
+    def on_invalid_row(row) -> str:
+        if not row.text.strip():
+            blank_skipped[0] += 1
+            return "skip"
+        data_row = (row.number or 0) - 1 - blank_skipped[0]
+        bad_rows.append(f"data row {data_row} has {row.actual_columns} fields where the header "
+                        f"has {row.expected_columns}: {_short(row.text)!r}")
+        return "error"
+
+    bom = 3 if data.startswith(b"\xef\xbb\xbf") else 0
+    body = pa.py_buffer(data)[bom + len(text[:start].encode("utf-8")):]  # zero-copy slice
+    try:
+        table = pcsv.read_csv(
+            pa.BufferReader(body),
+            # one block: a row never straddles blocks, whatever the header's length
+            read_options=pcsv.ReadOptions(use_threads=False,
+                                          block_size=max(1 << 20, min(body.size + 1, 1 << 30))),
+            parse_options=pcsv.ParseOptions(invalid_row_handler=on_invalid_row),
+            convert_options=pcsv.ConvertOptions(
+                column_types={original: pa.string() for original in columns.values()},
+                include_columns=list(columns.values()),
+                strings_can_be_null=False),
+        )
+    except (pa.ArrowException, ValueError) as exc:
+        if bad_rows:
+            raise _batch_error(label, "malformed_row", bad_rows[0])
+        raise _batch_error(label, "unparseable", f"CSV cannot be parsed: {_short(exc, 200)}")
+    if table.num_rows == 0:
+        raise _batch_error(label, "no_data", "the file has a header but no data rows")
+    rows = _rows_from_table(table, columns, "csv", label)
+    rows.settings = settings
+    return rows
+
+
+def _known_columns(names: list[str], label: str, limits: Limits) -> dict[str, str]:
+    """Map each known column (normalised name) to its name in the file."""
+    if len(names) > limits.max_columns:
+        raise _batch_error(label, "too_many_columns",
+                           f"{len(names)} columns, limit {limits.max_columns}")
+    found: dict[str, str] = {}
+    for original in names:
+        name = str(original).strip().lower()
+        if name in REQUIRED_COLUMNS or name in OPTIONAL_COLUMNS:
+            if name in found:
+                raise _batch_error(label, "duplicate_column", f"column {name!r} appears twice", fld=name)
+            found[name] = original
+    missing = [c for c in REQUIRED_COLUMNS if c not in found]
+    if missing:
+        present = [str(n).strip().lower() for n in names]
+        hints = []
+        for col in missing:
+            near = _nearest(col, [p for p in present if p not in found])
+            hints.append(f"{col!r}" + (f" (found {near!r})" if near else ""))
+        raise _batch_error(label, "missing_column", "missing required column(s): " + ", ".join(hints),
+                           fld=missing[0])
+    return found
+
+
+def _rows_from_table(table: pa.Table, columns: dict[str, str], source: str, label: str) -> _Rows:
+    text: dict[str, _Text] = {}
+    numbers: dict[str, _Numbers] = {}
+    for name, original in columns.items():
+        column = table.column(original).combine_chunks()
+        if name in TEXT_FIELDS:
+            text[name] = _text_from_arrow(_as_strings(column, name, label))
+        elif pa.types.is_integer(column.type) or pa.types.is_floating(column.type) \
+                or pa.types.is_decimal(column.type):
+            numbers[name] = _numbers_from_arrow_numeric(column)
+        else:
+            numbers[name] = _numbers_from_strings(_as_strings(column, name, label))
+    n = table.num_rows
+    return _Rows(source=source, n_rows=n, text=text, numbers=numbers,
+                 row_label=np.arange(1, n + 1))
+
+
+def _as_strings(column: pa.Array, name: str, label: str) -> pa.Array:
+    if pa.types.is_dictionary(column.type):
+        column = column.dictionary_decode()
+    if not (pa.types.is_string(column.type) or pa.types.is_large_string(column.type)):
+        try:
+            column = pc.cast(column, pa.string())
+        except pa.ArrowException:
+            raise _batch_error(label, "unsupported_column_type",
+                               f"column {name!r} has type {column.type}, expected text or numbers",
+                               fld=name)
+    return pc.utf8_trim_whitespace(column.fill_null(""))
+
+
+def _text_from_arrow(strings: pa.Array) -> _Text:
+    encoded = pc.dictionary_encode(strings)
+    values = encoded.dictionary.to_pylist()
+    codes = encoded.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+    if "" in values:
+        codes[codes == values.index("")] = _BLANK
+    return _Text(codes, values)
+
+
+def _numbers_from_strings(strings: pa.Array) -> _Numbers:
+    finite = pc.match_substring_regex(strings, _FINITE_NUMBER_RE).to_numpy(zero_copy_only=False)
+    parsed = pc.cast(pc.if_else(pa.array(finite), strings, pa.scalar(None, pa.string())), pa.float64())
+    value = parsed.to_numpy(zero_copy_only=False).astype(float)
+    problem = np.full(len(strings), _NOT_NUMBER, dtype=np.int8)
+    if not finite.all():
+        problem[pc.match_substring_regex(strings, _NON_FINITE_RE).to_numpy(zero_copy_only=False)] = \
+            _NOT_FINITE
+    problem[finite] = _OK
+    problem[finite & ~np.isfinite(value)] = _NOT_FINITE          # e.g. 1e999
+    problem[pc.equal(strings, "").to_numpy(zero_copy_only=False)] = _MISSING
+    value[problem != _OK] = np.nan
+    return _Numbers(value, problem, lambda i, s=strings: s[i].as_py())
+
+
+def _numbers_from_arrow_numeric(column: pa.Array) -> _Numbers:
+    value = pc.cast(column, pa.float64()).to_numpy(zero_copy_only=False).astype(float)
+    problem = np.zeros(len(value), dtype=np.int8)
+    problem[~np.isfinite(value)] = _NOT_FINITE
+    problem[column.is_null().to_numpy(zero_copy_only=False)] = _MISSING
+    value[problem != _OK] = np.nan
+    return _Numbers(value, problem, lambda i, c=column: c[i].as_py())
+
+
+# ---------------------------------------------------------------------------
+# Parquet
+
+def _rows_from_parquet(data: bytes, label: str, limits: Limits) -> _Rows:
+    try:
+        table = pq.read_table(pa.BufferReader(data))
+    except Exception as exc:  # noqa: BLE001 - any reader failure means "not readable"
+        raise _batch_error(label, "unparseable", f"Parquet cannot be read: {_short(exc, 200)}")
+    columns = _known_columns(table.column_names, label, limits)
+    for name, original in columns.items():
+        kind = table.schema.field(original).type
+        if pa.types.is_nested(kind) or pa.types.is_binary(kind):
+            raise _batch_error(label, "unsupported_column_type",
+                               f"column {name!r} has type {kind}, expected text or numbers", fld=name)
+    if table.num_rows == 0:
+        raise _batch_error(label, "no_data", "the table has no rows")
+    rows = _rows_from_table(table, columns, "parquet", label)
+    metadata = table.schema.metadata or {}
+    for key, value in metadata.items():
+        name = key.decode("utf-8", "replace").strip().lower()
+        if name in SETTINGS:
+            rows.settings[name] = value.decode("utf-8", "replace")
+    return rows
+
+
+# ---------------------------------------------------------------------------
+# JSON
+
+def _parsed_json(text: str, label: str, limits: Limits) -> dict:
+    _check_depth(text, label, limits.max_json_depth)
+    try:
+        doc = json.loads(text)
+    except (ValueError, RecursionError) as exc:
+        raise _batch_error(label, "unparseable", f"JSON cannot be parsed: {_short(exc, 200)}")
+    if not isinstance(doc, dict):
+        raise _batch_error(label, "wrong_type", "the JSON document must be an object")
+    allowed = ("batch_label", "defaults", "isotherms", "conditions", "mixtures")
+    for key in doc:
+        if key not in allowed:
+            near = _nearest(key, allowed)
+            raise _batch_error(label, "unknown_field", f"unknown top-level key {_short(key)!r}"
+                               + (f"; did you mean {near!r}?" if near else ""), fld=_short(key))
+    if not isinstance(doc.get("isotherms"), list):
+        raise _batch_error(label, "wrong_type" if "isotherms" in doc else "missing_column",
+                           "'isotherms' must be a list of isotherm objects", fld="isotherms")
+    return doc
+
+
+def _check_depth(text: str, label: str, max_depth: int) -> None:
+    """Refuse nesting deeper than ``max_depth`` before the parser recurses."""
+    brackets = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
+    opening = (brackets == ord("[")) | (brackets == ord("{"))
+    closing = (brackets == ord("]")) | (brackets == ord("}"))
+    if not opening.any():
+        return
+    # brackets inside strings count too, so this is an upper bound on depth;
+    # the schema never needs more than a handful of levels
+    depth = np.cumsum(opening.astype(np.int64) - closing.astype(np.int64))
+    if depth.max() > max_depth:
+        raise _batch_error(label, "too_deeply_nested",
+                           f"JSON nests deeper than {max_depth} levels")
+
+
+def _rows_from_json(doc: dict, label: str, limits: Limits) -> _Rows:
+    items = doc["isotherms"]
+    if len(items) > limits.max_isotherms:
+        raise _batch_error(label, "too_many_isotherms",
+                           f"{len(items)} isotherms, limit {limits.max_isotherms}")
+    if not items:
+        raise _batch_error(label, "no_data", "'isotherms' is empty")
+    builder = _JsonRows(limits)
+    for index, item in enumerate(items):
+        builder.add(index, item)
+    rows = builder.rows()
+    defaults = doc.get("defaults")
+    if defaults is not None and not isinstance(defaults, dict):
+        raise _batch_error(label, "wrong_type", "'defaults' must be an object", fld="defaults")
+    rows.settings = dict(defaults or {})
+    if doc.get("batch_label") is not None:
+        rows.settings["batch_label"] = doc["batch_label"]
+    return rows
+
+
+def _json_number(value: Any) -> tuple[float, int]:
+    if value is None:
+        return math.nan, _MISSING
+    if isinstance(value, bool) or not isinstance(value, (int, float)):
+        return math.nan, _NOT_NUMBER
+    try:
+        number = float(value)
+    except OverflowError:
+        return math.nan, _NOT_FINITE
+    return (number, _OK) if math.isfinite(number) else (math.nan, _NOT_FINITE)
+
+
+def _json_numbers(values: list) -> tuple[np.ndarray, np.ndarray]:
+    if set(map(type, values)) <= {int, float}:  # bool is excluded: its type is bool
+        try:
+            array = np.array(values, dtype=float)
+            problem = np.where(np.isfinite(array), _OK, _NOT_FINITE).astype(np.int8)
+            return np.where(problem == _OK, array, np.nan), problem
+        except OverflowError:
+            pass
+    pairs = [_json_number(v) for v in values]
+    return (np.array([p[0] for p in pairs], dtype=float),
+            np.array([p[1] for p in pairs], dtype=np.int8))
+
+
+class _JsonRows:
+    """Accumulates JSON isotherm objects into the column-wise _Rows form.
+
+    Isotherm-level values are kept once per isotherm and repeated over its
+    points at the end, so the work per point stays inside numpy.
+    """
+
+    SCALAR_NUMBERS = ("temperature_k", "saturation_pressure", "sample_mass_g", "surface_area_m2_per_g")
+    ARRAYS = ("pressure", "loading", "sigma")
+
+    def __init__(self, limits: Limits):
+        self.limits = limits
+        self.text_code: dict[str, list[int]] = {f: [] for f in TEXT_FIELDS}
+        self.text_values: dict[str, dict[str, int]] = {f: {} for f in TEXT_FIELDS}
+        self.scalar: dict[str, list[tuple[float, int]]] = {f: [] for f in self.SCALAR_NUMBERS}
+        self.scalar_raw: dict[str, list] = {f: [] for f in self.SCALAR_NUMBERS}
+        self.array: dict[str, list[tuple[np.ndarray, np.ndarray]]] = {f: [] for f in self.ARRAYS}
+        self.array_raw: dict[str, list] = {f: [] for f in self.ARRAYS}
+        self.n_points: list[int] = []
+        self.names: list[str] = []
+        self.issues: list[tuple[int, str | None, str, str]] = []
+
+    def add(self, index: int, item: Any) -> None:
+        name = f"isotherms[{index}]"
+        if isinstance(item, dict):
+            given = item.get("isotherm_id")
+            if isinstance(given, str) and given.strip() and _id_problem(given.strip()) is None:
+                name = given.strip()
+        self.names.append(name)
+        if not isinstance(item, dict):
+            self.issues.append((index, None, "wrong_type", "an isotherm must be a JSON object"))
+            item = {"pressure": [], "loading": []}  # nothing more to report about it
+        arrays = {key: self._array(index, key, item.get(key)) for key in self.ARRAYS}
+        n = min(len(arrays["pressure"]), len(arrays["loading"]))
+        for key in ("loading", "sigma"):
+            if arrays[key] is not None and len(arrays[key]) != len(arrays["pressure"]):
+                self.issues.append((index, key, "length_mismatch",
+                                    f"{key!r} has {len(arrays[key])} values, 'pressure' has "
+                                    f"{len(arrays['pressure'])}"))
+        if arrays["sigma"] is not None:
+            n = min(n, len(arrays["sigma"]))
+        if n > self.limits.max_points_per_isotherm:
+            self.issues.append((index, None, "too_many_points",
+                                f"{n} points, limit {self.limits.max_points_per_isotherm}"))
+            n = 0
+        self.n_points.append(n)
+        for key in TEXT_FIELDS:
+            self.text_code[key].append(self._text_code(index, key, item.get(key)))
+        for key in self.SCALAR_NUMBERS:
+            self.scalar[key].append(_json_number(item.get(key)))
+            self.scalar_raw[key].append(item.get(key))
+        for key in self.ARRAYS:
+            values = arrays[key]
+            if values is None:  # optional sigma absent: every point missing
+                values = [None] * n
+                self.array[key].append((np.full(n, np.nan), np.full(n, _MISSING, dtype=np.int8)))
+            else:
+                values = values[:n]
+                self.array[key].append(_json_numbers(values))
+            self.array_raw[key].append(values)
+
+    def _array(self, index: int, key: str, value: Any) -> list | None:
+        if isinstance(value, list):
+            return value
+        if value is None:
+            if key == "sigma":
+                return None
+            self.issues.append((index, key, "missing_value", f"{key!r} is missing"))
+        else:
+            self.issues.append((index, key, "wrong_type", f"{key!r} must be a list of numbers"))
+        return None if key == "sigma" else []
+
+    def _text_code(self, index: int, key: str, value: Any) -> int:
+        if value is None:
+            return _BLANK
+        if isinstance(value, int) and not isinstance(value, bool):
+            value = str(value)
+        if not isinstance(value, str):
+            self.issues.append((index, key, "wrong_type", f"{key!r} must be text"))
+            return _WRONG_TYPE
+        value = value.strip()
+        if not value:
+            return _BLANK
+        return self.text_values[key].setdefault(value, len(self.text_values[key]))
+
+    def rows(self) -> _Rows:
+        counts = np.array(self.n_points, dtype=np.int64)
+        group = np.repeat(np.arange(counts.size), counts)
+        point = np.arange(group.size) - np.repeat(np.cumsum(counts) - counts, counts)
+        text = {k: _Text(np.repeat(np.array(self.text_code[k], dtype=np.int64), counts),
+                         list(self.text_values[k])) for k in TEXT_FIELDS}
+        numbers = {}
+        for k in self.SCALAR_NUMBERS:
+            pairs = self.scalar[k]
+            numbers[k] = _Numbers(
+                np.repeat(np.array([v for v, _ in pairs], dtype=float), counts),
+                np.repeat(np.array([c for _, c in pairs], dtype=np.int8), counts),
+                lambda i, r=self.scalar_raw[k]: _json_text(r[group[i]]))
+        for k in self.ARRAYS:
+            parts = self.array[k]
+            numbers[k] = _Numbers(
+                np.concatenate([v for v, _ in parts]) if parts else np.empty(0),
+                np.concatenate([c for _, c in parts]) if parts else np.empty(0, np.int8),
+                lambda i, r=self.array_raw[k]: _json_text(r[group[i]][point[i]]))
+        return _Rows(source="json", n_rows=int(group.size), text=text, numbers=numbers,
+                     row_label=point, group=group, n_groups=len(self.names), group_names=self.names,
+                     isotherm_level=frozenset(TEXT_FIELDS + self.SCALAR_NUMBERS),
+                     group_issues=self.issues)
+
+
+def _json_text(value: Any) -> str:
+    """A JSON value as the sender wrote it (floats as Python prints NaN/inf)."""
+    try:
+        return _short(repr(value) if isinstance(value, float) else json.dumps(value))
+    except (ValueError, RecursionError):
+        return "(unprintable value)"
+
+
+# ---------------------------------------------------------------------------
+# validation and normalisation, column-wise
+
+class _Findings:
+    """Problems found so far: per row (arrays) and per isotherm."""
+
+    def __init__(self, rows: _Rows, gid: np.ndarray, n_groups: int):
+        self.rows = rows
+        self.gid = gid
+        self.n_groups = n_groups
+        self.row_checks: list[tuple[np.ndarray, str, str, Callable[[int], str], bool]] = []
+        self.group_checks: list[tuple[int, str | None, str, str]] = []
+
+    def rows_where(self, mask: np.ndarray, fld: str, code: str, detail: Callable[[int], str],
+                   once: bool = False) -> None:
+        """Record ``code`` for every row in ``mask`` (only the first per isotherm if ``once``)."""
+        index = np.flatnonzero(mask)
+        if index.size == 0:
+            return
+        if once or fld in self.rows.isotherm_level:
+            _, first = np.unique(self.gid[index], return_index=True)
+            index = index[first]
+        self.row_checks.append((index, fld, code, detail, once))
+
+    def groups_where(self, mask: np.ndarray, fld: str | None, code: str,
+                     detail: Callable[[int], str]) -> None:
+        for g in np.flatnonzero(mask):
+            self.group_checks.append((int(g), fld, code, detail(int(g))))
+
+    def bad_groups(self) -> np.ndarray:
+        bad = np.zeros(self.n_groups, dtype=bool)
+        for index, *_ in self.row_checks:
+            bad[self.gid[index]] = True
+        for g, *_ in self.group_checks + self.rows.group_issues:
+            bad[g] = True
+        return bad
+
+
+def _group_range(values: np.ndarray, given: np.ndarray, gid: np.ndarray, n_groups: int):
+    """Per-group (min, max) of ``values`` over rows where ``given``; (inf, -inf) if none."""
+    low = np.full(n_groups, np.inf)
+    high = np.full(n_groups, -np.inf)
+    np.minimum.at(low, gid[given], values[given])
+    np.maximum.at(high, gid[given], values[given])
+    return low, high
+
+
+def _codes_by_appearance(values: np.ndarray) -> tuple[np.ndarray, int]:
+    """Small integer codes for ``values`` numbered by first appearance (nan -> -1)."""
+    encoded = pc.dictionary_encode(pa.array(values, from_pandas=True))
+    codes = encoded.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
+    return codes, len(encoded.dictionary)
+
+
+def _grouping(rows: _Rows, branch_key: np.ndarray) -> tuple[np.ndarray, int]:
+    """Group index per row (groups numbered by first appearance) and group count."""
+    if rows.group is not None:
+        return rows.group, rows.n_groups
+    n = rows.n_rows
+    temperature_code, _ = _codes_by_appearance(rows.numbers["temperature_k"].value)
+    key = np.zeros(n, dtype=np.int64)
+    for column in (rows.text["material_id"].codes, rows.text["adsorbate"].codes,
+                   temperature_code, branch_key):
+        # re-coding after each step keeps the combined key below n: no overflow
+        shifted = column - column.min()
+        key, _ = _codes_by_appearance(key * (int(shifted.max()) + 1) + shifted)
+    iso = rows.text["isotherm_id"].codes if "isotherm_id" in rows.text else np.full(n, _BLANK)
+    key = np.where(iso >= 0, iso, iso.max() + 1 + key)  # rows with an isotherm_id group by it alone
+    return _codes_by_appearance(key)
+
+
+def _resolved_text(rows: _Rows, name: str, default: str | None) -> _Text:
+    """The text column ``name`` with blanks filled by the batch-wide ``default``."""
+    column = rows.text.get(name) or _Text(np.full(rows.n_rows, _BLANK, dtype=np.int64), [])
+    if default is None:
+        return column
+    values = list(column.values)
+    if default not in values:
+        values.append(default)
+    codes = column.codes.copy()
+    codes[codes == _BLANK] = values.index(default)
+    return _Text(codes, values)
+
+
+def _unit_index(column: _Text, kind: str, table: list[str]):
+    """Per-row index into ``table`` of canonical units, -1 unknown, -2 blank, -3 wrong type;
+    and the UnknownUnit error per unknown value code."""
+    per_value = np.full(len(column.values) + 3, -2, dtype=np.int64)
+    errors: dict[int, units.UnknownUnit] = {}
+    for code, value in enumerate(column.values):
+        try:
+            per_value[code] = table.index(units.normalise_unit_name(value, kind))
+        except units.UnknownUnit as exc:
+            per_value[code] = -1
+            errors[code] = exc
+    per_value[_BLANK] = -2
+    per_value[_WRONG_TYPE] = -3
+    return per_value[column.codes], errors
+
+
+def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
+    n = rows.n_rows
+    number = rows.numbers
+    for name in NUMBER_FIELDS:  # absent optional columns: every cell missing
+        number.setdefault(name, _Numbers(np.full(n, np.nan), np.full(n, _MISSING, np.int8),
+                                         lambda i: None))
+    if "sample_mass_g" in settings:
+        mass = number["sample_mass_g"]
+        fill = mass.problem == _MISSING
+        mass.value = np.where(fill, settings["sample_mass_g"], mass.value)
+        mass.problem = np.where(fill, _OK, mass.problem).astype(np.int8)
+    text = {name: rows.text.get(name) or _Text(np.full(n, _BLANK, dtype=np.int64), [])
+            for name in TEXT_FIELDS}
+    text["pressure_unit"] = _resolved_text(rows, "pressure_unit", settings.get("pressure_unit_as_sent"))
+    text["loading_unit"] = _resolved_text(rows, "loading_unit", settings.get("loading_unit_as_sent"))
+
+    # branch: blank means adsorption
+    branch_of_value = np.array([BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
+                                for v in text["branch"].values] + [0, 0, 0], dtype=np.int64)
+    branch = branch_of_value[text["branch"].codes]
+    branch_key = np.where(branch >= 0, branch, 2 + text["branch"].codes)
+
+    gid, n_groups = _grouping(rows, branch_key)
+    if n_groups > limits.max_isotherms:
+        raise _batch_error(label, "too_many_isotherms",
+                           f"{n_groups} isotherms, limit {limits.max_isotherms}")
+    found = _Findings(rows, gid, n_groups)
+    names = _GroupNames(rows, text, gid)
+
+    # adsorbate per row
+    known = [adsorbates.lookup(v) for v in text["adsorbate"].values]
+    table = [a for a in dict.fromkeys(a for a in known if a is not None)]
+    ads_of_value = np.array([table.index(a) if a is not None else -1 for a in known] + [-2, -2, -2],
+                            dtype=np.int64)
+    ads = ads_of_value[text["adsorbate"].codes]
+    molar_mass = np.array([a.molar_mass_g_per_mol for a in table] + [np.nan])[
+        np.where(ads >= 0, ads, len(table))]
+
+    p_table = list(units.PRESSURE_PA_PER_UNIT)
+    l_table = list(units.LOADING_UNIT_TABLE)
+    p_unit, p_unknown = _unit_index(text["pressure_unit"], "pressure", p_table)
+    l_unit, l_unknown = _unit_index(text["loading_unit"], "loading", l_table)
+    relative_unit = p_table.index(units.RELATIVE)
+    is_relative = p_unit == relative_unit
+
+    _row_checks(found, rows, text, number, branch, ads, p_unit, l_unit, p_unknown, l_unknown)
+
+    # isotherm-level values: each must be the same on every row that gives it
+    pa_per_unit = np.array([np.nan if f is None else f for f in units.PRESSURE_PA_PER_UNIT.values()]
+                           + [np.nan] * 3)[p_unit]
+    p0_row = number["saturation_pressure"].value * np.where(is_relative, 1.0, pa_per_unit)
+    group_value = {}
+    for fld, values, given, code in [
+        ("material_id", text["material_id"].codes, text["material_id"].codes >= 0, "inconsistent_value"),
+        ("adsorbate", text["adsorbate"].codes, text["adsorbate"].codes >= 0, "inconsistent_value"),
+        ("temperature_k", number["temperature_k"].value, number["temperature_k"].problem == _OK,
+         "inconsistent_value"),
+        ("branch", branch_key, np.ones(n, dtype=bool), "inconsistent_value"),
+        ("pressure_unit", p_unit, p_unit >= 0, "mixed_units"),
+        ("loading_unit", l_unit, l_unit >= 0, "mixed_units"),
+        ("saturation_pressure", p0_row, np.isfinite(p0_row), "inconsistent_value"),
+        ("sample_mass_g", number["sample_mass_g"].value, number["sample_mass_g"].problem == _OK,
+         "inconsistent_value"),
+        ("surface_area_m2_per_g", number["surface_area_m2_per_g"].value,
+         number["surface_area_m2_per_g"].problem == _OK, "inconsistent_value"),
+    ]:
+        low, high = _group_range(values.astype(float), given, gid, n_groups)
+        what = "units" if code == "mixed_units" else "values"
+        found.groups_where(high > low, fld, code,
+                           lambda g, f=fld, w=what: f"rows of this isotherm give different {w} for {f!r}")
+        group_value[fld] = np.where(np.isfinite(low), low, np.nan)
+
+    sigma_given = number["sigma"].problem == _OK
+    n_sigma = np.bincount(gid, weights=sigma_given, minlength=n_groups)
+    counts = np.bincount(gid, minlength=n_groups)
+    found.groups_where((n_sigma > 0) & (n_sigma < counts), "sigma", "missing_value",
+                       lambda g: "sigma is given for some points but not all")
+    found.groups_where(counts > limits.max_points_per_isotherm, None, "too_many_points",
+                       lambda g: f"{counts[g]} points, limit {limits.max_points_per_isotherm}")
+
+    # saturation pressure: given, else from the property table
+    temperature_g = group_value["temperature_k"]
+    ads_index_g = np.full(n_groups, -1, dtype=np.int64)
+    low, _ = _group_range(ads.astype(float), ads >= 0, gid, n_groups)
+    ads_index_g[np.isfinite(low)] = low[np.isfinite(low)].astype(np.int64)
+    p0_g = group_value["saturation_pressure"].copy()
+    for g in np.flatnonzero(np.isnan(p0_g) & (ads_index_g >= 0) & np.isfinite(temperature_g)):
+        computed = adsorbates.saturation_pressure_pa(table[ads_index_g[g]], temperature_g[g])
+        p0_g[g] = np.nan if computed is None else computed
+    relative_g = _group_range(is_relative.astype(float), p_unit >= 0, gid, n_groups)[1] == 1.0
+    found.groups_where(relative_g & np.isnan(p0_g) & (ads_index_g >= 0) & np.isfinite(temperature_g),
+                       "saturation_pressure", "missing_saturation_pressure",
+                       lambda g: (f"pressures are relative but no saturation pressure is given and "
+                                  f"none is defined for {table[ads_index_g[g]].id} at "
+                                  f"{temperature_g[g]:g} K (supercritical or outside the property "
+                                  f"table's range); give 'saturation_pressure' in Pa"))
+    absolute_g = np.zeros(n_groups, dtype=bool)
+    for index, unit_name in enumerate(l_table):
+        if not units.LOADING_UNIT_TABLE[unit_name].per_kg_sorbent:
+            absolute_g[np.unique(gid[l_unit == index])] = True
+    mass_g = group_value["sample_mass_g"]
+    found.groups_where(absolute_g & np.isnan(mass_g), "sample_mass_g", "missing_sample_mass",
+                       lambda g: "the loading unit is an absolute amount; 'sample_mass_g' is needed "
+                                 "to express it per mass of sorbent")
+
+    # canonical values per row
+    with np.errstate(all="ignore"):
+        pressure_pa = number["pressure"].value * np.where(is_relative, p0_g[gid], pa_per_unit)
+        loading_factor = np.full(n, np.nan)
+        for index, unit_name in enumerate(l_table):
+            rows_in_unit = l_unit == index
+            if rows_in_unit.any():
+                loading_factor[rows_in_unit] = units.loading_to_mol_per_kg(
+                    1.0, unit_name, molar_mass[rows_in_unit], mass_g[gid][rows_in_unit])
+        loading = number["loading"].value * loading_factor
+        sigma = number["sigma"].value * loading_factor
+
+    points = _merged_points(gid, n_groups, pressure_pa, loading, sigma)
+    found.groups_where(~found.bad_groups() & (points.n_distinct < 3), None, "too_few_points",
+                       lambda g: f"{points.n_distinct[g]} distinct pressure(s); at least 3 "
+                                 "are needed")
+    found.groups_where(_duplicate_ids(text, gid, n_groups, rows.group is not None), "isotherm_id",
+                       "duplicate_isotherm_id", lambda g: "an earlier isotherm has the same isotherm_id")
+
+    batch = Batch(label=label)
+    batch.rejected = _issues(found, names, label)
+    accepted = np.flatnonzero(~found.bad_groups())
+    if accepted.size == 0:
+        return batch
+    build = _Accepted(
+        rows=rows, text=text, number=number, label=label, points=points,
+        input_order=np.argsort(gid, kind="stable"),
+        input_start=np.concatenate([[0], np.cumsum(counts)]),
+        has_sigma=n_sigma > 0, adsorbate=[table[i] if i >= 0 else None for i in ads_index_g],
+        group_value=group_value, p0_pa=p0_g, relative_input=relative_g,
+        non_monotonic=_non_monotonic_groups(points, n_groups))
+    seen_ids: set[str] = set()
+    for g in accepted:
+        try:
+            iso = build.isotherm(int(g))
+        except Exception as exc:  # noqa: BLE001 - one isotherm's bug must not sink the batch
+            batch.rejected.append(_issue(label, names[g], None, None, "internal_error",
+                                         f"could not be built ({type(exc).__name__}: {_short(exc)})"))
+            continue
+        if iso.isotherm_id in seen_ids:
+            batch.rejected.append(_issue(label, iso.isotherm_id, None, "isotherm_id",
+                                         "duplicate_isotherm_id",
+                                         "an earlier isotherm has the same content and derived id"))
+            continue
+        seen_ids.add(iso.isotherm_id)
+        batch.isotherms.append(iso)
+    return batch
+
+
+def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, p_unit, l_unit,
+                p_unknown, l_unknown) -> None:
+    """Record every per-row problem (vectorised; messages built lazily)."""
+    def raw(name):
+        return lambda i: f"value {_short(number[name].raw(i))!r}"
+
+    for name in ("material_id", "adsorbate"):
+        found.rows_where(text[name].codes == _BLANK, name, "missing_value",
+                         lambda i, n=name: f"{n!r} is missing")
+    for name in NUMBER_FIELDS:
+        problem = number[name].problem
+        required = name in ("temperature_k", "pressure", "loading")
+        if required:
+            found.rows_where(problem == _MISSING, name, "missing_value", lambda i, n=name: f"{n!r} is missing")
+        found.rows_where(problem == _NOT_NUMBER, name, "not_a_number",
+                         lambda i, r=raw(name): f"{r(i)} is not a number")
+        found.rows_where(problem == _NOT_FINITE, name, "not_finite",
+                         lambda i, r=raw(name): f"{r(i)} is not finite (NaN or infinity)")
+    for name in ("pressure", "loading"):
+        found.rows_where(number[name].value < 0, name, "negative_value",
+                         lambda i, r=raw(name): f"{r(i)} is negative")
+    for name in ("temperature_k", "saturation_pressure", "sample_mass_g", "sigma",
+                 "surface_area_m2_per_g"):
+        found.rows_where(number[name].value <= 0, name, "non_positive_value",
+                         lambda i, r=raw(name): f"{r(i)} must be greater than zero")
+    relative = p_unit == list(units.PRESSURE_PA_PER_UNIT).index(units.RELATIVE)
+    found.rows_where(relative & (number["pressure"].value > 1.0), "pressure",
+                     "relative_pressure_above_one",
+                     lambda i: f"relative pressure p/p0 = {_short(number['pressure'].raw(i))} "
+                               "is above 1")
+
+    for name in ("material_id", "isotherm_id"):
+        column = text[name]
+        problems = [_id_problem(v) for v in column.values]
+        bad_value = np.array([p is not None for p in problems] + [False] * 3)
+        found.rows_where(bad_value[column.codes], name, "invalid_id",
+                         lambda i, c=column, p=problems, n=name:
+                         f"{n} {_short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+    adsorbate = text["adsorbate"]
+    found.rows_where(ads == -1, "adsorbate", "unknown_adsorbate",
+                     lambda i: _unknown_adsorbate(adsorbate.values[adsorbate.codes[i]]), once=True)
+    found.rows_where(branch == -1, "branch", "unknown_branch",
+                     lambda i: f"branch {_short(text['branch'].values[text['branch'].codes[i]])!r} "
+                               f"is not one of {', '.join(BRANCHES)}", once=True)
+    for name, unit, unknown in (("pressure_unit", p_unit, p_unknown), ("loading_unit", l_unit, l_unknown)):
+        column = text[name]
+        found.rows_where(unit == -1, name, "unknown_unit",
+                         lambda i, c=column, u=unknown: str(u[c.codes[i]]), once=True)
+        found.rows_where(unit == -2, name, "missing_unit",
+                         lambda i, n=name: f"no {n} given (column, file setting or defaults)", once=True)
+
+
+def _unknown_adsorbate(name: str) -> str:
+    near = adsorbates.suggest(name)
+    return f"unknown adsorbate {_short(name)!r}" + (f"; did you mean {near!r}?" if near else "")
+
+
+def _duplicate_ids(text, gid, n_groups: int, ids_per_group: bool) -> np.ndarray:
+    """Groups whose given isotherm_id an earlier group already used (JSON only:
+    CSV rows with one id form one group by construction)."""
+    duplicate = np.zeros(n_groups, dtype=bool)
+    if not ids_per_group:
+        return duplicate
+    codes = text["isotherm_id"].codes
+    low, _ = _group_range(codes.astype(float), codes >= 0, gid, n_groups)
+    seen: set[int] = set()
+    for g in range(n_groups):
+        if np.isfinite(low[g]):
+            duplicate[g] = int(low[g]) in seen
+            seen.add(int(low[g]))
+    return duplicate
+
+
+class _GroupNames:
+    """A readable name per isotherm for issues: its id if usable, else a description.
+    Built on demand, since only rejected isotherms need one."""
+
+    def __init__(self, rows: _Rows, text, gid: np.ndarray):
+        self.rows, self.text, self.gid = rows, text, gid
+        self.first_row: np.ndarray | None = None
+
+    def __getitem__(self, g: int) -> str:
+        if self.rows.group_names is not None:
+            return self.rows.group_names[g]
+        if self.first_row is None:  # CSV/Parquet groups are never empty
+            self.first_row = np.unique(self.gid, return_index=True)[1]
+        r = int(self.first_row[g])
+        text = self.text
+        iso = text["isotherm_id"]
+        if iso.codes[r] >= 0 and _id_problem(iso.values[iso.codes[r]]) is None:
+            return iso.values[iso.codes[r]]
+        parts = []
+        for name in ("material_id", "adsorbate"):
+            column = text[name]
+            parts.append(_short(column.values[column.codes[r]], 40) if column.codes[r] >= 0 else "?")
+        parts.append(f"{_short(self.rows.numbers['temperature_k'].raw(r), 20)}K")
+        branch = text["branch"]
+        parts.append(branch.values[branch.codes[r]] if branch.codes[r] >= 0 else "adsorption")
+        return "|".join(parts) + f" (from row {self.rows.row_label[r]})"
+
+
+def _issue(label: str, isotherm: str, row, fld, code: str, detail: str) -> Issue:
+    where = [f"batch {label!r}", f"isotherm {isotherm!r}"]
+    if row is not None:
+        where.append(f"row {row}")
+    if fld is not None:
+        where.append(f"field {fld!r}")
+    return Issue(label, isotherm, None if row is None else int(row), fld, code,
+                 f"{', '.join(where)}: {detail}")
+
+
+def _issues(found: _Findings, names: _GroupNames, label: str) -> list[Issue]:
+    """All findings as Issues, at most MAX_ISSUES_PER_ISOTHERM per isotherm."""
+    per_group: dict[int, list[Issue]] = {}
+    total = np.zeros(found.n_groups, dtype=np.int64)
+
+    def add(g: int, row, fld, code, detail_fn) -> None:
+        total[g] += 1
+        bucket = per_group.setdefault(g, [])
+        if len(bucket) < MAX_ISSUES_PER_ISOTHERM:
+            bucket.append(_issue(label, names[g], row, fld, code, detail_fn()))
+
+    for g, fld, code, detail in found.rows.group_issues:
+        add(g, None, fld, code, lambda d=detail: d)
+    for g, fld, code, detail in found.group_checks:
+        add(g, None, fld, code, lambda d=detail: d)
+    for index, fld, code, detail, once in found.row_checks:
+        per_isotherm = fld in found.rows.isotherm_level
+        # keep only rows that still fit under the cap, without a loop over all of them
+        g_rows = found.gid[index]
+        counts_before = total.copy()
+        order = np.argsort(g_rows, kind="stable")
+        rank = np.empty(index.size, dtype=np.int64)
+        starts = np.searchsorted(g_rows[order], g_rows[order])
+        rank[order] = np.arange(index.size) - starts
+        keep = counts_before[g_rows] + rank < MAX_ISSUES_PER_ISOTHERM
+        np.add.at(total, g_rows, 1)
+        for i in index[keep]:
+            g = int(found.gid[i])
+            row = None if per_isotherm else found.rows.row_label[i]
+            per_group.setdefault(g, []).append(
+                _issue(label, names[g], row, fld, code, detail(int(i))))
+    out: list[Issue] = []
+    for g in sorted(per_group):
+        bucket = sorted(per_group[g], key=lambda s: (s.row is not None, s.row or 0))
+        out.extend(bucket)
+        if total[g] > len(bucket):
+            out.append(_issue(label, names[g], None, None, "more_issues",
+                              f"{total[g] - len(bucket)} more issue(s) not listed"))
+    return out
+
+
+@dataclass
+class _Points:
+    """All points sorted by (isotherm, pressure), exactly equal pressures merged."""
+
+    group: np.ndarray          # isotherm index per point
+    pressure_pa: np.ndarray
+    loading_mol_per_kg: np.ndarray
+    sigma_mol_per_kg: np.ndarray
+    start: np.ndarray          # isotherm g owns points start[g]:start[g + 1]
+    n_distinct: np.ndarray     # per isotherm
+    merged: np.ndarray         # per isotherm: some pressures were merged
+
+
+def _merged_points(gid, n_groups, pressure_pa, loading, sigma) -> _Points:
+    """Return the points sorted per isotherm, equal pressures merged into their mean
+    loading with the standard error of the mean as sigma (module docstring)."""
+    order = np.lexsort((pressure_pa, gid))
+    g, p = gid[order], pressure_pa[order]
+    new_point = np.ones(g.size, dtype=bool)
+    new_point[1:] = (g[1:] != g[:-1]) | (p[1:] != p[:-1])
+    first = np.flatnonzero(new_point)
+    size = np.diff(np.append(first, g.size))
+    if first.size:
+        with np.errstate(all="ignore"):
+            q = np.add.reduceat(loading[order], first) / size
+            s = np.sqrt(np.add.reduceat(sigma[order] ** 2, first)) / size
+    else:
+        q = s = np.empty(0)
+    group = g[first]
+    n_distinct = np.bincount(group, minlength=n_groups)
+    merged = np.bincount(group, weights=size > 1, minlength=n_groups) > 0
+    return _Points(group, p[first], q, s, np.concatenate([[0], np.cumsum(n_distinct)]),
+                   n_distinct, merged)
+
+
+def _non_monotonic_groups(points: _Points, n_groups: int) -> np.ndarray:
+    """Per isotherm: does a point fall below the best loading at lower pressure by more
+    than max(2 % of the isotherm's top loading, 3 sigma)?"""
+    q = points.loading_mol_per_kg
+    top = np.zeros(n_groups)
+    np.maximum.at(top, points.group, np.where(np.isfinite(q), q, 0.0))
+    scale = np.where(top > 0, top, 1.0)[points.group]
+    with np.errstate(all="ignore"):
+        q_norm = np.clip(np.nan_to_num(q / scale), 0.0, 1.0)
+        allowance = np.maximum(NON_MONOTONIC_FRACTION,
+                               NON_MONOTONIC_SIGMAS * np.nan_to_num(points.sigma_mol_per_kg / scale))
+    # one running maximum over all isotherms at once: isotherm g is lifted by 2g, so an
+    # earlier isotherm's maximum (at most 2g - 1) never reaches into the next one
+    lift = 2.0 * points.group
+    best_so_far = np.maximum.accumulate(q_norm + lift) - lift
+    same = points.group[1:] == points.group[:-1]
+    falls = same & (best_so_far[:-1] - q_norm[1:] > allowance[1:])
+    return np.bincount(points.group[1:][falls], minlength=n_groups) > 0
+
+
+@dataclass
+class _Accepted:
+    """Everything needed to build the accepted isotherms, one cheap call each."""
+
+    rows: _Rows
+    text: dict
+    number: dict
+    label: str
+    points: _Points
+    input_order: np.ndarray    # rows grouped by isotherm, input order inside
+    input_start: np.ndarray
+    has_sigma: np.ndarray
+    adsorbate: list
+    group_value: dict
+    p0_pa: np.ndarray
+    relative_input: np.ndarray
+    non_monotonic: np.ndarray
+
+    def isotherm(self, g: int) -> Isotherm:
+        pts = self.points
+        span = slice(pts.start[g], pts.start[g + 1])
+        p = pts.pressure_pa[span].copy()
+        q = pts.loading_mol_per_kg[span].copy()
+        sigma = pts.sigma_mol_per_kg[span].copy() if self.has_sigma[g] else None
+        p0 = None if np.isnan(self.p0_pa[g]) else float(self.p0_pa[g])
+        flags = [name for name, on in (
+            ("duplicate_pressures_merged", pts.merged[g]),
+            ("non_monotonic_loading", self.non_monotonic[g]),
+            ("pressure_above_saturation",
+             p0 is not None and not self.relative_input[g] and p[-1] > p0)) if on]
+        value = self.group_value
+        material_id = self.text["material_id"].values[int(value["material_id"][g])]
+        adsorbate = self.adsorbate[g]
+        temperature_k = float(value["temperature_k"][g])
+        branch = BRANCHES[int(value["branch"][g])]
+        in_input = self.input_order[self.input_start[g]:self.input_start[g + 1]]
+        given_id = self.text["isotherm_id"].codes[in_input[0]]
+        if given_id >= 0:
+            isotherm_id = self.text["isotherm_id"].values[given_id]
+        else:
+            content = f"{material_id}|{adsorbate.id}|{temperature_k!r}|{branch}".encode()
+            digest = hashlib.sha256(content + p.tobytes() + q.tobytes()).hexdigest()[:10]
+            isotherm_id = f"{material_id}|{adsorbate.id}|{temperature_k:.2f}K|{branch}|{digest}"
+        area = value["surface_area_m2_per_g"][g]
+        return Isotherm(
+            isotherm_id=isotherm_id, material_id=material_id, adsorbate=adsorbate.id,
+            temperature_k=temperature_k, pressure_pa=p, loading_mol_per_kg=q, branch=branch,
+            saturation_pressure_pa=p0, sigma_mol_per_kg=sigma,
+            surface_area_m2_per_g=None if np.isnan(area) else float(area),
+            batch_label=self.label, flags=flags, original=self._original(g, in_input),
+        )
+
+    def _original(self, g: int, in_input: np.ndarray) -> dict[str, Any]:
+        """The values as sent, with their units and source rows, in input order."""
+        first = in_input[0]
+
+        def as_sent(name):
+            column = self.text[name]
+            code = column.codes[first]
+            return column.values[code] if code >= 0 else None
+
+        def scalar(name):
+            column = self.number[name]
+            return float(column.value[first]) if column.problem[first] == _OK else None
+
+        number = self.number
+        return {
+            "source": self.rows.source,
+            "rows": self.rows.row_label[in_input],
+            "adsorbate": as_sent("adsorbate"),
+            "temperature_k": scalar("temperature_k"),
+            "pressure": number["pressure"].value[in_input],
+            "pressure_unit": as_sent("pressure_unit"),
+            "loading": number["loading"].value[in_input],
+            "loading_unit": as_sent("loading_unit"),
+            "sigma": number["sigma"].value[in_input] if self.has_sigma[g] else None,
+            "saturation_pressure": scalar("saturation_pressure"),
+            "sample_mass_g": scalar("sample_mass_g"),
+        }
+
+
+# ---------------------------------------------------------------------------
+# conditions and mixtures (JSON only)
+
+def _conditions(raw: Any, settings: dict, label: str) -> Conditions:
+    if raw is None:
+        return Conditions()
+    where = "conditions"
+    fields = ("pressure_unit", "adsorption_pressure", "desorption_pressure", "reference_pressures",
+              "adsorption_temperature_k", "desorption_temperature_k")
+    raw = _checked_object(raw, fields, where, label, "invalid_conditions")
+    pa_per_unit = _absolute_pa_per_unit(raw, settings, where, label, "invalid_conditions")
+    base = Conditions()
+    out = {}
+    for key, minimum in (("adsorption_pressure", "positive"), ("desorption_pressure", "non_negative")):
+        if key in raw:
+            out[key + "_pa"] = _checked_number(raw[key], minimum, f"{where}.{key}", label,
+                                               "invalid_conditions") * pa_per_unit
+    if "reference_pressures" in raw:
+        values = raw["reference_pressures"]
+        if not isinstance(values, list) or not values:
+            raise _batch_error(label, "invalid_conditions", "must be a non-empty list of numbers",
+                               fld=f"{where}.reference_pressures")
+        out["reference_pressures_pa"] = tuple(
+            _checked_number(v, "non_negative", f"{where}.reference_pressures[{i}]", label,
+                            "invalid_conditions") * pa_per_unit for i, v in enumerate(values))
+    for key in ("adsorption_temperature_k", "desorption_temperature_k"):
+        if raw.get(key) is not None:
+            out[key] = _checked_number(raw[key], "positive", f"{where}.{key}", label, "invalid_conditions")
+    conditions = Conditions(**{**base.__dict__, **out})
+    if conditions.desorption_pressure_pa > conditions.adsorption_pressure_pa:
+        raise _batch_error(label, "invalid_conditions",
+                           "desorption pressure must not be above the adsorption pressure",
+                           fld=f"{where}.desorption_pressure")
+    return conditions
+
+
+def _mixtures(raw: Any, settings: dict, label: str) -> list[MixtureRequest]:
+    if raw is None:
+        return []
+    if not isinstance(raw, list):
+        raise _batch_error(label, "invalid_mixture", "must be a list", fld="mixtures")
+    fields = ("material_id", "components", "mole_fractions", "total_pressure", "pressure_unit",
+              "temperature_k")
+    out = []
+    for i, item in enumerate(raw):
+        where = f"mixtures[{i}]"
+        item = _checked_object(item, fields, where, label, "invalid_mixture")
+        material_id = item.get("material_id")
+        if material_id is not None and (not isinstance(material_id, str) or _id_problem(material_id)):
+            raise _batch_error(label, "invalid_mixture", "material_id must be a valid id or null",
+                               fld=f"{where}.material_id")
+        components = item.get("components")
+        fractions = item.get("mole_fractions")
+        if not isinstance(components, list) or len(components) < 2:
+            raise _batch_error(label, "invalid_mixture", "needs a list of at least 2 components",
+                               fld=f"{where}.components")
+        ids = []
+        for c in components:
+            found = adsorbates.lookup(c) if isinstance(c, str) else None
+            if found is None:
+                raise _batch_error(label, "invalid_mixture", _unknown_adsorbate(str(c)),
+                                   fld=f"{where}.components")
+            ids.append(found.id)
+        if len(set(ids)) != len(ids):
+            raise _batch_error(label, "invalid_mixture", "a component is listed twice",
+                               fld=f"{where}.components")
+        if not isinstance(fractions, list) or len(fractions) != len(ids):
+            raise _batch_error(label, "invalid_mixture", "needs one mole fraction per component",
+                               fld=f"{where}.mole_fractions")
+        y = [_checked_number(v, "positive", f"{where}.mole_fractions[{k}]", label, "invalid_mixture")
+             for k, v in enumerate(fractions)]
+        if abs(sum(y) - 1.0) > 1e-6:
+            raise _batch_error(label, "invalid_mixture", f"mole fractions sum to {sum(y):.9g}, not 1",
+                               fld=f"{where}.mole_fractions")
+        pa_per_unit = _absolute_pa_per_unit(item, settings, where, label, "invalid_mixture")
+        out.append(MixtureRequest(
+            material_id=material_id, components=ids, mole_fractions=y,
+            total_pressure_pa=_checked_number(item.get("total_pressure"), "positive",
+                                              f"{where}.total_pressure", label,
+                                              "invalid_mixture") * pa_per_unit,
+            temperature_k=_checked_number(item.get("temperature_k"), "positive",
+                                          f"{where}.temperature_k", label, "invalid_mixture")))
+    return out
+
+
+def _checked_object(raw: Any, fields: tuple, where: str, label: str, code: str) -> dict:
+    if not isinstance(raw, dict):
+        raise _batch_error(label, code, "must be an object", fld=where)
+    for key in raw:
+        if key not in fields:
+            near = _nearest(key, fields)
+            raise _batch_error(label, code, f"unknown key {_short(key)!r}"
+                               + (f"; did you mean {near!r}?" if near else ""), fld=where)
+    return raw
+
+
+def _absolute_pa_per_unit(raw: dict, settings: dict, where: str, label: str, code: str) -> float:
+    unit = raw.get("pressure_unit", settings.get("pressure_unit"))
+    if unit is None:
+        raise _batch_error(label, code, "pressure_unit is needed", fld=f"{where}.pressure_unit")
+    try:
+        factor = units.PRESSURE_PA_PER_UNIT[units.normalise_unit_name(str(unit), "pressure")]
+    except units.UnknownUnit as exc:
+        raise _batch_error(label, code, str(exc), fld=f"{where}.pressure_unit")
+    if factor is None:
+        raise _batch_error(label, code, "must be an absolute pressure unit, not relative",
+                           fld=f"{where}.pressure_unit")
+    return factor
+
+
+def _checked_number(value: Any, minimum: str, fld: str, label: str, code: str) -> float:
+    number, problem = _json_number(value)
+    if problem != _OK:
+        raise _batch_error(label, code, f"{_short(json.dumps(value))} is not a finite number", fld=fld)
+    if number < 0 or (minimum == "positive" and number == 0):
+        raise _batch_error(label, code, f"{number:g} must be "
+                           + ("greater than zero" if minimum == "positive" else "zero or more"), fld=fld)
+    return number
