@@ -39,6 +39,8 @@ class Issue:
         }
 
     def __str__(self) -> str:
+        if self.message.startswith("batch "):
+            return self.message  # intake messages already carry their location
         where = [f"batch {self.batch!r}"]
         if self.isotherm is not None:
             where.append(f"isotherm {self.isotherm!r}")
