@@ -1,0 +1,269 @@
+"""The batch fit engine against known truths and an independent optimiser.
+
+Synthetic data here are invented on purpose (truth-known tests): each
+catalogue model generates data from parameters we chose, the engine must
+give them back; with noise, scipy.optimize.least_squares (a general-purpose
+reference optimiser, started from the truth) must not find a lower sum of
+squares than the engine by more than 1e-6 relative.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import optimize, stats
+
+from worker.engine import fit_model, fit_models
+from worker.isotherm import Isotherm
+from worker.models import CATALOGUE
+from worker.packing import pack
+
+T_K = 300.0
+P0_PA = 1.0e6  # saturation pressure used for the p/p0 models (invented, truth-known)
+
+# (true parameters in the model's order, pressures in Pa) per catalogue model
+TRUTH = {
+    "henry": ([3.0e-5], np.geomspace(1e2, 1e5, 20)),
+    "langmuir": ([5.0, 2.0e-5], np.geomspace(1e2, 1e6, 25)),
+    "dual_site_langmuir": ([2.0, 1.0e-3, 4.0, 1.0e-5], np.geomspace(1e1, 1e7, 40)),
+    "freundlich": ([0.02, 2.5], np.geomspace(1e2, 1e6, 25)),
+    "sips": ([6.0, 1.0e-5, 0.7], np.geomspace(1e2, 1e7, 30)),
+    "toth": ([6.0, 1.0e-4, 0.6], np.geomspace(1e1, 1e7, 30)),
+    "redlich_peterson": ([2.0e-4, 1.0e-3, 0.8], np.geomspace(1e1, 1e6, 30)),
+    "temkin": ([1.0e-2, 2.0e3], np.geomspace(1e3, 1e6, 25)),
+    "bet": ([3.0, 100.0], P0_PA * np.linspace(0.02, 0.45, 20)),
+    "gab": ([3.0, 50.0, 0.8], P0_PA * np.linspace(0.02, 0.9, 25)),
+    "dubinin_radushkevich": ([5.0, 1.5e4], P0_PA * np.geomspace(1e-5, 0.9, 25)),
+    "dubinin_astakhov": ([5.0, 1.5e4, 2.5], P0_PA * np.geomspace(1e-5, 0.9, 25)),
+}
+
+
+def model_x(model, pressure_pa):
+    return pressure_pa / P0_PA if model.relative_pressure else pressure_pa
+
+
+def true_loading(model, params, pressure_pa):
+    cols = [np.array([[v]]) for v in params]
+    return model.evaluate(model_x(model, pressure_pa)[None], np.array([[T_K]]), *cols)[0]
+
+
+def isotherm(iso_id, pressure_pa, loading, **kw):
+    return Isotherm(iso_id, "m1", "CO2", T_K, np.asarray(pressure_pa, float),
+                    np.asarray(loading, float), saturation_pressure_pa=P0_PA, **kw)
+
+
+def noisy_batch(model_id, n, rel_noise, seed):
+    params, p = TRUTH[model_id]
+    q = true_loading(CATALOGUE[model_id], params, p)
+    rng = np.random.default_rng(seed)
+    sd = rel_noise * np.abs(q).max()
+    return [isotherm(f"{model_id}-{i}", p, q + sd * rng.standard_normal(p.size)) for i in range(n)]
+
+
+def test_every_catalogue_model_has_a_truth():
+    # a model added to the catalogue without an entry here would go untested
+    assert set(CATALOGUE) <= set(TRUTH)
+
+
+@pytest.mark.parametrize("model_id", sorted(CATALOGUE))
+def test_noise_free_data_recover_the_generating_parameters(model_id):
+    model = CATALOGUE[model_id]
+    params, p = TRUTH[model_id]
+    q = true_loading(model, params, p)
+    # two copies, one with every other point dropped: unequal lengths share a batch
+    fits = fit_model(model, pack([isotherm("full", p, q), isotherm("half", p[::2], q[::2])]))
+    assert fits.converged.all(), fits.reason
+    np.testing.assert_allclose(fits.params, np.array([params, params]), rtol=1e-6)
+    assert np.all(fits.sse < 1e-20 * np.sum(q * q))
+
+
+@pytest.mark.parametrize("model_id", sorted(CATALOGUE))
+def test_noisy_fit_is_as_good_as_scipy_least_squares_from_the_truth(model_id):
+    """Reference: scipy.optimize.least_squares (trf, same bounds, analytic
+    Jacobian, tolerances 1e-15) started from the true parameters. Noise: 1 % of
+    the largest loading, Gaussian, 30 isotherms, fixed seed."""
+    model = CATALOGUE[model_id]
+    truth, _ = TRUTH[model_id]
+    isos = noisy_batch(model_id, 30, 0.01, seed=7)
+    fits = fit_model(model, pack(isos))
+    lo, hi = model.lower_bounds(), model.upper_bounds()
+    t = np.array([[T_K]])
+    for i, iso in enumerate(isos):
+        x = model_x(model, iso.pressure_pa)[None]
+        q = iso.loading_mol_per_kg
+
+        def resid(b):
+            return model.evaluate(x, t, *[np.array([[v]]) for v in b])[0] - q
+
+        def jac(b):
+            cols = model.jacobian(x, t, *[np.array([[v]]) for v in b])
+            return np.stack([np.broadcast_to(c, x.shape)[0] for c in cols], axis=1)
+
+        start = np.array(truth, dtype=float)  # strictly inside every bound
+        ref = optimize.least_squares(resid, start, jac=jac, bounds=(lo, hi), method="trf",
+                                     xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=5000)
+        ref_sse = float(np.sum(ref.fun**2))
+        assert np.isfinite(fits.sse[i]), fits.reason[i]
+        assert fits.sse[i] <= ref_sse * (1 + 1e-6), (i, fits.reason[i], fits.params[i], ref.x)
+
+
+def test_statistics_follow_their_definitions():
+    """stderr, ci95, r2 and the criteria recomputed from first principles for a
+    Langmuir fit: covariance (J^T J)^-1 SSE/(n-k) (e.g. NIST/SEMATECH e-Handbook
+    of Statistical Methods, section 4.4.5, from memory), t quantile from
+    scipy.stats, AICc by Hurvich & Tsai (1989) with K = k + 1."""
+    isos = noisy_batch("langmuir", 3, 0.02, seed=3)
+    model = CATALOGUE["langmuir"]
+    fits = fit_model(model, pack(isos))
+    iso = isos[1]
+    q_sat, b = fits.params[1]
+    p, q = iso.pressure_pa, iso.loading_mol_per_kg
+    f = q_sat * b * p / (1 + b * p)
+    sse = np.sum((f - q) ** 2)
+    n, k = p.size, 2
+    jac = np.stack([b * p / (1 + b * p), q_sat * p / (1 + b * p) ** 2], axis=1)
+    cov = np.linalg.inv(jac.T @ jac) * sse / (n - k)
+    np.testing.assert_allclose(fits.sse[1], sse, rtol=1e-12)
+    np.testing.assert_allclose(fits.covariance[1], cov, rtol=1e-8)
+    np.testing.assert_allclose(fits.stderr[1], np.sqrt(np.diag(cov)), rtol=1e-8)
+    half = stats.t.ppf(0.975, n - k) * np.sqrt(np.diag(cov))
+    np.testing.assert_allclose(fits.ci95_high[1] - fits.params[1], half, rtol=1e-8)
+    np.testing.assert_allclose(fits.params[1] - fits.ci95_low[1], half, rtol=1e-8)
+    np.testing.assert_allclose(fits.rmse[1], np.sqrt(sse / n), rtol=1e-12)
+    np.testing.assert_allclose(fits.r2[1], 1 - sse / np.sum((q - q.mean()) ** 2), rtol=1e-12)
+    big_k = k + 1
+    aic = n * np.log(sse / n) + 2 * big_k
+    np.testing.assert_allclose(fits.aic[1], aic, rtol=1e-12)
+    np.testing.assert_allclose(fits.aicc[1], aic + 2 * big_k * (big_k + 1) / (n - big_k - 1), rtol=1e-12)
+    np.testing.assert_allclose(fits.bic[1], n * np.log(sse / n) + big_k * np.log(n), rtol=1e-12)
+
+
+def test_scaling_affinity_and_capacity_of_very_different_size():
+    # 1e-9 1/Pa affinities and 1e3 1/Pa: the log-scale parameter must not
+    # stall on either end (truth-known synthetic data, noise-free)
+    p = np.geomspace(1e-4, 1e10, 30)
+    isos = []
+    for i, (q_sat, b) in enumerate([(5.0, 1e-9), (0.05, 1e3), (50.0, 1e-6)]):
+        isos.append(isotherm(f"s{i}", p, q_sat * b * p / (1 + b * p)))
+    fits = fit_model(CATALOGUE["langmuir"], pack(isos))
+    assert fits.converged.all(), fits.reason
+    np.testing.assert_allclose(fits.params, [[5.0, 1e-9], [0.05, 1e3], [50.0, 1e-6]], rtol=1e-8)
+
+
+def test_weighted_fits_match_scipy_curve_fit_with_sigma():
+    """Weighted least squares: weighting="sigma" (the rig's per-point sigma) and
+    weighting="relative" (sigma = loading) against scipy.optimize.curve_fit
+    with the same sigma and absolute_sigma=False."""
+    params, p = TRUTH["langmuir"]
+    q_true = true_loading(CATALOGUE["langmuir"], params, p)
+    rng = np.random.default_rng(11)
+    sigma = 0.01 + 0.03 * q_true
+    q = q_true + sigma * rng.standard_normal(p.size)
+    with_sigma = isotherm("w", p, q, sigma_mol_per_kg=sigma)
+    plain = isotherm("plain", p, q)
+    packed = pack([with_sigma, plain])
+
+    def langmuir(pp, q_sat, b):
+        return q_sat * b * pp / (1 + b * pp)
+
+    fits = fit_model(CATALOGUE["langmuir"], packed, weighting="sigma")
+    ref, ref_cov = optimize.curve_fit(langmuir, p, q, p0=params, sigma=sigma, xtol=1e-14, ftol=1e-14)
+    np.testing.assert_allclose(fits.params[0], ref, rtol=1e-7)
+    np.testing.assert_allclose(fits.covariance[0], ref_cov, rtol=1e-5)
+    # an isotherm without sigma in the same batch falls back to uniform weights
+    ols = fit_model(CATALOGUE["langmuir"], pack([plain]))
+    np.testing.assert_allclose(fits.params[1], ols.params[0], rtol=1e-9)
+
+    rel = fit_model(CATALOGUE["langmuir"], packed, weighting="relative")
+    ref_rel, _ = optimize.curve_fit(langmuir, p, q, p0=params, sigma=np.abs(q), xtol=1e-14, ftol=1e-14)
+    np.testing.assert_allclose(rel.params[1], ref_rel, rtol=1e-7)
+
+
+def test_relative_weighting_guards_zero_loadings():
+    # a zero loading must not get infinite weight (truth-known synthetic data)
+    params, p = TRUTH["langmuir"]
+    q = true_loading(CATALOGUE["langmuir"], params, p)
+    q[0] = 0.0
+    fits = fit_model(CATALOGUE["langmuir"], pack([isotherm("z", p, q)]), weighting="relative")
+    assert np.isfinite(fits.sse).all() and fits.converged.all(), fits.reason
+
+
+def test_failures_are_data_and_do_not_disturb_the_rest_of_the_batch():
+    params, p = TRUTH["langmuir"]
+    good = isotherm("good", p, true_loading(CATALOGUE["langmuir"], params, p) + 0.01 * np.sin(p))
+    flat = isotherm("flat", p, np.full(p.size, 2.0))          # no curvature, no slope
+    zeros = isotherm("zeros", p, np.zeros(p.size))            # nothing adsorbed
+    short = isotherm("short", p[:2], np.array([0.1, 0.2]))    # k = 2 needs 3 points
+    no_p0 = Isotherm("no_p0", "m1", "CO2", T_K, p, np.linspace(0.1, 3.0, p.size))
+    above = Isotherm("above", "m1", "CO2", T_K, p, np.linspace(0.1, 3.0, p.size),
+                     saturation_pressure_pa=float(p[-3]))
+    packed = pack([good, flat, zeros, short, no_p0, above])
+    fits = fit_models(packed, "all")
+    lang = fits["langmuir"]
+    assert lang.converged[0] and lang.reason[0] == "converged"
+    # flat data: the best Langmuir is the saturated limit, affinity -> infinity
+    assert not lang.converged[1] and lang.reason[1] == "singular jacobian"
+    assert not lang.converged[2] and lang.reason[2] == "degenerate data: every loading is zero"
+    assert not lang.converged[3] and lang.reason[3].startswith("too few points")
+    assert np.isnan(lang.params[3]).all()
+    bet = fits["bet"]
+    assert not bet.applicable[4] and bet.reason[4] == "not applicable: no saturation pressure"
+    assert not bet.applicable[5] and bet.reason[5] == "not applicable: p/p0 >= 1"
+    assert not bet.converged[4] and not bet.converged[5]
+    for f in fits.values():
+        # every row carries a reason, every model answered for every isotherm
+        assert f.n == packed.n and all(isinstance(r, str) and r for r in f.reason)
+
+
+def test_relative_pressure_models_see_p_over_p0():
+    # BET generated in p/p0 at two different p0: same parameters come back
+    params, p = TRUTH["bet"]
+    x = p / P0_PA
+    q = true_loading(CATALOGUE["bet"], params, p)
+    a = isotherm("a", p, q)
+    b = Isotherm("b", "m1", "N2", 77.0, x * 2.0e4, q, saturation_pressure_pa=2.0e4)
+    fits = fit_model(CATALOGUE["bet"], pack([a, b]))
+    np.testing.assert_allclose(fits.params, [params, params], rtol=1e-6)
+
+
+def test_dual_site_parameters_come_back_in_canonical_order():
+    # whichever seed wins, the stronger site is listed first (model.canonical)
+    params, p = TRUTH["dual_site_langmuir"]
+    q = true_loading(CATALOGUE["dual_site_langmuir"], params, p)
+    fits = fit_model(CATALOGUE["dual_site_langmuir"], pack([isotherm("d", p, q)]))
+    assert fits.params[0, 1] > fits.params[0, 3]
+    np.testing.assert_allclose(fits.params[0], params, rtol=1e-6)
+
+
+def test_unknown_weighting_is_a_usage_error():
+    with pytest.raises(ValueError):
+        fit_model(CATALOGUE["langmuir"], pack(noisy_batch("langmuir", 1, 0.01, 0)), weighting="bogus")
+
+
+def test_benchmark_runs_at_tiny_size():
+    """Smoke test only (no timing is asserted): benchmarks/bench_engine.py must
+    keep running and print its figures side by side."""
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    script = Path(__file__).resolve().parents[1] / "benchmarks" / "bench_engine.py"
+    run = subprocess.run([sys.executable, str(script), "--n", "25", "--baseline-n", "5", "--repeats", "1"],
+                         capture_output=True, text=True, timeout=300)
+    assert run.returncode == 0, run.stderr
+    for word in ("engine", "baseline", "ratio", "SSE parity", "subset of 5"):
+        assert word in run.stdout, run.stdout
+
+
+def test_a_model_that_crashes_is_reported_not_raised():
+    class Broken(CATALOGUE["langmuir"]):
+        id = "broken"
+
+        @classmethod
+        def initial_guesses(cls, x, q, mask, temperature_k):
+            raise ZeroDivisionError("seed rule bug")
+
+    packed = pack(noisy_batch("langmuir", 2, 0.01, seed=1))
+    fits = fit_models(packed, [Broken, "langmuir"])
+    assert not fits["broken"].converged.any()
+    assert fits["broken"].reason[0] == "internal error: ZeroDivisionError: seed rule bug"
+    assert fits["langmuir"].converged.all()
