@@ -158,3 +158,14 @@ def test_bet_area_fills_site_density_on_the_same_material():
     molar_volume_cm3 = constants.R * constants.zero_Celsius / constants.atm * 1e6
     assert out["monolayer_volume_cm3stp_per_g"][0] == pytest.approx(
         out["bet_monolayer_mol_per_kg"][0] / 1000 * molar_volume_cm3, rel=1e-12)
+
+
+def test_supercritical_bet_gas_is_skipped_without_a_flag():
+    # N2 at 298 K is far above its critical temperature (126 K): an ordinary
+    # screening isotherm, not a failed BET measurement
+    q = type_ii(X, 100.0)
+    warm_n2 = Isotherm("n2", "m", "N2", 298.0, X * 1.0e6, q)
+    batch, packed = batch_of([warm_n2])
+    out = summarize(packed, {}, selection_of([None], ["langmuir"]), batch)
+    assert np.isnan(out["bet_area_m2_per_g"][0])
+    assert not any(f.startswith("bet") for f in out["flags"][0])

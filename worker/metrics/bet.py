@@ -87,7 +87,10 @@ def bet_columns(packed: Packed, flags: list[list[str]]) -> dict[str, np.ndarray]
     has_p0 = np.isfinite(packed.saturation_pressure_pa) & (packed.saturation_pressure_pa > 0)
     adsorption = np.array([b == "adsorption" for b in packed.branches], dtype=bool)
 
-    add_flag(flags, is_bet_gas & ~at_usual_t, "bet_unusual_temperature")
+    # a BET gas far from its usual temperature is flagged only where it is
+    # still subcritical (BET might have been meant); N2 or Ar at ambient
+    # temperature are ordinary screening isotherms, not BET measurements
+    add_flag(flags, is_bet_gas & ~at_usual_t & has_p0, "bet_unusual_temperature")
     add_flag(flags, is_bet_gas & at_usual_t & ~has_p0, "bet_no_saturation_pressure")
     add_flag(flags, is_bet_gas & at_usual_t & has_p0 & ~adsorption, "bet_not_adsorption_branch")
     todo = np.flatnonzero(is_bet_gas & at_usual_t & has_p0 & adsorption)
