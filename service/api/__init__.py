@@ -1,0 +1,1 @@
+"""One blueprint per resource; ``formats`` holds the shared table responses."""

@@ -1,0 +1,53 @@
+"""Rankings across every batch in the store."""
+from __future__ import annotations
+
+from flask import Blueprint, current_app, request
+
+from worker.store import LATEST_WINS_RULE, RankingQuery, rankings
+
+from ..auth import require
+from ..problems import Problem
+from .formats import bool_arg, choice_arg, float_arg, int_arg, json_rows, negotiate, table_response
+
+bp = Blueprint("rankings", __name__)
+
+
+def ranking_query() -> RankingQuery:
+    return RankingQuery(
+        adsorbate=request.args.get("adsorbate"),
+        temperature_k=float_arg("temperature_k", None),
+        temperature_tolerance_k=float_arg("temperature_tolerance_k", 0.5),
+        flags=tuple(request.args.getlist("flag")),
+        exclude_flags=tuple(request.args.getlist("exclude_flag")),
+        batch_id=request.args.get("batch_id"),
+        material_id=request.args.get("material_id"),
+        sort=request.args.get("sort", "q_sat_mol_per_kg"),
+        descending=choice_arg("order", "desc", ("asc", "desc")) == "desc",
+        limit=int_arg("limit", 100, 0, 100_000),
+        offset=int_arg("offset", 0, 0, 10**9),
+        all_results=bool_arg("all"),
+    )
+
+
+@bp.get("/rankings")
+@require("read")
+def get_rankings():
+    query = ranking_query()
+    fmt = negotiate()
+    try:
+        page, total = rankings(current_app.extensions["sorbrank"].store, query)
+    except ValueError as exc:
+        raise Problem(400, "Bad Request", str(exc), slug="bad-parameter", parameter="sort")
+    rule = "all results" if query.all_results else LATEST_WINS_RULE
+    headers = {"X-Total-Count": str(total)}
+    if fmt != "json":
+        return table_response(page, fmt, "rankings", headers)
+    return {
+        "rows": json_rows(page),
+        "total": total,
+        "limit": query.limit,
+        "offset": query.offset,
+        "sort": query.sort,
+        "order": "desc" if query.descending else "asc",
+        "deduplication": rule,
+    }, 200, headers

@@ -1,0 +1,103 @@
+"""``sorbrank serve``: the HTTP API, plus the fitting pool in embedded mode."""
+from __future__ import annotations
+
+import argparse
+import logging
+import signal
+import sys
+
+HELP = "run the HTTP API (embedded fitting on all cores, or Celery workers via Redis)"
+DESCRIPTION = """\
+Run the sorbrank HTTP API (routes under /api/v1; /healthz and /readyz probes;
+the OpenAPI document at /api/v1/openapi.json).
+
+Two modes, chosen by the environment:
+  embedded     (no SORBRANK_BROKER_URL) batches are fitted by a pool of local
+               processes, one per core (SORBRANK_EMBEDDED_WORKERS to change);
+               unfinished batches resume when the server starts again.
+  distributed  (SORBRANK_BROKER_URL=redis://host:port/db) batches are queued
+               for 'sorbrank worker' processes, which must see the same
+               SORBRANK_DATA_DIR.
+
+Environment: SORBRANK_DATA_DIR (store root, default ./data),
+SORBRANK_CHUNK_SIZE (isotherms per job, default 500; a material's isotherms
+always stay together), SORBRANK_MAX_UPLOAD_BYTES (default 67108864),
+SORBRANK_TOKENS_FILE or SORBRANK_TOKENS (bearer tokens as SHA-256 hashes with
+scopes submit/read/admin). Without tokens the API is open: allowed on a
+loopback address (with a loud warning), refused elsewhere unless
+SORBRANK_ALLOW_OPEN=1."""
+EPILOG = """\
+example:
+  SORBRANK_DATA_DIR=/srv/sorbrank sorbrank serve --port 8000
+  curl -X POST --data-binary @run1.csv -H 'Content-Type: text/csv' \\
+       'http://127.0.0.1:8000/api/v1/batches?pressure_unit=kPa&loading_unit=mmol/g'"""
+
+
+def register(subparsers) -> None:
+    p = subparsers.add_parser("serve", help=HELP, description=DESCRIPTION, epilog=EPILOG,
+                              formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--host", default="127.0.0.1",
+                   help="address to listen on (default 127.0.0.1; anything else needs tokens "
+                        "or SORBRANK_ALLOW_OPEN=1)")
+    p.add_argument("--port", type=int, default=8000,
+                   help="TCP port (default 8000; 0 = any free port, printed at start)")
+    p.set_defaults(func=run)
+
+
+def _loud(message: str) -> None:
+    bar = "!" * min(len(message) + 4, 100)
+    print(f"{bar}\n! {message}\n{bar}", file=sys.stderr, flush=True)
+
+
+def _stop(signum, frame):
+    raise KeyboardInterrupt
+
+
+def run(args) -> int:
+    from werkzeug.serving import make_server
+
+    from ..app import create_app
+    from ..config import ConfigError, load_settings, open_access_verdict
+
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    try:
+        settings = load_settings()
+    except ConfigError as exc:
+        print(f"sorbrank serve: {exc}", file=sys.stderr)
+        return 2
+    allowed, warning = open_access_verdict(settings, args.host)
+    if not allowed:
+        print(f"sorbrank serve: {warning}", file=sys.stderr)
+        return 2
+    if warning:
+        _loud(warning)
+
+    executor = None
+    if settings.mode == "embedded":
+        from worker.embedded import EmbeddedExecutor
+
+        executor = EmbeddedExecutor(settings.data_dir, settings.embedded_workers)
+        app = create_app(settings, enqueue=executor.enqueue)
+        resumed = executor.resume()
+        detail = f"{executor.workers} fitting process(es)"
+        if resumed:
+            detail += f", resumed {len(resumed)} unfinished chunk(s)"
+    else:
+        app = create_app(settings)
+        detail = f"queueing to {settings.broker_url}"
+    server = make_server(args.host, args.port, app, threaded=True)
+    # SIGTERM (what process managers send) stops like Ctrl-C: accepted work is
+    # on disk, unfinished chunks resume at the next start
+    signal.signal(signal.SIGTERM, _stop)
+    print(f"sorbrank: serving http://{args.host}:{server.server_port}/api/v1 "
+          f"({settings.mode} mode, {detail}; store {settings.data_dir.resolve()})",
+          file=sys.stderr, flush=True)
+    try:
+        server.serve_forever()
+    except KeyboardInterrupt:
+        pass
+    finally:
+        server.server_close()
+        if executor is not None:
+            executor.shutdown()
+    return 0

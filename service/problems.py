@@ -1,0 +1,53 @@
+"""Errors as problem details (RFC 9457, media type application/problem+json)."""
+from __future__ import annotations
+
+import logging
+
+from flask import Flask, Response, json
+from werkzeug.exceptions import HTTPException
+
+PROBLEM_JSON = "application/problem+json"
+log = logging.getLogger(__name__)
+
+
+class Problem(Exception):
+    """Raise anywhere in a request to answer with a problem document."""
+
+    def __init__(self, status: int, title: str, detail: str | None = None, *,
+                 slug: str | None = None, headers: dict | None = None, **extra):
+        super().__init__(detail or title)
+        self.status, self.title, self.detail = status, title, detail
+        self.slug, self.headers, self.extra = slug, headers or {}, extra
+
+    def response(self) -> Response:
+        body = {
+            # "about:blank" means: the title is just the HTTP status phrase
+            "type": f"urn:sorbrank:problem:{self.slug}" if self.slug else "about:blank",
+            "title": self.title,
+            "status": self.status,
+        }
+        if self.detail:
+            body["detail"] = self.detail
+        body.update(self.extra)
+        resp = Response(json.dumps(body), status=self.status, mimetype=PROBLEM_JSON)
+        resp.headers.update(self.headers)
+        return resp
+
+
+def register(app: Flask) -> None:
+    @app.errorhandler(Problem)
+    def _problem(exc: Problem):
+        return exc.response()
+
+    @app.errorhandler(HTTPException)
+    def _http(exc: HTTPException):
+        headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
+        return Problem(exc.code or 500, exc.name, exc.description, headers=headers).response()
+
+    @app.errorhandler(Exception)
+    def _unexpected(exc: Exception):
+        # never leak a traceback to the client; the log has it
+        log.exception("unhandled error")
+        return Problem(500, "Internal Server Error",
+                       "the server failed; the error is logged. Accepted batches are safe on disk.",
+                       ).response()

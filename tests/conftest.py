@@ -1,0 +1,264 @@
+"""Shared fixtures: free loopback ports and real processes (redis-server, Celery
+worker, ``sorbrank serve``), each started in its own process group and
+stopped by the fixture that started it. Every wait is bounded."""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+LOOPBACK = "127.0.0.1"
+
+# Bearer tokens of the test services (only their SHA-256 goes to the server)
+TOKENS = {"submitter": ("t-submit-0f3a", ["submit", "read"]),
+          "reader": ("t-read-77c1", ["read"]),
+          "admin": ("t-admin-9e2d", ["admin"])}
+
+
+def tokens_json() -> str:
+    import hashlib
+
+    return json.dumps([{"name": name, "sha256": hashlib.sha256(secret.encode()).hexdigest(),
+                        "scopes": scopes} for name, (secret, scopes) in TOKENS.items()])
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((LOOPBACK, 0))
+        return s.getsockname()[1]
+
+
+def clean_env(**overrides: str) -> dict[str, str]:
+    """The test runner's environment without any SORBRANK_* leaking in."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("SORBRANK_")}
+    env["PYTHONUNBUFFERED"] = "1"
+    env.update(overrides)
+    return env
+
+
+@dataclass
+class Proc:
+    name: str
+    popen: subprocess.Popen
+    log: Path
+
+    def log_text(self) -> str:
+        try:
+            return self.log.read_text(errors="replace")
+        except FileNotFoundError:
+            return ""
+
+    def alive(self) -> bool:
+        return self.popen.poll() is None
+
+    def stop(self) -> None:
+        """SIGTERM to the whole group, SIGKILL if it lingers; always reaped."""
+        if self.popen.poll() is None:
+            try:
+                os.killpg(self.popen.pid, signal.SIGTERM)
+            except ProcessLookupError:
+                pass
+            try:
+                self.popen.wait(timeout=15)
+            except subprocess.TimeoutExpired:
+                pass
+        try:  # children (pool processes) may outlive their parent
+            os.killpg(self.popen.pid, signal.SIGKILL)
+        except (ProcessLookupError, PermissionError):
+            pass
+        if self.popen.poll() is None:
+            self.popen.wait(timeout=10)
+
+
+def start(name: str, args: list[str], env: dict[str, str], log_dir: Path,
+          registry: list[Proc]) -> Proc:
+    """Start ``args`` in a new process group, registered for stopping at once."""
+    log_dir.mkdir(parents=True, exist_ok=True)
+    log = log_dir / f"{name}.log"
+    with open(log, "ab") as fh:
+        popen = subprocess.Popen(args, env=env, cwd=str(log_dir), stdout=fh,
+                                 stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+                                 start_new_session=True)
+    proc = Proc(name, popen, log)
+    registry.append(proc)
+    return proc
+
+
+def wait_until(check, what: str, procs: list[Proc] = (), timeout_s: float = 90.0,
+               interval_s: float = 0.1):
+    """Poll ``check()`` until it returns something truthy; fail with logs otherwise."""
+    deadline = time.monotonic() + timeout_s
+    for _ in range(int(timeout_s / interval_s) + 1):
+        result = check()
+        if result:
+            return result
+        for proc in procs:
+            if not proc.alive():
+                pytest.fail(f"{proc.name} exited ({proc.popen.returncode}) while waiting for "
+                            f"{what}:\n{proc.log_text()[-4000:]}")
+        if time.monotonic() > deadline:
+            break
+        time.sleep(interval_s)
+    logs = "\n".join(f"--- {p.name}\n{p.log_text()[-3000:]}" for p in procs)
+    pytest.fail(f"gave up waiting for {what}\n{logs}")
+
+
+def http_ok(url: str) -> bool:
+    import requests
+
+    try:
+        return requests.get(url, timeout=2).status_code == 200
+    except requests.RequestException:
+        return False
+
+
+def start_redis(log_dir: Path, registry: list[Proc]) -> tuple[Proc, str]:
+    binary = shutil.which("redis-server") or "/usr/bin/redis-server"
+    port = free_port()
+    proc = start("redis", [binary, "--port", str(port), "--bind", LOOPBACK, "--save", "",
+                           "--appendonly", "no", "--dir", str(log_dir)],
+                 clean_env(), log_dir, registry)
+    url = f"redis://{LOOPBACK}:{port}/0"
+
+    def pong():
+        import redis
+
+        try:
+            return redis.Redis.from_url(url, socket_timeout=1).ping()
+        except redis.RedisError:
+            return False
+
+    wait_until(pong, "redis-server to answer PING", [proc])
+    return proc, url
+
+
+def start_worker(env: dict[str, str], log_dir: Path, registry: list[Proc],
+                 name: str = "celery-worker") -> Proc:
+    proc = start(name, [sys.executable, "-m", "service.cli", "worker", "--concurrency", "1"],
+                 env, log_dir, registry)
+    wait_until(lambda: " ready." in proc.log_text(), "the Celery worker to be ready", [proc])
+    return proc
+
+
+def start_server(env: dict[str, str], log_dir: Path, registry: list[Proc],
+                 name: str = "server") -> tuple[Proc, str]:
+    port = free_port()
+    proc = start(name, [sys.executable, "-m", "service.cli", "serve", "--host", LOOPBACK,
+                        "--port", str(port)], env, log_dir, registry)
+    url = f"http://{LOOPBACK}:{port}"
+    wait_until(lambda: http_ok(url + "/healthz"), f"{name} to answer /healthz", [proc])
+    return proc, url
+
+
+@dataclass
+class Service:
+    mode: str
+    url: str
+    data_dir: Path
+    env: dict[str, str]
+    log_dir: Path
+    procs: list[Proc] = field(default_factory=list)
+    redis_url: str | None = None
+
+    @property
+    def api(self) -> str:
+        return self.url + "/api/v1"
+
+    def session(self, who: str = "submitter"):
+        import requests
+
+        s = requests.Session()
+        s.headers["Authorization"] = f"Bearer {TOKENS[who][0]}"
+        return s
+
+
+MAX_UPLOAD_BYTES = 200_000
+
+
+@pytest.fixture(scope="module", params=["embedded", "distributed"])
+def service(request, tmp_path_factory):
+    """A real ``sorbrank serve`` (plus redis-server and a Celery worker when
+    distributed), with tokens, a small upload limit and 2-isotherm chunks."""
+    mode = request.param
+    base = tmp_path_factory.mktemp(f"service-{mode}")
+    data_dir = base / "data"
+    env = clean_env(SORBRANK_DATA_DIR=str(data_dir), SORBRANK_CHUNK_SIZE="2",
+                    SORBRANK_EMBEDDED_WORKERS="1", SORBRANK_TOKENS=tokens_json(),
+                    SORBRANK_MAX_UPLOAD_BYTES=str(MAX_UPLOAD_BYTES),
+                    PYTHONPATH=str(ROOT))
+    svc = Service(mode, "", data_dir, env, base / "logs")
+    try:
+        if mode == "distributed":
+            _, svc.redis_url = start_redis(svc.log_dir, svc.procs)
+            env["SORBRANK_BROKER_URL"] = svc.redis_url
+            start_worker(env, svc.log_dir, svc.procs)
+        _, svc.url = start_server(env, svc.log_dir, svc.procs)
+        yield svc
+    finally:
+        for proc in reversed(svc.procs):  # server first, redis last
+            proc.stop()
+
+
+@pytest.fixture
+def processes():
+    """A registry for processes a test starts itself; all stopped at its end."""
+    registry: list[Proc] = []
+    try:
+        yield registry
+    finally:
+        for proc in reversed(registry):
+            proc.stop()
+
+
+# -- small invented batches (Langmuir data, canonical-ish units) -----------------
+
+PRESSURES_KPA = (1, 2, 5, 10, 20, 40, 60, 80, 100)
+
+
+def isotherm(material_id: str, q_sat: float, b_per_kpa: float, temperature_k: float = 298.15,
+             adsorbate: str = "CO2") -> dict:
+    return {"material_id": material_id, "adsorbate": adsorbate, "temperature_k": temperature_k,
+            "pressure": list(PRESSURES_KPA),
+            "loading": [round(q_sat * b_per_kpa * p / (1 + b_per_kpa * p), 6) for p in PRESSURES_KPA]}
+
+
+def csv_batch(isotherms: list[dict], extra_lines: tuple[str, ...] = ()) -> bytes:
+    lines = ["material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    for iso in isotherms:
+        for p, q in zip(iso["pressure"], iso["loading"]):
+            lines.append(f"{iso['material_id']},{iso['adsorbate']},{iso['temperature_k']},{p},{q},"
+                         "kPa,mol/kg")
+    lines.extend(extra_lines)
+    return ("\n".join(lines) + "\n").encode()
+
+
+def json_batch(isotherms: list[dict], label: str | None = None) -> bytes:
+    doc = {"defaults": {"pressure_unit": "kPa", "loading_unit": "mol/kg"}, "isotherms": isotherms}
+    if label:
+        doc["batch_label"] = label
+    return json.dumps(doc).encode()
+
+
+def parquet_batch(isotherms: list[dict]) -> bytes:
+    import io
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    rows = [{"material_id": iso["material_id"], "adsorbate": iso["adsorbate"],
+             "temperature_k": iso["temperature_k"], "pressure": float(p), "loading": float(q),
+             "pressure_unit": "kPa", "loading_unit": "mol/kg"}
+            for iso in isotherms for p, q in zip(iso["pressure"], iso["loading"])]
+    sink = io.BytesIO()
+    pq.write_table(pa.Table.from_pylist(rows), sink)
+    return sink.getvalue()

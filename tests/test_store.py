@@ -1,0 +1,345 @@
+"""The Parquet store: atomic deterministic writes, schema version, rankings."""
+from __future__ import annotations
+
+import io
+import json
+import random
+from datetime import datetime, timedelta, timezone
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from worker.intake import read_batch
+from worker.store import (
+    SCHEMA_VERSION, SCHEMA_VERSION_KEY, RankingQuery, Store, atomic_write, is_batch_id,
+    isotherms_to_table, new_batch_id, rankings, table_to_isotherms,
+)
+
+T0 = datetime(2025, 1, 1, tzinfo=timezone.utc)
+
+
+def summary_rows(n, *, seed, materials=6, adsorbates=("CO2", "N2"), temps=(273.15, 298.15)):
+    rng = random.Random(seed)
+    rows = []
+    for i in range(n):
+        rows.append({
+            "isotherm_id": f"iso-{seed}-{i}",
+            "material_id": f"M{rng.randrange(materials)}",
+            "adsorbate": rng.choice(adsorbates),
+            "temperature_k": rng.choice(temps) + rng.choice([0.0, 0.1, -0.2]),
+            "q_sat_mol_per_kg": rng.choice([None, float("nan")] + [rng.uniform(0, 10)] * 8),
+            "henry_mol_per_kg_pa": rng.uniform(1e-6, 1e-4),
+            "flags": rng.choice([[], ["at_bound"], ["ambiguous", "at_bound"], ["ambiguous"]]),
+        })
+    return rows
+
+
+def write_summaries(store, batch_id, accepted_at, rows, chunk=0):
+    table = pa.Table.from_pylist(rows).append_column(
+        "accepted_at", pa.array([accepted_at] * len(rows), pa.timestamp("us", tz="UTC")))
+    store.write_table("summaries", batch_id, chunk, table)
+
+
+def test_batch_ids_are_strict_and_never_paths(tmp_path):
+    store = Store(tmp_path)
+    good = new_batch_id()
+    assert is_batch_id(good)
+    for bad in ["../etc", "b-..", good + "/..", "/" + good, good + "\n", "", "B" + good[1:]]:
+        assert not is_batch_id(bad)
+        with pytest.raises(ValueError):
+            store.batch_dir(bad)
+        with pytest.raises(ValueError):
+            store.table_path("summaries", bad, 0)
+    with pytest.raises(ValueError):
+        store.read_idempotency("../../x")
+
+
+def test_atomic_write_failing_half_way_leaves_nothing(tmp_path):
+    target = tmp_path / "sub" / "chunk-00000.parquet"
+
+    def write_then_fail(fh):
+        fh.write(b"half a file")
+        raise OSError("disk full")
+
+    with pytest.raises(OSError):
+        atomic_write(target, write_then_fail)
+    assert not target.exists()
+    assert list(target.parent.iterdir()) == []
+
+
+def test_rewrite_replaces_same_file_and_records_schema_version(tmp_path):
+    store = Store(tmp_path)
+    batch_id = new_batch_id()
+    rows = summary_rows(5, seed=1)
+    write_summaries(store, batch_id, T0, rows)
+    first = store.table_path("summaries", batch_id, 0).read_bytes()
+    write_summaries(store, batch_id, T0, rows)  # a retried job
+    files = [p.name for p in store.table_path("summaries", batch_id, 0).parent.iterdir()]
+    assert files == ["chunk-00000.parquet"]
+    assert store.table_path("summaries", batch_id, 0).read_bytes() == first
+    meta = pq.read_schema(store.table_path("summaries", batch_id, 0)).metadata
+    assert meta[SCHEMA_VERSION_KEY] == SCHEMA_VERSION.encode()
+    assert store.batch_table("summaries", batch_id).num_rows == 5
+
+
+def test_partial_temp_file_never_appears_in_results_or_rankings(tmp_path):
+    store = Store(tmp_path)
+    batch_id = new_batch_id()
+    write_summaries(store, batch_id, T0, summary_rows(4, seed=2))
+    partition = store.table_path("summaries", batch_id, 0).parent
+    # what a writer killed mid-write leaves: a truncated dot-temp file
+    good = store.table_path("summaries", batch_id, 0).read_bytes()
+    (partition / ".chunk-00001.parquet.x1y2.tmp").write_bytes(good[: len(good) // 2])
+    # and a complete one not yet renamed: must stay invisible too
+    (partition / ".chunk-00002.parquet.a1b2.tmp").write_bytes(good)
+    assert store.batch_table("summaries", batch_id).num_rows == 4
+    page, total = rankings(store, RankingQuery(all_results=True, limit=1000))
+    assert total == 4 and page.num_rows == 4
+
+
+def test_chunks_with_all_null_columns_merge_with_typed_ones(tmp_path):
+    store = Store(tmp_path)
+    a, b = new_batch_id(T0), new_batch_id(T0 + timedelta(seconds=1))
+    rows_a = summary_rows(3, seed=3)
+    for r in rows_a:
+        r["q_sat_mol_per_kg"] = None  # pyarrow infers the null type for this column
+    write_summaries(store, a, T0, rows_a)
+    write_summaries(store, b, T0 + timedelta(seconds=1), summary_rows(3, seed=4))
+    assert store.query("summaries").num_rows == 6
+
+
+def test_isotherms_round_trip_exactly_through_the_inputs_table():
+    csv = "\n".join(["material_id,adsorbate,temperature_k,pressure,loading,sigma,"
+                     "pressure_unit,loading_unit"]
+                    + [f"M1,CO2,298.15,{p},{0.1 * p / (1 + 0.01 * p):.6f},0.01,kPa,mmol/g"
+                       for p in (1, 3, 7, 15, 40, 90)]
+                    + [f"M2,N2,77.3,{p},{p},,kPa,mol/kg" for p in (1, 2, 4, 8)])
+    batch = read_batch(csv, "csv", batch_label="roundtrip")
+    assert len(batch.isotherms) == 2
+    back = table_to_isotherms(isotherms_to_table(batch.isotherms))
+    for before, after in zip(batch.isotherms, back):
+        for name in ("isotherm_id", "material_id", "adsorbate", "temperature_k", "branch",
+                     "saturation_pressure_pa", "surface_area_m2_per_g", "batch_label", "flags"):
+            assert getattr(after, name) == getattr(before, name), name
+        # the audit copy comes back as plain JSON values (arrays as lists)
+        as_json = json.loads(json.dumps(before.original, default=lambda v: v.tolist()))
+        assert after.original == as_json
+        for name in ("pressure_pa", "loading_mol_per_kg", "sigma_mol_per_kg"):
+            b, a = getattr(before, name), getattr(after, name)
+            assert (a is None) == (b is None)
+            if a is not None:
+                assert np.array_equal(a, b)
+
+
+def brute_force_rankings(batches, query: RankingQuery):
+    """Plain-Python restatement of the ranking rules, for comparison."""
+    rows = []
+    for batch_id, accepted_at, batch_rows in batches:
+        for r in batch_rows:
+            rows.append({**r, "batch_id": batch_id, "accepted_at": accepted_at})
+    if query.adsorbate is not None:
+        rows = [r for r in rows if r["adsorbate"] == query.adsorbate]
+    if query.temperature_k is not None:
+        rows = [r for r in rows
+                if abs(r["temperature_k"] - query.temperature_k) <= query.temperature_tolerance_k]
+    if not query.all_results:
+        # newest batch first; inside one batch the smallest isotherm id
+        ordered = sorted(rows, key=lambda r: r["isotherm_id"])
+        ordered.sort(key=lambda r: (r["accepted_at"], r["batch_id"]), reverse=True)
+        first = {}
+        for r in ordered:
+            first.setdefault((r["material_id"], r["adsorbate"], round(r["temperature_k"])), r)
+        rows = list(first.values())
+    rows = [r for r in rows if set(query.flags) <= set(r["flags"])
+            and not set(query.exclude_flags) & set(r["flags"])]
+
+    def value(r):
+        v = r[query.sort]
+        return None if v is None or v != v else v
+
+    present = [r for r in rows if value(r) is not None]
+    missing = [r for r in rows if value(r) is None]
+    present.sort(key=lambda r: (-value(r) if query.descending else value(r),
+                                r["material_id"], r["isotherm_id"]))
+    return [(r["batch_id"], r["isotherm_id"]) for r in present], len(rows), missing
+
+
+@pytest.mark.parametrize("query", [
+    RankingQuery(limit=1000),
+    RankingQuery(limit=1000, all_results=True),
+    RankingQuery(limit=1000, adsorbate="CO2", temperature_k=298.0),
+    RankingQuery(limit=1000, sort="henry_mol_per_kg_pa", descending=False),
+    RankingQuery(limit=1000, flags=("ambiguous",), exclude_flags=("at_bound",)),
+])
+def test_rankings_match_brute_force_latest_wins(tmp_path, query):
+    store = Store(tmp_path)
+    batches = []
+    for k in range(4):
+        accepted = T0 + timedelta(minutes=k)
+        batch_id = new_batch_id(accepted)
+        rows = summary_rows(25, seed=10 + k)
+        # two chunks per batch, as jobs write them
+        write_summaries(store, batch_id, accepted, rows[:12], chunk=0)
+        write_summaries(store, batch_id, accepted, rows[12:], chunk=1)
+        batches.append((batch_id, accepted, rows))
+    page, total = rankings(store, query)
+    expected, expected_total, missing = brute_force_rankings(batches, query)
+    assert total == expected_total
+    got = list(zip(page["batch_id"].to_pylist(), page["isotherm_id"].to_pylist()))
+    assert got[:len(expected)] == expected
+    assert sorted(got[len(expected):]) == sorted((r["batch_id"], r["isotherm_id"]) for r in missing)
+    if not query.all_results:
+        keys = [(m, a, round(t)) for m, a, t in zip(page["material_id"].to_pylist(),
+                                                    page["adsorbate"].to_pylist(),
+                                                    page["temperature_k"].to_pylist())]
+        assert len(keys) == len(set(keys))
+
+
+def test_rankings_paging_and_unknown_sort_column(tmp_path):
+    store = Store(tmp_path)
+    batch_id = new_batch_id(T0)
+    write_summaries(store, batch_id, T0, summary_rows(30, seed=7))
+    everything, total = rankings(store, RankingQuery(all_results=True, limit=1000))
+    page, same_total = rankings(store, RankingQuery(all_results=True, limit=5, offset=10))
+    assert same_total == total == 30
+    assert page["isotherm_id"].to_pylist() == everything["isotherm_id"].to_pylist()[10:15]
+    with pytest.raises(ValueError, match="cannot sort by 'no_such_column'"):
+        rankings(store, RankingQuery(sort="no_such_column"))
+    with pytest.raises(ValueError, match="cannot sort by 'flags'"):
+        rankings(store, RankingQuery(sort="flags"))
+
+
+def test_empty_store_ranks_nothing(tmp_path):
+    page, total = rankings(Store(tmp_path / "nothing-here"), RankingQuery())
+    assert total == 0 and page.num_rows == 0
+
+
+def test_manifest_json_is_atomic_and_listed_newest_first(tmp_path):
+    store = Store(tmp_path)
+    ids = [new_batch_id(T0 + timedelta(seconds=s)) for s in (5, 1, 9)]
+    for batch_id in ids:
+        store.write_manifest({"batch_id": batch_id})
+    (store.root / "batches" / "not-a-batch").mkdir()
+    (store.batch_dir(ids[0]) / ".manifest.json.zz.tmp").write_text("{broken")
+    assert store.batch_ids() == sorted(ids, reverse=True)
+    assert json.loads((store.batch_dir(ids[0]) / "manifest.json").read_text()) == {"batch_id": ids[0]}
+
+
+# -- jobs on the store: chunking, re-runs, reconcile -------------------------------
+
+def test_chunks_keep_each_material_together():
+    from worker.jobs import plan_chunks
+
+    rng = random.Random(5)
+    materials = [f"M{rng.randrange(12)}" for _ in range(60)]
+    for size in (1, 3, 7, 500):
+        chunks = plan_chunks(materials, size)
+        assert sorted(p for c in chunks for p in c) == list(range(60))
+        owner = {}
+        for k, chunk in enumerate(chunks):
+            for position in chunk:
+                assert owner.setdefault(materials[position], k) == k
+            # a chunk only exceeds the size when one material alone does
+            assert len(chunk) <= size or len({materials[p] for p in chunk}) == 1
+    with pytest.raises(ValueError):
+        plan_chunks(materials, 0)
+
+
+def small_batch(materials=("J1", "J2", "J3")):
+    from conftest import csv_batch, isotherm
+
+    return read_batch(csv_batch([isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(materials)
+                                 for t in (273.15, 298.15)]), "csv", batch_label="jobs")
+
+
+def test_rerunning_a_chunk_rewrites_identical_files_without_duplicates(tmp_path):
+    from worker import jobs
+
+    store = Store(tmp_path)
+    manifest = jobs.accept_batch(store, small_batch(), options={"models": ["langmuir", "sips"]},
+                                 chunk_size=2)
+    batch_id = manifest["batch_id"]
+    for chunk in manifest["chunks"]:
+        jobs.run_chunk(store, batch_id, chunk["index"])
+    files = sorted(p for p in tmp_path.rglob("*.parquet"))
+    before = {p: p.read_bytes() for p in files}
+    summaries = store.batch_table("summaries", batch_id)
+    jobs.run_chunk(store, batch_id, 1, force=True)  # a re-delivered task
+    assert sorted(tmp_path.rglob("*.parquet")) == files
+    for path, data in before.items():
+        if data != path.read_bytes():  # byte-identical, or at least row-identical
+            assert pq.read_table(path).equals(pq.read_table(io.BytesIO(data)))
+    assert store.batch_table("summaries", batch_id).sort_by("isotherm_id").equals(
+        summaries.sort_by("isotherm_id"))
+    assert store.batch_table("summaries", batch_id).num_rows == 6
+    page, total = rankings(store, RankingQuery(all_results=True, limit=100))
+    assert total == 6 and len(set(page["isotherm_id"].to_pylist())) == 6
+    assert jobs.batch_status(store, batch_id)["state"] == "done"
+
+
+def test_reconcile_enqueues_exactly_the_unsettled_chunks(tmp_path):
+    from worker import jobs
+
+    store = Store(tmp_path)
+    manifest = jobs.accept_batch(store, small_batch(), options={"models": ["langmuir"]},
+                                 chunk_size=2)
+    batch_id = manifest["batch_id"]
+    assert len(manifest["chunks"]) == 3
+    queued = []
+    assert jobs.reconcile(store, lambda b, c: queued.append((b, c))) == queued
+    assert queued == [(batch_id, 0), (batch_id, 1), (batch_id, 2)]
+    jobs.run_chunk(store, batch_id, 1)
+    # a chunk whose worker died mid-way: "running" on disk, not settled
+    store.write_chunk_status(batch_id, 2, {"state": "running", "attempts": 1, "started_at": "x"})
+    queued.clear()
+    jobs.reconcile(store, lambda b, c: queued.append((b, c)))
+    assert queued == [(batch_id, 0), (batch_id, 2)]
+    assert jobs.batch_status(store, batch_id)["state"] == "running"
+    for c in (0, 2):
+        jobs.run_chunk(store, batch_id, c)
+    queued.clear()
+    jobs.reconcile(store, lambda b, c: queued.append((b, c)))
+    assert queued == [] and store.read_final(batch_id)["state"] == "done"
+
+
+def test_a_chunk_that_keeps_dying_is_failed_not_retried_forever(tmp_path):
+    from worker import jobs
+
+    store = Store(tmp_path)
+    manifest = jobs.accept_batch(store, small_batch(("K1",)), options={"models": ["langmuir"]})
+    batch_id = manifest["batch_id"]
+    # as left by MAX_ATTEMPTS deliveries killed by the hard time limit
+    store.write_chunk_status(batch_id, 0, {"state": "running", "attempts": jobs.MAX_ATTEMPTS})
+    with pytest.raises(jobs.AttemptsExhausted):
+        jobs.run_chunk(store, batch_id, 0)
+    status = jobs.execute_chunk(store, batch_id, 0)
+    assert status["state"] == "failed" and "without finishing" in status["errors"][0]["message"]
+    with pytest.raises(jobs.UnknownBatch):
+        jobs.run_chunk(store, new_batch_id(), 0)
+
+
+def test_worker_side_never_imports_flask_or_service():
+    import subprocess
+    import sys
+
+    code = ("import sys, worker.store, worker.jobs, worker.embedded, worker.tasks; "
+            "bad = sorted(m for m in sys.modules if m.split('.')[0] in ('flask', 'service')); "
+            "print(bad); sys.exit(1 if bad else 0)")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stdout + done.stderr
+
+
+def test_idempotency_claim_has_exactly_one_winner(tmp_path):
+    import hashlib
+    from concurrent.futures import ThreadPoolExecutor
+
+    store = Store(tmp_path)
+    key_hash = hashlib.sha256(b"client\0key").hexdigest()
+    claims = [{"batch_id": new_batch_id(), "n": n} for n in range(16)]
+    with ThreadPoolExecutor(8) as pool:
+        held = list(pool.map(lambda r: store.claim_idempotency(key_hash, r), claims))
+    assert all(h == held[0] for h in held) and held[0] in claims
+    assert store.read_idempotency(key_hash) == held[0]
+    assert [p.name for p in (tmp_path / "idempotency").iterdir()] == [f"{key_hash}.json"]

@@ -1,0 +1,67 @@
+"""Embedded mode: run chunk jobs on a local process pool, no broker needed.
+
+The same ``jobs.execute_chunk`` the Celery task wraps runs here in child
+processes (one per core by default). State lives in the store, so stopping
+the server loses nothing: ``resume`` re-enqueues unfinished chunks on start.
+"""
+from __future__ import annotations
+
+import logging
+import multiprocessing
+import os
+import threading
+from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
+from pathlib import Path
+
+from . import jobs
+from .store import Store
+
+log = logging.getLogger(__name__)
+
+
+def _run(data_dir: str, batch_id: str, chunk_index: int) -> None:
+    jobs.execute_chunk(Store(data_dir), batch_id, chunk_index)
+
+
+class EmbeddedExecutor:
+    def __init__(self, data_dir: str | Path, workers: int | None = None):
+        self.store = Store(data_dir)
+        self.workers = workers or os.cpu_count() or 1
+        self._lock = threading.Lock()
+        self._pool = self._new_pool()
+
+    def _new_pool(self) -> ProcessPoolExecutor:
+        # spawn, not fork: the parent runs server threads whose locks a fork would copy
+        return ProcessPoolExecutor(max_workers=self.workers,
+                                   mp_context=multiprocessing.get_context("spawn"))
+
+    def enqueue(self, batch_id: str, chunk_index: int) -> None:
+        with self._lock:
+            try:
+                future = self._pool.submit(_run, str(self.store.root), batch_id, chunk_index)
+            except BrokenProcessPool:
+                self._pool = self._new_pool()
+                future = self._pool.submit(_run, str(self.store.root), batch_id, chunk_index)
+        future.add_done_callback(lambda f: self._settle(f, batch_id, chunk_index))
+
+    def _settle(self, future: Future, batch_id: str, chunk_index: int) -> None:
+        if future.cancelled():
+            return  # shutting down: the chunk stays unsettled and resumes next start
+        exc = future.exception()
+        if exc is None:
+            return
+        # the child died (killed, out of memory) before it could record anything
+        log.error("chunk %s of batch %s: worker process failed: %r", chunk_index, batch_id, exc)
+        try:
+            jobs.record_chunk_failure(self.store, batch_id, chunk_index,
+                                      f"worker process failed: {type(exc).__name__}: {exc}")
+            jobs.finalize_batch(self.store, batch_id)
+        except Exception:  # noqa: BLE001 - logged; reconcile on next start retries
+            log.exception("could not record failure of chunk %s of batch %s", chunk_index, batch_id)
+
+    def resume(self) -> list[tuple[str, int]]:
+        return jobs.reconcile(self.store, self.enqueue)
+
+    def shutdown(self) -> None:
+        self._pool.shutdown(wait=False, cancel_futures=True)

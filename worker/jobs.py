@@ -1,0 +1,291 @@
+"""Job bodies shared by the Celery tasks and the embedded executor.
+
+A batch's state lives on disk, never in the queue: the manifest (written once at
+acceptance), one status file per chunk and the chunk result files. Any job here
+may run twice or be interrupted at any point; running it again converges on the
+same files. A lost broker therefore loses nothing: ``reconcile`` re-enqueues
+whatever the disk says is unfinished.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import asdict
+from datetime import datetime
+from typing import Callable
+
+import pyarrow as pa
+
+from .isotherm import Batch, Conditions, MixtureRequest
+from .pipeline import FitOptions, process_batch
+from .store import Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
+
+log = logging.getLogger(__name__)
+
+DEFAULT_CHUNK_SIZE = 500
+# Deliveries of one chunk before it is marked failed. Counts crashes and hard
+# time-limit kills too, which Celery's own retry counter never sees.
+MAX_ATTEMPTS = 4
+SETTLED = ("done", "failed")
+
+
+class UnknownBatch(LookupError):
+    pass
+
+
+class AttemptsExhausted(RuntimeError):
+    pass
+
+
+def plan_chunks(material_ids: list[str], chunk_size: int) -> list[list[int]]:
+    """Isotherm positions per chunk; every isotherm of a material in one chunk.
+
+    Per-material metrics (isosteric heat across temperatures, IAST across
+    gases) need all of a material's isotherms together, so a material larger
+    than ``chunk_size`` gets a chunk of its own rather than being split.
+    """
+    if chunk_size < 1:
+        raise ValueError("chunk size must be at least 1")
+    by_material: dict[str, list[int]] = {}
+    for position, material in enumerate(material_ids):
+        by_material.setdefault(material, []).append(position)
+    chunks: list[list[int]] = []
+    current: list[int] = []
+    for positions in by_material.values():
+        if current and len(current) + len(positions) > chunk_size:
+            chunks.append(current)
+            current = []
+        current.extend(positions)
+    if current:
+        chunks.append(current)
+    return chunks
+
+
+def accept_batch(store: Store, batch: Batch, *, options: dict, chunk_size: int = DEFAULT_CHUNK_SIZE,
+                 batch_id: str | None = None, source: dict | None = None) -> dict:
+    """Write the batch's normalised inputs durably and return its manifest.
+
+    The manifest is written last: its presence is what makes a batch exist, so
+    a crash half-way leaves only unreferenced input files that a retry with the
+    same ``batch_id`` overwrites.
+    """
+    FitOptions(**options)  # refuse options the pipeline would refuse, before writing
+    accepted_at = utc_now()
+    batch_id = batch_id or new_batch_id(accepted_at)
+    chunks = plan_chunks([iso.material_id for iso in batch.isotherms], chunk_size)
+    chunk_entries = []
+    for index, positions in enumerate(chunks):
+        isotherms = [batch.isotherms[p] for p in positions]
+        store.write_table("inputs", batch_id, index, isotherms_to_table(isotherms))
+        chunk_entries.append({"index": index, "isotherms": len(isotherms),
+                              "materials": sorted({iso.material_id for iso in isotherms})})
+    manifest = {
+        "batch_id": batch_id,
+        "label": batch.label,
+        "accepted_at": iso_utc(accepted_at),
+        "options": dict(options),
+        "conditions": asdict(batch.conditions),
+        "mixtures": [asdict(m) for m in batch.mixtures],
+        "chunks": chunk_entries,
+        "accepted": len(batch.isotherms),
+        "rejected": [issue.as_dict() for issue in batch.rejected],
+        "rejected_isotherms": len([i for i in batch.rejected_isotherms if i is not None]),
+        "source": source or {},
+    }
+    store.write_manifest(manifest)
+    return manifest
+
+
+def _manifest(store: Store, batch_id: str) -> dict:
+    manifest = store.read_manifest(batch_id)
+    if manifest is None:
+        raise UnknownBatch(f"batch {batch_id!r} is not in the store")
+    return manifest
+
+
+def _batch_from_manifest(manifest: dict, isotherms) -> Batch:
+    conditions = dict(manifest["conditions"])
+    conditions["reference_pressures_pa"] = tuple(conditions["reference_pressures_pa"])
+    return Batch(label=manifest["label"], isotherms=isotherms,
+                 conditions=Conditions(**conditions),
+                 mixtures=[MixtureRequest(**m) for m in manifest["mixtures"]])
+
+
+def _with_accepted_at(table: pa.Table, accepted_at: str) -> pa.Table:
+    # carried on every row so rankings can apply latest-wins without manifests
+    moment = datetime.fromisoformat(accepted_at.replace("Z", "+00:00"))
+    column = pa.array([moment] * table.num_rows, pa.timestamp("us", tz="UTC"))
+    if "accepted_at" in table.column_names:
+        table = table.drop_columns(["accepted_at"])
+    return table.append_column("accepted_at", column)
+
+
+def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = False,
+              max_attempts: int = MAX_ATTEMPTS) -> dict:
+    """Fit one chunk and write its fits, material rows and summaries.
+
+    Summaries are written after fits and material rows, and the "done" status
+    after all three, so a chunk counted as done always has all its files.
+    """
+    manifest = _manifest(store, batch_id)
+    if not 0 <= chunk_index < len(manifest["chunks"]):
+        raise UnknownBatch(f"batch {batch_id!r} has no chunk {chunk_index}")
+    previous = store.read_chunk_statuses(batch_id).get(chunk_index, {})
+    if previous.get("state") in SETTLED and not force:
+        return previous  # a duplicate delivery: the work is already on disk
+    attempts = previous.get("attempts", 0) + 1
+    if attempts > max_attempts:
+        raise AttemptsExhausted(f"chunk {chunk_index} of batch {batch_id!r} was started "
+                                f"{attempts - 1} times without finishing")
+    started_at = iso_utc(utc_now())
+    store.write_chunk_status(batch_id, chunk_index,
+                             {"state": "running", "attempts": attempts, "started_at": started_at})
+
+    isotherms = table_to_isotherms(store.read_chunk("inputs", batch_id, chunk_index))
+    result = process_batch(_batch_from_manifest(manifest, isotherms), FitOptions(**manifest["options"]))
+    accepted_at = manifest["accepted_at"]
+    store.write_table("fits", batch_id, chunk_index, _with_accepted_at(result.fits_table(), accepted_at))
+    if result.material_rows:
+        materials = pa.Table.from_pylist(result.material_rows)
+        store.write_table("materials", batch_id, chunk_index, _with_accepted_at(materials, accepted_at))
+    summaries = _with_accepted_at(result.summary_table(), accepted_at)
+    store.write_table("summaries", batch_id, chunk_index, summaries)
+
+    status = {
+        "state": "done",
+        "attempts": attempts,
+        "started_at": started_at,
+        "finished_at": iso_utc(utc_now()),
+        "isotherms": len(isotherms),
+        "done": summaries.num_rows,
+    }
+    store.write_chunk_status(batch_id, chunk_index, status)
+    return status
+
+
+def record_chunk_failure(store: Store, batch_id: str, chunk_index: int, error: str) -> None:
+    """Settle a chunk as failed, keeping the batch's other chunks going."""
+    previous = store.read_chunk_statuses(batch_id).get(chunk_index, {})
+    if previous.get("state") == "done":
+        return  # a late failure report must not undo finished work
+    manifest = _manifest(store, batch_id)
+    store.write_chunk_status(batch_id, chunk_index, {
+        "state": "failed",
+        "attempts": previous.get("attempts", 0),
+        "started_at": previous.get("started_at"),
+        "finished_at": iso_utc(utc_now()),
+        "isotherms": manifest["chunks"][chunk_index]["isotherms"],
+        "done": 0,
+        "error": error,
+    })
+
+
+def execute_chunk(store: Store, batch_id: str, chunk_index: int, *, attempts: int = 2) -> dict:
+    """Run a chunk with a bounded number of tries, then settle and finalize.
+
+    The embedded executor's whole task; the Celery task does the same with
+    Celery's retry machinery instead of this loop.
+    """
+    error = None
+    for _ in range(max(attempts, 1)):
+        try:
+            run_chunk(store, batch_id, chunk_index)
+            error = None
+            break
+        except UnknownBatch:
+            raise
+        except Exception as exc:  # noqa: BLE001 - any failure is recorded, never lost
+            log.exception("chunk %s of batch %s failed", chunk_index, batch_id)
+            error = f"{type(exc).__name__}: {exc}"
+            if isinstance(exc, AttemptsExhausted):
+                break
+    if error is not None:
+        record_chunk_failure(store, batch_id, chunk_index, error)
+    finalize_batch(store, batch_id)
+    return batch_status(store, batch_id)
+
+
+def finalize_batch(store: Store, batch_id: str) -> dict | None:
+    """Write final.json once every chunk is settled; None while some are not."""
+    status = batch_status(store, batch_id)
+    if status is None or status["state"] not in ("done", "failed", "partial"):
+        return None
+    final = {"state": status["state"], "finished_at": status["timings"]["finished_at"],
+             "counts": status["counts"]}
+    if store.read_final(batch_id) != final:
+        store.write_final(batch_id, final)
+    return final
+
+
+def batch_status(store: Store, batch_id: str) -> dict | None:
+    """The batch as the disk describes it (the body of GET /batches/{id})."""
+    manifest = store.read_manifest(batch_id)
+    if manifest is None:
+        return None
+    statuses = store.read_chunk_statuses(batch_id)
+    chunks = manifest["chunks"]
+    states = [statuses.get(c["index"], {}).get("state", "queued") for c in chunks]
+    settled = [c for c, s in zip(chunks, states) if s in SETTLED]
+    done = sum(statuses[c["index"]].get("done", 0) for c in settled)
+    settled_isotherms = sum(c["isotherms"] for c in settled)
+
+    if len(settled) < len(chunks):
+        state = "running" if any(s != "queued" for s in states) else "queued"
+    elif all(s == "done" for s in states):
+        state = "done"
+    elif all(s == "failed" for s in states):
+        state = "failed"
+    else:
+        state = "partial"
+
+    started = [s["started_at"] for s in statuses.values() if s.get("started_at")]
+    finished = [f for f in (statuses[c["index"]].get("finished_at") for c in settled) if f]
+    is_final = state in ("done", "failed", "partial")
+    accepted = manifest["accepted"]
+    return {
+        "batch_id": batch_id,
+        "label": manifest["label"],
+        "state": state,
+        "counts": {
+            "accepted": accepted,
+            "done": done,
+            "failed": settled_isotherms - done,
+            "rejected": manifest["rejected_isotherms"],
+        },
+        "progress": round(settled_isotherms / accepted, 4) if accepted else 1.0,
+        "chunks": {"total": len(chunks), **{k: states.count(k) for k in
+                                            ("queued", "running", "done", "failed")}},
+        "timings": {
+            "accepted_at": manifest["accepted_at"],
+            "started_at": min(started) if started else None,
+            "finished_at": max(finished) if is_final and finished else None,
+        },
+        "options": manifest["options"],
+        "rejected": manifest["rejected"],
+        "errors": [{"chunk": c["index"], "isotherms": c["isotherms"],
+                    "message": statuses[c["index"]].get("error", "")}
+                   for c, s in zip(chunks, states) if s == "failed"],
+    }
+
+
+def pending_chunks(store: Store, batch_id: str) -> list[int]:
+    manifest = _manifest(store, batch_id)
+    statuses = store.read_chunk_statuses(batch_id)
+    return [c["index"] for c in manifest["chunks"]
+            if statuses.get(c["index"], {}).get("state") not in SETTLED]
+
+
+def reconcile(store: Store, enqueue: Callable[[str, int], object]) -> list[tuple[str, int]]:
+    """Re-enqueue every unsettled chunk of every unfinished batch; finalize the rest."""
+    queued = []
+    for batch_id in store.batch_ids():
+        if store.read_final(batch_id) is not None:
+            continue
+        pending = pending_chunks(store, batch_id)
+        for chunk_index in pending:
+            enqueue(batch_id, chunk_index)
+            queued.append((batch_id, chunk_index))
+        if not pending:
+            finalize_batch(store, batch_id)
+    if queued:
+        log.info("reconcile: re-enqueued %d chunk(s) of unfinished batches", len(queued))
+    return queued
