@@ -79,7 +79,11 @@ def create_app(settings: Settings | None = None,
     app.register_blueprint(health.bp)
     for module in (batches, rankings, materials, models):
         app.register_blueprint(module.bp, url_prefix=API_PREFIX)
+    from .api import plots
+    from .web import pages
 
+    app.register_blueprint(plots.bp, url_prefix=API_PREFIX)
+    app.register_blueprint(pages.bp)
 
     from .openapi import document
 

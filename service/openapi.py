@@ -138,7 +138,8 @@ PLOT_AND_PAGE_PATHS = {
                 "parameters": [{"name": "filename", "in": "path", "required": True,
                                 "schema": {"type": "string"}}],
                 "responses": {"200": {"description": "the file"},
-                              "404": _problem("no such file")}},
+                              "404": {"description": "no such file (HTML page)",
+                                      "content": HTML}}},
     },
 }
 

@@ -12,9 +12,12 @@ fi
 .venv/bin/python -m pip install -q --disable-pip-version-check -e '.[test]'
 
 # System programs the integration tests start themselves (on free loopback
-# ports): redis-server. Installed from Debian's packages when missing.
+# ports): redis-server; and Chromium + ChromeDriver for the page test. Installed from Debian's packages when missing.
 need_apt=()
 command -v redis-server >/dev/null 2>&1 || need_apt+=(redis-server)
+# headless browser for the overview-page test (Debian's build; nothing downloads its own)
+command -v chromium >/dev/null 2>&1 || need_apt+=(chromium)
+command -v chromedriver >/dev/null 2>&1 || need_apt+=(chromium-driver)
 if [ "${#need_apt[@]}" -gt 0 ]; then
     if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
         echo "installing ${need_apt[*]} from Debian's packages" >&2

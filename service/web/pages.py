@@ -1,0 +1,270 @@
+"""HTML pages for people: the rankings across batches, and one page per material.
+
+Everything is rendered on the server from the same store queries the API
+uses; filters and sorting are plain GET parameters, so every view has a URL
+that can be bookmarked or pasted into a report. Errors come back as a short
+HTML page, never as JSON and never as a 5xx.
+"""
+from __future__ import annotations
+
+import logging
+import math
+
+import pyarrow.compute as pc
+import pyarrow.dataset as ds
+from flask import Blueprint, Response, current_app, render_template, request, url_for
+from werkzeug.exceptions import HTTPException
+
+from worker import jobs
+from worker.models import CATALOGUE
+from worker.store import LATEST_WINS_RULE, RankingQuery, Store, nan_to_none, rankings
+
+from ..api.plots import StoredIsotherm, fit_entry, qst_rows
+from ..auth import require
+from ..problems import Problem
+
+log = logging.getLogger(__name__)
+
+bp = Blueprint("web", __name__, template_folder="templates", static_folder="static",
+               static_url_path="/assets")
+
+ROWS_PER_PAGE = 50
+BATCHES_SHOWN = 20
+# (summary column, header label); the unit is part of the label
+COLUMNS = (
+    ("material_id", "Material"),
+    ("adsorbate", "Gas"),
+    ("temperature_k", "T (K)"),
+    ("best_model", "Best model"),
+    ("q_sat_mol_per_kg", "q_sat (mol/kg)"),
+    ("henry_mol_per_kg_pa", "Henry (mol/(kg·Pa))"),
+    ("bet_area_m2_per_g", "BET area (m²/g)"),
+    ("working_capacity_mol_per_kg", "Working capacity (mol/kg)"),
+)
+TEXT_COLUMNS = {"material_id", "adsorbate", "best_model"}
+DEFAULT_SORT = "q_sat_mol_per_kg"
+# scripts are never needed; images come from our own API
+CONTENT_SECURITY_POLICY = ("default-src 'none'; img-src 'self'; style-src 'self'; "
+                           "form-action 'self'; frame-ancestors 'none'; base-uri 'none'")
+
+
+def _store() -> Store:
+    return current_app.extensions["sorbrank"].store
+
+
+def _bad(parameter: str, detail: str) -> Problem:
+    return Problem(400, "Bad Request", detail, slug="bad-parameter", parameter=parameter)
+
+
+def _text(name: str) -> str | None:
+    value = request.args.get(name, "").strip()
+    return value or None
+
+
+def _temperature_k() -> float | None:
+    raw = _text("temperature_k")
+    if raw is None:
+        return None
+    try:
+        value = float(raw)
+    except ValueError:
+        value = math.nan
+    if not math.isfinite(value) or value <= 0:
+        raise _bad("temperature_k", f"temperature {raw!r}: enter a positive number of kelvin")
+    return value
+
+
+def _offset() -> int:
+    raw = _text("offset") or "0"
+    if not raw.isdigit() or len(raw) > 12:
+        raise _bad("offset", f"offset {raw!r}: expected a whole number of rows, 0 or more")
+    return int(raw)
+
+
+# -- template filters -------------------------------------------------------
+
+@bp.app_template_filter("sig")
+def significant(value, digits: int = 4) -> str:
+    """A number to ``digits`` significant figures; a dash when there is none."""
+    if value is None or isinstance(value, bool):
+        return "–"
+    try:
+        number = float(value)
+    except (TypeError, ValueError):
+        return str(value)
+    return f"{number:.{digits}g}" if math.isfinite(number) else "–"
+
+
+@bp.app_template_filter("model_title")
+def model_title(model_id) -> str:
+    model = CATALOGUE.get(model_id)
+    return model.title if model is not None else (model_id or "–")
+
+
+# -- responses --------------------------------------------------------------
+
+def _error_page(status: int, title: str, detail: str | None, headers: dict | None = None):
+    body = render_template("page_error.html", status=status, title=title, detail=detail)
+    return body, status, headers or {}
+
+
+@bp.errorhandler(Problem)
+def _problem_page(exc: Problem):
+    return _error_page(exc.status, exc.title, exc.detail, exc.headers)
+
+
+@bp.errorhandler(HTTPException)
+def _http_page(exc: HTTPException):
+    headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
+    return _error_page(exc.code or 400, exc.name, exc.description, headers)
+
+
+@bp.errorhandler(Exception)
+def _unexpected_page(exc: Exception):
+    log.exception("page failed")
+    return _error_page(500, "Internal Server Error",
+                       "This page failed to render; the error is logged. Stored results are "
+                       "not affected.")
+
+
+@bp.after_request
+def _page_headers(resp: Response) -> Response:
+    if resp.mimetype == "text/html":
+        resp.headers["Content-Security-Policy"] = CONTENT_SECURITY_POLICY
+        resp.headers["X-Content-Type-Options"] = "nosniff"
+        resp.headers["Cache-Control"] = "no-cache"
+    return resp
+
+
+# -- overview ---------------------------------------------------------------
+
+def _choices(store: Store) -> dict:
+    """Values the filter form offers, read from every stored summary."""
+    data = store.dataset("summaries")
+    if data is None:
+        return {"adsorbates": [], "flags": [], "temperatures_k": []}
+    table = data.to_table(columns=["adsorbate", "temperature_k", "flags"])
+    flags = pc.unique(pc.list_flatten(table["flags"])).drop_null().to_pylist()
+    temperatures = pc.unique(pc.round(table["temperature_k"], 2)).drop_null().to_pylist()
+    return {"adsorbates": sorted(pc.unique(table["adsorbate"]).drop_null().to_pylist()),
+            "flags": sorted(flags), "temperatures_k": sorted(temperatures)}
+
+
+def _sort_links(filters: dict, sort: str, descending: bool) -> dict:
+    """Per column: the URL that sorts by it (a second click flips the order)."""
+    links = {}
+    for column, _ in COLUMNS:
+        if column == sort:
+            order = "asc" if descending else "desc"
+        else:
+            order = "asc" if column in TEXT_COLUMNS else "desc"
+        links[column] = url_for("web.overview", **filters, sort=column, order=order)
+    return links
+
+
+def _batches(store: Store) -> tuple[list[dict], int]:
+    ids = store.batch_ids()
+    shown = [jobs.batch_status(store, b) for b in ids[:BATCHES_SHOWN]]
+    return [s for s in shown if s is not None], len(ids)
+
+
+@bp.get("/")
+@require("read")
+def overview():
+    store = _store()
+    filters = {"adsorbate": _text("adsorbate"), "temperature_k": _temperature_k(),
+               "flag": _text("flag"), "exclude_flag": _text("exclude_flag")}
+    filters = {k: v for k, v in filters.items() if v is not None}
+    sort = _text("sort") or DEFAULT_SORT
+    if sort not in dict(COLUMNS):
+        raise _bad("sort", f"cannot sort by {sort!r}; choose one of the table's columns")
+    order = _text("order") or ("asc" if sort in TEXT_COLUMNS else "desc")
+    if order not in ("asc", "desc"):
+        raise _bad("order", f"order {order!r}: choose asc or desc")
+    offset = _offset()
+
+    query = RankingQuery(adsorbate=filters.get("adsorbate"),
+                         temperature_k=filters.get("temperature_k"),
+                         flags=tuple(filter(None, [filters.get("flag")])),
+                         exclude_flags=tuple(filter(None, [filters.get("exclude_flag")])),
+                         sort=sort, descending=order == "desc", limit=ROWS_PER_PAGE,
+                         offset=offset)
+    try:
+        page, total = rankings(store, query)
+    except ValueError as exc:  # a sort column absent from every stored summary
+        raise _bad("sort", str(exc)) from None
+    rows = nan_to_none(page.to_pylist())
+
+    here = {**filters, "sort": sort, "order": order}
+    previous_url = (url_for("web.overview", **here, offset=max(offset - ROWS_PER_PAGE, 0))
+                    if offset > 0 else None)
+    next_url = (url_for("web.overview", **here, offset=offset + ROWS_PER_PAGE)
+                if offset + ROWS_PER_PAGE < total else None)
+    batches, batch_total = _batches(store)
+    return render_template(
+        "page_overview.html", rows=rows, total=total, offset=offset, columns=COLUMNS,
+        filters=filters, sort=sort, descending=order == "desc",
+        sort_links=_sort_links(filters, sort, order == "desc"), choices=_choices(store),
+        previous_url=previous_url, next_url=next_url, batches=batches,
+        batch_total=batch_total, rule=LATEST_WINS_RULE)
+
+
+# -- one material -----------------------------------------------------------
+
+def _material_isotherms(store: Store, material_id: str,
+                        results: list[dict]) -> list[StoredIsotherm]:
+    """The stored inputs, summary and fits behind each current result row."""
+    where = ds.field("material_id") == material_id
+    wanted = {(r["batch_id"], r["isotherm_id"]) for r in results}
+
+    def by_key(table: str) -> dict:
+        grouped: dict = {}
+        for row in nan_to_none(store.query(table, where).to_pylist()):
+            key = (row.get("batch_id"), row.get("isotherm_id"))
+            if key in wanted:
+                grouped.setdefault(key, []).append(row)
+        return grouped
+
+    inputs, fits = by_key("inputs"), by_key("fits")
+    out = []
+    for summary in results:
+        key = (summary["batch_id"], summary["isotherm_id"])
+        if key not in inputs:
+            continue  # inputs are written before results, so only a damaged store lands here
+        entries = [fit_entry(r) for r in fits.get(key, [])]
+        # best supported first; fits with no AICc (failed, too few points) last
+        entries.sort(key=lambda f: (f["aicc"] is None, f["aicc"] or 0.0, f["model"] or ""))
+        out.append(StoredIsotherm(summary["batch_id"], inputs[key][0], summary, entries))
+    return out
+
+
+def _param_units(model_id: str) -> dict[str, str]:
+    model = CATALOGUE.get(model_id)
+    return {p.name: p.unit for p in model.params} if model is not None else {}
+
+
+def _pending_isotherms(store: Store, material_id: str) -> int:
+    data = store.dataset("inputs")
+    if data is None:
+        return 0
+    return data.count_rows(filter=ds.field("material_id") == material_id)
+
+
+@bp.get("/materials/<path:material_id>")
+@require("read")
+def material(material_id: str):
+    store = _store()
+    current, _ = rankings(store, RankingQuery(material_id=material_id, limit=10_000))
+    results = sorted(nan_to_none(current.to_pylist()),
+                     key=lambda r: (r["adsorbate"] or "", r["temperature_k"] or 0.0,
+                                    r["isotherm_id"] or ""))
+    _, every_total = rankings(store, RankingQuery(material_id=material_id, limit=0,
+                                                  all_results=True))
+    inputs_total = _pending_isotherms(store, material_id)
+    if not results and not inputs_total:
+        raise Problem(404, "Not Found", f"No material {material_id!r} in any batch.")
+    isotherms = _material_isotherms(store, material_id, results)
+    return render_template(
+        "page_material.html", material_id=material_id, isotherms=isotherms,
+        superseded=every_total - len(results), unfitted=max(inputs_total - every_total, 0),
+        qst=qst_rows(store, material_id), param_units=_param_units, rule=LATEST_WINS_RULE)
