@@ -125,3 +125,29 @@ def test_bad_input_gives_nan_not_an_exception():
     out = summarize(packed, fits, selection_of(["langmuir"]), batch)
     assert np.isnan(out["q_sat_mol_per_kg"][0])
     assert "no_saturation_capacity" in out["flags"][0]
+
+
+def test_capacity_comes_from_the_best_eligible_bounded_model_when_the_selected_one_has_none():
+    # Redlich-Peterson with beta < 1 rises without bound, so it defines no q_sat
+    # (Redlich & Peterson 1959); the capacity is then read from the eligible
+    # model with the highest Akaike weight that has a plateau, and flagged.
+    p = P_PA
+    isos = [langmuir_isotherm(f"i{k}", "m", "CO2", 298.0, 4.0, 1e-5, p) for k in range(2)]
+    batch, packed = batch_of(isos)
+    fits = {"redlich_peterson": truth_fits("redlich_peterson", [[4e-5, 1e-5, 0.98]] * 2),
+            "toth": truth_fits("toth", [[4.2, 1e-5, 0.9]] * 2),
+            "langmuir": truth_fits("langmuir", [[4.0, 1e-5]] * 2)}
+    selection = selection_of(["redlich_peterson", "langmuir"],
+                             ["redlich_peterson", "toth", "langmuir"])
+    selection.weights = np.array([[0.6, 0.1, 0.3], [0.2, 0.1, 0.7]])
+    selection.excluded = {"redlich_peterson": np.array(["", ""], dtype=object),
+                          "toth": np.array(["", ""], dtype=object),
+                          "langmuir": np.array(["", ""], dtype=object)}
+    out = summarize(packed, fits, selection, batch)
+    assert out["q_sat_mol_per_kg"][0] == 4.0 and out["q_sat_model"][0] == "langmuir"
+    assert "q_sat_from_other_model" in out["flags"][0]
+    assert out["q_sat_model"][1] == "langmuir" and "q_sat_from_other_model" not in out["flags"][1]
+    # an excluded model is never the source
+    selection.excluded["langmuir"] = np.array(["parameter at bound", ""], dtype=object)
+    out = summarize(packed, fits, selection, batch)
+    assert out["q_sat_model"][0] == "toth" and np.isclose(out["q_sat_mol_per_kg"][0], 4.2)

@@ -32,13 +32,56 @@ def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
     return grad
 
 
+def defines_saturation_capacity(model) -> bool:
+    """True when the model has a finite plateau (Langmuir-like), False for
+    models that rise without bound (Henry, Freundlich, Redlich-Peterson with
+    beta < 1, Temkin) or whose monolayer is no saturation (BET, GAB)."""
+    return model.saturation_capacity(np.ones((1, len(model.params)))) is not None
+
+
+def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndarray:
+    """Per isotherm, the model q_sat is read from (object array; None = none).
+
+    The selected model where it defines a saturation capacity. Otherwise the
+    eligible model with the highest Akaike weight among those that do: a
+    screening team ranks on capacity even when an unbounded model (e.g.
+    Redlich-Peterson with beta just below 1) wins the selection on noise.
+    """
+    from ..models import CATALOGUE
+
+    n = selection.best.shape[0]
+    chosen = np.full(n, None, dtype=object)
+    capable = [j for j, m in enumerate(selection.model_ids)
+               if m in CATALOGUE and m in fits and defines_saturation_capacity(CATALOGUE[m])]
+    if not capable:
+        return chosen
+    weights = selection.weights[:, capable]
+    eligible = np.stack([selection.excluded.get(selection.model_ids[j], np.full(n, "")) == ""
+                         for j in capable], axis=1)
+    weights = np.where(eligible & np.isfinite(weights), weights, -1.0)
+    best_capable = np.argmax(weights, axis=1)
+    has_capable = weights[np.arange(n), best_capable] >= 0.0
+    for i in range(n):
+        best = selection.best[i]
+        if best is not None and best in CATALOGUE and defines_saturation_capacity(CATALOGUE[best]):
+            chosen[i] = best
+        elif has_capable[i]:
+            chosen[i] = selection.model_ids[capable[best_capable[i]]]
+    return chosen
+
+
 def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
                      flags: list[list[str]]) -> dict[str, np.ndarray]:
     """q_sat (mol/kg) with 95 % delta-method interval, monolayer volume and sites per gram."""
+    from ..models import CATALOGUE
+
     n = packed.n
     q_sat = np.full(n, np.nan)
     q_sat_se = np.full(n, np.nan)
-    for model, model_fits, rows in selected_groups(selection, fits):
+    source = capacity_models(selection, fits)
+    for model_id in sorted({m for m in source if m is not None}):
+        rows = np.flatnonzero(source == model_id)
+        model, model_fits = CATALOGUE[model_id], fits[model_id]
         params = model_fits.params[rows]
         try:
             value = model.saturation_capacity(params)
@@ -57,6 +100,7 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
         has_q_sat = np.isfinite(q_sat) & (q_sat > 0)
     q_sat = np.where(has_q_sat, q_sat, np.nan)
     add_flag(flags, ~has_q_sat, "no_saturation_capacity")
+    add_flag(flags, has_q_sat & (source != selection.best), "q_sat_from_other_model")
     add_flag(flags, has_q_sat & ~np.isfinite(q_sat_se), "q_sat_interval_unavailable")
     with np.errstate(invalid="ignore"):
         extrapolated = has_q_sat & (max_measured_loading(packed)
@@ -65,6 +109,7 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
 
     return {
         "q_sat_mol_per_kg": q_sat,
+        "q_sat_model": np.where(has_q_sat, source, None),
         "q_sat_stderr_mol_per_kg": np.where(has_q_sat, q_sat_se, np.nan),
         "q_sat_ci95_low_mol_per_kg": q_sat - Z_95 * q_sat_se,
         "q_sat_ci95_high_mol_per_kg": q_sat + Z_95 * q_sat_se,
