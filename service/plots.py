@@ -356,6 +356,8 @@ def qst_figure(rows: Sequence[Mapping[str, Any]]) -> Figure:
         labels.append(label)
     ax.set_xlabel("Loading (mol/kg)")
     ax.set_ylabel("Isosteric heat Qst (kJ/mol)")
+    # a nearly constant heat would otherwise be drawn as "1e-5+3e1" offsets
+    ax.ticklabel_format(axis="y", useOffset=False, style="plain")
     ax.grid(True, color="#DDDDDD", linewidth=0.6)
     fig.suptitle("Isosteric heat of adsorption", fontsize=11)
     if handles:  # in row order, outside the axes so no curve is covered

@@ -151,3 +151,16 @@ def test_capacity_comes_from_the_best_eligible_bounded_model_when_the_selected_o
     selection.excluded["langmuir"] = np.array(["parameter at bound", ""], dtype=object)
     out = summarize(packed, fits, selection, batch)
     assert out["q_sat_model"][0] == "toth" and np.isclose(out["q_sat_mol_per_kg"][0], 4.2)
+
+
+def test_no_capacity_is_borrowed_for_a_multilayer_isotherm():
+    # BET (Brunauer, Emmett & Teller 1938) has no plateau: when it is the
+    # selected model, q_sat stays empty even if a Langmuir fit was eligible
+    p = P_PA
+    isos = [langmuir_isotherm("i0", "m", "CO2", 298.0, 4.0, 1e-5, p)]
+    batch, packed = batch_of(isos)
+    fits = {"bet": truth_fits("bet", [[2.0, 100.0]]), "langmuir": truth_fits("langmuir", [[4.0, 1e-5]])}
+    selection = selection_of(["bet"], ["bet", "langmuir"])
+    out = summarize(packed, fits, selection, batch)
+    assert np.isnan(out["q_sat_mol_per_kg"][0]) and out["q_sat_model"][0] is None
+    assert "no_saturation_capacity" in out["flags"][0]

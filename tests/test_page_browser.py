@@ -124,7 +124,9 @@ def test_overview_filter_sort_and_material_page(server, browser):
     browser.get(server + "/")
     gases = column_texts(browser, "adsorbate")
     assert gases, "the rankings table has no rows"
-    assert {"N2", "CO2"} <= set(gases)
+    # the first page (50 rows, q_sat descending) holds the 77 K N2 rows; the
+    # CO2 rows come into view only through the filter below
+    assert "N2" in set(gases)
     assert browser.find_elements(By.CSS_SELECTOR, "#batches tbody tr")
     assert all("done" in cell.text for cell in
                browser.find_elements(By.CSS_SELECTOR, "#batches td.state"))

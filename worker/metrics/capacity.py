@@ -46,6 +46,8 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
     eligible model with the highest Akaike weight among those that do: a
     screening team ranks on capacity even when an unbounded model (e.g.
     Redlich-Peterson with beta just below 1) wins the selection on noise.
+    Not when a multilayer model (BET, GAB) is selected: that isotherm has no
+    plateau, and its figure is the BET monolayer instead.
     """
     from ..models import CATALOGUE
 
@@ -65,6 +67,8 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
         best = selection.best[i]
         if best is not None and best in CATALOGUE and defines_saturation_capacity(CATALOGUE[best]):
             chosen[i] = best
+        elif best is not None and best in CATALOGUE and CATALOGUE[best].multilayer:
+            continue  # a multilayer isotherm has no plateau to borrow from elsewhere
         elif has_capable[i]:
             chosen[i] = selection.model_ids[capable[best_capable[i]]]
     return chosen

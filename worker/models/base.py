@@ -44,6 +44,9 @@ class IsothermModel:
     reference: ClassVar[str]
     params: ClassVar[tuple[Param, ...]]
     relative_pressure: ClassVar[bool] = False  # True: x is p/p0, needs p0
+    # True for multilayer models (BET, GAB): loading grows without a plateau
+    # towards p0, so no saturation capacity exists for the isotherm at all
+    multilayer: ClassVar[bool] = False
 
     @staticmethod
     def evaluate(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> np.ndarray:
@@ -121,6 +124,7 @@ class IsothermModel:
             "equation": cls.equation,
             "reference": cls.reference,
             "relative_pressure": cls.relative_pressure,
+            "multilayer": cls.multilayer,
             "parameters": [
                 {
                     "name": p.name,

@@ -29,6 +29,7 @@ class BET(IsothermModel):
     equation = "q = n_m * c * x / ((1 - x) * (1 - x + c * x)),  x = p / p0"
     reference = "S. Brunauer, P. H. Emmett, E. Teller, J. Am. Chem. Soc. 60 (1938) 309-319"
     relative_pressure = True
+    multilayer = True
     params = (
         Param("n_m", "mol/kg", 0.0, np.inf, "monolayer capacity"),
         Param("c", "-", _C_LOWER, _C_UPPER, "BET constant (first layer vs liquefaction)",
@@ -82,6 +83,7 @@ class GAB(IsothermModel):
                  "J. H. de Boer, The Dynamical Character of Adsorption, Clarendon Press, "
                  "Oxford (1953) (bibliographic details from memory)")
     relative_pressure = True
+    multilayer = True
     params = (
         Param("n_m", "mol/kg", 0.0, np.inf, "monolayer capacity"),
         Param("c", "-", _C_LOWER, _C_UPPER, "first-layer constant (as BET c)", log_scale=True),
