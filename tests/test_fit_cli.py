@@ -197,3 +197,31 @@ def test_fit_options_refuse_unknown_values():
 def test_empty_batch_gives_empty_results():
     result = process_batch(Batch("empty", []))
     assert result.summary_table().num_rows == 0 and result.to_json()["isotherms"] == []
+
+
+def test_json_summary_carries_the_metric_contract(tmp_path):
+    # issue contract: each isotherm's "summary" holds these names, null where a
+    # figure does not apply; the BET range is [low, high] in p/p0
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    sample = Path(__file__).resolve().parents[1] / "sample_batches" / "b06_n2_77k_relative.csv"
+    out = subprocess.run([sys.executable, "-m", "service.cli", "fit", str(sample), "--format", "json",
+                          "--workers", "1"], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    records = json.loads(out.stdout)["isotherms"]
+    contract = ("q_sat_mol_per_kg", "monolayer_volume_cm3stp_per_g", "sites_per_g",
+                "henry_mol_per_kg_pa", "bet_area_m2_per_g", "bet_c",
+                "bet_range_relative_pressure", "flags")
+    with_range = 0
+    for rec in records:
+        summary = rec["summary"]
+        assert all(name in summary for name in contract)
+        rng = summary["bet_range_relative_pressure"]
+        if rng is not None:
+            with_range += 1
+            assert 0 < rng[0] < rng[1] < 1 and summary["bet_area_m2_per_g"] > 0
+        else:
+            assert summary["bet_area_m2_per_g"] is None and "bet_no_valid_range" in summary["flags"]
+    assert with_range >= 0.9 * len(records)

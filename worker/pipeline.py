@@ -95,6 +95,7 @@ class BatchResult:
         temps = _json_list(p.temperature_k)
         metric = {name: _json_list(v) for name, v in self.summary.items() if name != "flags"}
         flags = self.flags()
+        bet_ranges = self._bet_ranges()
         records = []
         for i in range(p.n):
             records.append({
@@ -108,7 +109,9 @@ class BatchResult:
                 "flags": flags[i],
                 "fits": [_fit_record(mid, lists, i) for mid, lists in per_model.items()],
                 "linearized_langmuir": {"q_sat": lin_q[i], "affinity": lin_b[i]},
-                "summary": {name: values[i] for name, values in metric.items()},
+                "summary": {**{name: values[i] for name, values in metric.items()},
+                            "bet_range_relative_pressure": bet_ranges[i],
+                            "flags": flags[i]},
             })
         return records
 
@@ -206,8 +209,16 @@ class BatchResult:
                 columns[name] = _float_array(values)
             else:
                 columns[name] = pa.array(values.tolist())
+        columns["bet_range_relative_pressure"] = pa.array(
+            self._bet_ranges(), pa.list_(pa.float64()))
         columns["flags"] = pa.array(self.flags(), pa.list_(pa.string()))
         return pa.table(columns)
+
+    def _bet_ranges(self) -> list[list[float] | None]:
+        """[low, high] p/p0 of the chosen BET range per isotherm, None where none."""
+        low = _json_list(self.summary.get("bet_range_relative_pressure_low", np.full(self.n, np.nan)))
+        high = _json_list(self.summary.get("bet_range_relative_pressure_high", np.full(self.n, np.nan)))
+        return [None if lo is None or hi is None else [lo, hi] for lo, hi in zip(low, high)]
 
 
 # ---------------------------------------------------------------------------
