@@ -142,14 +142,15 @@ def _cell(value) -> str:
     if value is None:
         return "-"
     if isinstance(value, float):
-        return f"{value:.4g}"
+        # 298.15 K must not print as 298.1: keep two decimals for mid-size numbers
+        return f"{value:.2f}" if 100 <= abs(value) < 1e5 else f"{value:.4g}"
     if isinstance(value, list):
         return ",".join(map(str, value)) or "-"
     return str(value)
 
 
 def format_table(rows: list[dict], columns: list[str]) -> str:
-    """Rows as a plain aligned text table (numbers to 4 significant digits)."""
+    """Rows as a plain aligned text table (4 significant digits; 100..1e5 with two decimals)."""
     cells = [[_cell(r.get(c)) for c in columns] for r in rows]
     widths = [max([len(c)] + [len(row[i]) for row in cells]) for i, c in enumerate(columns)]
     lines = ["  ".join(c.ljust(w) for c, w in zip(columns, widths)),
