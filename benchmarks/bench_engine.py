@@ -2,27 +2,41 @@
 
 N synthetic isotherms (30 points each, fixed seed) are drawn from several
 catalogue models with realistic noise (1 % of the largest loading, Gaussian,
-plus 0.5 % multiplicative). Each isotherm is fitted with the model that
-generated it:
+plus 0.5 % multiplicative). What is fitted:
 
-* engine:   worker.engine.fit_model on all isotherms of a model at once
-            (one process, so both sides use one core);
-* baseline: scipy.optimize.curve_fit (trf, same bounds, same analytic
-            Jacobian) per isotherm, started from the same seeds
-            (model.initial_guesses, computed in the timed region on both
-            sides), keeping the lowest SSE per isotherm.
+* ``--models generating`` (default): each isotherm with the model that
+  generated it;
+* ``--models all``: every isotherm with every catalogue model (each isotherm
+  gets a saturation pressure of 1.5x its highest pressure, so the p/p0
+  models apply too) -- the workload of the pipeline.
+
+Sides, all in this one process (one core each):
+
+* engine:    worker.engine.fit_model on all isotherms of a model at once;
+* reference: optional (--reference-engine), another engine.py -- e.g. the
+             last commit's, ``--reference-engine HEAD`` -- timed interleaved
+             with the current one on the same data (before/after);
+* baseline:  scipy.optimize.curve_fit (trf, same bounds, same analytic
+             Jacobian) per isotherm, started from the same seeds
+             (model.initial_guesses, computed in the timed region on both
+             sides), keeping the lowest SSE per isotherm.
 
 The baseline may run on a random subset (--baseline-n) to save time; its rate
 is then measured on that subset and said so. SSE parity: share of baseline
-isotherms where engine SSE <= baseline SSE * (1 + 1e-6).
+isotherms where engine SSE <= baseline SSE * (1 + 1e-6). Medians over
+--repeats runs; no figure here is a pass/fail threshold.
 
     .venv/bin/python benchmarks/bench_engine.py --n 20000 --baseline-n 1000
+    .venv/bin/python benchmarks/bench_engine.py --n 5000 --models all --reference-engine HEAD
 """
 from __future__ import annotations
 
 import argparse
+import importlib.util
 import statistics
+import subprocess
 import sys
+import tempfile
 import time
 import warnings
 from pathlib import Path
@@ -30,15 +44,17 @@ from pathlib import Path
 import numpy as np
 from scipy import optimize
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
 
-from worker.engine import fit_model  # noqa: E402
+import worker.engine as engine  # noqa: E402
 from worker.isotherm import Isotherm  # noqa: E402
 from worker.models import CATALOGUE  # noqa: E402
 from worker.packing import pack  # noqa: E402
 
 N_POINTS = 30
 PARITY_RTOL = 1e-6
+T_K = 298.15
 
 
 def draw_params(model_id: str, rng) -> list[float]:
@@ -70,57 +86,93 @@ def make_isotherms(n: int, seed: int) -> dict[str, list[Isotherm]]:
         p_lo = 10 ** rng.uniform(0.5, 2.5)
         p = np.geomspace(p_lo, p_lo * 10 ** rng.uniform(3.0, 5.0), N_POINTS)
         params = draw_params(model_id, rng)
-        q = model.evaluate(p[None], np.array([[298.15]]), *[np.array([[v]]) for v in params])[0]
+        q = model.evaluate(p[None], np.array([[T_K]]), *[np.array([[v]]) for v in params])[0]
         q = q * (1 + 0.005 * rng.standard_normal(p.size)) + 0.01 * q.max() * rng.standard_normal(p.size)
-        groups[model_id].append(Isotherm(f"{model_id}-{i}", f"m{i}", "CO2", 298.15, p, q))
+        groups[model_id].append(Isotherm(f"{model_id}-{i}", f"m{i}", "CO2", T_K, p, q))
     return groups
 
 
-def run_engine(groups) -> tuple[float, dict[str, np.ndarray], dict[str, np.ndarray]]:
-    start = time.perf_counter()
-    sse, conv = {}, {}
-    for model_id, isos in groups.items():
-        fits = fit_model(CATALOGUE[model_id], pack(isos))
+def load_reference_engine(spec: str):
+    """Another engine.py as module ``worker._reference_engine`` (it then uses
+    the current models). ``spec`` is a file path or a git revision."""
+    path = Path(spec)
+    if not path.is_file():
+        text = subprocess.run(["git", "show", f"{spec}:worker/engine.py"], cwd=ROOT, check=True,
+                              capture_output=True, text=True).stdout
+        tmp = tempfile.NamedTemporaryFile("w", suffix="_engine.py", delete=False)
+        tmp.write(text)
+        tmp.close()
+        path = Path(tmp.name)
+    module_spec = importlib.util.spec_from_file_location("worker._reference_engine", path)
+    module = importlib.util.module_from_spec(module_spec)
+    sys.modules[module_spec.name] = module
+    module_spec.loader.exec_module(module)
+    return module
+
+
+def jobs_for(groups, which: str) -> list[tuple[str, list[Isotherm]]]:
+    """(model id, isotherms it is fitted to) pairs."""
+    if which == "generating":
+        return [(m, isos) for m, isos in groups.items()]
+    everyone = [iso for isos in groups.values() for iso in isos]
+    for iso in everyone:
+        iso.saturation_pressure_pa = 1.5 * float(iso.pressure_pa.max())
+    return [(m, everyone) for m in CATALOGUE]
+
+
+def time_engine(fit_model, jobs, packed) -> tuple[list[float], dict, dict]:
+    times, sse, conv = [], {}, {}
+    for (model_id, _), pk in zip(jobs, packed):
+        start = time.perf_counter()
+        fits = fit_model(CATALOGUE[model_id], pk)
+        times.append(time.perf_counter() - start)
         sse[model_id], conv[model_id] = fits.sse, fits.converged
-    return time.perf_counter() - start, sse, conv
+    return times, sse, conv
 
 
-def run_baseline(groups, subset: dict[str, np.ndarray]) -> tuple[float, dict[str, np.ndarray]]:
-    start = time.perf_counter()
-    out = {}
-    for model_id, isos in groups.items():
+def run_baseline(jobs, subset) -> tuple[list[float], dict[str, np.ndarray]]:
+    times, out = [], {}
+    for model_id, isos in jobs:
+        start = time.perf_counter()
         model = CATALOGUE[model_id]
         chosen = [isos[i] for i in subset[model_id]]
         if not chosen:
             out[model_id] = np.zeros(0)
+            times.append(0.0)
             continue
         packed = pack(chosen)
+        x_all = packed.relative_pressure if model.relative_pressure else packed.pressure_pa
         seeds = model.clip_to_bounds(model.initial_guesses(
-            packed.pressure_pa, packed.loading_mol_per_kg, packed.mask, packed.temperature_k[:, None]))
+            x_all, packed.loading_mol_per_kg, packed.mask, packed.temperature_k[:, None]))
         bounds = (model.lower_bounds(), model.upper_bounds())
         best = np.full(len(chosen), np.inf)
         for i, iso in enumerate(chosen):
-            p, q = iso.pressure_pa, iso.loading_mol_per_kg
+            x = x_all[i, :iso.n_points]
+            q = iso.loading_mol_per_kg
             t = np.full((1, 1), iso.temperature_k)
 
-            def f(x, *b):
-                return model.evaluate(x[None], t, *[np.array([[v]]) for v in b])[0]
+            def f(xx, *b):
+                return np.broadcast_to(model.evaluate(xx[None], t, *[np.array([[v]]) for v in b]),
+                                       (1, xx.size))[0]
 
-            def jac(x, *b):
-                cols = model.jacobian(x[None], t, *[np.array([[v]]) for v in b])
-                return np.stack([np.broadcast_to(c, (1, x.size))[0] for c in cols], axis=1)
+            def jac(xx, *b):
+                cols = model.jacobian(xx[None], t, *[np.array([[v]]) for v in b])
+                return np.stack([np.broadcast_to(c, (1, xx.size))[0] for c in cols], axis=1)
 
             for s in range(seeds.shape[0]):
                 try:
-                    with warnings.catch_warnings():
+                    with warnings.catch_warnings(), np.errstate(all="ignore"):
                         warnings.simplefilter("ignore")
-                        b, _ = optimize.curve_fit(f, p, q, p0=seeds[s, i], bounds=bounds, jac=jac,
+                        b, _ = optimize.curve_fit(f, x, q, p0=seeds[s, i], bounds=bounds, jac=jac,
                                                   method="trf")
-                    best[i] = min(best[i], float(np.sum((f(p, *b) - q) ** 2)))
+                        value = float(np.sum((f(x, *b) - q) ** 2))
+                    if np.isfinite(value):
+                        best[i] = min(best[i], value)
                 except (RuntimeError, ValueError):
                     pass  # this seed failed; another may not
         out[model_id] = best
-    return time.perf_counter() - start, out
+        times.append(time.perf_counter() - start)
+    return times, out
 
 
 def main(argv=None) -> int:
@@ -128,45 +180,81 @@ def main(argv=None) -> int:
     ap.add_argument("--n", type=int, default=20_000, help="isotherms for the engine (default 20000)")
     ap.add_argument("--baseline-n", type=int, default=1_000,
                     help="random subset fitted by the curve_fit loop (default 1000)")
-    ap.add_argument("--repeats", type=int, default=3, help="engine repeats; the median is reported")
+    ap.add_argument("--repeats", type=int, default=3, help="engine repeats; medians are reported")
     ap.add_argument("--seed", type=int, default=20260512)
+    ap.add_argument("--models", choices=("generating", "all"), default="generating",
+                    help="fit each isotherm with its generating model, or with every model")
+    ap.add_argument("--reference-engine", metavar="FILE|REV", default=None,
+                    help="also time this engine.py (a path, or a git revision such as HEAD)")
+    ap.add_argument("--block", type=int, default=None,
+                    help=f"engine working-set rows (default {engine.ROW_BLOCK})")
     args = ap.parse_args(argv)
+    if args.block:
+        engine.ROW_BLOCK = args.block
 
     groups = make_isotherms(args.n, args.seed)
+    jobs = jobs_for(groups, args.models)
+    packed = [pack(isos) for _, isos in jobs]
+    reference = load_reference_engine(args.reference_engine) if args.reference_engine else None
     rng = np.random.default_rng(args.seed + 1)
     share = min(1.0, args.baseline_n / max(args.n, 1))
     subset = {m: np.sort(rng.choice(len(isos), size=int(round(share * len(isos))), replace=False))
-              for m, isos in groups.items()}
+              for m, isos in jobs}
+    n_fits = sum(len(isos) for _, isos in jobs)
     n_base = sum(len(s) for s in subset.values())
 
-    engine_times = []
-    for _ in range(max(args.repeats, 1)):
-        elapsed, sse, conv = run_engine(groups)
-        engine_times.append(elapsed)
-    base_time, base_sse = run_baseline(groups, subset)
+    cur_runs, ref_runs = [], []
+    for _ in range(max(args.repeats, 1)):  # interleaved, so drift in machine load hits both
+        times, sse, conv = time_engine(engine.fit_model, jobs, packed)
+        cur_runs.append(times)
+        if reference is not None:
+            ref_times, ref_sse, _ = time_engine(reference.fit_model, jobs, packed)
+            ref_runs.append(ref_times)
+    base_times, base_sse = run_baseline(jobs, subset)
 
-    engine_rate = args.n / statistics.median(engine_times)
-    base_rate = n_base / base_time if n_base else float("nan")
-    eng_on_subset = np.concatenate([sse[m][subset[m]] for m in groups])
-    ref = np.concatenate([base_sse[m] for m in groups])
+    per_model = lambda runs: [statistics.median(r[j] for r in runs) for j in range(len(jobs))]  # noqa: E731
+    cur_med = per_model(cur_runs)
+    totals = [sum(r) for r in cur_runs]
+    engine_rate = n_fits / statistics.median(totals)
+    base_total = sum(base_times)
+    base_rate = n_base / base_total if n_base else float("nan")
+    eng_on_subset = np.concatenate([sse[m][subset[m]] for m, _ in jobs])
+    ref = np.concatenate([base_sse[m] for m, _ in jobs])
     parity = eng_on_subset <= ref * (1 + PARITY_RTOL)
     better = eng_on_subset < ref * (1 - PARITY_RTOL)
-    converged = np.concatenate([conv[m] for m in groups])
+    converged = np.concatenate([conv[m] for m, _ in jobs])
 
-    print(f"isotherms: {args.n} ({N_POINTS} points, models: {', '.join(GENERATORS)}), seed {args.seed}")
-    print(f"engine   : median {statistics.median(engine_times):.3f} s over {len(engine_times)} run(s) "
-          f"[{', '.join(f'{t:.3f}' for t in engine_times)}] -> {engine_rate:,.0f} fits/s, "
-          f"converged {converged.mean():.2%}")
-    note = "" if n_base == args.n else f" (random subset of {n_base} isotherms, measured once)"
-    print(f"baseline : scipy.optimize.curve_fit loop {base_time:.3f} s for {n_base} fits{note} "
+    names = [m for m, _ in jobs]
+    print(f"isotherms: {args.n} ({N_POINTS} points, generated by: {', '.join(GENERATORS)}), "
+          f"seed {args.seed}; models fitted: {args.models} ({len(jobs)}), {n_fits} isotherm-model fits")
+    print(f"engine   : median {statistics.median(totals):.3f} s over {len(totals)} run(s) "
+          f"[{', '.join(f'{t:.3f}' for t in totals)}] -> {engine_rate:,.0f} fits/s, "
+          f"converged {converged.mean():.2%} (row block {engine.ROW_BLOCK})")
+    if reference is not None:
+        ref_totals = [sum(r) for r in ref_runs]
+        print(f"reference: {args.reference_engine}: median {statistics.median(ref_totals):.3f} s "
+              f"[{', '.join(f'{t:.3f}' for t in ref_totals)}] -> {n_fits / statistics.median(ref_totals):,.0f} "
+              f"fits/s; speed-up {statistics.median(ref_totals) / statistics.median(totals):.2f}x")
+        same = np.concatenate([np.isclose(sse[m], ref_sse[m], rtol=1e-9, equal_nan=True) for m in names])
+        print(f"reference: SSE equal to 1e-9 on {same.mean():.2%} of isotherm-model fits")
+    note = "" if n_base == n_fits else f" (random subset of {n_base} isotherm-model fits, measured once)"
+    print(f"baseline : scipy.optimize.curve_fit loop {base_total:.3f} s for {n_base} fits{note} "
           f"-> {base_rate:,.1f} fits/s")
     print(f"ratio    : {engine_rate / base_rate:,.1f}x (engine fits/s / baseline fits/s)")
     print(f"SSE parity (engine <= baseline x (1 + {PARITY_RTOL:g})): {parity.mean():.2%} of {n_base}; "
           f"engine strictly better on {better.mean():.2%}")
-    for m in groups:
+    ref_med = per_model(ref_runs) if reference is not None else None
+    for j, (m, isos) in enumerate(jobs):
+        rate = len(isos) / cur_med[j] if cur_med[j] > 0 else float("nan")
+        line = f"  {m:22s} engine {cur_med[j]:7.3f} s {rate:10,.0f} fits/s"
+        if ref_med is not None:
+            line += f" | reference {ref_med[j]:7.3f} s, speed-up {ref_med[j] / cur_med[j]:5.2f}x"
         if len(subset[m]):
+            b_rate = len(subset[m]) / base_times[j]
             ok = sse[m][subset[m]] <= base_sse[m] * (1 + PARITY_RTOL)
-            print(f"  {m:20s} parity {ok.mean():.2%} of {ok.size}")
+            line += (f" | curve_fit {b_rate:8,.1f} fits/s, ratio {rate / b_rate:7,.1f}x, "
+                     f"parity {ok.mean():.2%} of {ok.size}")
+        print(line)
     worst = np.argsort(-(eng_on_subset / ref))[:3]
     for i in worst:
         if not parity[i]:

@@ -168,7 +168,7 @@ def fit_model(model: type[IsothermModel], packed: Packed, weighting: str = "unif
 
     with np.errstate(divide="ignore", invalid="ignore"):  # bad-sigma rows are already out
         weight = np.where(mask, 1.0 / np.where(mask, sigma, 1.0) ** 2, 0.0)
-    xs, qs, ws, ms = x[rows], q[rows], weight[rows], mask[rows]
+    xs, qs, ws, ms = _canonical_width(x[rows], q[rows], weight[rows], mask[rows])
     xs = np.where(ms, xs, _last_real(xs, ms))  # padding stays an in-range copy
     ts = packed.temperature_k[rows][:, None]
 
@@ -195,6 +195,26 @@ def _sigma_mol_per_kg(packed: Packed, weighting: str) -> np.ndarray:
         no_sigma = np.all(np.isnan(s) | ~packed.mask, axis=1)
         return np.where(no_sigma[:, None], 1.0, s)
     return np.ones_like(q)
+
+
+# Row sums (einsum, np.sum) add a row's tail in a different order when the
+# padded width changes (blocks of 8 vs a scalar remainder), so a row's last
+# bits would depend on the longest isotherm it shares a batch with. Padding
+# the point axis to a multiple of this width with zero-weight points makes
+# every row's result independent of its company (chunked runs equal the
+# serial run bit for bit).
+POINT_AXIS_QUANTUM = 8
+
+
+def _canonical_width(x, q, w, mask):
+    """(x, q, w, mask) padded on the point axis to a multiple of POINT_AXIS_QUANTUM."""
+    m = x.shape[1]
+    extra = -m % POINT_AXIS_QUANTUM
+    if extra == 0 or x.shape[0] == 0:
+        return x, q, w, mask
+    rep = lambda a: np.concatenate([a, np.repeat(a[:, -1:], extra, axis=1)], axis=1)  # noqa: E731
+    return (rep(x), rep(q), np.concatenate([w, np.zeros((w.shape[0], extra))], axis=1),
+            np.concatenate([mask, np.zeros((mask.shape[0], extra), dtype=bool)], axis=1))
 
 
 def _last_real(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
@@ -229,171 +249,384 @@ def _fit_rows(model, x, q, w, mask, t, max_iter):
     n = x.shape[0]
     seeds = np.asarray(model.initial_guesses(x, q, mask, t), dtype=float)
     n_seeds, k = seeds.shape[0], seeds.shape[-1]
-    seeds = model.clip_to_bounds(seeds.reshape(n_seeds * n, k))
-    src = np.tile(np.arange(n), n_seeds)  # row of each (seed, isotherm)
+    # isotherm-major order: the seeds of one isotherm are neighbours in the
+    # solver's queue (row r is seed r % n_seeds of isotherm r // n_seeds)
+    seeds = model.clip_to_bounds(np.swapaxes(seeds, 0, 1).reshape(n * n_seeds, k))
+    src = np.repeat(np.arange(n), n_seeds)
     params, sse, status = _levenberg_marquardt(model, seeds, x, q, w, mask, t, src, max_iter)
 
     # per isotherm: lowest SSE among converged seeds, else lowest SSE overall
-    rank = np.where(np.isfinite(sse), sse, np.inf)
-    rank = np.where(status == _CONVERGED, rank, np.inf)
-    fallback = np.where(np.isfinite(sse), sse, np.inf)
-    rank = rank.reshape(n_seeds, n)
-    fallback = fallback.reshape(n_seeds, n)
-    any_conv = np.isfinite(rank).any(axis=0)
-    pick = np.where(any_conv, np.argmin(rank, axis=0), np.argmin(fallback, axis=0))
-    flat = pick * n + np.arange(n)
+    # (ties: the earlier seed, as the seed rule ranked them)
+    fallback = np.where(np.isfinite(sse), sse, np.inf).reshape(n, n_seeds)
+    rank = np.where(status.reshape(n, n_seeds) == _CONVERGED, fallback, np.inf)
+    any_conv = np.isfinite(rank).any(axis=1)
+    pick = np.where(any_conv, np.argmin(rank, axis=1), np.argmin(fallback, axis=1))
+    flat = np.arange(n) * n_seeds + pick
     return params[flat], status[flat]
 
 
-def _evaluate(model, tr, theta, x, q, sw, t):
-    """At ``theta`` (fitted coords): SSE, A = Jt W J, g = Jt W r, the rounding
-    noise of the SSE, and whether all of it is finite.
+class _Evaluator:
+    """SSE, normal matrix and gradient of a model at many rows at once.
 
-    ``sw`` = sqrt(weight), 0 at padding points (which repeat a real point, so
-    the model is finite there whenever it is finite on the real points).
+    Layout: parameters, gradient and everything per row is batch-last --
+    theta (k, R), g (k, R), the normal matrix a (k, k, R) -- so each entry
+    a[i, j] is one contiguous vector and the k x k algebra below runs as a
+    few dozen vector operations per iteration whatever R is.
+
+    The Jacobian is evaluated once per trial point and, where the model
+    allows, the model values come from it too: every catalogue model is
+    homogeneous in its linear scale parameters (a capacity, a Henry slope,
+    Temkin's b_t with degree -1), so by Euler's theorem
+    f = sum_j c_j p_j df/dp_j with small integer c_j. ``euler`` holds those
+    c_j after they were found and checked on the batch's own seeds (see
+    ``_euler_coefficients``); otherwise (None) ``model.evaluate`` is called.
     """
-    p = tr.to_params(theta)
-    cols = [p[:, j:j + 1] for j in range(p.shape[1])]
+
+    def __init__(self, model, tr, unit_weights, euler):
+        self.model, self.tr, self.unit, self.euler = model, tr, unit_weights, euler
+        self.k = len(model.params)
+
+    def __call__(self, theta, x, q, sw, t):
+        """At ``theta`` (k, R): sse (R,), a (k, k, R), g (k, R), noise (R,), finite (R,)."""
+        model, tr, k = self.model, self.tr, self.k
+        p = _params_batch_last(tr, theta)
+        cols = [p[j][:, None] for j in range(k)]
+        shape = x.shape
+        with np.errstate(all="ignore"):
+            jac = model.jacobian(x, t, *cols)
+            euler = self.euler
+            # p_j df/dp_j: the derivative in log coordinates, and Euler's terms
+            pd = [cols[j] * d if (tr.log[j] or (euler is not None and euler[j] != 0)) else d
+                  for j, d in enumerate(jac)]
+            if euler is not None:
+                f = None
+                for j, c in enumerate(euler):
+                    if c != 0:
+                        term = pd[j] if c == 1 else c * pd[j]
+                        f = term if f is None else f + term
+                f = np.broadcast_to(f, shape)
+            else:
+                f = model.evaluate(x, t, *cols)
+            jw = [pd[j] if tr.log[j] else d for j, d in enumerate(jac)]
+            if self.unit:
+                r = f - q
+                swf = f
+                jw = [np.broadcast_to(v, shape) for v in jw]
+            else:
+                swf = sw * f
+                r = sw * (f - q)
+                jw = [sw * v for v in jw]
+            sse = np.einsum("ij,ij->i", r, r)
+            # rounding of f (relative eps) moves the SSE by up to 2 sum |r| eps |f|
+            # <= 2 eps sqrt(sse * sum (sw f)^2) (Cauchy-Schwarz); 4x margin
+            noise = 8.0 * np.finfo(float).eps * np.sqrt(sse * np.einsum("ij,ij->i", swf, swf))
+            n_rows = shape[0]
+            a = np.empty((k, k, n_rows))
+            g = np.empty((k, n_rows))
+            for i in range(k):
+                g[i] = np.einsum("ij,ij->i", jw[i], r)
+                for j in range(i + 1):
+                    a[i, j] = np.einsum("ij,ij->i", jw[i], jw[j])
+                    if j != i:
+                        a[j, i] = a[i, j]
+        finite = np.isfinite(sse) & np.isfinite(a).all(axis=(0, 1)) & np.isfinite(g).all(axis=0)
+        return sse, a, g, noise, finite
+
+
+def _euler_coefficients(model, tr, theta, x, t):
+    """Integer c with f = sum_j c_j p_j df/dp_j at the probe rows, or None.
+
+    Found by least squares on the probe and accepted only if the identity
+    then holds to 1e-10 relative at every finite probe point.
+    """
+    k = len(model.params)
+    p = _params_batch_last(tr, theta)
+    cols = [p[j][:, None] for j in range(k)]
     with np.errstate(all="ignore"):
-        f = model.evaluate(x, t, *cols)
-        jac = model.jacobian(x, t, *cols)
-        r = sw * (f - q)
-        sse = np.einsum("ij,ij->i", r, r)
-        # rounding of f (relative eps) moves the SSE by up to 2 sum |r| eps |f|
-        # <= 2 eps sqrt(sse * sum (sw f)^2) (Cauchy-Schwarz); 4x margin
-        swf = sw * f
-        noise = 8.0 * np.finfo(float).eps * np.sqrt(sse * np.einsum("ij,ij->i", swf, swf))
-        jw = [(sw * pj if lg else sw) * d for d, pj, lg in zip(jac, cols, tr.log)]
-        k = len(jw)
-        a = np.empty((x.shape[0], k, k))
-        g = np.empty((x.shape[0], k))
-        for i in range(k):
-            g[:, i] = np.einsum("ij,ij->i", jw[i], r)
-            for j in range(i + 1):
-                a[:, i, j] = a[:, j, i] = np.einsum("ij,ij->i", jw[i], jw[j])
-    finite = np.isfinite(sse) & np.isfinite(a).all(axis=(1, 2)) & np.isfinite(g).all(axis=1)
-    return sse, a, g, noise, finite
+        f = np.broadcast_to(model.evaluate(x, t, *cols), x.shape)
+        terms = [np.broadcast_to(cols[j] * d, x.shape) for j, d in enumerate(model.jacobian(x, t, *cols))]
+    ok = np.isfinite(f) & np.all([np.isfinite(v) for v in terms], axis=0)
+    if ok.sum() < 4 * k + 8:
+        return None
+    basis = np.stack([v[ok] for v in terms], axis=1)
+    target = f[ok]
+    scale = np.abs(basis).max(axis=0)
+    if not np.all(np.isfinite(scale)):
+        return None
+    scale = np.where(scale > 0, scale, 1.0)
+    with np.errstate(all="ignore"):
+        c, *_ = np.linalg.lstsq(basis / scale, target, rcond=None)
+    c = c / scale
+    c_int = np.round(c)
+    if not np.all(np.isfinite(c)) or np.any(np.abs(c - c_int) > 1e-6) or not np.any(c_int):
+        return None
+    recon = basis @ c_int
+    tol = 1e-10 * (np.abs(target) + np.abs(basis) @ np.abs(c_int)) + 1e-300
+    if not np.all(np.abs(recon - target) <= tol):
+        return None
+    return tuple(int(v) for v in c_int)
 
 
-def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter):
+# rows (isotherm, seed) the solver holds at once: small enough that its
+# (rows, points) arrays stay in cache, large enough that numpy's per-call
+# overhead is amortised (see benchmarks/bench_engine.py --block)
+ROW_BLOCK = 3072
+_EULER_PROBE_ROWS = 256
+
+
+def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, block=None):
     """Run LM on rows ``src`` (indices into x, q, ...) from the given params.
 
     Returns params (N, k), sse (N,), status (N,) for the N = len(src) rows.
+
+    Rows are independent; they stream through a working set of at most
+    ``block`` rows: a row leaves it as soon as it has converged, stalled or
+    used its ``max_iter`` iterations, and fresh rows from the queue top the
+    working set up again, so the arrays stay compact and cache-sized.
     """
+    block = int(block or ROW_BLOCK)
     tr = _Transform(model)
     n_rows, k = theta0_params.shape
-    theta = tr.to_theta(theta0_params)
-    theta = np.clip(theta, tr.lo, tr.hi)
-    status = np.full(n_rows, _RUNNING)
-    sse = np.full(n_rows, np.inf)
-    exact = EXACT_REL_TOL * np.einsum("ij,ij->i", w * q, q)[src]
+    theta0 = np.clip(tr.to_theta(theta0_params), tr.lo, tr.hi)
+    theta_out = theta0.copy()
+    sse_out = np.full(n_rows, np.inf)
+    status_out = np.full(n_rows, _RUNNING)
+    exact_all = EXACT_REL_TOL * np.einsum("ij,ij->i", w * q, q)
+    sw_all = np.sqrt(w)  # w is 0 at padding
+    unit = bool(np.all(w == 1.0))  # no padding, uniform weights: skip sqrt(w) products
+    lo, hi = tr.lo[:, None], tr.hi[:, None]
 
-    sw = np.sqrt(w)  # w is 0 at padding
+    probe = np.arange(min(n_rows, _EULER_PROBE_ROWS))
+    euler = _euler_coefficients(model, tr, theta0[probe].T.copy(), x[src[probe]], t[src[probe]]) \
+        if n_rows else None
+    evaluate = _Evaluator(model, tr, unit, euler)
 
-    def data(rows):
-        s = src[rows]
-        return x[s], q[s], sw[s], t[s]
+    # working set (batch-last per-row state; data row-major)
+    rid = np.zeros(0, dtype=np.int64)
+    theta = np.zeros((k, 0))
+    sse = np.zeros(0)
+    a_mat = np.zeros((k, k, 0))
+    g = np.zeros((k, 0))
+    noise = np.zeros(0)
+    lam = np.zeros(0)
+    nu = np.zeros(0)
+    dmax = np.zeros((k, 0))
+    it = np.zeros(0, dtype=np.int64)
+    st = np.zeros(0, dtype=np.int64)
+    exact = np.zeros(0)
+    xa = np.zeros((0,) + x.shape[1:])
+    qa, swa = xa.copy(), xa.copy()
+    ta = np.zeros((0, 1))
+    queued = 0
 
-    act = np.arange(n_rows)
-    d = data(act)
-    sse_a, a_mat, g, noise, finite = _evaluate(model, tr, theta, *d)
-    sse[:] = sse_a
-    status[~finite] = _NONFINITE
-    lam = np.full(n_rows, 1e-3)
-    nu = np.full(n_rows, 2.0)
-    diag_max = np.abs(np.diagonal(a_mat, axis1=1, axis2=2)).copy()  # Marquardt scale: running max
-    keep = finite
-    act, a_mat, g, noise = act[keep], a_mat[keep], g[keep], noise[keep]
-    d = tuple(v[keep] for v in d)
+    while True:
+        # -- rows leave: stalled last time, out of iterations, or converged --
+        running = st == _RUNNING
+        out = running & (it >= max_iter)
+        if out.any():
+            fixed = ((theta[:, out] <= lo) & (g[:, out] > 0)) | ((theta[:, out] >= hi) & (g[:, out] < 0))
+            _, ok_gn, _ = _gauss_newton(a_mat[:, :, out], g[:, out], ~fixed)
+            st[out] = np.where(ok_gn, _MAX_ITER, _SINGULAR)
+        check = running & ~out
+        free = ~(((theta <= lo) & (g > 0)) | ((theta >= hi) & (g < 0)))
+        gn_ok, pred_gn = np.zeros(st.size, bool), np.zeros(st.size)
+        if check.any():
+            _, gn_ok, pred_gn = _gauss_newton(a_mat, g, free)
+            done = check & ((gn_ok & (pred_gn <= GN_REL_TOL * sse + exact)) | (sse <= exact))
+            st[done] = _CONVERGED
+        keep = st == _RUNNING
+        if not keep.all():
+            gone = ~keep
+            theta_out[rid[gone]] = theta[:, gone].T
+            sse_out[rid[gone]] = sse[gone]
+            status_out[rid[gone]] = st[gone]
+            rid, theta, sse, a_mat, g, noise = rid[keep], theta[:, keep], sse[keep], a_mat[:, :, keep], \
+                g[:, keep], noise[keep]
+            lam, nu, dmax, it, st, exact = lam[keep], nu[keep], dmax[:, keep], it[keep], st[keep], exact[keep]
+            xa, qa, swa, ta = xa[keep], qa[keep], swa[keep], ta[keep]
+            free, gn_ok, pred_gn = free[:, keep], gn_ok[keep], pred_gn[keep]
 
-    for _ in range(max_iter):
-        if act.size == 0:
-            break
-        th, lo, hi = theta[act], tr.lo, tr.hi
-        # projected active set: on a bound with descent pointing outward
-        fixed = ((th <= lo) & (g > 0)) | ((th >= hi) & (g < 0))
-        free = ~fixed
-        gf = np.where(free, g, 0.0)
-        af = _restrict(a_mat, free)
-
-        # convergence: predicted reduction of the undamped (Gauss-Newton) step
-        dscale = np.sqrt(np.maximum(np.diagonal(af, axis1=1, axis2=2), 1e-300))
-        gn, ok_gn = _cholesky_solve(af / (dscale[:, :, None] * dscale[:, None, :]), -gf / dscale)
-        pred_gn = -np.einsum("ij,ij->i", gf / dscale, gn)
-        s_cur = sse[act]
-        done = ok_gn & (pred_gn <= GN_REL_TOL * s_cur + exact[act])
-        done |= s_cur <= exact[act]
-        status[act[done]] = _CONVERGED
-        if done.any():  # converged rows leave before the costly trial evaluation
-            keep = ~done
-            act, a_mat, g, noise = act[keep], a_mat[keep], g[keep], noise[keep]
-            d = tuple(v[keep] for v in d)
-            th, free, gf, af = th[keep], free[keep], gf[keep], af[keep]
-            ok_gn, pred_gn, s_cur = ok_gn[keep], pred_gn[keep], s_cur[keep]
-            if act.size == 0:
+        # -- fresh rows from the queue top the working set up --
+        if queued < n_rows and rid.size <= block - block // 4:
+            new = np.arange(queued, min(n_rows, queued + block - rid.size))
+            queued = new[-1] + 1
+            s = src[new]
+            th_n = theta0[new].T.copy()
+            x_n, q_n, sw_n, t_n = x[s], q[s], sw_all[s], t[s]
+            sse_n, a_n, g_n, noise_n, fin = evaluate(th_n, x_n, q_n, sw_n, t_n)
+            sse_out[new] = sse_n
+            status_out[new[~fin]] = _NONFINITE
+            if not fin.all():
+                new, th_n, sse_n, a_n, g_n, noise_n = new[fin], th_n[:, fin], sse_n[fin], a_n[:, :, fin], \
+                    g_n[:, fin], noise_n[fin]
+                x_n, q_n, sw_n, t_n = x_n[fin], q_n[fin], sw_n[fin], t_n[fin]
+            m = new.size
+            if m:
+                free_n = ~(((th_n <= lo) & (g_n > 0)) | ((th_n >= hi) & (g_n < 0)))
+                _, ok_n, pred_n = _gauss_newton(a_n, g_n, free_n)
+                exact_n = exact_all[src[new]]
+                st_n = np.full(m, _RUNNING)
+                if max_iter <= 0:
+                    fixed_n = ~free_n
+                    st_n[:] = np.where(_gauss_newton(a_n, g_n, ~fixed_n)[1], _MAX_ITER, _SINGULAR)
+                else:
+                    done_n = (ok_n & (pred_n <= GN_REL_TOL * sse_n + exact_n)) | (sse_n <= exact_n)
+                    st_n[done_n] = _CONVERGED
+                fresh = st_n == _RUNNING
+                if not fresh.all():
+                    gone = ~fresh
+                    theta_out[new[gone]] = th_n[:, gone].T
+                    status_out[new[gone]] = st_n[gone]
+                cat = lambda old, add, axis=0: np.concatenate([old, add], axis=axis)  # noqa: E731
+                f_ = fresh
+                rid = cat(rid, new[f_])
+                theta = cat(theta, th_n[:, f_], 1)
+                sse = cat(sse, sse_n[f_])
+                a_mat = cat(a_mat, a_n[:, :, f_], 2)
+                g = cat(g, g_n[:, f_], 1)
+                noise = cat(noise, noise_n[f_])
+                lam = cat(lam, np.full(f_.sum(), 1e-3))
+                nu = cat(nu, np.full(f_.sum(), 2.0))
+                dmax = cat(dmax, np.abs(np.diagonal(a_n, axis1=0, axis2=1).T[:, f_]), 1)
+                it = cat(it, np.zeros(f_.sum(), dtype=np.int64))
+                st = cat(st, st_n[f_])
+                exact = cat(exact, exact_n[f_])
+                xa, qa, swa, ta = cat(xa, x_n[f_]), cat(qa, q_n[f_]), cat(swa, sw_n[f_]), cat(ta, t_n[f_])
+                free, gn_ok, pred_gn = cat(free, free_n[:, f_], 1), cat(gn_ok, ok_n[f_]), cat(pred_gn, pred_n[f_])
+        if rid.size == 0:
+            if queued >= n_rows:
                 break
+            continue
 
-        # damped, Jacobi-scaled step
-        dm = np.maximum(diag_max[act], np.diagonal(af, axis1=1, axis2=2))
-        diag_max[act] = dm
-        ds = np.sqrt(np.where(dm > 0, dm, 1.0))
-        a_s = af / (ds[:, :, None] * ds[:, None, :])
-        a_s = a_s + lam[act][:, None, None] * np.eye(k)
-        step_s, ok = _cholesky_solve(a_s, -gf / ds)
+        # -- damped, Jacobi-scaled step --
+        diag = np.diagonal(a_mat, axis1=0, axis2=1).T          # (k, R)
+        diag_f = np.where(free, diag, 1.0)
+        dmax = np.maximum(dmax, diag_f)
+        ds = np.sqrt(np.where(dmax > 0, dmax, 1.0))
+        gf_s = np.where(free, g, 0.0) / ds
+        mat = _scaled_restricted(a_mat, free, ds)
+        for j in range(k):
+            mat[j][j] = mat[j][j] + lam
+        step_s, ok = _cholesky_vectors(mat, -gf_s)
         step = np.where(free, step_s / ds, 0.0)
-        trial = np.clip(th + step, lo, hi)
-        step = trial - th
-        pred = -(2.0 * np.einsum("ij,ij->i", step, g) + np.einsum("ij,ijk,ik->i", step, a_mat, step))
+        trial = np.clip(theta + step, lo, hi)
+        step = trial - theta
+        quad = _dot_k(step, [_dot_k(a_mat[i], step) for i in range(k)])
+        pred = -(2.0 * _dot_k(step, g) + quad)
 
-        sse_t, a_t, g_t, noise_t, fin_t = _evaluate(model, tr, trial, *d)
+        sse_t, a_t, g_t, noise_t, fin_t = evaluate(trial, xa, qa, swa, ta)
         # Close to the minimum SSE differences drown in rounding; there a step
         # that shrinks the (scaled) gradient without raising the SSE beyond its
         # rounding noise is progress too.
-        polish = ok_gn & (pred_gn <= POLISH_REL_TOL * s_cur)
-        gt_f = np.where(free, g_t, 0.0) / ds
-        shrinks = np.einsum("ij,ij->i", gt_f, gt_f) < np.einsum("ij,ij->i", gf / ds, gf / ds)
-        better = fin_t & ok & (
-            (sse_t < s_cur) | (polish & (sse_t <= s_cur + noise) & shrinks))
+        polish = gn_ok & (pred_gn <= POLISH_REL_TOL * sse)
+        gt_s = np.where(free, g_t, 0.0) / ds
+        shrinks = _dot_k(gt_s, gt_s) < _dot_k(gf_s, gf_s)
+        better = fin_t & ok & ((sse_t < sse) | (polish & (sse_t <= sse + noise) & shrinks))
         with np.errstate(divide="ignore", invalid="ignore"):
-            rho = np.where(pred > 0, (s_cur - sse_t) / pred, 0.0)
-        lam_a, nu_a = lam[act], nu[act]
-        lam_a = np.where(better, lam_a * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3),
-                         lam_a * nu_a)
-        nu_a = np.where(better, 2.0, nu_a * 2.0)
-        lam[act], nu[act] = lam_a, nu_a
-        theta[act[better]] = trial[better]
-        sse[act[better]] = sse_t[better]
-        a_mat = np.where(better[:, None, None], a_t, a_mat)
-        g = np.where(better[:, None], g_t, g)
+            rho = np.where(pred > 0, (sse - sse_t) / pred, 0.0)
+        lam = np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), lam * nu)
+        nu = np.where(better, 2.0, nu * 2.0)
+        theta = np.where(better, trial, theta)
+        sse = np.where(better, sse_t, sse)
+        a_mat = np.where(better, a_t, a_mat)
+        g = np.where(better, g_t, g)
         noise = np.where(better, noise_t, noise)
+        it += 1
 
         # no representable step lowers the SSE any more
-        stuck = ~better & (lam_a > MAX_DAMPING)
-        near = ok_gn & (pred_gn <= LOOSE_REL_TOL * s_cur + exact[act])
-        status[act[stuck & near]] = _CONVERGED
-        status[act[stuck & ~near & ~ok_gn]] = _SINGULAR
-        status[act[stuck & ~near & ok_gn]] = _STALLED
+        stuck = ~better & (lam > MAX_DAMPING)
+        if stuck.any():
+            near = gn_ok & (pred_gn <= LOOSE_REL_TOL * sse + exact)
+            st[stuck & near] = _CONVERGED
+            st[stuck & ~near & ~gn_ok] = _SINGULAR
+            st[stuck & ~near & gn_ok] = _STALLED
 
-        running = status[act] == _RUNNING
-        if not running.all():
-            act, a_mat, g, noise = act[running], a_mat[running], g[running], noise[running]
-            d = tuple(v[running] for v in d)
-
-    if act.size:
-        # out of iterations: say singular if the normal matrix is
-        fixed = ((theta[act] <= tr.lo) & (g > 0)) | ((theta[act] >= tr.hi) & (g < 0))
-        af = _restrict(a_mat, ~fixed)
-        dscale = np.sqrt(np.maximum(np.diagonal(af, axis1=1, axis2=2), 1e-300))
-        _, ok_gn = _cholesky_solve(af / (dscale[:, :, None] * dscale[:, None, :]), np.zeros((act.size, k)))
-        status[act] = np.where(ok_gn, _MAX_ITER, _SINGULAR)
-    return tr.to_params(theta), sse, status
+    return tr.to_params(theta_out), sse_out, status_out
 
 
-def _restrict(a_mat, free):
-    """Normal matrix with frozen parameters decoupled (identity rows/cols)."""
-    both = free[:, :, None] & free[:, None, :]
-    eye = np.eye(a_mat.shape[1], dtype=bool)[None]
-    return np.where(both, a_mat, np.where(eye, 1.0, 0.0))
+def _params_batch_last(tr, theta):
+    """Model parameters (k, R) from fitted coordinates theta (k, R)."""
+    with np.errstate(over="ignore"):
+        return np.where(tr.log[:, None], np.exp(theta), theta)
+
+
+def _dot_k(a, b):
+    """sum_i a[i] * b[i] over the short parameter axis, per row (R,).
+
+    Added in a fixed order, element by element: a reduction over the first
+    axis of a (k, R) array may be ordered differently depending on R, and a
+    row's result must not depend on how many rows it is solved with.
+    """
+    acc = a[0] * b[0]
+    for i in range(1, len(a)):
+        acc = acc + a[i] * b[i]
+    return acc
+
+
+def _scaled_restricted(a_mat, free, d):
+    """Lower triangle (list of lists of (R,) vectors) of D^-1 A_f D^-1, where
+    A_f is ``a_mat`` with frozen parameters decoupled (identity rows/cols)."""
+    k = a_mat.shape[0]
+    out = [[None] * k for _ in range(k)]
+    for i in range(k):
+        for j in range(i + 1):
+            if i == j:
+                out[i][i] = np.where(free[i], a_mat[i, i], 1.0) / (d[i] * d[i])
+            else:
+                out[i][j] = np.where(free[i] & free[j], a_mat[i, j], 0.0) / (d[i] * d[j])
+    return out
+
+
+def _gauss_newton(a_mat, g, free):
+    """Undamped step of the Jacobi-scaled, restricted normal equations.
+
+    Returns (scaled step (k, R), ok (R,), predicted SSE reduction (R,)).
+    """
+    diag = np.diagonal(a_mat, axis1=0, axis2=1).T
+    dscale = np.sqrt(np.maximum(np.where(free, diag, 1.0), 1e-300))
+    gf_s = np.where(free, g, 0.0) / dscale
+    step, ok = _cholesky_vectors(_scaled_restricted(a_mat, free, dscale), -gf_s)
+    return step, ok, -_dot_k(gf_s, step)
+
+
+def _cholesky_vectors(low_in, b):
+    """Solve m x = b for many small symmetric positive definite systems.
+
+    ``low_in`` is the lower triangle as a list of lists of (R,) vectors, b is
+    (k, R). Returns (x (k, R), ok (R,)); ok is False where a pivot falls below
+    PIVOT_RTOL of its diagonal (numerically singular), and x is 0 there.
+    Written out entry by entry: for k <= 4 this is a few dozen vector
+    operations, far cheaper than a LAPACK call per tiny matrix.
+    """
+    k = b.shape[0]
+    low = [[None] * k for _ in range(k)]
+    ok = np.ones(b.shape[1], dtype=bool)
+    with np.errstate(all="ignore"):
+        for j in range(k):
+            piv = low_in[j][j]
+            for m in range(j):
+                piv = piv - low[j][m] * low[j][m]
+            good = np.isfinite(piv) & (piv > PIVOT_RTOL * np.abs(low_in[j][j])) & (piv > 0)
+            ok &= good
+            low[j][j] = np.sqrt(np.where(good, piv, 1.0))
+            for i in range(j + 1, k):
+                dot = low_in[i][j]
+                for m in range(j):
+                    dot = dot - low[i][m] * low[j][m]
+                low[i][j] = dot / low[j][j]
+        y = [None] * k
+        for i in range(k):
+            acc = b[i]
+            for m in range(i):
+                acc = acc - low[i][m] * y[m]
+            y[i] = acc / low[i][i]
+        sol = np.empty_like(b)
+        for i in reversed(range(k)):
+            acc = y[i]
+            for m in range(i + 1, k):
+                acc = acc - low[m][i] * sol[m]
+            sol[i] = acc / low[i][i]
+    return np.where(ok & np.isfinite(sol), sol, 0.0), ok
 
 
 def _cholesky_solve(a_mat, b):
