@@ -30,8 +30,11 @@ CONTENT_FORMATS = {
 }
 UNIT_PARAMS = ("pressure_unit", "loading_unit", "sample_mass_g")
 # whole-input intake errors: size -> 413, cannot even be parsed -> 400, else 422
+# internal_error means a defect in intake itself: say so honestly with a 500
+# (the hostile-input tests then catch it) rather than blame the client
 _INTAKE_STATUS = {"input_too_large": 413, "not_utf8": 400, "unparseable": 400,
-                  "malformed_row": 400}
+                  "malformed_row": 400, "too_deeply_nested": 400, "unsupported_source": 400,
+                  "internal_error": 500}
 OPTION_PARAMS = ("models", "criterion", "weighting")
 RESULT_TABLES = {"summary": "summaries", "fits": "fits", "materials": "materials"}
 # Requests with the same Idempotency-Key are serialised by one of these; a
@@ -97,6 +100,26 @@ def _check_size() -> None:
                       slug="too-large", max_bytes=limit)
 
 
+def _check_unsized_body_end(read: int) -> None:
+    """413 for a body of unannounced length (chunked) that goes on past the limit.
+
+    Werkzeug refuses a Content-Length over MAX_CONTENT_LENGTH before reading,
+    but a chunked body it just stops reading at the limit, without an error:
+    what ``get_data`` returns is then the first ``limit`` bytes, not the body.
+    """
+    limit = current_app.config["MAX_CONTENT_LENGTH"]
+    if request.content_length is not None or read < limit:
+        return
+    try:
+        more = request.environ["wsgi.input"].read(1)
+    except (OSError, ValueError):  # broken chunk framing past the limit: still too large
+        more = b"?"
+    if more:
+        raise Problem(413, "Content Too Large", f"the body goes on past {limit} bytes; this "
+                      f"service takes at most {limit} bytes per batch (split the batch)",
+                      slug="too-large", max_bytes=limit)
+
+
 @bp.post("/batches")
 @require("submit")
 def submit_batch():
@@ -110,7 +133,8 @@ def submit_batch():
     if key is not None and not (0 < len(key) <= 200 and key.isprintable()):
         raise Problem(400, "Bad Request", "Idempotency-Key must be 1 to 200 printable characters",
                       slug="bad-idempotency-key")
-    body = request.get_data(cache=False)  # Werkzeug stops at MAX_CONTENT_LENGTH with 413
+    body = request.get_data(cache=False)
+    _check_unsized_body_end(len(body))
     if key is None:
         return _store_and_queue(runtime, _parse(runtime, body, fmt, label, defaults), body, fmt,
                                 options, new_batch_id())
@@ -152,7 +176,8 @@ def _parse(runtime, body: bytes, fmt: str, label, defaults):
         batch = read_batch(body, fmt, batch_label=label, defaults=defaults or None, limits=limits)
     except IntakeError as exc:
         status = max((_INTAKE_STATUS.get(i.code, 422) for i in exc.issues), default=422)
-        title = {400: "Bad Request", 413: "Content Too Large"}.get(status, "Unprocessable Content")
+        title = {400: "Bad Request", 413: "Content Too Large",
+                 500: "Internal Server Error"}.get(status, "Unprocessable Content")
         raise _issues_problem(status, title, f"the {fmt} body could not be read as a batch: {exc}",
                               exc.issues)
     if not batch.isotherms:
