@@ -7,10 +7,11 @@ distributed mode, the local process pool in embedded mode).
 from __future__ import annotations
 
 import logging
+import time
 from dataclasses import dataclass
 from typing import Callable
 
-from flask import Flask
+from flask import Flask, Response, g, request
 
 from worker.store import Store
 
@@ -54,7 +55,10 @@ def _celery_enqueue(batch_id: str, chunk_index: int) -> None:
 
 
 def create_app(settings: Settings | None = None,
-               enqueue: Callable[[str, int], None] | None = None) -> Flask:
+               enqueue: Callable[[str, int], None] | None = None,
+               queue_depth: Callable[[], int | None] | None = None) -> Flask:
+    """``queue_depth`` counts waiting chunk jobs for /metrics; distributed mode
+    reads the Celery queue in Redis when it is not given."""
     settings = settings or load_settings()
     if enqueue is None:
         if settings.broker_url:
@@ -64,7 +68,11 @@ def create_app(settings: Settings | None = None,
 
             executor = EmbeddedExecutor(settings.data_dir, settings.embedded_workers)
             executor.resume()
-            enqueue = executor.enqueue
+            enqueue, queue_depth = executor.enqueue, executor.pending_chunks
+    if queue_depth is None and settings.broker_url:
+        from .metrics import broker_queue_depth
+
+        queue_depth = broker_queue_depth(settings.broker_url)
 
     app = Flask(__name__)
     # Werkzeug refuses longer bodies with 413 before reading them
@@ -91,4 +99,46 @@ def create_app(settings: Settings | None = None,
     def openapi_document():
         return document()
 
+    from . import metrics
+
+    registry = metrics.make_registry(app.extensions["sorbrank"].store, queue_depth)
+
+    @app.get("/metrics")
+    def prometheus_metrics():
+        # open like /healthz: counts and durations only, no ids, no data
+        return Response(metrics.exposition(registry),
+                        headers={"Content-Type": metrics.CONTENT_TYPE})
+
+    _log_requests(app)
     return app
+
+
+request_log = logging.getLogger("sorbrank.http")
+QUIET_PATHS = ("/healthz", "/readyz", "/metrics")
+
+
+def _log_requests(app: Flask) -> None:
+    """One JSON line per request: method, path, status, duration, batch id.
+
+    Headers are never logged (they carry the bearer tokens), nor query strings.
+    """
+    @app.before_request
+    def start_clock():
+        g.request_started_s = time.perf_counter()
+
+    @app.after_request
+    def log_request(response):
+        fields = {"method": request.method, "path": request.path,
+                  "status": response.status_code, "client": g.get("client")}
+        if "request_started_s" in g:
+            fields["duration_s"] = round(time.perf_counter() - g.request_started_s, 4)
+        batch_id = (request.view_args or {}).get("batch_id")
+        if response.status_code == 202 and response.is_json:  # an accepted batch
+            body = response.get_json(silent=True) or {}
+            batch_id, fields["isotherm_count"] = body.get("batch_id"), body.get("accepted")
+        fields["batch_id"] = batch_id
+        # probes and scrapes arrive every few seconds: DEBUG unless they fail
+        quiet = request.path in QUIET_PATHS and response.status_code < 400
+        request_log.log(logging.DEBUG if quiet else logging.INFO, "%s %s %s", request.method,
+                        request.path, response.status_code, extra=fields)
+        return response

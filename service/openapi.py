@@ -303,6 +303,19 @@ def document() -> dict:
                         "responses": {"200": {"description": "alive", "content": {
                             "application/json": {"schema": {"type": "object"}}}}}},
             },
+            "/metrics": {
+                "get": {"operationId": "metrics", "security": [],
+                        "summary": "Prometheus metrics (text exposition format); open like the "
+                                   "probes: counts, durations and sizes only",
+                        "description": "sorbrank_batches_accepted_total, sorbrank_batches_done_total, "
+                                       "sorbrank_batches_failed_total, sorbrank_batches_partial_total, "
+                                       "sorbrank_isotherms_fitted_total{model}, "
+                                       "sorbrank_chunk_fit_duration_seconds (histogram), "
+                                       "sorbrank_queue_depth_chunks, sorbrank_store_size_bytes; "
+                                       "derived from the store, so every API process reports the same",
+                        "responses": {"200": {"description": "metrics", "content": {
+                            "text/plain": {"schema": {"type": "string"}}}}}},
+            },
             "/readyz": {
                 "get": {"operationId": "readyz", "summary": "Store writable and (distributed "
                                                             "mode) broker reachable",

@@ -1,17 +1,23 @@
 """The Celery application. Configuration comes from the environment only:
 
 SORBRANK_BROKER_URL           redis://host:port/db (required by ``sorbrank worker``)
-SORBRANK_DATA_DIR             store root shared with the API (default ./data)
+SORBRANK_DATA_DIR             store root shared with the API: a path or a URI
+                              pyarrow.fs understands (default ./data)
 SORBRANK_TASK_SOFT_LIMIT_S    soft time limit per chunk, seconds (default 1500)
 SORBRANK_TASK_HARD_LIMIT_S    hard time limit per chunk, seconds (default 1800)
 SORBRANK_TASK_MAX_RETRIES     retries after a failed chunk (default 2)
+SORBRANK_LOG_LEVEL            DEBUG, INFO, WARNING or ERROR (default INFO); logs are
+                              JSON lines (worker/logs.py), in every pool process
 """
 from __future__ import annotations
 
+import logging
 import os
-from pathlib import Path
 
 from celery import Celery
+from celery.signals import setup_logging
+
+from . import logs
 
 
 def env_int(name: str, default: int) -> int:
@@ -27,8 +33,9 @@ def env_int(name: str, default: int) -> int:
     return value
 
 
-def data_dir() -> Path:
-    return Path(os.environ.get("SORBRANK_DATA_DIR") or "./data")
+def data_dir() -> str:
+    # a string, not a Path: Path("s3://bucket/x") would fold the "//"
+    return os.environ.get("SORBRANK_DATA_DIR") or "./data"
 
 
 SOFT_LIMIT_S = env_int("SORBRANK_TASK_SOFT_LIMIT_S", 1500)
@@ -59,3 +66,10 @@ app.conf.update(
     broker_connection_timeout=3,
     worker_hijack_root_logger=False,
 )
+
+
+@setup_logging.connect
+def json_logs(loglevel=None, **_) -> None:
+    # connecting here tells Celery not to configure logging itself; forked pool
+    # processes inherit this handler. Celery's --loglevel wins over the environment.
+    logs.configure(logging.getLevelName(loglevel) if isinstance(loglevel, int) else None)

@@ -14,7 +14,7 @@ from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
-from . import jobs
+from . import jobs, logs
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -29,12 +29,19 @@ class EmbeddedExecutor:
         self.store = Store(data_dir)
         self.workers = workers or os.cpu_count() or 1
         self._lock = threading.Lock()
+        self._pending = 0  # chunks submitted and not yet finished (the queue depth)
         self._pool = self._new_pool()
 
     def _new_pool(self) -> ProcessPoolExecutor:
         # spawn, not fork: the parent runs server threads whose locks a fork would copy
+        # spawned children start without logging: give them the JSON lines too
         return ProcessPoolExecutor(max_workers=self.workers,
-                                   mp_context=multiprocessing.get_context("spawn"))
+                                   mp_context=multiprocessing.get_context("spawn"),
+                                   initializer=logs.configure_from_env)
+
+    def pending_chunks(self) -> int:
+        with self._lock:
+            return self._pending
 
     def enqueue(self, batch_id: str, chunk_index: int) -> None:
         with self._lock:
@@ -43,9 +50,12 @@ class EmbeddedExecutor:
             except BrokenProcessPool:
                 self._pool = self._new_pool()
                 future = self._pool.submit(_run, str(self.store.root), batch_id, chunk_index)
+            self._pending += 1
         future.add_done_callback(lambda f: self._settle(f, batch_id, chunk_index))
 
     def _settle(self, future: Future, batch_id: str, chunk_index: int) -> None:
+        with self._lock:
+            self._pending -= 1
         if future.cancelled():
             return  # shutting down: the chunk stays unsettled and resumes next start
         exc = future.exception()

@@ -9,11 +9,13 @@ whatever the disk says is unfinished.
 from __future__ import annotations
 
 import logging
+import time
 from dataclasses import asdict
 from datetime import datetime
 from typing import Callable
 
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from .isotherm import Batch, Conditions, MixtureRequest
 from .pipeline import FitOptions, process_batch
@@ -139,27 +141,49 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
     started_at = iso_utc(utc_now())
     store.write_chunk_status(batch_id, chunk_index,
                              {"state": "running", "attempts": attempts, "started_at": started_at})
+    fields = {"batch_id": batch_id, "chunk": chunk_index,
+              "isotherm_count": manifest["chunks"][chunk_index]["isotherms"], "attempt": attempts}
+    log.info("chunk started", extra=fields)
+    started_s = time.monotonic()
+    try:
+        status = _fit_and_write(store, manifest, batch_id, chunk_index)
+    except Exception as exc:
+        log.warning("chunk stopped by %s: %s", type(exc).__name__, exc, extra={
+            **fields, "duration_s": round(time.monotonic() - started_s, 3), "outcome": "error"})
+        raise
+    status.update(attempts=attempts, started_at=started_at, finished_at=iso_utc(utc_now()))
+    store.write_chunk_status(batch_id, chunk_index, status)
+    log.info("chunk finished", extra={**fields, "duration_s": status["fit_duration_s"],
+                                      "outcome": "done"})
+    return status
 
+
+def _fit_and_write(store: Store, manifest: dict, batch_id: str, chunk_index: int) -> dict:
+    """Fit one chunk, write its three tables; the "done" status to record (not yet written)."""
+    started_s = time.monotonic()
     isotherms = table_to_isotherms(store.read_chunk("inputs", batch_id, chunk_index))
     result = process_batch(_batch_from_manifest(manifest, isotherms), FitOptions(**manifest["options"]))
     accepted_at = manifest["accepted_at"]
-    store.write_table("fits", batch_id, chunk_index, _with_accepted_at(result.fits_table(), accepted_at))
+    fits = result.fits_table()
+    store.write_table("fits", batch_id, chunk_index, _with_accepted_at(fits, accepted_at))
     if result.material_rows:
         materials = pa.Table.from_pylist(result.material_rows)
         store.write_table("materials", batch_id, chunk_index, _with_accepted_at(materials, accepted_at))
     summaries = _with_accepted_at(result.summary_table(), accepted_at)
     store.write_table("summaries", batch_id, chunk_index, summaries)
 
-    status = {
+    # operational figures, read back by the metrics endpoint: isotherms each
+    # model was fitted to (where it applies), and the chunk's wall time
+    fitted = fits.filter(fits["applicable"])
+    fitted_by_model = {row["values"]: row["counts"]
+                       for row in pc.value_counts(fitted["model"]).to_pylist()}
+    return {
         "state": "done",
-        "attempts": attempts,
-        "started_at": started_at,
-        "finished_at": iso_utc(utc_now()),
         "isotherms": len(isotherms),
         "done": summaries.num_rows,
+        "fit_duration_s": round(time.monotonic() - started_s, 3),
+        "fitted_by_model": fitted_by_model,
     }
-    store.write_chunk_status(batch_id, chunk_index, status)
-    return status
 
 
 def record_chunk_failure(store: Store, batch_id: str, chunk_index: int, error: str) -> None:
@@ -177,6 +201,9 @@ def record_chunk_failure(store: Store, batch_id: str, chunk_index: int, error: s
         "done": 0,
         "error": error,
     })
+    log.error("chunk failed: %s", error, extra={
+        "batch_id": batch_id, "chunk": chunk_index, "outcome": "failed",
+        "isotherm_count": manifest["chunks"][chunk_index]["isotherms"]})
 
 
 def execute_chunk(store: Store, batch_id: str, chunk_index: int, *, attempts: int = 2) -> dict:
@@ -213,7 +240,17 @@ def finalize_batch(store: Store, batch_id: str) -> dict | None:
              "counts": status["counts"]}
     if store.read_final(batch_id) != final:
         store.write_final(batch_id, final)
+        accepted_at, finished_at = status["timings"]["accepted_at"], final["finished_at"]
+        duration_s = None if not finished_at else round(
+            (_parse_utc(finished_at) - _parse_utc(accepted_at)).total_seconds(), 3)
+        log.info("batch finished: %s", final["state"], extra={
+            "batch_id": batch_id, "outcome": final["state"], "duration_s": duration_s,
+            "isotherm_count": status["counts"]["accepted"]})
     return final
+
+
+def _parse_utc(text: str) -> datetime:
+    return datetime.fromisoformat(text.replace("Z", "+00:00"))
 
 
 def batch_status(store: Store, batch_id: str) -> dict | None:

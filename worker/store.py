@@ -13,25 +13,30 @@ our own listings skip such names), is fsynced, then renamed over a name that
 depends only on (table, batch, chunk). A retried job therefore replaces its
 own file instead of adding a copy, and a writer killed half-way leaves only an
 ignored dot-file behind.
+
+The root is a local path or a URI that pyarrow.fs understands (file://, s3://,
+gs://, ...); every file operation goes through that ``pyarrow.fs.FileSystem``
+(``worker/fs.py`` says how each kind of filesystem makes a write atomic).
 """
 from __future__ import annotations
 
-import contextlib
 import json
 import os
+import posixpath
 import re
 import secrets
-import tempfile
 from dataclasses import dataclass
 from datetime import datetime, timezone
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 from typing import Any, Callable, Iterable
 
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.dataset as ds
+import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
+from . import fs
 from .isotherm import Isotherm
 
 SCHEMA_VERSION = "1"
@@ -42,6 +47,7 @@ TABLES = ("inputs", "summaries", "fits", "materials")
 # and strict, so an id taken from a URL can never name a path outside the store.
 BATCH_ID_PATTERN = re.compile(r"^b-\d{8}-\d{6}-\d{6}-[0-9a-f]{8}$")
 _KEY_HASH_PATTERN = re.compile(r"^[0-9a-f]{64}$")
+_CHUNK_STATUS_PATTERN = re.compile(r"^chunk-[0-9]{5}\.json$")
 _PARTITIONING = ds.partitioning(pa.schema([("batch_id", pa.string())]), flavor="hive")
 
 
@@ -73,30 +79,9 @@ def _check_batch_id(batch_id: str) -> str:
     return batch_id
 
 
-def _fsync_dir(path: Path) -> None:
-    # the rename itself must survive a power cut, not only the file's bytes
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def atomic_write(path: Path, write: Callable[[Any], None]) -> None:
-    """Write via ``write(fileobj)`` to a dot-temp file, fsync, rename to ``path``."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            write(fh)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-        raise
-    _fsync_dir(path.parent)
+    """Local files: write via ``write(fileobj)`` to a dot-temp file, fsync, rename."""
+    fs.local_atomic_write(path, write)
 
 
 def _json_default(value: Any) -> Any:
@@ -107,8 +92,12 @@ def _json_default(value: Any) -> Any:
     raise TypeError(f"cannot store {type(value).__name__} as JSON")
 
 
+def _json_bytes(obj: Any) -> bytes:
+    return json.dumps(obj, indent=1, sort_keys=True, default=_json_default).encode()
+
+
 def write_json(path: Path, obj: Any) -> None:
-    data = json.dumps(obj, indent=1, sort_keys=True, default=_json_default).encode()
+    data = _json_bytes(obj)
     atomic_write(path, lambda fh: fh.write(data))
 
 
@@ -185,25 +174,48 @@ def table_to_isotherms(table: pa.Table) -> list[Isotherm]:
 # -- the store ------------------------------------------------------------------
 
 class Store:
-    def __init__(self, root: str | os.PathLike):
-        self.root = Path(root)
+    """The store under ``root``: a local path, a URI pyarrow.fs understands, or
+    a path inside an explicitly given ``filesystem``."""
+
+    def __init__(self, root: str | os.PathLike, filesystem: pafs.FileSystem | None = None):
+        self.fs, self.base = fs.open_root(root, filesystem)
+        local = fs.is_local(self.fs)
+        # local stores hand out real Paths; elsewhere paths are pure names
+        self._path_type = Path if local else PurePosixPath
+        # what recreates this store in another process (str(root))
+        self.root = Path(self.base) if local else os.fspath(root)
+
+    def _join(self, *parts: str):
+        return self._path_type(posixpath.join(self.base, *parts))
 
     # paths: every one is built from a validated batch id and an int
     def table_path(self, table: str, batch_id: str, chunk_index: int) -> Path:
         if table not in TABLES:
             raise ValueError(f"unknown table {table!r}")
-        return (self.root / table / f"batch_id={_check_batch_id(batch_id)}"
-                / f"chunk-{int(chunk_index):05d}.parquet")
+        return self._join(table, f"batch_id={_check_batch_id(batch_id)}",
+                          f"chunk-{int(chunk_index):05d}.parquet")
 
     def batch_dir(self, batch_id: str) -> Path:
-        return self.root / "batches" / _check_batch_id(batch_id)
+        return self._join("batches", _check_batch_id(batch_id))
+
+    def _write_json(self, path, obj: Any) -> None:
+        data = _json_bytes(obj)
+        fs.atomic_write(self.fs, str(path), lambda fh: fh.write(data))
+
+    def _read_json(self, path) -> Any | None:
+        data = fs.read_bytes(self.fs, str(path))
+        return None if data is None else json.loads(data)
+
+    def check_writable(self) -> None:
+        """Create, sync and remove a probe file under the root; OSError when that fails."""
+        probe = str(self._join(".probe", f"{os.getpid()}-{secrets.token_hex(4)}"))
+        fs.atomic_write(self.fs, probe, lambda fh: fh.write(b"ok"))
+        self.fs.delete_file(probe)
 
     def writable(self) -> bool:
         """True when a file can be created, synced and removed under the root."""
         try:
-            probe = self.root / ".probe" / f"{os.getpid()}-{secrets.token_hex(4)}"
-            atomic_write(probe, lambda fh: fh.write(b"ok"))
-            probe.unlink()
+            self.check_writable()
             return True
         except OSError:
             return False
@@ -216,33 +228,36 @@ class Store:
         meta[SCHEMA_VERSION_KEY] = SCHEMA_VERSION.encode()
         data = data.replace_schema_metadata(meta)
         path = self.table_path(table, batch_id, chunk_index)
-        atomic_write(path, lambda fh: pq.write_table(data, fh))
+        fs.atomic_write(self.fs, str(path), lambda fh: pq.write_table(data, fh))
         return path
 
     def read_chunk(self, table: str, batch_id: str, chunk_index: int) -> pa.Table:
         path = self.table_path(table, batch_id, chunk_index)
-        data = pq.read_table(path, partitioning=None)
+        data = pq.read_table(str(path), filesystem=self.fs, partitioning=None)
         version = (data.schema.metadata or {}).get(SCHEMA_VERSION_KEY, b"?").decode()
         if version != SCHEMA_VERSION:
             raise StoreError(f"{path}: schema version {version}, this code reads {SCHEMA_VERSION}")
         return data
 
     def has_chunk(self, table: str, batch_id: str, chunk_index: int) -> bool:
-        return self.table_path(table, batch_id, chunk_index).is_file()
+        path = str(self.table_path(table, batch_id, chunk_index))
+        return self.fs.get_file_info(path).type == pafs.FileType.File
 
     def dataset(self, table: str, batch_id: str | None = None) -> ds.Dataset | None:
         """Chunks of ``table`` across batches (or of one batch), schemas unified.
 
         None when there are no data files yet.
         """
-        base = self.root / table
-        scan = base / f"batch_id={_check_batch_id(batch_id)}" if batch_id else base
-        if table not in TABLES or not scan.is_dir():
+        if table not in TABLES:
+            return None
+        base = str(self._join(table))
+        scan = str(self._join(table, f"batch_id={_check_batch_id(batch_id)}")) if batch_id else base
+        if self.fs.get_file_info(scan).type != pafs.FileType.Directory:
             return None
         factory = ds.FileSystemDatasetFactory(
-            pa.fs.LocalFileSystem(), pa.fs.FileSelector(str(scan), recursive=True),
+            self.fs, pafs.FileSelector(scan, recursive=True),
             ds.ParquetFileFormat(),
-            ds.FileSystemFactoryOptions(partitioning=_PARTITIONING, partition_base_dir=str(base),
+            ds.FileSystemFactoryOptions(partitioning=_PARTITIONING, partition_base_dir=base,
                                         selector_ignore_prefixes=[".", "_"],
                                         # one damaged file must not hide every other batch
                                         exclude_invalid_files=True))
@@ -265,72 +280,69 @@ class Store:
 
     # manifests and chunk status
     def write_manifest(self, manifest: dict) -> None:
-        write_json(self.batch_dir(manifest["batch_id"]) / "manifest.json", manifest)
+        self._write_json(self.batch_dir(manifest["batch_id"]) / "manifest.json", manifest)
 
     def read_manifest(self, batch_id: str) -> dict | None:
-        return read_json(self.batch_dir(batch_id) / "manifest.json")
+        return self._read_json(self.batch_dir(batch_id) / "manifest.json")
 
     def write_chunk_status(self, batch_id: str, chunk_index: int, status: dict) -> None:
-        write_json(self.batch_dir(batch_id) / f"chunk-{int(chunk_index):05d}.json", status)
+        self._write_json(self.batch_dir(batch_id) / f"chunk-{int(chunk_index):05d}.json", status)
 
     def read_chunk_statuses(self, batch_id: str) -> dict[int, dict]:
         out = {}
-        for path in sorted(self.batch_dir(batch_id).glob("chunk-[0-9][0-9][0-9][0-9][0-9].json")):
-            status = read_json(path)
+        names = sorted(info.base_name for info in fs.list_dir(self.fs, str(self.batch_dir(batch_id)))
+                       if _CHUNK_STATUS_PATTERN.fullmatch(info.base_name))
+        for name in names:
+            status = self._read_json(self.batch_dir(batch_id) / name)
             if status is not None:
-                out[int(path.stem.split("-")[1])] = status
+                out[int(name[len("chunk-"):-len(".json")])] = status
         return out
 
     def write_final(self, batch_id: str, final: dict) -> None:
-        write_json(self.batch_dir(batch_id) / "final.json", final)
+        self._write_json(self.batch_dir(batch_id) / "final.json", final)
 
     def read_final(self, batch_id: str) -> dict | None:
-        return read_json(self.batch_dir(batch_id) / "final.json")
+        return self._read_json(self.batch_dir(batch_id) / "final.json")
 
     def batch_ids(self) -> list[str]:
         """Accepted batches (manifest on disk), newest first."""
-        base = self.root / "batches"
-        if not base.is_dir():
-            return []
-        ids = [p.name for p in base.iterdir()
-               if is_batch_id(p.name) and (p / "manifest.json").is_file()]
+        candidates = [info.base_name for info in fs.list_dir(self.fs, str(self._join("batches")))
+                      if info.type == pafs.FileType.Directory and is_batch_id(info.base_name)]
+        manifests = self.fs.get_file_info(
+            [str(self._join("batches", b, "manifest.json")) for b in candidates])
+        ids = [b for b, info in zip(candidates, manifests) if info.type == pafs.FileType.File]
         return sorted(ids, reverse=True)
+
+    def batch_size_bytes(self, batch_id: str) -> int:
+        """Bytes of every file of one batch: its table chunks, manifest and statuses."""
+        part = f"batch_id={_check_batch_id(batch_id)}"
+        dirs = [self._join(table, part) for table in TABLES] + [self.batch_dir(batch_id)]
+        return sum(info.size or 0 for d in dirs for info in fs.list_dir(self.fs, str(d), recursive=True)
+                   if info.type == pafs.FileType.File)
 
     # idempotency keys (stored by hash: a key is client text, never a path)
     def _key_path(self, key_hash: str) -> Path:
         if not _KEY_HASH_PATTERN.fullmatch(key_hash):
             raise ValueError("idempotency key hash must be 64 hex digits")
-        return self.root / "idempotency" / f"{key_hash}.json"
+        return self._join("idempotency", f"{key_hash}.json")
 
     def read_idempotency(self, key_hash: str) -> dict | None:
-        return read_json(self._key_path(key_hash))
+        return self._read_json(self._key_path(key_hash))
 
     def write_idempotency(self, key_hash: str, record: dict) -> None:
-        write_json(self._key_path(key_hash), record)
+        self._write_json(self._key_path(key_hash), record)
 
     def claim_idempotency(self, key_hash: str, record: dict) -> dict:
         """Store ``record`` for the key unless one is there; return the one that holds.
 
-        The complete file is linked into place, and a link never replaces an
-        existing name: of two processes racing with one key, exactly one wins.
+        On a local filesystem the complete file is linked into place, and a link
+        never replaces an existing name: of two processes racing with one key,
+        exactly one wins (elsewhere see ``fs.create_if_absent``).
         """
-        path = self._key_path(key_hash)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        data = json.dumps(record, sort_keys=True).encode()
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                fh.write(data)
-                fh.flush()
-                os.fsync(fh.fileno())
-            try:
-                os.link(tmp, path)
-            except FileExistsError:
-                return read_json(path)
-            _fsync_dir(path.parent)
+        path = str(self._key_path(key_hash))
+        if fs.create_if_absent(self.fs, path, json.dumps(record, sort_keys=True).encode()):
             return record
-        finally:
-            os.unlink(tmp)
+        return self._read_json(path)
 
 
 # -- rankings across every batch -------------------------------------------------

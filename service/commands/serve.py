@@ -19,7 +19,13 @@ Two modes, chosen by the environment:
                for 'sorbrank worker' processes, which must see the same
                SORBRANK_DATA_DIR.
 
-Environment: SORBRANK_DATA_DIR (store root, default ./data),
+At start the store root must be writable and (distributed mode) the broker
+must answer a PING within 3 s; otherwise the command exits with status 2 and
+one message naming the variable. Logs are JSON lines on stderr
+(SORBRANK_LOG_LEVEL); Prometheus metrics are at /metrics.
+
+Environment: SORBRANK_DATA_DIR (store root: a path or a URI such as
+s3://bucket/prefix, default ./data), SORBRANK_LOG_LEVEL (default INFO),
 SORBRANK_CHUNK_SIZE (isotherms per job, default 500; a material's isotherms
 always stay together), SORBRANK_MAX_UPLOAD_BYTES (default 67108864),
 SORBRANK_TOKENS_FILE or SORBRANK_TOKENS (bearer tokens as SHA-256 hashes with
@@ -44,9 +50,7 @@ def register(subparsers) -> None:
     p.set_defaults(func=run)
 
 
-def _loud(message: str) -> None:
-    bar = "!" * min(len(message) + 4, 100)
-    print(f"{bar}\n! {message}\n{bar}", file=sys.stderr, flush=True)
+log = logging.getLogger("sorbrank.serve")
 
 
 def _stop(signum, frame):
@@ -56,10 +60,11 @@ def _stop(signum, frame):
 def run(args) -> int:
     from werkzeug.serving import make_server
 
-    from ..app import create_app
-    from ..config import ConfigError, load_settings, open_access_verdict
+    from worker import logs
 
-    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
+    from ..app import create_app
+    from ..config import ConfigError, load_settings, open_access_verdict, start_problems
+
     try:
         settings = load_settings()
     except ConfigError as exc:
@@ -69,15 +74,22 @@ def run(args) -> int:
     if not allowed:
         print(f"sorbrank serve: {warning}", file=sys.stderr)
         return 2
+    problems = start_problems(settings)
+    if problems:
+        print(f"sorbrank serve: {ConfigError(problems)}", file=sys.stderr)
+        return 2
+    logs.configure(settings.log_level)
+    # every request is logged as JSON by the app; werkzeug's own line would repeat it
+    logging.getLogger("werkzeug").setLevel(logging.WARNING)
     if warning:
-        _loud(warning)
+        log.warning(warning)
 
     executor = None
     if settings.mode == "embedded":
         from worker.embedded import EmbeddedExecutor
 
         executor = EmbeddedExecutor(settings.data_dir, settings.embedded_workers)
-        app = create_app(settings, enqueue=executor.enqueue)
+        app = create_app(settings, enqueue=executor.enqueue, queue_depth=executor.pending_chunks)
         resumed = executor.resume()
         detail = f"{executor.workers} fitting process(es)"
         if resumed:
@@ -89,9 +101,9 @@ def run(args) -> int:
     # SIGTERM (what process managers send) stops like Ctrl-C: accepted work is
     # on disk, unfinished chunks resume at the next start
     signal.signal(signal.SIGTERM, _stop)
-    print(f"sorbrank: serving http://{args.host}:{server.server_port}/api/v1 "
-          f"({settings.mode} mode, {detail}; store {settings.data_dir.resolve()})",
-          file=sys.stderr, flush=True)
+    store = app.extensions["sorbrank"].store
+    log.info("sorbrank: serving http://%s:%s/api/v1 (%s mode, %s; store %s)", args.host,
+             server.server_port, settings.mode, detail, store.root)
     try:
         server.serve_forever()
     except KeyboardInterrupt:

@@ -1,0 +1,152 @@
+"""Where the store lives: a local directory or any filesystem pyarrow.fs knows.
+
+The store root (SORBRANK_DATA_DIR) is a local path or a URI that
+``pyarrow.fs.FileSystem.from_uri`` understands: ``file:///srv/sorbrank``,
+``s3://bucket/prefix``, ``gs://bucket/prefix``, ``hdfs://host/path``. The
+store does every file operation through the resulting
+``pyarrow.fs.FileSystem``; this module adds the two pyarrow does not offer
+as such: an atomic write and a create-if-absent.
+
+How a write is made atomic depends on the filesystem:
+
+* local (``LocalFileSystem``, also what ``file://`` gives): a dot-named temp
+  file, fsynced, renamed over the target, then the directory fsynced. After a
+  crash or a power cut readers see the old file or the new one, never a mix.
+* object stores (s3, gcs, abfs) have no rename (pyarrow's ``move`` is copy +
+  delete), but one PUT is atomic: readers see the old object or the whole new
+  one. The bytes are assembled in memory and put once, straight to the target.
+* any other filesystem (hdfs, ``SubTreeFileSystem``, ``PyFileSystem``
+  handlers): a dot-named temp file, then ``move`` (a rename where the
+  filesystem has one). pyarrow exposes no fsync for these.
+
+Create-if-absent (the Idempotency-Key claim) is exact on a local filesystem
+(a hard link never replaces a name). Elsewhere it is check-then-put: two
+processes racing with one key within a few milliseconds can both win.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import posixpath
+import secrets
+import tempfile
+from typing import Any, Callable
+
+import pyarrow as pa
+import pyarrow.fs as pafs
+
+OBJECT_STORES = frozenset({"s3", "gcs", "abfs"})
+
+
+def open_root(root: str | os.PathLike, filesystem: pafs.FileSystem | None = None
+              ) -> tuple[pafs.FileSystem, str]:
+    """(filesystem, base path inside it) for a store root.
+
+    ``root`` is a local path or a URI; with ``filesystem`` given, ``root`` is
+    a path inside that filesystem ("" for its top).
+    """
+    text = os.fspath(root)
+    if filesystem is not None:
+        return filesystem, text.rstrip("/")
+    if "://" in text:
+        filesystem, path = pafs.FileSystem.from_uri(text)
+    else:
+        filesystem, path = pafs.LocalFileSystem(), os.path.abspath(text)
+    return filesystem, path.rstrip("/") or "/"
+
+
+def is_local(filesystem: pafs.FileSystem) -> bool:
+    return filesystem.type_name == "local"
+
+
+def fsync_dir(path: str | os.PathLike) -> None:
+    # the rename itself must survive a power cut, not only the file's bytes
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def local_atomic_write(path: str | os.PathLike, write: Callable[[Any], None]) -> None:
+    """Write via ``write(fileobj)`` to a dot-temp file, fsync, rename to ``path``."""
+    path = os.fspath(path)
+    parent, name = os.path.split(path)
+    os.makedirs(parent, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            write(fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    fsync_dir(parent)
+
+
+def atomic_write(filesystem: pafs.FileSystem, path: str, write: Callable[[Any], None]) -> None:
+    """Write ``path`` via ``write(fileobj)`` so readers never see half a file."""
+    if is_local(filesystem):
+        local_atomic_write(path, write)
+        return
+    parent = posixpath.dirname(path)
+    filesystem.create_dir(parent, recursive=True)  # a no-op on object stores
+    if filesystem.type_name in OBJECT_STORES:
+        buffer = pa.BufferOutputStream()  # a failed write never starts the upload
+        write(buffer)
+        data = buffer.getvalue()
+        with filesystem.open_output_stream(path) as out:
+            out.write(data)
+        return
+    tmp = posixpath.join(parent, f".{posixpath.basename(path)}.{secrets.token_hex(6)}.tmp")
+    try:
+        with filesystem.open_output_stream(tmp) as out:
+            write(out)
+        filesystem.move(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            filesystem.delete_file(tmp)
+        raise
+
+
+def create_if_absent(filesystem: pafs.FileSystem, path: str, data: bytes) -> bool:
+    """Write ``data`` to ``path`` unless it exists; True when this call created it."""
+    if not is_local(filesystem):
+        if filesystem.get_file_info(path).type != pafs.FileType.NotFound:
+            return False
+        atomic_write(filesystem, path, lambda fh: fh.write(data))
+        return True
+    parent, name = os.path.split(path)
+    os.makedirs(parent, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        try:
+            os.link(tmp, path)  # the complete file appears at once, or not at all
+        except FileExistsError:
+            return False
+        fsync_dir(parent)
+        return True
+    finally:
+        os.unlink(tmp)
+
+
+def read_bytes(filesystem: pafs.FileSystem, path: str) -> bytes | None:
+    """The file's bytes; None when it does not exist."""
+    try:
+        with filesystem.open_input_stream(path) as fh:
+            return fh.read()
+    except FileNotFoundError:
+        return None
+
+
+def list_dir(filesystem: pafs.FileSystem, path: str, recursive: bool = False) -> list[pafs.FileInfo]:
+    """Entries under ``path``; empty when it does not exist."""
+    return filesystem.get_file_info(pafs.FileSelector(path, allow_not_found=True,
+                                                      recursive=recursive))
