@@ -254,3 +254,29 @@ def test_embedded_server_sigkill_mid_batch_resumes(tmp_path, processes):
     for path in (f"/batches/{batch_id}/results?format=csv", "/rankings?format=parquet",
                  "/materials/EM-M000", "/batches"):
         assert s.get(api + path, timeout=30).status_code == 200, path
+
+
+def test_redis_restart_with_surviving_worker_is_reconciled_by_the_watch(tmp_path, processes):
+    """Redis (no persistence) dies mid-batch and comes back empty while the Celery worker
+    lives on and reconnects. No process restarts, so no start-up reconcile runs: the
+    worker's periodic broker watch sees pending chunks the broker no longer holds and
+    re-enqueues them. The batch completes, every isotherm once."""
+    logs = tmp_path / "logs"
+    port = free_port()
+    redis_1 = start_redis_on(port, logs, processes, "redis-1")
+    env = base_env(tmp_path, SORBRANK_BROKER_URL=f"redis://{LOOPBACK}:{port}/0",
+                   SORBRANK_RECONCILE_INTERVAL_S="1")
+    worker = start_worker(env, logs, processes, name="worker")
+    server, url = start_server(env, logs, processes, name="server")
+    api, s = url + "/api/v1", session()
+
+    body, ids = batch_csv("RW", 24)
+    batch_id = submit(s, api, body)
+    wait_mid_way(env["SORBRANK_DATA_DIR"], batch_id, [worker, server])
+    kill_group(redis_1)
+    start_redis_on(port, logs, processes, "redis-2")
+
+    wait_final(s, api, batch_id, [worker, server])
+    assert_exactly_once(s, api, batch_id, ids)
+    assert worker.alive()  # recovered without a restart
+    assert "re-enqueueing them" in worker.log_text()

@@ -2,12 +2,19 @@
 from __future__ import annotations
 
 import logging
+import threading
 
-from celery.signals import worker_ready
+from celery.signals import worker_ready, worker_shutdown
 
 from . import jobs
-from .celery_app import MAX_RETRIES, app, data_dir
+from .celery_app import MAX_RETRIES, QUEUE, app, data_dir, env_int
 from .store import Store
+
+# How often a worker checks for a broker that forgot its queue (seconds; 0 = never)
+RECONCILE_INTERVAL_S = env_int("SORBRANK_RECONCILE_INTERVAL_S", 60)
+# kombu's Redis transport keeps in-flight (unacknowledged) messages in this hash
+_UNACKED_KEY = "unacked"
+_stop_watch = threading.Event()
 
 log = logging.getLogger(__name__)
 
@@ -41,3 +48,48 @@ def reconcile_on_start(**_):
         jobs.reconcile(Store(data_dir()), enqueue)
     except Exception:  # noqa: BLE001 - a failed reconcile must not stop the worker
         log.exception("reconcile on start failed; unfinished batches wait for the next start")
+
+
+def broker_holds_no_chunk() -> bool:
+    """True when the broker has no queued and no in-flight chunk message.
+
+    With pending chunks in the store that means the broker lost them (Redis
+    restarted without persistence, or was flushed) while the workers lived on.
+    """
+    with app.connection_for_read() as conn:
+        client = conn.default_channel.client
+        return client.llen(QUEUE) == 0 and client.hlen(_UNACKED_KEY) == 0
+
+
+def reconcile_if_broker_forgot() -> list[tuple[str, int]]:
+    """Re-enqueue unfinished chunks when the broker holds none of them.
+
+    Several workers may do this at the same moment: a chunk then runs twice,
+    which only rewrites the same files (jobs are idempotent).
+    """
+    store = Store(data_dir())
+    has_pending = any(jobs.pending_chunks(store, b) for b in store.batch_ids()
+                      if store.read_final(b) is None)
+    if has_pending and broker_holds_no_chunk():
+        log.warning("the broker holds no chunk of the unfinished batches: re-enqueueing them")
+        return jobs.reconcile(store, enqueue)
+    return []
+
+
+def _watch_broker() -> None:
+    while not _stop_watch.wait(RECONCILE_INTERVAL_S):
+        try:
+            reconcile_if_broker_forgot()
+        except Exception:  # noqa: BLE001 - broker down right now: try again next round
+            log.debug("broker check failed; next try in %s s", RECONCILE_INTERVAL_S, exc_info=True)
+
+
+@worker_ready.connect
+def start_broker_watch(**_):
+    if RECONCILE_INTERVAL_S > 0:
+        threading.Thread(target=_watch_broker, name="sorbrank-broker-watch", daemon=True).start()
+
+
+@worker_shutdown.connect
+def stop_broker_watch(**_):
+    _stop_watch.set()
