@@ -21,6 +21,10 @@
 3. Resumable: a chunk whose input file exists is not generated again, a
    chunk whose summary file exists is not fitted again (--fresh starts over).
 
+``--engine FILE|REV`` fits with another engine.py (e.g. ``HEAD``, the last
+commit's) for a before/after on the same machine; use a separate --dir (or
+--fresh) for each engine, since finished chunks are not fitted again.
+
 Printed: wall time per phase, isotherm-model fits/s, isotherms/s, and peak
 RSS (resource.getrusage: this process, and the largest child). Targets the
 project reports against: 1,000,000 isotherms in <= 10 min with peak RSS
@@ -207,7 +211,13 @@ def main(argv=None) -> int:
                     help="working directory (default: <tmp>/sorbrank-scale-N); reused to resume")
     ap.add_argument("--seed", type=int, default=20260512)
     ap.add_argument("--fresh", action="store_true", help="delete the working directory first")
+    ap.add_argument("--engine", metavar="FILE|REV", default=None,
+                    help="fit with this engine.py instead (a path, or a git revision such as HEAD)")
     args = ap.parse_args(argv)
+    if args.engine:
+        # installed before the worker processes fork, so their pipeline imports it
+        from bench_engine import load_reference_engine
+        sys.modules["worker.engine"] = load_reference_engine(args.engine)
 
     work = args.dir or Path(os.environ.get("TMPDIR", "/tmp")) / f"sorbrank-scale-{args.n}"
     if args.fresh and work.exists():
@@ -235,7 +245,7 @@ def main(argv=None) -> int:
     n_iso = sum(s["isotherms"] for s in done)
     n_fits = sum(s["fits"] for s in done)
     print(f"scale run: {args.n} isotherms x {N_POINTS} points in {len(jobs)} chunk(s) of <= {chunk}, "
-          f"{args.workers} worker process(es), directory {work}")
+          f"{args.workers} worker process(es), directory {work}, engine {args.engine or 'worker/engine.py'}")
     print(f"generate : {t_gen:.2f} s ({generated} isotherms written, {args.n - generated} reused)")
     print(f"fit      : {t_fit:.2f} s for {n_iso} isotherms in {len(done)} chunk(s) "
           f"({len(stats) - len(done)} chunk(s) already done); rejected at intake "

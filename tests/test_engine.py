@@ -267,3 +267,94 @@ def test_a_model_that_crashes_is_reported_not_raised():
     assert not fits["broken"].converged.any()
     assert fits["broken"].reason[0] == "internal error: ZeroDivisionError: seed rule bug"
     assert fits["langmuir"].converged.all()
+
+
+def _solver_rows(model, packed):
+    """The engine's per-isotherm solver outcome, including iterations used
+    (not part of ModelFits): (params, status, iterations, drift)."""
+    import worker.engine as engine
+
+    x = packed.relative_pressure if model.relative_pressure else packed.pressure_pa
+    xs, qs, ws, ms = engine._canonical_width(x, packed.loading_mol_per_kg,
+                                             packed.mask.astype(float), packed.mask)
+    xs = np.where(ms, xs, engine._last_real(xs, ms))
+    return engine._fit_rows(model, xs, qs, ws, ms, packed.temperature_k[:, None], engine.MAX_ITER)
+
+
+@pytest.mark.parametrize("model_id, truth_id, limit", [
+    # Sips at s fixed and q_sat -> inf, affinity -> 0 with q_sat affinity^s fixed IS Freundlich
+    ("sips", "freundlich", {"q_sat": "inf", "affinity": "0"}),
+    # Langmuir at q_sat -> inf, affinity -> 0 with their product fixed IS Henry's law
+    ("langmuir", "henry", {"q_sat": "inf", "affinity": "0"}),
+])
+def test_a_fit_running_off_to_its_limit_model_stops_early_as_drift(model_id, truth_id, limit):
+    """Truth-known: exact data of the limit model (noise-free, invented) have no
+    best fit at finite parameters; the solver must say so, early, and name the
+    parameters and the bounds they run to."""
+    import worker.engine as engine
+
+    truth, p = TRUTH[truth_id]
+    q = true_loading(CATALOGUE[truth_id], truth, p)
+    model = CATALOGUE[model_id]
+    packed = pack([isotherm("limit", p, q)])
+    fits = fit_model(model, packed)
+    assert not fits.converged[0]
+    reason = fits.reason[0]
+    assert reason.startswith("parameter drifting to bound: "), reason
+    for name, bound in limit.items():
+        assert f"{name} -> {bound}" in reason, reason
+        assert fits.at_bound[0, fits.param_names.index(name)], (name, fits.at_bound[0])
+    from worker.selection import exclusion_reasons
+    assert exclusion_reasons(fits)[0] == "not converged: " + reason
+    _, status, iterations, _ = _solver_rows(model, packed)
+    assert status[0] == engine._DRIFTING
+    assert iterations[0] <= engine.MAX_ITER // 2, iterations  # the cap is 200
+
+
+def test_drift_detection_leaves_fits_with_an_interior_minimum_alone():
+    # the generating model's own noisy data: every fit has its minimum inside
+    # the box, none may be called drifting (30 isotherms per model, fixed seed)
+    for model_id in ("langmuir", "sips", "toth", "dual_site_langmuir", "gab"):
+        fits = fit_model(CATALOGUE[model_id], pack(noisy_batch(model_id, 30, 0.01, seed=5)))
+        assert not any(r.startswith("parameter drifting") for r in fits.reason), (model_id, fits.reason)
+
+
+def test_a_rows_result_does_not_depend_on_its_company(monkeypatch):
+    """Same row, different company: a drifting row and a converging row give
+    the same bits alone and inside a batch of strangers (other lengths, other
+    drifting rows), also when a small working set makes them enter the solver
+    at different times."""
+    import worker.engine as engine
+
+    f_truth, p = TRUTH["freundlich"]
+    freundlich_q = true_loading(CATALOGUE["freundlich"], f_truth, p)
+    s_truth, ps = TRUTH["sips"]
+    rng = np.random.default_rng(21)
+    sips_q = true_loading(CATALOGUE["sips"], s_truth, ps) * (1 + 0.01 * rng.standard_normal(ps.size))
+    drifting = isotherm("drift", p, freundlich_q)
+    normal = isotherm("normal", ps, sips_q)
+    strangers = [isotherm(f"s{i}", p[: 8 + 3 * i], freundlich_q[: 8 + 3 * i] * (1 + 0.2 * i)) for i in range(5)] \
+        + [isotherm(f"t{i}", ps[::2], sips_q[::2] * (1 + 0.1 * i)) for i in range(4)]
+    model = CATALOGUE["sips"]
+    fields = ("params", "sse", "stderr", "covariance", "aicc", "converged", "reason", "at_bound")
+
+    def rows_of(fits, idx):
+        return {f: np.asarray(getattr(fits, f))[idx] for f in fields}
+
+    alone = {iso.isotherm_id: rows_of(fit_model(model, pack([iso])), 0) for iso in (drifting, normal)}
+    assert alone["drift"]["reason"].startswith("parameter drifting to bound")
+    assert alone["normal"]["converged"]
+    for block in (None, 5):
+        if block:
+            monkeypatch.setattr(engine, "ROW_BLOCK", block)
+        batch = strangers[:3] + [drifting] + strangers[3:6] + [normal] + strangers[6:]
+        fits = fit_model(model, pack(batch))
+        for iso_id, idx in (("drift", 3), ("normal", 7)):
+            got = rows_of(fits, idx)
+            for f in fields:
+                a, b = alone[iso_id][f], got[f]
+                if np.asarray(a).dtype.kind == "f":
+                    assert np.array_equal(np.asarray(a).view(np.uint64), np.asarray(b).view(np.uint64)), \
+                        (iso_id, f, block, a, b)
+                else:
+                    assert np.array_equal(a, b), (iso_id, f, block, a, b)

@@ -21,7 +21,10 @@ Stopping: a row stops when the Gauss-Newton step from its current point
 would lower the SSE by less than ``GN_REL_TOL`` of the SSE (the squared
 cosine between residual and Jacobian range). That quantity is computed
 directly, not as a difference of two SSEs, so it reaches far below machine
-precision of the SSE itself and pins parameters to ~1e-10 relative.
+precision of the SSE itself and pins parameters to ~1e-10 relative. A row
+whose parameters run off towards a bound while the SSE keeps falling along
+the way (a fit tending to a limiting model, which has no minimum at finite
+parameters) is stopped early as drifting; see DRIFT_WINDOW.
 """
 from __future__ import annotations
 
@@ -48,8 +51,25 @@ INFLUENCE_RTOL = 1e-8   # a parameter moving the curve less than this (relative)
 PIVOT_RTOL = 1e-13      # Cholesky pivot / original diagonal below this = singular
 MAX_DAMPING = 1e16
 
+# Drift: a row whose parameters run off towards a bound (a capacity to
+# infinity, an affinity to zero, an exponent to its limit) while the SSE
+# creeps towards that of a limiting model would use every iteration and still
+# not converge. Every DRIFT_WINDOW iterations a row is a suspect when some
+# parameter moved at least DRIFT_DECADES decades towards the same bound in each
+# of the last two windows (decades of the parameter itself for a bound at 0 or
+# infinity, of its distance to a finite bound otherwise) and it is not in the
+# quadratic regime. A suspect is stopped only if the proof holds: the SSE keeps
+# falling along the drift extrapolated 1, 2, 4, ... windows ahead (in log
+# coordinates for positive parameters), at least as far as the remaining
+# iterations could carry it at its present pace -- no minimum the solver could
+# still reach lies on the way. Otherwise it simply iterates on. The row stops
+# as not converged, its drifting parameters marked at_bound (the bound they
+# run to is the fit's limit) and named in its reason.
+DRIFT_WINDOW = 20
+DRIFT_DECADES = 0.1
+
 # row status codes inside the solver
-_RUNNING, _CONVERGED, _MAX_ITER, _SINGULAR, _NONFINITE, _STALLED = range(6)
+_RUNNING, _CONVERGED, _MAX_ITER, _SINGULAR, _NONFINITE, _STALLED, _DRIFTING = range(7)
 _STATUS_REASON = np.array([
     "running",
     "converged",
@@ -57,6 +77,7 @@ _STATUS_REASON = np.array([
     "singular jacobian",
     "non-finite model values",
     "stalled: no step lowers the sum of squares",
+    "parameter drifting to bound",  # completed with names and limits per row
 ], dtype=object)
 
 
@@ -172,10 +193,30 @@ def fit_model(model: type[IsothermModel], packed: Packed, weighting: str = "unif
     xs = np.where(ms, xs, _last_real(xs, ms))  # padding stays an in-range copy
     ts = packed.temperature_k[rows][:, None]
 
-    params, status = _fit_rows(model, xs, qs, ws, ms, ts, max_iter)
-    params = model.canonical(params)
-    _fill_statistics(out, model, rows, params, status, xs, qs, ws, ms, ts)
+    params, status, _, drift = _fit_rows(model, xs, qs, ws, ms, ts, max_iter)
+    params, drift = _canonical_with_flags(model, params, drift)
+    _fill_statistics(out, model, rows, params, status, xs, qs, ws, ms, ts, drift)
     return out
+
+
+def _canonical_with_flags(model, params, flags):
+    """``model.canonical(params)``, and the per-parameter ``flags`` (n, k)
+    permuted the same way (matched by value: canonical only reorders)."""
+    out = model.canonical(params)
+    if not flags.any():
+        return out, flags
+    n, k = params.shape
+    moved = np.zeros_like(flags)
+    used = np.zeros((n, k), dtype=bool)
+    for i in range(k):
+        matched = np.zeros(n, dtype=bool)
+        for j in range(k):
+            same = (params[:, j] == out[:, i]) | (np.isnan(params[:, j]) & np.isnan(out[:, i]))
+            take = ~matched & ~used[:, j] & same
+            moved[take, i] = flags[take, j]
+            used[take, j] = True
+            matched |= take
+    return out, moved
 
 
 # --------------------------------------------------------------------------
@@ -245,7 +286,12 @@ class _Transform:
 
 
 def _fit_rows(model, x, q, w, mask, t, max_iter):
-    """Best-of-seeds fit for each row; returns params (n, k) and status (n,)."""
+    """Best-of-seeds fit for each row.
+
+    Returns params (n, k), status (n,), iterations (n,) and drift (n, k): per
+    parameter -1 / +1 where a drifting row's parameter runs to its lower /
+    upper bound, else 0.
+    """
     n = x.shape[0]
     seeds = np.asarray(model.initial_guesses(x, q, mask, t), dtype=float)
     n_seeds, k = seeds.shape[0], seeds.shape[-1]
@@ -253,16 +299,17 @@ def _fit_rows(model, x, q, w, mask, t, max_iter):
     # solver's queue (row r is seed r % n_seeds of isotherm r // n_seeds)
     seeds = model.clip_to_bounds(np.swapaxes(seeds, 0, 1).reshape(n * n_seeds, k))
     src = np.repeat(np.arange(n), n_seeds)
-    params, sse, status = _levenberg_marquardt(model, seeds, x, q, w, mask, t, src, max_iter)
+    params, sse, status, iters, drift = _levenberg_marquardt(model, seeds, x, q, w, mask, t, src, max_iter)
 
     # per isotherm: lowest SSE among converged seeds, else lowest SSE overall
-    # (ties: the earlier seed, as the seed rule ranked them)
+    # (ties: the earlier seed, as the seed rule ranked them); a drifting seed
+    # counts as not converged, as it would have at the iteration cap
     fallback = np.where(np.isfinite(sse), sse, np.inf).reshape(n, n_seeds)
     rank = np.where(status.reshape(n, n_seeds) == _CONVERGED, fallback, np.inf)
     any_conv = np.isfinite(rank).any(axis=1)
     pick = np.where(any_conv, np.argmin(rank, axis=1), np.argmin(fallback, axis=1))
     flat = np.arange(n) * n_seeds + pick
-    return params[flat], status[flat]
+    return params[flat], status[flat], iters[flat], drift[flat]
 
 
 class _Evaluator:
@@ -391,6 +438,8 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
     theta_out = theta0.copy()
     sse_out = np.full(n_rows, np.inf)
     status_out = np.full(n_rows, _RUNNING)
+    iter_out = np.zeros(n_rows, dtype=np.int64)
+    drift_out = np.zeros((n_rows, k), dtype=np.int8)
     exact_all = EXACT_REL_TOL * np.einsum("ij,ij->i", w * q, q)
     sw_all = np.sqrt(w)  # w is 0 at padding
     unit = bool(np.all(w == 1.0))  # no padding, uniform weights: skip sqrt(w) products
@@ -414,6 +463,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
     it = np.zeros(0, dtype=np.int64)
     st = np.zeros(0, dtype=np.int64)
     exact = np.zeros(0)
+    th1, th2 = np.zeros((k, 0)), np.zeros((k, 0))  # theta one and two drift windows ago
     xa = np.zeros((0,) + x.shape[1:])
     qa, swa = xa.copy(), xa.copy()
     ta = np.zeros((0, 1))
@@ -434,15 +484,32 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
             _, gn_ok, pred_gn = _gauss_newton(a_mat, g, free)
             done = check & ((gn_ok & (pred_gn <= GN_REL_TOL * sse + exact)) | (sse <= exact))
             st[done] = _CONVERGED
+        # -- drift: every DRIFT_WINDOW iterations --
+        at_mark = (it % DRIFT_WINDOW == 0) & (st == _RUNNING)
+        if at_mark.any():
+            suspect = at_mark & (it >= 2 * DRIFT_WINDOW) & ~(gn_ok & (pred_gn <= POLISH_REL_TOL * sse))
+            if suspect.any():
+                idx = np.flatnonzero(suspect)
+                drifting, direction = _drift_proof(
+                    model, tr, theta[:, idx], th1[:, idx], th2[:, idx], sse[idx],
+                    xa[idx], qa[idx], swa[idx], ta[idx], evaluate.unit, evaluate.euler,
+                    (max_iter - it[idx]) / DRIFT_WINDOW)
+                hit = idx[drifting]
+                st[hit] = _DRIFTING
+                drift_out[rid[hit]] = direction[:, drifting].T
+            th2[:, at_mark] = th1[:, at_mark]
+            th1[:, at_mark] = theta[:, at_mark]
         keep = st == _RUNNING
         if not keep.all():
             gone = ~keep
             theta_out[rid[gone]] = theta[:, gone].T
             sse_out[rid[gone]] = sse[gone]
             status_out[rid[gone]] = st[gone]
+            iter_out[rid[gone]] = it[gone]
             rid, theta, sse, a_mat, g, noise = rid[keep], theta[:, keep], sse[keep], a_mat[:, :, keep], \
                 g[:, keep], noise[keep]
             lam, nu, dmax, it, st, exact = lam[keep], nu[keep], dmax[:, keep], it[keep], st[keep], exact[keep]
+            th1, th2 = th1[:, keep], th2[:, keep]
             xa, qa, swa, ta = xa[keep], qa[keep], swa[keep], ta[keep]
             free, gn_ok, pred_gn = free[:, keep], gn_ok[keep], pred_gn[keep]
 
@@ -489,6 +556,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
                 nu = cat(nu, np.full(f_.sum(), 2.0))
                 dmax = cat(dmax, np.abs(np.diagonal(a_n, axis1=0, axis2=1).T[:, f_]), 1)
                 it = cat(it, np.zeros(f_.sum(), dtype=np.int64))
+                th1, th2 = cat(th1, th_n[:, f_], 1), cat(th2, th_n[:, f_], 1)
                 st = cat(st, st_n[f_])
                 exact = cat(exact, exact_n[f_])
                 xa, qa, swa, ta = cat(xa, x_n[f_]), cat(qa, q_n[f_]), cat(swa, sw_n[f_]), cat(ta, t_n[f_])
@@ -541,7 +609,108 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
             st[stuck & ~near & ~gn_ok] = _SINGULAR
             st[stuck & ~near & gn_ok] = _STALLED
 
-    return tr.to_params(theta_out), sse_out, status_out
+    return tr.to_params(theta_out), sse_out, status_out, iter_out, drift_out
+
+
+def _decades_to_bound(tr, before, after):
+    """Signed progress (k, R) of each parameter towards a bound from ``before``
+    to ``after`` (theta, (k, R)), in decades: + towards the upper bound, -
+    towards the lower one. Towards a finite bound it is the decades by which
+    the distance to that bound shrank; towards an infinite one the decades of
+    growth of the parameter (of theta itself for log-scale parameters, whose
+    bounds 0 and infinity are -inf and +inf in theta)."""
+    lo, hi = tr.lo[:, None], tr.hi[:, None]
+    log_p = tr.log[:, None]
+    move = after - before
+    with np.errstate(all="ignore"):
+        grow = np.where(log_p, np.abs(move) / np.log(10.0),
+                        np.where(before * after > 0, np.log10(np.abs(after) / np.abs(before)), 0.0))
+        up = np.where(np.isfinite(hi), np.log10((hi - before) / (hi - after)), grow)
+        down = np.where(np.isfinite(lo), np.log10((before - lo) / (after - lo)), grow)
+        out = np.where(move > 0, up, np.where(move < 0, -down, 0.0))
+    return np.nan_to_num(out, nan=0.0, posinf=0.0, neginf=0.0)
+
+
+def _drift_proof(model, tr, theta, th1, th2, sse, x, q, sw, t, unit, euler, windows_left):
+    """Which suspect rows (R,) are drifting, and where to: (k, R) int8, -1 / +1
+    for a parameter running to its lower / upper bound.
+
+    ``theta``, ``th1``, ``th2`` (k, R): now, one and two DRIFT_WINDOWs ago.
+    Drifting means: some parameter moved >= DRIFT_DECADES towards the same
+    bound in both windows, and the SSE is non-increasing at every probe along
+    the last window's displacement extrapolated 1, 2, 4, ... windows ahead up
+    to twice the windows the row has left (``windows_left``), strictly lower
+    at the last. Positive parameters are extrapolated in log coordinates
+    (where a capacity-affinity trade-off is a straight line), the others
+    linearly; probes are clipped into the bounds. Where the model is
+    homogeneous (``euler``: f(lambda^c_j p_j) = lambda f) each probe takes its
+    least-squares lambda, so it measures the best curve of its shape -- the
+    valley floor, not a point beside it.
+    """
+    k, n_rows = theta.shape
+    d_now = _decades_to_bound(tr, th1, theta)
+    d_before = _decades_to_bound(tr, th2, th1)
+    runs = (np.abs(d_now) >= DRIFT_DECADES) & (np.abs(d_before) >= DRIFT_DECADES) \
+        & (np.sign(d_now) == np.sign(d_before))
+    direction = np.where(runs, np.sign(d_now), 0).astype(np.int8)
+    drifting = runs.any(axis=0)
+    if not drifting.any():
+        return drifting, direction
+    lo, hi = tr.lo[:, None], tr.hi[:, None]
+    # positive linear parameters (capacities) extrapolate geometrically
+    geo = ~tr.log[:, None] & (lo >= 0) & (theta > 0) & (th1 > 0) & (th2 > 0)
+    with np.errstate(all="ignore"):
+        to_u = lambda v: np.where(geo, np.log(np.where(geo, v, 1.0)), v)  # noqa: E731
+        u = to_u(theta)
+        step, step_before = u - to_u(th1), to_u(th1) - to_u(th2)
+        # the running parameters keep their pace; the others settle as they
+        # have been settling (geometric pace ratio, 0 if they turned round)
+        ratio = np.where(runs, 1.0, np.clip(np.nan_to_num(step / step_before), 0.0, 0.9))
+    # probes at 1, 2, 4, ... windows ahead; a row's last one is the largest <= need
+    need = 2.0 * np.maximum(windows_left, 1.0)
+    n_probes = np.floor(np.log2(need)).astype(np.int64) + 1
+    paths, path, pace = [], step.copy(), step.copy()
+    for i in range(int(n_probes.max())):
+        paths.append(path.copy())
+        for _ in range(2 ** i):  # windows from probe i to probe i + 1
+            pace = pace * ratio
+            path = path + pace
+    paths = np.stack(paths)  # (probes, k, R)
+
+    def probe_sse(idx, where):
+        """SSE at theta u + ``where`` (k, len(idx)) for rows ``idx``, scale optimised."""
+        with np.errstate(all="ignore"):
+            probe = u[:, idx] + where
+            probe = np.clip(np.where(geo[:, idx], np.exp(probe), probe), lo, hi)
+            p = _params_batch_last(tr, probe)
+            f = np.broadcast_to(model.evaluate(x[idx], t[idx], *[p[j][:, None] for j in range(k)]),
+                                (idx.size, x.shape[1]))
+            sf, sq = (f, q[idx]) if unit else (sw[idx] * f, sw[idx] * q[idx])
+            if euler is not None:
+                # f(lambda^c_j p_j) = lambda f(p): the best lambda needs no new evaluation
+                scale = np.einsum("ij,ij->i", sf, sq) / np.einsum("ij,ij->i", sf, sf)
+                lam_c = np.stack([np.where(scale > 0, scale, 1.0) ** c for c in euler])
+                scaled = np.where(tr.log[:, None], probe + np.log(lam_c), probe * lam_c)
+                admissible = np.isfinite(scale) & (scale > 0) & np.all((scaled >= lo) & (scaled <= hi), axis=0)
+                sf = sf * np.where(admissible, scale, 1.0)[:, None]
+            r = sf - sq
+            return np.einsum("ij,ij->i", r, r)
+
+    # the farthest probe first: it rejects most suspects with one evaluation
+    idx = np.flatnonzero(drifting)
+    far = np.full(n_rows, np.inf)
+    far[idx] = probe_sse(idx, paths[n_probes[idx] - 1, :, idx].T)
+    drifting &= np.isfinite(far) & (far < sse)
+    prev = sse.copy()
+    for i in range(int(n_probes.max()) - 1):  # then the ones on the way, in order
+        idx = np.flatnonzero(drifting & (n_probes > i + 1))
+        if idx.size == 0:
+            break
+        sse_i = probe_sse(idx, paths[i][:, idx])
+        drifting[idx] = np.isfinite(sse_i) & (sse_i <= prev[idx])
+        prev[idx] = sse_i
+    drifting &= far <= prev
+    return drifting, np.where(drifting, direction, 0).astype(np.int8)
 
 
 def _params_batch_last(tr, theta):
@@ -672,8 +841,11 @@ def _empty_fits(model, n, n_points, applicable) -> ModelFits:
     )
 
 
-def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t):
-    """Write SSE, covariance, intervals and criteria for ``rows`` into ``out``."""
+def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=None):
+    """Write SSE, covariance, intervals and criteria for ``rows`` into ``out``.
+
+    ``drift`` (n, k): -1 / +1 where a drifting row's parameter runs to its
+    lower / upper bound (see _drift_proof)."""
     k = params.shape[1]
     cols = [params[:, j:j + 1] for j in range(k)]
     with np.errstate(all="ignore"):
@@ -747,6 +919,27 @@ def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t):
     out.stderr[rows] = np.where(ok[:, None], stderr, np.nan)
     out.ci95_low[rows] = np.where(ok[:, None], params - half, np.nan)
     out.ci95_high[rows] = np.where(ok[:, None], params + half, np.nan)
+    reason = _STATUS_REASON[status]
+    if drift is not None:
+        drifting = status == _DRIFTING
+        at_bound = at_bound | (drifting[:, None] & (drift != 0))
+        reason = reason.copy()
+        reason[drifting] = _drift_reasons(model, drift[drifting])
     out.at_bound[rows] = at_bound
     out.converged[rows] = status == _CONVERGED
-    out.reason[rows] = _STATUS_REASON[status]
+    out.reason[rows] = reason
+
+
+def _drift_reasons(model, drift):
+    """'parameter drifting to bound: q_sat -> inf, affinity -> 0' per row of drift (n, k)."""
+    out = np.empty(drift.shape[0], dtype=object)
+    codes, inverse = np.unique(drift, axis=0, return_inverse=True)
+    for c, code in enumerate(codes):
+        parts = [f"{p.name} -> {_bound_text(p.upper if d > 0 else p.lower)}"
+                 for p, d in zip(model.params, code) if d != 0]
+        out[np.asarray(inverse).ravel() == c] = f"{_STATUS_REASON[_DRIFTING]}: {', '.join(parts)}"
+    return out
+
+
+def _bound_text(value: float) -> str:
+    return "inf" if value == np.inf else "-inf" if value == -np.inf else f"{value:g}"
