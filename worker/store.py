@@ -25,11 +25,13 @@ import os
 import posixpath
 import re
 import secrets
+import threading
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path, PurePosixPath
 from typing import Any, Callable, Iterable
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.dataset as ds
@@ -127,7 +129,46 @@ INPUT_SCHEMA = pa.schema([
 ])
 
 
+def _float_lists(arrays: list) -> pa.Array:
+    """list<double> column from per-row arrays (None = null), built in one go."""
+    lengths = np.array([0 if a is None else len(a) for a in arrays], dtype=np.int64)
+    offsets = np.concatenate([[0], np.cumsum(lengths)])
+    present = [np.asarray(a, dtype=np.float64).ravel() for a in arrays if a is not None]
+    values = np.concatenate(present) if present else np.empty(0, dtype=np.float64)
+    missing = np.array([a is None for a in arrays], dtype=bool)
+    list_type = pa.list_(pa.float64())
+    return pa.ListArray.from_arrays(pa.array(offsets, pa.int32()), pa.array(values, pa.float64()),
+                                    type=list_type,
+                                    mask=pa.array(missing) if missing.any() else None)
+
+
 def isotherms_to_table(isotherms: Iterable[Isotherm]) -> pa.Table:
+    # column by column: the point arrays go to Arrow as whole numpy buffers,
+    # never value by value (the same table as building it row by row)
+    isotherms = list(isotherms)
+    columns = {
+        "isotherm_id": pa.array([iso.isotherm_id for iso in isotherms], pa.string()),
+        "material_id": pa.array([iso.material_id for iso in isotherms], pa.string()),
+        "adsorbate": pa.array([iso.adsorbate for iso in isotherms], pa.string()),
+        "temperature_k": pa.array([float(iso.temperature_k) for iso in isotherms], pa.float64()),
+        "branch": pa.array([iso.branch for iso in isotherms], pa.string()),
+        "saturation_pressure_pa": pa.array([iso.saturation_pressure_pa for iso in isotherms],
+                                           pa.float64()),
+        "surface_area_m2_per_g": pa.array([iso.surface_area_m2_per_g for iso in isotherms],
+                                          pa.float64()),
+        "batch_label": pa.array([iso.batch_label for iso in isotherms], pa.string()),
+        "flags": pa.array([list(iso.flags) for iso in isotherms], pa.list_(pa.string())),
+        "pressure_pa": _float_lists([iso.pressure_pa for iso in isotherms]),
+        "loading_mol_per_kg": _float_lists([iso.loading_mol_per_kg for iso in isotherms]),
+        "sigma_mol_per_kg": _float_lists([iso.sigma_mol_per_kg for iso in isotherms]),
+        "original_json": pa.array([json.dumps(iso.original, sort_keys=True, default=_json_default)
+                                   for iso in isotherms], pa.string()),
+    }
+    return pa.Table.from_arrays(list(columns.values()), schema=INPUT_SCHEMA)
+
+
+def _isotherms_to_table_by_rows(isotherms: Iterable[Isotherm]) -> pa.Table:
+    """Row by row, the plain way; tests check ``isotherms_to_table`` equals it."""
     rows = [{
         "isotherm_id": iso.isotherm_id,
         "material_id": iso.material_id,
@@ -184,6 +225,8 @@ class Store:
         self._path_type = Path if local else PurePosixPath
         # what recreates this store in another process (str(root))
         self.root = Path(self.base) if local else os.fspath(root)
+        # rankings: fragments and schema of the summaries, kept between queries
+        self._summaries_index = _TableIndex("summaries")
 
     def _join(self, *parts: str):
         return self._path_type(posixpath.join(self.base, *parts))
@@ -382,6 +425,150 @@ def sortable_columns(schema: pa.Schema) -> list[str]:
             and not f.name.startswith("_")]
 
 
+@dataclass
+class _Snapshot:
+    """The table's files as one listing found them."""
+
+    key: tuple
+    dataset: ds.Dataset | None
+    fragments: list
+    batch_of_file: list            # partition value (batch id) of each fragment
+    own_batch_column: bool         # some file stores a batch_id column itself
+    combined: dict                 # column name -> array over every file, file order
+    lengths: np.ndarray | None = None
+
+
+class _TableIndex:
+    """One table's data files across batches, kept between queries.
+
+    Every use lists the table's directory again (one recursive listing, no
+    file opened); a file's footer is read only when the file is new or its
+    size or modification time changed (a retried job renames a new file over
+    its old one), so queries over an unchanged store read no footers and new
+    chunk files are seen by the next query. The dataset built from that
+    listing equals what ``Store.dataset`` discovers: same files (dot- and
+    underscore-names skipped, unreadable files left out), same partition
+    values, same permissively unified schema.
+
+    For rankings it also keeps a few columns of every file in memory (about
+    100 bytes per summary row for the key columns): files never change once
+    written, so each is read once, when it first appears.
+    """
+
+    def __init__(self, table: str):
+        self.table = table
+        self.lock = threading.Lock()
+        self.files: dict[str, tuple] = {}    # path -> (size, mtime_ns, fragment | None)
+        self.snapshot: _Snapshot | None = None
+        # kept columns per file (slices of the snapshot's combined arrays),
+        # read with ``column_schema``
+        self.columns: dict[str, dict[str, pa.Array]] = {}
+        self.column_schema: pa.Schema | None = None
+
+    def dataset(self, store: "Store") -> ds.Dataset | None:
+        return self.current(store).dataset
+
+    def current(self, store: "Store") -> _Snapshot:
+        base = str(store._join(self.table))
+        infos = fs.list_dir(store.fs, base, recursive=True)
+        listing = []
+        prefix = base.rstrip("/") + "/"
+        for info in infos:
+            if info.type != pafs.FileType.File:
+                continue
+            relative = info.path[len(prefix):] if info.path.startswith(prefix) else \
+                posixpath.relpath(info.path, base)
+            if any(part.startswith((".", "_")) for part in relative.split("/")):
+                continue
+            listing.append((info.path, info.size, info.mtime_ns))
+        listing.sort()
+        key = tuple(listing)
+        with self.lock:
+            if self.snapshot is not None and self.snapshot.key == key and None not in (
+                    m for _, _, m in listing):
+                return self.snapshot
+            fmt = ds.ParquetFileFormat()
+            files = {}
+            for path, size, mtime_ns in listing:
+                known = self.files.get(path)
+                if known is not None and known[:2] == (size, mtime_ns) and mtime_ns is not None:
+                    files[path] = known
+                    continue
+                # parse() reads the directories of a path relative to the table
+                relative = posixpath.relpath(path, base)
+                try:
+                    fragment = fmt.make_fragment(path, store.fs,
+                                                 partition_expression=_PARTITIONING.parse(relative))
+                    fragment.ensure_complete_metadata()  # footer read once, kept
+                    names = fragment.physical_schema.names
+                except (OSError, pa.ArrowException, ValueError):
+                    fragment = names = None  # one damaged file must not hide every other batch
+                files[path] = (size, mtime_ns, fragment,
+                               None if fragment is None else ds.get_partition_keys(
+                                   fragment.partition_expression).get("batch_id"),
+                               names is not None and "batch_id" in names)
+            for path in set(self.files) - set(files) | {
+                    p for p in files if self.files.get(p) is not files[p]}:
+                for cached in self.columns.values():  # gone or replaced: read again
+                    cached.pop(path, None)
+            self.files = files
+            kept = [files[path] for path, _, _ in listing if files[path][2] is not None]
+            fragments = [k[2] for k in kept]
+            dataset = None
+            if fragments:
+                schemas = [f.physical_schema for f in fragments] + [_PARTITIONING.schema]
+                schema = pa.unify_schemas(schemas, promote_options="permissive")
+                if len(schema) > 1:
+                    dataset = ds.FileSystemDataset(fragments, schema, fmt, store.fs)
+            self.snapshot = _Snapshot(key, dataset, fragments, [k[3] for k in kept],
+                                      any(k[4] for k in kept), {})
+            return self.snapshot
+
+    def key_columns(self, snap: _Snapshot, names: list[str]) -> dict[str, pa.Array]:
+        """``names`` over every file of the snapshot, in its file and row order."""
+        dataset, fragments = snap.dataset, snap.fragments
+        with self.lock:
+            if self.column_schema is None or not self.column_schema.equals(dataset.schema):
+                self.columns = {}  # a type was widened by a new file: read everything again
+                self.column_schema = dataset.schema
+            todo = [n for n in names if n not in snap.combined]
+            for name in todo:
+                self.columns.setdefault(name, {})
+            missing = [f for f in fragments if any(f.path not in self.columns[n] for n in todo)]
+            if missing:
+                scan = ds.FileSystemDataset(missing, dataset.schema, dataset.format,
+                                            dataset.filesystem)
+                table = scan.to_table(columns=todo + ["__fragment_index"])
+                which = table["__fragment_index"].to_numpy()
+                if len(which) and np.any(np.diff(which) < 0):  # not in file order: one by one
+                    parts = [f.to_table(columns=todo, schema=dataset.schema) for f in missing]
+                else:
+                    ends = np.searchsorted(which, np.arange(len(missing)), side="right")
+                    starts = np.concatenate([[0], ends[:-1]]).astype(np.int64)
+                    parts = [table.slice(a, b - a) for a, b in zip(starts, ends)]
+                for fragment, part in zip(missing, parts):
+                    for name in todo:
+                        self.columns[name][fragment.path] = part[name].combine_chunks()
+            for name in todo:
+                arrays = [self.columns[name][f.path] for f in fragments]
+                if snap.lengths is None:
+                    snap.lengths = np.array([len(a) for a in arrays], dtype=np.int64)
+                combined = pa.concat_arrays(arrays) if arrays else \
+                    pa.array([], dataset.schema.field(name).type)
+                # each file's entry becomes a view of the combined array: kept once
+                offset = 0
+                for fragment, size in zip(fragments, snap.lengths):
+                    self.columns[name][fragment.path] = combined.slice(offset, size)
+                    offset += size
+                snap.combined[name] = combined
+            return {name: snap.combined[name] for name in names}
+
+
+# columns latest-wins and the final order need, besides the sort column
+_RANKING_KEYS = ("batch_id", "isotherm_id", "material_id", "adsorbate", "temperature_k",
+                 "accepted_at")
+
+
 def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
     """Filtered, de-duplicated (unless ``all_results``), sorted summaries.
 
@@ -389,8 +576,17 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
     choose which measurements compete (batch, material, adsorbate, temperature)
     apply before latest-wins; flag filters apply to the winners, so an old
     result never resurfaces because the newer one lacks a flag.
+
+    The ranking runs on the few columns it needs (identity, temperature,
+    acceptance time, the sort column, flags when filtered on), kept in memory
+    per summary file between queries (files never change once written; new
+    ones are read when they appear); the page's whole rows are then read from
+    the row groups that hold them. Where that does not apply, the whole-row
+    path (``_rank_whole_rows`` over a dataset scan) gives the same result.
     """
-    data = store.dataset("summaries")
+    index = getattr(store, "_summaries_index", None)
+    snap = index.current(store) if index is not None else None
+    data = snap.dataset if snap is not None else store.dataset("summaries")
     if data is None:
         return pa.table({}), 0
     if query.sort not in sortable_columns(data.schema):
@@ -411,32 +607,137 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
         tol = abs(query.temperature_tolerance_k)
         where = both((ds.field("temperature_k") >= query.temperature_k - tol)
                      & (ds.field("temperature_k") <= query.temperature_k + tol))
-    table = data.to_table(filter=where)
+    if index is not None and all(name in data.schema.names for name in _RANKING_KEYS):
+        ranked = _rank_cached(index, snap, query)
+        if ranked is not None:
+            return ranked
+    return _rank_whole_rows(data.to_table(filter=where), query)
 
-    if not query.all_results and table.num_rows:
-        newest_first = table.sort_by([("accepted_at", "descending"), ("batch_id", "descending"),
-                                      ("isotherm_id", "ascending")])
-        keys = ["material_id", "adsorbate", "_temperature_key"]
-        if "branch" in newest_first.column_names:
-            keys.append("branch")
-        keyed = newest_first.append_column(
-            "_temperature_key", pc.round(newest_first["temperature_k"], 0)
-        ).append_column("_order", pa.array(range(newest_first.num_rows), pa.int64()))
-        first = keyed.group_by(keys, use_threads=False).aggregate([("_order", "min")])
-        table = newest_first.take(first["_order_min"])
 
-    if (query.flags or query.exclude_flags) and table.num_rows:
-        want, avoid = set(query.flags), set(query.exclude_flags)
-        keep = [want <= f and not (avoid & f)
-                for f in map(_row_flags, table["flags"].to_pylist())]
-        table = table.filter(pa.array(keep, pa.bool_()))
+def _latest_wins(table: pa.Table) -> pa.Table:
+    newest_first = table.sort_by([("accepted_at", "descending"), ("batch_id", "descending"),
+                                  ("isotherm_id", "ascending")])
+    keys = ["material_id", "adsorbate", "_temperature_key"]
+    if "branch" in newest_first.column_names:
+        keys.append("branch")
+    keyed = newest_first.append_column(
+        "_temperature_key", pc.round(newest_first["temperature_k"], 0)
+    ).append_column("_order", pa.array(range(newest_first.num_rows), pa.int64()))
+    first = keyed.group_by(keys, use_threads=False).aggregate([("_order", "min")])
+    return newest_first.take(first["_order_min"])
 
+
+def _flag_filter(table: pa.Table, query: RankingQuery) -> pa.Table:
+    want, avoid = set(query.flags), set(query.exclude_flags)
+    flags = table["flags"]
+    if (pa.types.is_list(flags.type) or pa.types.is_large_list(flags.type)) and (
+            pa.types.is_string(flags.type.value_type)
+            or pa.types.is_large_string(flags.type.value_type)):
+        # vectorised: which rows hold each flag (nulls and null items hold none)
+        flags = flags.combine_chunks() if isinstance(flags, pa.ChunkedArray) else flags
+        values = pc.list_flatten(flags)
+        parents = pc.list_parent_indices(flags).to_numpy(zero_copy_only=False)
+        keep = np.ones(len(flags), dtype=bool)
+        for name, wanted in [(f, True) for f in want] + [(f, False) for f in avoid]:
+            hit = pc.equal(values, name).fill_null(False).to_numpy(zero_copy_only=False)
+            has = np.zeros(len(flags), dtype=bool)
+            has[parents[hit]] = True
+            keep &= has if wanted else ~has
+        return table.filter(pa.array(keep, pa.bool_()))
+    keep = [want <= f and not (avoid & f) for f in map(_row_flags, flags.to_pylist())]
+    return table.filter(pa.array(keep, pa.bool_()))
+
+
+def _sorted_for_page(table: pa.Table, query: RankingQuery) -> pa.Table:
     order = "descending" if query.descending else "ascending"
-    table = table.sort_by([(query.sort, order, "at_end"), ("material_id", "ascending", "at_end"),
-                           ("isotherm_id", "ascending", "at_end"),
-                           ("batch_id", "descending", "at_end")])
+    return table.sort_by([(query.sort, order, "at_end"), ("material_id", "ascending", "at_end"),
+                          ("isotherm_id", "ascending", "at_end"),
+                          ("batch_id", "descending", "at_end")])
+
+
+def _rank_whole_rows(table: pa.Table, query: RankingQuery) -> tuple[pa.Table, int]:
+    """Latest-wins, flag filter, order and page over complete rows."""
+    if not query.all_results and table.num_rows:
+        table = _latest_wins(table)
+    if (query.flags or query.exclude_flags) and table.num_rows:
+        table = _flag_filter(table, query)
+    table = _sorted_for_page(table, query)
     total = table.num_rows
     return table.slice(max(query.offset, 0), max(query.limit, 0)), total
+
+
+def _rank_cached(index: _TableIndex, snap: _Snapshot, query: RankingQuery
+                 ) -> tuple[pa.Table, int] | None:
+    """Rank on the kept key columns, then read the page's whole rows by
+    (file, row); None when the store needs the whole-row path."""
+    data, fragments = snap.dataset, snap.fragments
+    if snap.own_batch_column:
+        return None  # a file carrying its own batch_id: let the dataset reconcile it
+    names = [n for n in _RANKING_KEYS if n != "batch_id"]
+    names += [c for c in ("branch",) if c in data.schema.names]
+    if (query.flags or query.exclude_flags) and "flags" in data.schema.names:
+        names.append("flags")
+    if query.sort not in names and query.sort != "batch_id":
+        names.append(query.sort)
+    columns = index.key_columns(snap, names)
+    lengths = snap.lengths
+    file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)
+
+    # the filters that choose the competitors, as one mask (null counts as false)
+    mask = None
+
+    def both(condition):
+        condition = np.asarray(condition.fill_null(False).to_numpy(zero_copy_only=False)
+                               if not isinstance(condition, np.ndarray) else condition, bool)
+        return condition if mask is None else mask & condition
+
+    if query.batch_id is not None:  # a partition value: decided per file
+        mask = both(np.array([b == query.batch_id for b in snap.batch_of_file], bool)[file_of_row])
+    if query.material_id is not None:
+        mask = both(pc.equal(columns["material_id"], query.material_id))
+    if query.adsorbate is not None:
+        mask = both(pc.equal(columns["adsorbate"], query.adsorbate))
+    if query.temperature_k is not None:
+        tol = abs(query.temperature_tolerance_k)
+        temperature = columns["temperature_k"]
+        mask = both(pc.and_(pc.greater_equal(temperature, query.temperature_k - tol),
+                            pc.less_equal(temperature, query.temperature_k + tol)))
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+    if mask is None:
+        chosen = np.arange(len(file_of_row))
+        table = pa.table(columns)
+    else:
+        chosen = np.flatnonzero(mask)
+        picks = pa.array(chosen)
+        table = pa.table({name: columns[name].take(picks) for name in names})
+    files = file_of_row[chosen]
+    table = table.append_column("_file", pa.array(files)).append_column(
+        "_row", pa.array(chosen - starts[files])).append_column(
+        "batch_id", pa.array(snap.batch_of_file, pa.string()).take(pa.array(files)))
+    page, total = _rank_whole_rows(table, query)
+    if page.num_rows == 0:
+        return data.schema.empty_table(), total
+
+    # the page's rows, read whole from the row groups that hold them
+    file_no = page["_file"].to_numpy()
+    row_no = page["_row"].to_numpy()
+    subsets, expected = [], []
+    for f in np.unique(file_no):
+        fragment = fragments[f]
+        sizes = np.array([rg.num_rows for rg in fragment.row_groups], dtype=np.int64)
+        bounds = np.concatenate([[0], np.cumsum(sizes)])
+        groups = np.unique(np.searchsorted(bounds, row_no[file_no == f], side="right") - 1)
+        subsets.append(fragment.subset(row_group_ids=[int(g) for g in groups]))
+        expected.extend(f * (1 << 32) + np.arange(bounds[g], bounds[g + 1]) for g in groups)
+    rows = ds.FileSystemDataset(subsets, data.schema, data.format, data.filesystem).to_table()
+    expected = np.concatenate(expected)
+    wanted = file_no * (1 << 32) + row_no
+    if rows.num_rows != len(expected):
+        return None  # the files changed under the query: rank again over whole rows
+    at = np.searchsorted(expected, wanted)
+    if np.any(at >= len(expected)) or np.any(expected[np.minimum(at, len(expected) - 1)] != wanted):
+        return None
+    return rows.take(pa.array(at)).replace_schema_metadata(data.schema.metadata), total
 
 
 def nan_to_none(rows: list[dict]) -> list[dict]:
