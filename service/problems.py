@@ -3,10 +3,17 @@ from __future__ import annotations
 
 import logging
 
-from flask import Flask, Response, json
+from flask import Flask, Response, json, request
 from werkzeug.exceptions import HTTPException
 
 PROBLEM_JSON = "application/problem+json"
+# paths of the HTML pages (service/web): an unmatched URL there (a material id
+# the router cannot take, a wrong method) answers with an HTML page, as documented
+HTML_PATH_PREFIXES = ("/materials/", "/assets/")
+
+
+def _is_page_path(path: str) -> bool:
+    return path == "/" or path.startswith(HTML_PATH_PREFIXES)
 log = logging.getLogger(__name__)
 
 
@@ -42,6 +49,10 @@ def register(app: Flask) -> None:
     @app.errorhandler(HTTPException)
     def _http(exc: HTTPException):
         headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
+        if _is_page_path(request.path):
+            from .web.pages import error_page
+
+            return error_page(exc.code or 500, exc.name, exc.description, headers)
         return Problem(exc.code or 500, exc.name, exc.description, headers=headers).response()
 
     @app.errorhandler(Exception)

@@ -355,3 +355,12 @@ def test_command_help_explains_and_gives_an_example(command, capsys):
     text = capsys.readouterr().out
     assert "example:" in text and f"sorbrank {command}" in text
     assert len(text.split("\n\n")[1]) > 80  # a real description, not just usage
+
+
+def test_unmatched_page_urls_answer_with_html_and_api_urls_with_problem_json(client):
+    # a material id the router cannot take (an encoded newline) on the HTML page
+    # path is documented as text/html; the same under /api/v1 stays problem+json
+    page = client.get("/materials/a%0Ab/")
+    assert page.status_code == 404 and page.mimetype == "text/html"
+    api = client.get("/api/v1/no-such-resource", headers=auth("reader"))
+    assert api.status_code == 404 and api.mimetype == "application/problem+json"

@@ -103,26 +103,27 @@ def model_title(model_id) -> str:
 
 # -- responses --------------------------------------------------------------
 
-def _error_page(status: int, title: str, detail: str | None, headers: dict | None = None):
+def error_page(status: int, title: str, detail: str | None, headers: dict | None = None):
+    """An HTML error page (also used by the app for unmatched page URLs)."""
     body = render_template("page_error.html", status=status, title=title, detail=detail)
     return body, status, headers or {}
 
 
 @bp.errorhandler(Problem)
 def _problem_page(exc: Problem):
-    return _error_page(exc.status, exc.title, exc.detail, exc.headers)
+    return error_page(exc.status, exc.title, exc.detail, exc.headers)
 
 
 @bp.errorhandler(HTTPException)
 def _http_page(exc: HTTPException):
     headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
-    return _error_page(exc.code or 400, exc.name, exc.description, headers)
+    return error_page(exc.code or 400, exc.name, exc.description, headers)
 
 
 @bp.errorhandler(Exception)
 def _unexpected_page(exc: Exception):
     log.exception("page failed")
-    return _error_page(500, "Internal Server Error",
+    return error_page(500, "Internal Server Error",
                        "This page failed to render; the error is logged. Stored results are "
                        "not affected.")
 
