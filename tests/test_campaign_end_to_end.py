@@ -36,7 +36,7 @@ def campaign(tmp_path_factory):
             if path.suffix in (".csv", ".json", ".parquet") and not path.name.startswith(
                     ("ground_truth", "_")):
                 replies[path.name] = client.submit_file(path)
-        summaries = {}
+        summaries, materials = {}, []
         for name, reply in replies.items():
             status = client.wait(reply["batch_id"], timeout_s=900)
             assert status["state"] == "done", (name, status)
@@ -44,14 +44,16 @@ def campaign(tmp_path_factory):
                                    {"format": "json", "table": "summary"})
             for row in doc["summary"]:
                 summaries[row["isotherm_id"]] = row
-        yield truth, replies, summaries
+            materials += client._get_json(f"/batches/{reply['batch_id']}/results",
+                                          {"format": "json", "table": "materials"})["materials"]
+        yield truth, replies, summaries, materials
     finally:
         for proc in reversed(procs):
             proc.stop()
 
 
 def test_every_good_dataset_is_accepted_and_fitted(campaign):
-    truth, _, summaries = campaign
+    truth, _, summaries, _ = campaign
     missing = [t["isotherm_id"] for t in truth["isotherms"] if t["isotherm_id"] not in summaries]
     assert missing == []
     no_model = [i for i, row in summaries.items() if row["best_model"] is None]
@@ -59,7 +61,7 @@ def test_every_good_dataset_is_accepted_and_fitted(campaign):
 
 
 def test_recovered_capacities_match_the_ground_truth(campaign):
-    truth, _, summaries = campaign
+    truth, _, summaries, _ = campaign
     rule = truth["tolerances"]["q_sat"]
     cases = [t for t in truth["isotherms"] if t.get("capacity_resolvable")]
     assert len(cases) > 1000
@@ -76,7 +78,7 @@ def test_bet_areas_match_the_ground_truth(campaign):
     # every reported area within the stated 5 %; where no p/p0 range passes the
     # four criteria and R2 >= 0.9995 on noisy data the area is withheld and
     # flagged, never a silent number - we require that to stay rare (<= 10 %)
-    truth, _, summaries = campaign
+    truth, _, summaries, _ = campaign
     tol = truth["tolerances"]["bet_area"]["relative"]
     cases = [t for t in truth["isotherms"] if t.get("bet_area_m2_per_g") is not None]
     assert len(cases) == 60
@@ -94,7 +96,7 @@ def test_bet_areas_match_the_ground_truth(campaign):
 
 
 def test_every_bad_dataset_gets_its_expected_outcome(campaign):
-    truth, replies, summaries = campaign
+    truth, replies, summaries, _ = campaign
     rejected_codes: dict[str, set[str]] = {}
     for reply in replies.values():
         for issue in reply["rejected"]:
@@ -105,3 +107,46 @@ def test_every_bad_dataset_gets_its_expected_outcome(campaign):
             assert bad["isotherm_id"] not in summaries
         else:
             assert bad["code"] in summaries[bad["isotherm_id"]]["flags"], bad
+
+
+def test_isosteric_heats_match_the_ground_truth(campaign):
+    # single-site materials have a loading-independent heat (van 't Hoff
+    # affinity, constant q_sat); tolerance: the larger of 2.5 kJ/mol and 10 %
+    truth, _, _, materials = campaign
+    rule = truth["tolerances"]["isosteric_heat"]
+    got = {(m["material_id"], m["adsorbate"]): m for m in materials
+           if m["kind"] == "isosteric_heat"}
+    checked, off = 0, []
+    for t in truth["isosteric_heats"]:
+        row = got.get((t["material_id"], t["adsorbate"]))
+        if not t["constant_with_loading"] or row is None:
+            continue
+        checked += 1
+        q = t["isosteric_heat_j_per_mol"]
+        if abs(row["isosteric_heat_j_per_mol"] - q) > max(rule["absolute_j_per_mol"], rule["relative"] * q):
+            off.append((t["material_id"], t["adsorbate"], row["isosteric_heat_j_per_mol"], q))
+    assert checked >= 300
+    assert off == []
+
+
+def test_iast_selectivities_match_the_ground_truth(campaign):
+    # mixture requests travel in the JSON batch; the ground truth solves IAST on
+    # the true pure-component models; tolerance 20 % where both pure-component
+    # pressures lie inside the measured range
+    truth, _, _, materials = campaign
+    tol = truth["tolerances"]["iast_selectivity"]["relative"]
+    mixtures = {m["name"]: m for m in truth["campaign"]["mixtures"]}
+    got = {(m["material_id"], m["adsorbate"], m["temperature_k"], round(m["total_pressure_pa"])): m
+           for m in materials if m["kind"] == "iast"}
+    checked, off = 0, []
+    for t in truth["mixtures"]:
+        mix = mixtures[t["mixture"]]
+        row = got.get((t["material_id"], "/".join(mix["components"]), mix["temperature_k"],
+                       round(mix["total_pressure_pa"])))
+        if not t["iast_resolvable"] or row is None:
+            continue
+        checked += 1
+        if row["selectivity"] is None or abs(row["selectivity"] / t["selectivity"] - 1) > tol:
+            off.append((t["material_id"], t["mixture"], row["selectivity"], t["selectivity"]))
+    assert checked >= 100
+    assert off == []

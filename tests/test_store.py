@@ -343,3 +343,18 @@ def test_idempotency_claim_has_exactly_one_winner(tmp_path):
     assert all(h == held[0] for h in held) and held[0] in claims
     assert store.read_idempotency(key_hash) == held[0]
     assert [p.name for p in (tmp_path / "idempotency").iterdir()] == [f"{key_hash}.json"]
+
+
+def test_material_rows_of_every_kind_keep_all_their_fields():
+    # an isosteric-heat row first, then an IAST row with other fields: the stored
+    # table must carry the union, not only the first row's keys
+    from worker.jobs import material_rows_table
+
+    rows = [{"kind": "isosteric_heat", "material_id": "M", "adsorbate": "CO2",
+             "isosteric_heat_j_per_mol": 30000.0},
+            {"kind": "iast", "material_id": "M", "adsorbate": "CO2/N2", "temperature_k": 298.15,
+             "total_pressure_pa": 1e5, "selectivity": 40.0}]
+    table = material_rows_table(rows)
+    back = table.to_pylist()
+    assert back[1]["selectivity"] == 40.0 and back[1]["temperature_k"] == 298.15
+    assert back[0]["selectivity"] is None and back[0]["isosteric_heat_j_per_mol"] == 30000.0

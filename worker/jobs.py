@@ -158,6 +158,17 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
     return status
 
 
+def material_rows_table(rows: list[dict]) -> pa.Table:
+    """Material rows of every kind as one table: the union of their keys.
+
+    Rows of different kinds (isosteric heat, IAST, temperature swing) carry
+    different fields, and pyarrow infers a table's columns from the first row
+    alone, which would silently drop the other kinds' fields.
+    """
+    keys = list(dict.fromkeys(k for row in rows for k in row))
+    return pa.Table.from_pylist([{k: row.get(k) for k in keys} for row in rows])
+
+
 def _fit_and_write(store: Store, manifest: dict, batch_id: str, chunk_index: int) -> dict:
     """Fit one chunk, write its three tables; the "done" status to record (not yet written)."""
     started_s = time.monotonic()
@@ -167,7 +178,7 @@ def _fit_and_write(store: Store, manifest: dict, batch_id: str, chunk_index: int
     fits = result.fits_table()
     store.write_table("fits", batch_id, chunk_index, _with_accepted_at(fits, accepted_at))
     if result.material_rows:
-        materials = pa.Table.from_pylist(result.material_rows)
+        materials = material_rows_table(result.material_rows)
         store.write_table("materials", batch_id, chunk_index, _with_accepted_at(materials, accepted_at))
     summaries = _with_accepted_at(result.summary_table(), accepted_at)
     store.write_table("summaries", batch_id, chunk_index, summaries)
