@@ -364,3 +364,10 @@ def test_unmatched_page_urls_answer_with_html_and_api_urls_with_problem_json(cli
     assert page.status_code == 404 and page.mimetype == "text/html"
     api = client.get("/api/v1/no-such-resource", headers=auth("reader"))
     assert api.status_code == 404 and api.mimetype == "application/problem+json"
+
+
+def test_csv_content_type_names_its_charset_once(client):
+    # RFC 9110: one charset parameter; a doubled one confuses strict clients
+    resp = client.get("/api/v1/rankings?format=csv", headers=auth("reader"))
+    assert resp.status_code == 200
+    assert resp.headers["Content-Type"].replace(" ", "").lower() == "text/csv;charset=utf-8"

@@ -99,8 +99,8 @@ def table_response(table: pa.Table, fmt: str, name: str, headers: dict | None = 
     """A tabular (non-JSON) response; ``name`` becomes the download file name."""
     body = {"csv": to_csv, "parquet": to_parquet, "arrow": to_arrow_stream}[fmt](table)
     extension = {"csv": "csv", "parquet": "parquet", "arrow": "arrows"}[fmt]
-    mimetype = MEDIA_TYPES[fmt] + ("; charset=utf-8" if fmt == "csv" else "")
-    resp = Response(body, mimetype=mimetype)
+    # Werkzeug adds "; charset=utf-8" to text/* media types itself
+    resp = Response(body, mimetype=MEDIA_TYPES[fmt])
     resp.headers["Content-Disposition"] = f'attachment; filename="{name}.{extension}"'
     resp.headers.update(headers or {})
     return resp
