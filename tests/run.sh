@@ -18,6 +18,12 @@ command -v redis-server >/dev/null 2>&1 || need_apt+=(redis-server)
 # headless browser for the overview-page test (Debian's build; nothing downloads its own)
 command -v chromium >/dev/null 2>&1 || need_apt+=(chromium)
 command -v chromedriver >/dev/null 2>&1 || need_apt+=(chromium-driver)
+# where a docker client exists, a compose implementation lets the deploy test
+# parse docker/compose.yaml (no engine is needed for that)
+if command -v docker >/dev/null 2>&1 && ! docker compose version >/dev/null 2>&1 \
+        && ! command -v docker-compose >/dev/null 2>&1; then
+    need_apt+=(docker-compose)
+fi
 if [ "${#need_apt[@]}" -gt 0 ]; then
     if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
         echo "installing ${need_apt[*]} from Debian's packages" >&2
