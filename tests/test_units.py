@@ -33,7 +33,7 @@ def test_pressure_units_match_scipy_constants(unit, pa_per_unit):
     np.testing.assert_allclose(units.pressure_to_pa(values, unit), values * pa_per_unit, rtol=1e-15)
 
 
-def test_textbook_pressure_equivalences():
+def test_standard_pressure_equivalences():
     # 1 atm = 760 torr = 14.6959 psi (SI definitions via scipy.constants;
     # 14.6959 psi to six figures is common practice, no single source)
     assert units.pressure_to_pa(760, "torr") == pytest.approx(constants.atm, rel=1e-12)
