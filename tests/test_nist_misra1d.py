@@ -1,8 +1,8 @@
 """NIST StRD nonlinear regression dataset Misra1d against its certified values.
 
-Source: NIST/ITL Statistical Reference Datasets, Misra1d (Misra, D., NIST
-1978, dental research monomolecular adsorption study), data and certified
-values as listed in /work/shared/REFERENCES.md. Model y = b1*b2*x/(1+b2*x)
+Source: NIST/ITL StRD nonlinear regression dataset Misra1d (certified
+values) (Misra, D., NIST 1978, dental research monomolecular adsorption
+study); data and certified values are typed below. Model y = b1*b2*x/(1+b2*x)
 is the Langmuir form: b1 = q_sat, b2 = affinity. NIST's accuracy measure is
 the log relative error LRE = -log10(|computed - certified| / |certified|).
 

@@ -15,7 +15,8 @@ Idempotency-Key, so a batch is never submitted twice.
 
 Prints one line per file: batch id, file, isotherms accepted, isotherms
 rejected. With --wait, shows progress on stderr and prints the final state.
-Exit status: 0 all accepted (and done, with --wait); 1 otherwise."""
+Exit status: 0 every file was accepted as a batch (and, with --wait, finished
+done); isotherms rejected inside a batch do not change it; 1 otherwise."""
 EPILOG = """\
 example:
   sorbrank submit run1.csv run2.parquet --pressure-unit kPa --loading-unit mmol/g --wait

@@ -34,8 +34,9 @@ def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
 
 def defines_saturation_capacity(model) -> bool:
     """True when the model has a finite plateau (Langmuir-like), False for
-    models that rise without bound (Henry, Freundlich, Redlich-Peterson with
-    beta < 1, Temkin) or whose monolayer is no saturation (BET, GAB)."""
+    models that rise without bound (Henry, Freundlich, Temkin, and
+    Redlich-Peterson, whose plateau exists only at the edge beta = 1 and which
+    therefore declares none) or whose monolayer is no saturation (BET, GAB)."""
     return model.saturation_capacity(np.ones((1, len(model.params)))) is not None
 
 
@@ -45,7 +46,7 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
     The selected model where it defines a saturation capacity. Otherwise the
     eligible model with the highest Akaike weight among those that do: a
     screening team ranks on capacity even when an unbounded model (e.g.
-    Redlich-Peterson with beta just below 1) wins the selection on noise.
+    Redlich-Peterson, which defines no plateau) wins the selection on noise.
     Not when a multilayer model (BET, GAB) is selected: that isotherm has no
     plateau, and its figure is the BET monolayer instead.
     """
