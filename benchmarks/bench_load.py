@@ -32,9 +32,6 @@ import hashlib
 import json
 import os
 import shutil
-import signal
-import socket
-import subprocess
 import sys
 import tempfile
 import threading
@@ -44,67 +41,11 @@ import zlib
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
+from local_procs import LOOPBACK, Procs, free_port, wait_for
+
 ROOT = Path(__file__).resolve().parents[1]
-LOOPBACK = "127.0.0.1"
 TOKEN = "bench-load-" + uuid.uuid4().hex
 PRESSURES_KPA = (1, 2, 5, 10, 20, 40, 60, 80, 100)
-
-
-def free_port() -> int:
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind((LOOPBACK, 0))
-        return s.getsockname()[1]
-
-
-class Procs:
-    """Processes started here, each in its own group; all stopped by ``stop_all``."""
-
-    def __init__(self, log_dir: Path):
-        self.log_dir = log_dir
-        self.procs: list[tuple[str, subprocess.Popen, Path]] = []
-
-    def start(self, name: str, args: list[str], env: dict) -> tuple[subprocess.Popen, Path]:
-        log = self.log_dir / f"{name}.log"
-        with open(log, "ab") as fh:
-            popen = subprocess.Popen(args, env=env, cwd=str(self.log_dir), stdout=fh,
-                                     stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-                                     start_new_session=True)
-        self.procs.append((name, popen, log))
-        return popen, log
-
-    def stop_all(self) -> None:
-        for name, popen, _ in reversed(self.procs):
-            if popen.poll() is None:
-                try:
-                    os.killpg(popen.pid, signal.SIGTERM)
-                except ProcessLookupError:
-                    pass
-                try:
-                    popen.wait(timeout=20)
-                except subprocess.TimeoutExpired:
-                    pass
-            try:
-                os.killpg(popen.pid, signal.SIGKILL)
-            except (ProcessLookupError, PermissionError):
-                pass
-            if popen.poll() is None:
-                popen.wait(timeout=10)
-
-
-def wait_for(check, what: str, procs: Procs, timeout_s: float, interval_s: float = 0.1):
-    deadline = time.monotonic() + timeout_s
-    for _ in range(int(timeout_s / interval_s) + 1):
-        result = check()
-        if result:
-            return result
-        for name, popen, log in procs.procs:
-            if popen.poll() is not None:
-                raise SystemExit(f"{name} exited while waiting for {what}:\n"
-                                 + log.read_text(errors="replace")[-3000:])
-        if time.monotonic() > deadline:
-            break
-        time.sleep(interval_s)
-    raise SystemExit(f"gave up waiting for {what}")
 
 
 def batch_csv(tag: str, n: int) -> bytes:

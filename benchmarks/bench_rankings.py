@@ -38,7 +38,6 @@ from __future__ import annotations
 
 import argparse
 import importlib.util
-import os
 import shutil
 import statistics
 import subprocess

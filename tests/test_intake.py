@@ -6,7 +6,6 @@ CoolProp.
 """
 import io
 import json
-from pathlib import Path
 
 import numpy as np
 import pyarrow as pa

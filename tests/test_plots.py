@@ -6,10 +6,7 @@ from __future__ import annotations
 import argparse
 import io
 import struct
-import sys
-import types
 import xml.etree.ElementTree as ET
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,10 +15,7 @@ from scipy.optimize import curve_fit
 
 from service import plots
 from service.commands import plot as plot_command
-from worker.intake import Limits
-from worker.isotherm import Batch, IntakeError, Isotherm, Issue
 from worker.models import CATALOGUE
-from worker.models.base import IsothermModel, Param
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 AVOGADRO_PER_MOL = 6.02214076e23

@@ -5,7 +5,6 @@ mmHg, psi, bar), CoolProp (a general thermophysical property library) for
 saturation pressures, critical temperatures and molar masses, and the NIST
 Chemistry WebBook for the normal boiling point of nitrogen.
 """
-import math
 
 import numpy as np
 import pytest

@@ -6,8 +6,7 @@ from scipy import constants, stats
 
 from ..packing import Packed
 from ..results import ModelFits, Selection
-from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading,
-                     selected_groups)
+from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading)
 
 # A capacity is an extrapolation when the data never reach half of it.
 CAPACITY_EXTRAPOLATION_FRACTION = 0.5

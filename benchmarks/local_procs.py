@@ -1,0 +1,71 @@
+"""Process handling shared by the benchmarks that start real servers:
+free loopback ports, process groups that are always stopped, bounded waits."""
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import subprocess
+import time
+from pathlib import Path
+
+LOOPBACK = "127.0.0.1"
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((LOOPBACK, 0))
+        return s.getsockname()[1]
+
+
+class Procs:
+    """Processes started here, each in its own group; all stopped by ``stop_all``."""
+
+    def __init__(self, log_dir: Path):
+        self.log_dir = log_dir
+        self.procs: list[tuple[str, subprocess.Popen, Path]] = []
+
+    def start(self, name: str, args: list[str], env: dict, cwd: Path | None = None):
+        log = self.log_dir / f"{name}.log"
+        with open(log, "ab") as fh:
+            popen = subprocess.Popen(args, env=env, cwd=str(cwd or self.log_dir), stdout=fh,
+                                     stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+                                     start_new_session=True)
+        self.procs.append((name, popen, log))
+        return popen, log
+
+    def stop_all(self) -> int:
+        stopped = 0
+        for _, popen, _ in reversed(self.procs):
+            if popen.poll() is None:
+                try:
+                    os.killpg(popen.pid, signal.SIGTERM)
+                except ProcessLookupError:
+                    pass
+                try:
+                    popen.wait(timeout=20)
+                except subprocess.TimeoutExpired:
+                    pass
+            try:  # pool children may outlive their parent
+                os.killpg(popen.pid, signal.SIGKILL)
+            except (ProcessLookupError, PermissionError):
+                pass
+            if popen.poll() is None:
+                popen.wait(timeout=10)
+            stopped += 1
+        return stopped
+
+
+def wait_for(check, what: str, procs: Procs, timeout_s: float, interval_s: float = 0.1):
+    deadline = time.monotonic() + timeout_s
+    while True:
+        result = check()
+        if result:
+            return result
+        for name, popen, log in procs.procs:
+            if popen.poll() is not None:
+                raise SystemExit(f"{name} exited while waiting for {what}:\n"
+                                 + log.read_text(errors="replace")[-3000:])
+        if time.monotonic() > deadline:
+            raise SystemExit(f"gave up waiting for {what}")
+        time.sleep(interval_s)
