@@ -42,7 +42,8 @@ def virial_henry_constant(packed: Packed) -> tuple[np.ndarray, np.ndarray]:
     with np.errstate(divide="ignore", invalid="ignore"):
         ln_p_over_q = np.log(np.where(low, p / np.where(low, q, 1.0), 1.0))
     _, intercept, n_used = masked_linear_fit(q, ln_p_over_q, low)
-    k_h = np.exp(-intercept)
+    with np.errstate(over="ignore"):  # an absurd intercept gives inf: not finite, so unused
+        k_h = np.exp(-intercept)
     enough = n_used >= VIRIAL_MIN_POINTS
     return np.where(enough, k_h, np.nan), n_used
 
