@@ -35,7 +35,6 @@ project reports against: 1,000,000 isotherms in <= 10 min with peak RSS
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import multiprocessing as mp
 import os
 import resource
@@ -177,12 +176,11 @@ def fit_chunk(job) -> dict:
     summary_path = out_dir / f"{in_path.stem}.summary.parquet"
     if summary_path.exists():
         return {"skipped": 1}
-    from service.commands.fit import LOCAL_MAX_BYTES, LOCAL_MAX_ISOTHERMS
     from worker.intake import Limits, read_batch
     from worker.pipeline import FitOptions, process_batch
 
     start = time.perf_counter()
-    limits = dataclasses.replace(Limits(), max_isotherms=LOCAL_MAX_ISOTHERMS, max_bytes=LOCAL_MAX_BYTES)
+    limits = Limits.for_local_files()
     batch = read_batch(in_path, limits=limits)
     t_read = time.perf_counter() - start
     n = len(batch.isotherms)

@@ -116,6 +116,12 @@ class Limits:
     max_bytes: int = 256 * 1024 * 1024
     max_json_depth: int = 32
 
+    @classmethod
+    def for_local_files(cls) -> "Limits":
+        """Limits for files read on one's own machine (``sorbrank fit``/``plot``):
+        far above what the HTTP service accepts from a client."""
+        return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3)
+
 
 REQUIRED_COLUMNS = ("material_id", "adsorbate", "temperature_k", "pressure", "loading")
 OPTIONAL_COLUMNS = ("isotherm_id", "branch", "pressure_unit", "loading_unit",

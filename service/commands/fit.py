@@ -13,8 +13,6 @@ CRITERIA = ("aicc", "bic", "aic")
 WEIGHTINGS = ("uniform", "relative", "sigma")
 DEFAULT_SORT = "q_sat_mol_per_kg"
 # the CLI reads local files: allow far more than the HTTP service accepts
-LOCAL_MAX_ISOTHERMS = 10_000_000
-LOCAL_MAX_BYTES = 16 * 1024**3
 
 DESCRIPTION = """\
 Fit every published isotherm model to each isotherm of the input files, pick
@@ -122,7 +120,6 @@ def _usage_error(message: str) -> int:
 
 
 def run(args) -> int:
-    import dataclasses
 
     import pyarrow.compute as pc
 
@@ -139,7 +136,7 @@ def run(args) -> int:
     except ValueError as exc:
         return _usage_error(str(exc))
 
-    limits = dataclasses.replace(Limits(), max_isotherms=LOCAL_MAX_ISOTHERMS, max_bytes=LOCAL_MAX_BYTES)
+    limits = Limits.for_local_files()
     batches = []
     for name in args.inputs:
         path = Path(name)

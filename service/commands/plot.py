@@ -8,9 +8,6 @@ import sys
 from pathlib import Path
 
 KINDS = ("isotherm", "langmuir-linear", "bet")
-# a local file: allow far more than the HTTP service accepts
-LOCAL_MAX_ISOTHERMS = 10_000_000
-LOCAL_MAX_BYTES = 16 * 1024**3
 
 DESCRIPTION = """\
 Fit one isotherm of an input file with the default options of 'sorbrank fit'
@@ -79,8 +76,7 @@ def run(args: argparse.Namespace) -> int:
     path = Path(args.input)
     if not path.is_file():
         return _fail(f"no such file: {args.input}")
-    limits = dataclasses.replace(Limits(), max_isotherms=LOCAL_MAX_ISOTHERMS,
-                                 max_bytes=LOCAL_MAX_BYTES)
+    limits = Limits.for_local_files()
     try:
         # a Path, not a str: read_batch takes a str as the file's content
         batch = read_batch(path, limits=limits)

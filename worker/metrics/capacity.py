@@ -63,14 +63,19 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
     weights = np.where(eligible & np.isfinite(weights), weights, -1.0)
     best_capable = np.argmax(weights, axis=1)
     has_capable = weights[np.arange(n), best_capable] >= 0.0
-    for i in range(n):
-        best = selection.best[i]
-        if best is not None and best in CATALOGUE and defines_saturation_capacity(CATALOGUE[best]):
-            chosen[i] = best
-        elif best is not None and best in CATALOGUE and CATALOGUE[best].multilayer:
-            continue  # a multilayer isotherm has no plateau to borrow from elsewhere
-        elif has_capable[i]:
-            chosen[i] = selection.model_ids[capable[best_capable[i]]]
+    # decided once per selected model id, then applied to its rows at once
+    borrowed = np.full(n, None, dtype=object)
+    borrowed[has_capable] = np.array(selection.model_ids, dtype=object)[
+        np.asarray(capable)[best_capable[has_capable]]]
+    for model_id in set(selection.best) - {None}:
+        rows = selection.best == model_id
+        model = CATALOGUE.get(model_id)
+        if model is not None and defines_saturation_capacity(model):
+            chosen[rows] = model_id
+        elif model is None or not model.multilayer:
+            # a multilayer isotherm has no plateau to borrow from elsewhere
+            chosen[rows] = borrowed[rows]
+    chosen[selection.best == None] = borrowed[selection.best == None]  # noqa: E711
     return chosen
 
 

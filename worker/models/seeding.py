@@ -94,3 +94,23 @@ def keep_best(model, candidates: list[np.ndarray], x: np.ndarray, q: np.ndarray,
     sse = np.where(np.isfinite(sse), sse, np.inf)
     order = np.argsort(sse, axis=0, kind="stable")[:keep]
     return np.take_along_axis(cand, order[:, :, None], axis=0)
+
+
+def log_of_product(x: np.ndarray, affinity: np.ndarray) -> np.ndarray:
+    """ln(affinity * x), -inf at x = 0 without a warning (models guard x > 0)."""
+    with np.errstate(divide="ignore"):
+        return np.log(affinity * x)
+
+
+def exponent_affinity_grid(model, x: np.ndarray, q: np.ndarray, mask: np.ndarray,
+                           exponents, x_lo: np.ndarray, x_hi: np.ndarray, q_hi: np.ndarray,
+                           points: int) -> list[np.ndarray]:
+    """Seeds (capacity, affinity, exponent) over a grid of exponents and
+    affinities spanning the measured pressures, each with its least-squares
+    capacity, for models shaped q = capacity * f(x; affinity, exponent)."""
+    seeds = []
+    for exponent in exponents:
+        for affinity in log_grid(0.01 / x_hi, 100.0 / x_lo, points):
+            shape = model.evaluate(x, None, 1.0, affinity, exponent)
+            seeds.append(row(best_scale(q, shape, mask, q_hi), affinity, exponent))
+    return seeds

@@ -6,15 +6,11 @@ from scipy.special import expit
 
 from .base import IsothermModel, Param
 from .linear import masked_linear_fit
-from .seeding import best_scale, data_scales, keep_best, log_grid, row
+from .seeding import (data_scales, keep_best, row,
+                      exponent_affinity_grid, log_of_product)
 
 _AFFINITY_GRID_POINTS = 9
 _HETEROGENEITY_GRID = (1.0, 0.75, 0.5, 0.3)
-
-
-def _log_bp(x, affinity):
-    with np.errstate(divide="ignore"):
-        return np.log(affinity * x)
 
 
 class Sips(IsothermModel):
@@ -33,11 +29,11 @@ class Sips(IsothermModel):
     # the logistic form expit(s ln(bp)) avoids overflow of (bp)^s at large bp
     @staticmethod
     def evaluate(x, temperature_k, q_sat, affinity, heterogeneity):
-        return q_sat * expit(heterogeneity * _log_bp(x, affinity))
+        return q_sat * expit(heterogeneity * log_of_product(x, affinity))
 
     @staticmethod
     def jacobian(x, temperature_k, q_sat, affinity, heterogeneity):
-        log_bp = _log_bp(x, affinity)
+        log_bp = log_of_product(x, affinity)
         z = heterogeneity * log_bp
         frac = expit(z)
         bend = expit(z) * expit(-z)  # u / (1 + u)^2 with u = (bp)^s
@@ -64,10 +60,8 @@ class Sips(IsothermModel):
             b = np.where(np.isfinite(b) & (b > 0), b, 1.0 / x_hi)
             candidates.append(row(q_sat, b, s))
         # grid over (s, b), each with its least-squares capacity
-        for s in _HETEROGENEITY_GRID:
-            for b in log_grid(0.01 / x_hi, 100.0 / x_lo, _AFFINITY_GRID_POINTS):
-                shape = cls.evaluate(x, None, 1.0, b, s)
-                candidates.append(row(best_scale(q, shape, mask, q_hi), b, s))
+        candidates += exponent_affinity_grid(cls, x, q, mask, _HETEROGENEITY_GRID,
+                                             x_lo, x_hi, q_hi, _AFFINITY_GRID_POINTS)
         return keep_best(cls, candidates, x, q, mask, temperature_k)
 
     @classmethod

@@ -6,15 +6,10 @@ from scipy.special import expit
 
 from .base import IsothermModel, Param
 from .langmuir import Langmuir
-from .seeding import best_scale, data_scales, keep_best, log_grid, row
+from .seeding import (data_scales, keep_best, exponent_affinity_grid, log_of_product)
 
 _AFFINITY_GRID_POINTS = 9
 _T_GRID = (1.0, 0.7, 0.45, 0.3)
-
-
-def _log_bp(x, affinity):
-    with np.errstate(divide="ignore"):
-        return np.log(affinity * x)
 
 
 class Toth(IsothermModel):
@@ -33,12 +28,12 @@ class Toth(IsothermModel):
     # written as exp(ln(bp) - ln(1 + (bp)^t) / t) so large bp cannot overflow
     @staticmethod
     def evaluate(x, temperature_k, q_sat, affinity, t):
-        log_bp = _log_bp(x, affinity)
+        log_bp = log_of_product(x, affinity)
         return q_sat * np.exp(log_bp - np.logaddexp(0.0, t * log_bp) / t)
 
     @staticmethod
     def jacobian(x, temperature_k, q_sat, affinity, t):
-        log_bp = _log_bp(x, affinity)
+        log_bp = log_of_product(x, affinity)
         log_denom = np.logaddexp(0.0, t * log_bp)   # ln(1 + (bp)^t)
         theta = np.exp(log_bp - log_denom / t)
         q = q_sat * theta
@@ -53,10 +48,8 @@ class Toth(IsothermModel):
         # t = 1 is Langmuir, so its linear-form seeds are Toth seeds too
         candidates = [np.concatenate([c, np.ones_like(c[:, :1])], axis=1)
                       for c in Langmuir.candidate_seeds(x, q, mask)[:2]]
-        for t in _T_GRID:
-            for b in log_grid(0.01 / x_hi, 100.0 / x_lo, _AFFINITY_GRID_POINTS):
-                shape = cls.evaluate(x, None, 1.0, b, t)
-                candidates.append(row(best_scale(q, shape, mask, q_hi), b, t))
+        candidates += exponent_affinity_grid(cls, x, q, mask, _T_GRID,
+                                             x_lo, x_hi, q_hi, _AFFINITY_GRID_POINTS)
         return keep_best(cls, candidates, x, q, mask, temperature_k)
 
     @classmethod
