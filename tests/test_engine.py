@@ -358,3 +358,67 @@ def test_a_rows_result_does_not_depend_on_its_company(monkeypatch):
                         (iso_id, f, block, a, b)
                 else:
                     assert np.array_equal(a, b), (iso_id, f, block, a, b)
+
+
+def _misfit_batch():
+    """Noisy data of four generating models (invented, truth-known), to be
+    fitted by models that mostly did not generate them: the workload where an
+    isotherm's seeds end in one minimum, in different ones, or drift."""
+    return sum((noisy_batch(mid, 12, 0.01, seed=9) for mid in ("langmuir", "sips", "toth", "freundlich")), [])
+
+
+@pytest.mark.parametrize("model_id", ["langmuir", "dual_site_langmuir", "sips", "toth", "redlich_peterson"])
+def test_merging_seeds_changes_no_fit_and_saves_iterations(monkeypatch, model_id):
+    import worker.engine as engine
+
+    model, packed = CATALOGUE[model_id], pack(_misfit_batch())
+    solver = engine._levenberg_marquardt
+    spent = []
+
+    def counting_solver(*args, **kwargs):
+        out = solver(*args, **kwargs)
+        spent.append(int(out[3].sum()))   # iterations of every seed row
+        return out
+
+    monkeypatch.setattr(engine, "_levenberg_marquardt", counting_solver)
+    runs = {}
+    for merge in (False, True):
+        monkeypatch.setattr(engine, "MERGE_SEEDS", merge)
+        fits = fit_model(model, packed)
+        runs[merge] = fits, spent[-1]
+    (plain, plain_iter), (merged, merged_iter) = runs[False], runs[True]
+    assert np.array_equal(plain.converged, merged.converged)
+    assert list(plain.reason) == list(merged.reason)
+    both = np.isfinite(plain.sse)
+    # the survivor is the seed that would have been picked: the same fit, up to
+    # which of two seeds polished the same minimum to the last bits
+    np.testing.assert_allclose(merged.sse[both], plain.sse[both], rtol=1e-10)
+    np.testing.assert_allclose(merged.params[both], plain.params[both], rtol=1e-6)
+    assert merged_iter < plain_iter, (merged_iter, plain_iter)
+
+
+def test_merged_seeds_stops_only_the_worse_of_two_seeds_at_one_minimum():
+    """Hand-built working set: two seeds of one isotherm in the quadratic regime
+    near the same minimum (the lower SSE survives), and a third row of another
+    isotherm that is just as close but is no sibling (never merged)."""
+    import worker.engine as engine
+
+    k = 2
+    a_one = np.eye(k)[:, :, None] * np.ones(3)           # normal matrix: identity
+    theta = np.array([[1.0, 1.0 + 1e-5, 1.0], [2.0, 2.0, 2.0 + 1e-5]])
+    sse = np.array([5.0, 5.0 + 1e-10, 5.0])
+    pred = np.array([1e-10, 1e-10, 1e-10])                # |theta - theta*|_A ~ 1e-5 each
+    src = np.array([0, 0, 1])
+    rid = np.arange(3)
+    pos = np.arange(3)
+    st = np.full(3, engine._RUNNING)
+    near = np.ones(3, dtype=bool)
+    kill = engine._merged_seeds(rid, src, 2, pos, st, near, theta, sse, a_one, pred,
+                                theta.T.copy(), sse.copy(), st.copy())
+    assert kill.tolist() == [False, True, False]
+    # far apart in the A-norm (a different minimum): nobody stops
+    theta_far = theta.copy()
+    theta_far[0, 1] += 1.0
+    kill = engine._merged_seeds(rid, src, 2, pos, st, near, theta_far, sse, a_one, pred,
+                                theta_far.T.copy(), sse.copy(), st.copy())
+    assert not kill.any()

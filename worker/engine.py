@@ -25,6 +25,12 @@ precision of the SSE itself and pins parameters to ~1e-10 relative. A row
 whose parameters run off towards a bound while the SSE keeps falling along
 the way (a fit tending to a limiting model, which has no minimum at finite
 parameters) is stopped early as drifting; see DRIFT_WINDOW.
+
+Seeds: every isotherm is started from a few seeds (isotherm-major order, so
+an isotherm's seeds enter the working set together and iterate in lockstep).
+Most end in the same minimum; a seed that provably heads for the minimum a
+sibling reaches with a lower SSE stops there (_merged_seeds), which leaves
+the reported fit as it was and saves the duplicated polishing.
 """
 from __future__ import annotations
 
@@ -50,6 +56,14 @@ MAX_ITER = 200
 INFLUENCE_RTOL = 1e-8   # a parameter moving the curve less than this (relative) is undetermined
 PIVOT_RTOL = 1e-13      # Cholesky pivot / original diagonal below this = singular
 MAX_DAMPING = 1e16
+# Seeds of one isotherm that head for the same minimum are merged (see
+# _merged_seeds) once both are this close to it: Gauss-Newton predicted
+# reduction / SSE, i.e. well inside the quadratic regime. MERGE_SEEDS = False
+# runs every seed to its own end (the result is the same; it costs more).
+MERGE_REL_TOL = 1e-6
+MERGE_SEEDS = True
+LAMBDA_INIT = 1e-3
+LAMBDA_MIN_SHRINK = 1.0 / 3.0
 
 # Drift: a row whose parameters run off towards a bound (a capacity to
 # infinity, an affinity to zero, an exponent to its limit) while the SSE
@@ -69,7 +83,7 @@ DRIFT_WINDOW = 20
 DRIFT_DECADES = 0.1
 
 # row status codes inside the solver
-_RUNNING, _CONVERGED, _MAX_ITER, _SINGULAR, _NONFINITE, _STALLED, _DRIFTING = range(7)
+_RUNNING, _CONVERGED, _MAX_ITER, _SINGULAR, _NONFINITE, _STALLED, _DRIFTING, _MERGED = range(8)
 _STATUS_REASON = np.array([
     "running",
     "converged",
@@ -78,6 +92,7 @@ _STATUS_REASON = np.array([
     "non-finite model values",
     "stalled: no step lowers the sum of squares",
     "parameter drifting to bound",  # completed with names and limits per row
+    "merged: another seed of this isotherm reaches the same minimum with a lower sum of squares",
 ], dtype=object)
 
 
@@ -468,6 +483,9 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
     qa, swa = xa.copy(), xa.copy()
     ta = np.zeros((0, 1))
     queued = 0
+    # seeds of one isotherm are neighbours in src (isotherm-major order)
+    group = int(np.bincount(src).max()) if n_rows and np.all(np.diff(src) >= 0) else 1
+    pos = np.full(n_rows, -1, dtype=np.int64)  # row -> its place in the working set, -1 if out
 
     while True:
         # -- rows leave: stalled last time, out of iterations, or converged --
@@ -484,6 +502,12 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
             _, gn_ok, pred_gn = _gauss_newton(a_mat, g, free)
             done = check & ((gn_ok & (pred_gn <= GN_REL_TOL * sse + exact)) | (sse <= exact))
             st[done] = _CONVERGED
+            if MERGE_SEEDS and group > 1:
+                near = (st == _RUNNING) & gn_ok & (pred_gn <= MERGE_REL_TOL * sse)
+                if near.any():
+                    pos[rid] = np.arange(rid.size)
+                    st[_merged_seeds(rid, src, group, pos, st, near, theta, sse, a_mat, pred_gn,
+                                     theta_out, sse_out, status_out)] = _MERGED
         # -- drift: every DRIFT_WINDOW iterations --
         at_mark = (it % DRIFT_WINDOW == 0) & (st == _RUNNING)
         if at_mark.any():
@@ -502,6 +526,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
         keep = st == _RUNNING
         if not keep.all():
             gone = ~keep
+            pos[rid[gone]] = -1
             theta_out[rid[gone]] = theta[:, gone].T
             sse_out[rid[gone]] = sse[gone]
             status_out[rid[gone]] = st[gone]
@@ -515,7 +540,14 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
 
         # -- fresh rows from the queue top the working set up --
         if queued < n_rows and rid.size <= block - block // 4:
-            new = np.arange(queued, min(n_rows, queued + block - rid.size))
+            end = min(n_rows, queued + block - rid.size)
+            if end < n_rows and src[end] == src[end - 1]:
+                # the seeds of one isotherm start together, so they can be
+                # compared at equal iteration counts whatever the batch
+                start_of_group = int(np.searchsorted(src, src[end], side="left"))
+                end = start_of_group if start_of_group > queued else \
+                    int(np.searchsorted(src, src[end], side="right"))
+            new = np.arange(queued, end)
             queued = new[-1] + 1
             s = src[new]
             th_n = theta0[new].T.copy()
@@ -552,7 +584,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
                 a_mat = cat(a_mat, a_n[:, :, f_], 2)
                 g = cat(g, g_n[:, f_], 1)
                 noise = cat(noise, noise_n[f_])
-                lam = cat(lam, np.full(f_.sum(), 1e-3))
+                lam = cat(lam, np.full(f_.sum(), LAMBDA_INIT))
                 nu = cat(nu, np.full(f_.sum(), 2.0))
                 dmax = cat(dmax, np.abs(np.diagonal(a_n, axis1=0, axis2=1).T[:, f_]), 1)
                 it = cat(it, np.zeros(f_.sum(), dtype=np.int64))
@@ -592,7 +624,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
         better = fin_t & ok & ((sse_t < sse) | (polish & (sse_t <= sse + noise) & shrinks))
         with np.errstate(divide="ignore", invalid="ignore"):
             rho = np.where(pred > 0, (sse - sse_t) / pred, 0.0)
-        lam = np.where(better, lam * np.maximum(1.0 / 3.0, 1.0 - (2.0 * rho - 1.0) ** 3), lam * nu)
+        lam = np.where(better, lam * np.maximum(LAMBDA_MIN_SHRINK, 1.0 - (2.0 * rho - 1.0) ** 3), lam * nu)
         nu = np.where(better, 2.0, nu * 2.0)
         theta = np.where(better, trial, theta)
         sse = np.where(better, sse_t, sse)
@@ -610,6 +642,58 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
             st[stuck & ~near & gn_ok] = _STALLED
 
     return tr.to_params(theta_out), sse_out, status_out, iter_out, drift_out
+
+
+def _merged_seeds(rid, src, group, pos, st, near, theta, sse, a_mat, pred_gn,
+                  theta_out, sse_out, status_out):
+    """Working-set rows whose seed is heading to the minimum that a sibling
+    seed (same isotherm) reaches with a lower SSE; (R,) mask.
+
+    In the quadratic regime SSE(theta) ~ SSE* + |theta - theta*|_A^2 with A the
+    normal matrix, and the Gauss-Newton predicted reduction is |theta -
+    theta*|_A^2 itself. Two rows near the same minimum are therefore at most
+    sqrt(pred_1) + sqrt(pred_2) apart in the A-norm (triangle inequality);
+    rows near different minima are much farther apart. A row (``near``: in
+    that regime) is merged when a sibling that is also ``near``, or already
+    converged (pred 0), lies within twice that distance and has the lower
+    SSE (ties: the earlier seed). Only the loser stops; the survivor's own
+    iterations are untouched, so the fit reported is the one it would have
+    been, minus the work of polishing the same minimum twice.
+    """
+    k = theta.shape[0]
+    cand = np.flatnonzero(near)
+    r = rid[cand]
+    kill = np.zeros(rid.size, dtype=bool)
+    n_rows = src.size
+    for d in range(1 - group, group):
+        if d == 0:
+            continue
+        s = r + d
+        valid = (s >= 0) & (s < n_rows)
+        valid[valid] = src[s[valid]] == src[r[valid]]
+        # cheap tests first: is there a usable sibling with the lower SSE at all?
+        pair = np.flatnonzero(valid)
+        s_p, c_p = s[pair], cand[pair]
+        ps = pos[s_p]
+        live = ps >= 0
+        ps_c = np.where(live, ps, 0)
+        sib_near = live & near[ps_c]
+        sib_done = np.where(live, st[ps_c] == _CONVERGED, status_out[s_p] == _CONVERGED)
+        sse_s = np.where(live, sse[ps_c], sse_out[s_p])
+        sse_r = sse[c_p]
+        beaten = (sse_s < sse_r) | ((sse_s == sse_r) & (s_p < r[pair]))
+        keep = (sib_near | sib_done) & beaten
+        if not keep.any():
+            continue
+        s_p, c_p, ps_c, live, sib_near = s_p[keep], c_p[keep], ps_c[keep], live[keep], sib_near[keep]
+        th_s = np.where(live, theta[:, ps_c], theta_out[s_p].T)
+        pred_s = np.where(sib_near, pred_gn[ps_c], 0.0)
+        delta = theta[:, c_p] - th_s
+        with np.errstate(all="ignore"):
+            dist2 = _dot_k(delta, [_dot_k(a_mat[i][:, c_p], delta) for i in range(k)])
+            reach = 2.0 * (np.sqrt(pred_gn[c_p]) + np.sqrt(pred_s))
+        kill[c_p[np.isfinite(dist2) & (dist2 <= reach * reach)]] = True
+    return kill
 
 
 def _decades_to_bound(tr, before, after):

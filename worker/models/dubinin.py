@@ -9,6 +9,7 @@ import numpy as np
 from scipy.constants import R
 
 from .base import IsothermModel, Param
+from .elementwise import zero_at_origin
 from .linear import masked_linear_fit
 from .seeding import best_scale, data_scales, keep_best, row
 
@@ -62,7 +63,7 @@ class DubininRadushkevich(IsothermModel):
         a = _potential_j_per_mol(x, temperature_k)
         filled = np.exp(-((a / e) ** 2))
         with np.errstate(invalid="ignore"):
-            d_e = np.where(x > 0, q_m * filled * 2.0 * a**2 / e**3, 0.0)
+            d_e = zero_at_origin(q_m * filled * 2.0 * a**2 / e**3, x)
         return filled, d_e
 
     @classmethod

@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 
 from .base import IsothermModel, Param
+from .elementwise import zero_at_origin
 from .linear import masked_linear_fit
 from .seeding import best_scale, data_scales, keep_best, row
 
@@ -29,7 +30,7 @@ class Freundlich(IsothermModel):
     def jacobian(x, temperature_k, k_f, n):
         power = x ** (1.0 / n)
         with np.errstate(divide="ignore", invalid="ignore"):
-            d_n = np.where(x > 0, -k_f * power * np.log(np.where(x > 0, x, 1.0)) / n**2, 0.0)
+            d_n = zero_at_origin(-k_f * power * np.log(x) / n**2, x)
         return power * np.ones_like(k_f), d_n
 
     @classmethod

@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 
 from .base import IsothermModel, Param
+from .elementwise import zero_at_origin
 from .linear import masked_linear_fit
 from .seeding import best_scale, data_scales, keep_best, log_grid, row
 
@@ -41,7 +42,7 @@ class RedlichPeterson(IsothermModel):
         d_k = x / denom
         d_a = -k_rp * x * p_beta / denom**2
         with np.errstate(invalid="ignore"):
-            d_beta = np.where(x > 0, -k_rp * x * a_rp * p_beta * log_p / denom**2, 0.0)
+            d_beta = zero_at_origin(d_a * a_rp * log_p, x)
         return d_k, d_a, d_beta
 
     @classmethod

@@ -2,9 +2,9 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import expit
 
 from .base import IsothermModel, Param
+from .elementwise import logistic, zero_at_origin
 from .linear import masked_linear_fit
 from .seeding import (data_scales, keep_best, row,
                       exponent_affinity_grid, log_of_product)
@@ -26,21 +26,21 @@ class Sips(IsothermModel):
         Param("heterogeneity", "-", 0.1, 5.0, "heterogeneity exponent s (1 = Langmuir)"),
     )
 
-    # the logistic form expit(s ln(bp)) avoids overflow of (bp)^s at large bp
+    # the logistic form 1 / (1 + e^-(s ln(bp))) avoids overflow of (bp)^s at large bp
     @staticmethod
     def evaluate(x, temperature_k, q_sat, affinity, heterogeneity):
-        return q_sat * expit(heterogeneity * log_of_product(x, affinity))
+        return q_sat * logistic(heterogeneity * log_of_product(x, affinity))
 
     @staticmethod
     def jacobian(x, temperature_k, q_sat, affinity, heterogeneity):
         log_bp = log_of_product(x, affinity)
         z = heterogeneity * log_bp
-        frac = expit(z)
-        bend = expit(z) * expit(-z)  # u / (1 + u)^2 with u = (bp)^s
+        frac = logistic(z)
+        bend = frac * logistic(-z)  # u / (1 + u)^2 with u = (bp)^s
         d_qsat = frac
         d_aff = q_sat * heterogeneity * bend / affinity
         with np.errstate(invalid="ignore"):
-            d_het = np.where(x > 0, q_sat * bend * log_bp, 0.0)
+            d_het = zero_at_origin(q_sat * bend * log_bp, x)
         return d_qsat, d_aff, d_het
 
     @classmethod

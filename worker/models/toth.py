@@ -2,9 +2,9 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.special import expit
 
 from .base import IsothermModel, Param
+from .elementwise import logistic, softplus, zero_at_origin
 from .langmuir import Langmuir
 from .seeding import (data_scales, keep_best, exponent_affinity_grid, log_of_product)
 
@@ -29,17 +29,18 @@ class Toth(IsothermModel):
     @staticmethod
     def evaluate(x, temperature_k, q_sat, affinity, t):
         log_bp = log_of_product(x, affinity)
-        return q_sat * np.exp(log_bp - np.logaddexp(0.0, t * log_bp) / t)
+        return q_sat * np.exp(log_bp - softplus(t * log_bp) / t)
 
     @staticmethod
     def jacobian(x, temperature_k, q_sat, affinity, t):
         log_bp = log_of_product(x, affinity)
-        log_denom = np.logaddexp(0.0, t * log_bp)   # ln(1 + (bp)^t)
+        z = t * log_bp
+        log_denom = softplus(z)   # ln(1 + (bp)^t)
         theta = np.exp(log_bp - log_denom / t)
         q = q_sat * theta
-        d_aff = q * expit(-t * log_bp) / affinity   # (1 + (bp)^t)^-1
+        d_aff = q * logistic(-z) / affinity   # (1 + (bp)^t)^-1
         with np.errstate(invalid="ignore"):
-            d_t = np.where(x > 0, q * (log_denom / t**2 - log_bp * expit(t * log_bp) / t), 0.0)
+            d_t = zero_at_origin(q * (log_denom / t**2 - log_bp * logistic(z) / t), x)
         return theta, d_aff, d_t
 
     @classmethod
