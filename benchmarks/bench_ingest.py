@@ -44,7 +44,7 @@ from pathlib import Path
 
 import numpy as np
 
-from local_procs import LOOPBACK, Procs, free_port, wait_for
+from local_procs import LOOPBACK, Procs, free_port, start_redis, wait_for
 
 ROOT = Path(__file__).resolve().parents[1]
 N_POINTS = 30
@@ -89,25 +89,6 @@ def env_for(data_dir: Path, broker_url: str, code_dir: Path) -> dict:
                SORBRANK_TOKENS=json.dumps([{"name": "bench", "scopes": ["submit", "read"],
                                             "sha256": hashlib.sha256(TOKEN.encode()).hexdigest()}]))
     return env
-
-
-def start_redis(procs: Procs, work: Path) -> str:
-    import redis
-
-    binary = shutil.which("redis-server") or "/usr/bin/redis-server"
-    port = free_port()  # never the default 6379
-    procs.start("redis", [binary, "--port", str(port), "--bind", LOOPBACK, "--save", "",
-                          "--appendonly", "no", "--dir", str(work)], dict(os.environ))
-    url = f"redis://{LOOPBACK}:{port}"
-
-    def pong():
-        try:
-            return redis.Redis.from_url(url + "/0", socket_timeout=1).ping()
-        except redis.RedisError:
-            return False
-
-    wait_for(pong, "redis-server", procs, 30)
-    return url
 
 
 def start_server(procs: Procs, name: str, env: dict, code_dir: Path) -> str:

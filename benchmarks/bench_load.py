@@ -41,7 +41,7 @@ import zlib
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-from local_procs import LOOPBACK, Procs, free_port, wait_for
+from local_procs import LOOPBACK, Procs, free_port, start_redis, wait_for
 
 ROOT = Path(__file__).resolve().parents[1]
 TOKEN = "bench-load-" + uuid.uuid4().hex
@@ -91,22 +91,7 @@ def main(argv=None) -> int:
     (base / "logs").mkdir()
     procs = Procs(base / "logs")
     try:
-        redis_port = free_port()
-        redis_bin = shutil.which("redis-server") or "/usr/bin/redis-server"
-        procs.start("redis", [redis_bin, "--port", str(redis_port), "--bind", LOOPBACK,
-                              "--save", "", "--appendonly", "no", "--dir", str(base / "logs")],
-                    {**os.environ})
-        broker = f"redis://{LOOPBACK}:{redis_port}/0"
-
-        def pong():
-            import redis
-
-            try:
-                return redis.Redis.from_url(broker, socket_timeout=1).ping()
-            except redis.RedisError:
-                return False
-
-        wait_for(pong, "redis-server", procs, 30)
+        broker = start_redis(procs, base / "logs") + "/0"
         env = {k: v for k, v in os.environ.items() if not k.startswith("SORBRANK_")}
         env.update(PYTHONPATH=str(ROOT), PYTHONUNBUFFERED="1", SORBRANK_BROKER_URL=broker,
                    SORBRANK_DATA_DIR=str(base / "data"), SORBRANK_TOKENS=json.dumps([{

@@ -3,6 +3,7 @@ free loopback ports, process groups that are always stopped, bounded waits."""
 from __future__ import annotations
 
 import os
+import shutil
 import signal
 import socket
 import subprocess
@@ -69,3 +70,24 @@ def wait_for(check, what: str, procs: Procs, timeout_s: float, interval_s: float
         if time.monotonic() > deadline:
             raise SystemExit(f"gave up waiting for {what}")
         time.sleep(interval_s)
+
+
+def start_redis(procs: Procs, data_dir: Path) -> str:
+    """A throwaway redis-server on a free loopback port (never 6379), nothing
+    persisted; returns its base URL (append "/<db>") once it answers PING."""
+    import redis
+
+    binary = shutil.which("redis-server") or "/usr/bin/redis-server"
+    port = free_port()
+    procs.start("redis", [binary, "--port", str(port), "--bind", LOOPBACK, "--save", "",
+                          "--appendonly", "no", "--dir", str(data_dir)], dict(os.environ))
+    url = f"redis://{LOOPBACK}:{port}"
+
+    def pong():
+        try:
+            return redis.Redis.from_url(url + "/0", socket_timeout=1).ping()
+        except redis.RedisError:
+            return False
+
+    wait_for(pong, "redis-server", procs, 30)
+    return url

@@ -62,6 +62,9 @@ MAX_DAMPING = 1e16
 # runs every seed to its own end (the result is the same; it costs more).
 MERGE_REL_TOL = 1e-6
 MERGE_SEEDS = True
+# damping: the start value on the Jacobi-scaled normal equations, and the
+# most an accepted step may shrink it (Nielsen's update); other values were
+# measured and saved no iterations (DEVELOPERS.md)
 LAMBDA_INIT = 1e-3
 LAMBDA_MIN_SHRINK = 1.0 / 3.0
 
