@@ -203,7 +203,7 @@ def _max_rss_mb(who) -> float:
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--n", type=int, default=1_000_000, help="isotherms (default 1000000)")
-    ap.add_argument("--chunk", type=int, default=5_000, help="isotherms per chunk file (default 5000)")
+    ap.add_argument("--chunk", type=int, default=10_000, help="isotherms per chunk file (default 10000)")
     ap.add_argument("--workers", type=int, default=os.cpu_count() or 1, help="processes (default: all cores)")
     ap.add_argument("--dir", type=Path, default=None,
                     help="working directory (default: <tmp>/sorbrank-scale-N); reused to resume")

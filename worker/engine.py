@@ -676,10 +676,11 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
         gt_s = np.where(free, g_t, 0.0) / ds
         shrinks = _dot_k(gt_s, gt_s) < _dot_k(gf_s, gf_s)
         better = fin_t & ok & ((sse_t < sse) | (polish & (sse_t <= sse + noise) & shrinks))
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            # (rows not taken may have any rho; their branch is discarded)
             rho = np.where(pred > 0, (sse - sse_t) / pred, 0.0)
-        lam = np.where(better, lam * np.maximum(LAMBDA_MIN_SHRINK, 1.0 - (2.0 * np.minimum(rho, 1.0) - 1.0) ** 3),
-                       lam * nu)
+            lam = np.where(better, lam * np.maximum(LAMBDA_MIN_SHRINK, 1.0 - (2.0 * np.minimum(rho, 1.0) - 1.0) ** 3),
+                           lam * nu)
         nu = np.where(better, 2.0, nu * 2.0)
         theta = np.where(better, trial, theta)
         sse = np.where(better, sse_t, sse)
