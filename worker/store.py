@@ -32,6 +32,7 @@ from pathlib import Path, PurePosixPath
 from typing import Any, Callable, Iterable
 
 import numpy as np
+import orjson
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.dataset as ds
@@ -92,6 +93,16 @@ def _json_default(value: Any) -> Any:
     if isinstance(value, datetime):
         return iso_utc(value)
     raise TypeError(f"cannot store {type(value).__name__} as JSON")
+
+
+def original_json(original: dict) -> str:
+    """An isotherm's as-sent values as JSON text (keys sorted; NaN as null).
+
+    orjson writes numpy arrays from their buffers; the standard library's
+    json turned each number into a Python float first, which was most of the
+    time of accepting a batch (benchmarks/bench_ingest.py)."""
+    return orjson.dumps(original, default=_json_default,
+                        option=orjson.OPT_SORT_KEYS | orjson.OPT_SERIALIZE_NUMPY).decode()
 
 
 def _json_bytes(obj: Any) -> bytes:
@@ -161,8 +172,7 @@ def isotherms_to_table(isotherms: Iterable[Isotherm]) -> pa.Table:
         "pressure_pa": _float_lists([iso.pressure_pa for iso in isotherms]),
         "loading_mol_per_kg": _float_lists([iso.loading_mol_per_kg for iso in isotherms]),
         "sigma_mol_per_kg": _float_lists([iso.sigma_mol_per_kg for iso in isotherms]),
-        "original_json": pa.array([json.dumps(iso.original, sort_keys=True, default=_json_default)
-                                   for iso in isotherms], pa.string()),
+        "original_json": pa.array([original_json(iso.original) for iso in isotherms], pa.string()),
     }
     return pa.Table.from_arrays(list(columns.values()), schema=INPUT_SCHEMA)
 
@@ -183,7 +193,7 @@ def _isotherms_to_table_by_rows(isotherms: Iterable[Isotherm]) -> pa.Table:
         "loading_mol_per_kg": [float(v) for v in iso.loading_mol_per_kg],
         "sigma_mol_per_kg": None if iso.sigma_mol_per_kg is None
         else [float(v) for v in iso.sigma_mol_per_kg],
-        "original_json": json.dumps(iso.original, sort_keys=True, default=_json_default),
+        "original_json": original_json(iso.original),
     } for iso in isotherms]
     return pa.Table.from_pylist(rows, schema=INPUT_SCHEMA)
 
