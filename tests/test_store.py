@@ -358,3 +358,71 @@ def test_material_rows_of_every_kind_keep_all_their_fields():
     back = table.to_pylist()
     assert back[1]["selectivity"] == 40.0 and back[1]["temperature_k"] == 298.15
     assert back[0]["selectivity"] is None and back[0]["isosteric_heat_j_per_mol"] == 30000.0
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_latest_wins_on_integer_codes_picks_the_rows_the_full_sort_picks(seed):
+    """The fast latest-wins (integer codes, isotherm ids compared only between
+    rows tied on everything else) against the plain three-key sort it
+    replaces, on random tables crowded with ties: equal acceptance times,
+    several rows of one group in one batch, equal isotherm ids, nulls in
+    every key (common practice for checking an optimisation: same rows,
+    any input)."""
+    from worker.store import _latest_rows, _latest_wins_by_sorting
+
+    rng = np.random.default_rng(seed)
+    n = 3000
+
+    def pick(values, null_share=0.05):
+        out = [values[i] for i in rng.integers(0, len(values), n)]
+        return [None if rng.random() < null_share else v for v in out]
+
+    base = datetime(2026, 1, 1, tzinfo=timezone.utc)
+    table = pa.table({
+        "material_id": pa.array(pick([f"m{i}" for i in range(40)])),
+        "adsorbate": pa.array(pick(["CO2", "N2", "CH4"])),
+        "temperature_k": pa.array([None if rng.random() < 0.03 else float(v)
+                                   for v in rng.choice([273.15, 273.4, 298.15, 298.6, 313.15], n)]),
+        "branch": pa.array(pick(["adsorption", "desorption"])),
+        "accepted_at": pa.array(pick([base + timedelta(seconds=int(s)) for s in range(5)]),
+                                pa.timestamp("us", tz="UTC")),
+        "batch_id": pa.array(pick([f"b{i}" for i in range(8)])),
+        "isotherm_id": pa.array(pick([f"i{i}" for i in range(60)])),
+        "row": pa.array(np.arange(n)),
+    })
+    fast = _latest_rows(table)
+    assert fast is not None
+    expected = _latest_wins_by_sorting(table)["row"].to_numpy()
+    assert sorted(table["row"].to_numpy()[fast].tolist()) == sorted(expected.tolist())
+    assert len(fast) == len(expected) and 0 < len(expected) < n
+
+
+@pytest.mark.parametrize("descending", [True, False])
+def test_a_page_sorted_from_its_candidates_is_the_page_of_the_full_sort(descending):
+    """Sorting only the rows that can reach the page (values at or beyond the
+    page's last, ties kept) against sorting everything, on a float column
+    crowded with ties, NaN and nulls, for pages at the start, the middle,
+    across the NaN/null tail and past the end (common practice for checking
+    an optimisation: same page, any input)."""
+    from worker.store import _page_of, _sorted_for_page
+
+    rng = np.random.default_rng(3)
+    n = 2000
+    values = rng.choice([0.5, 1.0, 1.0, 2.5, -0.0, 0.0, np.inf, np.nan], n).tolist()
+    values = [None if rng.random() < 0.05 else v for v in values]
+    table = pa.table({
+        "q_sat_mol_per_kg": pa.array(values, pa.float64()),
+        "material_id": pa.array([f"m{i}" for i in rng.integers(0, 30, n)]),
+        "isotherm_id": pa.array([f"i{i}" for i in rng.integers(0, 400, n)]),
+        "batch_id": pa.array([f"b{i}" for i in rng.integers(0, 5, n)]),
+    })
+    rows = np.sort(rng.choice(n, 1500, replace=False))
+    for offset, limit in ((0, 10), (0, 1), (37, 25), (1300, 100), (1490, 20), (1600, 5)):
+        query = RankingQuery(sort="q_sat_mol_per_kg", descending=descending, offset=offset, limit=limit)
+        for subset in (None, rows):
+            page, total = _page_of(table, subset, query)
+            whole = table if subset is None else table.take(pa.array(subset))
+            expected = _sorted_for_page(whole, query).slice(offset, limit)
+            assert total == whole.num_rows
+            # repr: NaN rows compare equal as text, not as floats
+            assert repr(page.to_pylist()) == repr(expected.to_pylist()), (offset, limit, subset is None)
