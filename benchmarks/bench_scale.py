@@ -262,7 +262,7 @@ def main(argv=None) -> int:
     parent, child = _max_rss_mb(resource.RUSAGE_SELF), _max_rss_mb(resource.RUSAGE_CHILDREN)
     print(f"peak RSS : this process {parent:,.0f} MB, largest child {child:,.0f} MB; "
           f"bound for all at once {parent + args.workers * child:,.0f} MB")
-    if n_iso and rate_iso > 0:
+    if n_iso and rate_iso > 0 and n_iso < 1_000_000:
         print(f"at this rate 1,000,000 isotherms take {1e6 / rate_iso / 60:.1f} min to fit "
               f"(linear extrapolation of this run, not a measurement)")
     return 0
