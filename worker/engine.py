@@ -366,11 +366,16 @@ class _Evaluator:
     def __init__(self, model, tr, unit_weights, euler):
         self.model, self.tr, self.unit, self.euler = model, tr, unit_weights, euler
         self.k = len(model.params)
+        # the Euler degrees as a column, for moving rows to their best scale
+        self.degree = None if euler is None else np.asarray(euler, dtype=float)[:, None]
 
-    def __call__(self, theta, x, q, sw, t, project=None):
-        """At ``theta`` (k, R): sse (R,), a (k, k, R), g (k, R), noise (R,), finite (R,).
+    def __call__(self, theta, x, swq, sw, t, project=None):
+        """At ``theta`` (k, R): sse (R,), a (k, k, R), g (k, R), noise (R,),
+        finite (R,) and theta itself (moved where ``project`` asks).
 
-        ``project`` (R,): rows moved to their best scale first (see _best_scale).
+        ``swq``: the weighted loadings sqrt(w) q (q itself for unit weights),
+        formed once per row by the caller. ``project`` (R,): rows moved to
+        their best scale first (see _best_scale).
         """
         model, tr, k = self.model, self.tr, self.k
         p = _params_batch_last(tr, theta)
@@ -393,10 +398,10 @@ class _Evaluator:
                 f = model.evaluate(x, t, *cols)
             jw = [pd[j] if tr.log[j] else d for j, d in enumerate(jac)]
             if self.unit:
-                swf, swq = f, q
+                swf = f
                 jw = [np.broadcast_to(v, shape) for v in jw]
             else:
-                swf, swq = sw * f, sw * q
+                swf = sw * f
                 jw = [sw * v for v in jw]
             ff = np.einsum("ij,ij->i", swf, swf)
             col = None
@@ -433,8 +438,7 @@ class _Evaluator:
         Euler), lambda (R,) (1 where no admissible scale exists), and the
         factor (k, R) each Jacobian column (in the solver's coordinates) takes
         there: lambda for log coordinates, lambda^(1 - c_j) for linear ones."""
-        tr = self.tr
-        c = np.asarray(self.euler, dtype=float)[:, None]
+        tr, c = self.tr, self.degree
         lam = np.einsum("ij,ij->i", swf, swq) / ff
         good = np.isfinite(lam) & (lam > 0)
         if project is not None:
@@ -511,6 +515,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
     exact_all = EXACT_REL_TOL * np.einsum("ij,ij->i", w * q, q)
     sw_all = np.sqrt(w)  # w is 0 at padding
     unit = bool(np.all(w == 1.0))  # no padding, uniform weights: skip sqrt(w) products
+    swq_all = q if unit else sw_all * q  # weighted loadings, formed once per row
     lo, hi = tr.lo[:, None], tr.hi[:, None]
 
     probe = np.arange(min(n_rows, _EULER_PROBE_ROWS))
@@ -533,7 +538,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
     exact = np.zeros(0)
     th1, th2 = np.zeros((k, 0)), np.zeros((k, 0))  # theta one and two drift windows ago
     xa = np.zeros((0,) + x.shape[1:])
-    qa, swa = xa.copy(), xa.copy()
+    swqa, swa = xa.copy(), xa.copy()  # sqrt(w) q and sqrt(w) per row
     ta = np.zeros((0, 1))
     queued = 0
     # seeds of one isotherm are neighbours in src (isotherm-major order)
@@ -569,7 +574,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
                 idx = np.flatnonzero(suspect)
                 drifting, direction = _drift_proof(
                     model, tr, theta[:, idx], th1[:, idx], th2[:, idx], sse[idx],
-                    xa[idx], qa[idx], swa[idx], ta[idx], evaluate.unit, evaluate.euler,
+                    xa[idx], swqa[idx], swa[idx], ta[idx], evaluate.unit, evaluate.euler,
                     (max_iter - it[idx]) / DRIFT_WINDOW)
                 hit = idx[drifting]
                 st[hit] = _DRIFTING
@@ -588,7 +593,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
                 g[:, keep], noise[keep]
             lam, nu, dmax, it, st, exact = lam[keep], nu[keep], dmax[:, keep], it[keep], st[keep], exact[keep]
             th1, th2 = th1[:, keep], th2[:, keep]
-            xa, qa, swa, ta = xa[keep], qa[keep], swa[keep], ta[keep]
+            xa, swqa, swa, ta = xa[keep], swqa[keep], swa[keep], ta[keep]
             free, gn_ok, pred_gn = free[:, keep], gn_ok[keep], pred_gn[keep]
 
         # -- fresh rows from the queue top the working set up --
@@ -604,14 +609,14 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
             queued = new[-1] + 1
             s = src[new]
             th_n = theta0[new].T.copy()
-            x_n, q_n, sw_n, t_n = x[s], q[s], sw_all[s], t[s]
-            sse_n, a_n, g_n, noise_n, fin, th_n = evaluate(th_n, x_n, q_n, sw_n, t_n)
+            x_n, swq_n, sw_n, t_n = x[s], swq_all[s], sw_all[s], t[s]
+            sse_n, a_n, g_n, noise_n, fin, th_n = evaluate(th_n, x_n, swq_n, sw_n, t_n)
             sse_out[new] = sse_n
             status_out[new[~fin]] = _NONFINITE
             if not fin.all():
                 new, th_n, sse_n, a_n, g_n, noise_n = new[fin], th_n[:, fin], sse_n[fin], a_n[:, :, fin], \
                     g_n[:, fin], noise_n[fin]
-                x_n, q_n, sw_n, t_n = x_n[fin], q_n[fin], sw_n[fin], t_n[fin]
+                x_n, swq_n, sw_n, t_n = x_n[fin], swq_n[fin], sw_n[fin], t_n[fin]
             m = new.size
             if m:
                 free_n = ~(((th_n <= lo) & (g_n > 0)) | ((th_n >= hi) & (g_n < 0)))
@@ -644,7 +649,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
                 th1, th2 = cat(th1, th_n[:, f_], 1), cat(th2, th_n[:, f_], 1)
                 st = cat(st, st_n[f_])
                 exact = cat(exact, exact_n[f_])
-                xa, qa, swa, ta = cat(xa, x_n[f_]), cat(qa, q_n[f_]), cat(swa, sw_n[f_]), cat(ta, t_n[f_])
+                xa, swqa, swa, ta = cat(xa, x_n[f_]), cat(swqa, swq_n[f_]), cat(swa, sw_n[f_]), cat(ta, t_n[f_])
                 free, gn_ok, pred_gn = cat(free, free_n[:, f_], 1), cat(gn_ok, ok_n[f_]), cat(pred_gn, pred_n[f_])
         if rid.size == 0:
             if queued >= n_rows:
@@ -672,7 +677,7 @@ def _levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, max_iter, 
         quad = _dot_k(step, [_dot_k(a_mat[i], step) for i in range(k)])
         pred = -(2.0 * _dot_k(step, g) + quad)
 
-        sse_t, a_t, g_t, noise_t, fin_t, trial = evaluate(trial, xa, qa, swa, ta, ~polish)
+        sse_t, a_t, g_t, noise_t, fin_t, trial = evaluate(trial, xa, swqa, swa, ta, ~polish)
         gt_s = np.where(free, g_t, 0.0) / ds
         shrinks = _dot_k(gt_s, gt_s) < _dot_k(gf_s, gf_s)
         better = fin_t & ok & ((sse_t < sse) | (polish & (sse_t <= sse + noise) & shrinks))
@@ -771,7 +776,7 @@ def _decades_to_bound(tr, before, after):
     return np.nan_to_num(out, nan=0.0, posinf=0.0, neginf=0.0)
 
 
-def _drift_proof(model, tr, theta, th1, th2, sse, x, q, sw, t, unit, euler, windows_left):
+def _drift_proof(model, tr, theta, th1, th2, sse, x, swq, sw, t, unit, euler, windows_left):
     """Which suspect rows (R,) are drifting, and where to: (k, R) int8, -1 / +1
     for a parameter running to its lower / upper bound.
 
@@ -825,7 +830,7 @@ def _drift_proof(model, tr, theta, th1, th2, sse, x, q, sw, t, unit, euler, wind
             p = _params_batch_last(tr, probe)
             f = np.broadcast_to(model.evaluate(x[idx], t[idx], *[p[j][:, None] for j in range(k)]),
                                 (idx.size, x.shape[1]))
-            sf, sq = (f, q[idx]) if unit else (sw[idx] * f, sw[idx] * q[idx])
+            sf, sq = (f if unit else sw[idx] * f), swq[idx]
             if euler is not None:
                 # f(lambda^c_j p_j) = lambda f(p): the best lambda needs no new evaluation
                 scale = np.einsum("ij,ij->i", sf, sq) / np.einsum("ij,ij->i", sf, sf)

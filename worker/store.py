@@ -99,7 +99,7 @@ def original_json(original: dict) -> str:
     """An isotherm's as-sent values as JSON text (keys sorted; NaN as null).
 
     orjson writes numpy arrays from their buffers; the standard library's
-    json turned each number into a Python float first, which was most of the
+    json turned each number into a Python float first, about 40 % of the
     time of accepting a batch (benchmarks/bench_ingest.py)."""
     return orjson.dumps(original, default=_json_default,
                         option=orjson.OPT_SORT_KEYS | orjson.OPT_SERIALIZE_NUMPY).decode()
@@ -624,18 +624,12 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
     return _rank_whole_rows(data.to_table(filter=where), query)
 
 
-def _latest_wins(table: pa.Table) -> pa.Table:
-    """One row per material, adsorbate, temperature (nearest 1 K) and branch:
-    the one accepted last (then the larger batch id, then the smaller isotherm
-    id; nulls lose)."""
-    winners = _latest_rows(table)
-    if winners is not None:
-        return table.take(pa.array(winners))
-    return _latest_wins_by_sorting(table)
-
-
 def _latest_rows(table: pa.Table) -> np.ndarray | None:
-    """Row indices of the latest-wins rows, found on integer codes; None where
+    """Latest wins: row indices of one row per material, adsorbate,
+    temperature (nearest 1 K) and branch -- the one accepted last, then of
+    the larger batch id, then of the smaller isotherm id; nulls lose.
+
+    Found on integer codes; None where
     this path does not apply (NaN temperatures, a key space too large for one
     int64), and ``_latest_wins_by_sorting`` decides instead.
 
@@ -754,15 +748,16 @@ def _sorted_for_page(table: pa.Table, query: RankingQuery) -> pa.Table:
 
 def _rank_whole_rows(table: pa.Table, query: RankingQuery) -> tuple[pa.Table, int]:
     """Latest-wins, flag filter, order and page over complete rows."""
+    rows = None   # the winners by index, taken only once it is known which are needed
     if not query.all_results and table.num_rows:
-        if not (query.flags or query.exclude_flags):
-            winners = _latest_rows(table)
-            if winners is not None:
-                return _page_of(table, winners, query)
-        table = _latest_wins(table)
+        rows = _latest_rows(table)
+        if rows is None:
+            table = _latest_wins_by_sorting(table)
     if (query.flags or query.exclude_flags) and table.num_rows:
+        if rows is not None:
+            table, rows = table.take(pa.array(rows)), None
         table = _flag_filter(table, query)
-    return _page_of(table, None, query)
+    return _page_of(table, rows, query)
 
 
 def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> tuple[pa.Table, int]:
