@@ -14,7 +14,9 @@
    ``sorbrank worker`` processes (one fitting process each); --e2e-batches
    batches of --e2e-isotherms POSTed at once, then the time from the first
    POST until every batch is done (GET /batches/{id}, polled). Printed:
-   isotherms/s end to end.
+   isotherms/s end to end. With --e2e-chunk-sizes 500,2000 this runs once
+   per SORBRANK_CHUNK_SIZE (fresh store, redis database and workers each
+   time, one after the other) and prints the ratios.
 
 Every process runs in its own process group on 127.0.0.1 with temp data
 dirs, and all are stopped at the end (also on failure). Exit status 0 only
@@ -24,6 +26,7 @@ Nothing here asserts a time.
 
     .venv/bin/python benchmarks/bench_ingest.py                       # 10,000 x 5 posts, 2 x 10,000 e2e
     .venv/bin/python benchmarks/bench_ingest.py --isotherms 60 --posts 2 --e2e-batches 2
+    .venv/bin/python benchmarks/bench_ingest.py --e2e-chunk-sizes 500,2000
 """
 from __future__ import annotations
 
@@ -150,6 +153,51 @@ def accepted_rate(procs: Procs, label: str, code_dir: Path, broker: str, work: P
     return n / median
 
 
+def end_to_end(work: Path, broker_url: str, bodies: list[bytes], n: int, chunk_size: int | None,
+               timeout_s: float) -> tuple[float, bool]:
+    """POST ``bodies`` at once to a fresh server + two workers; (isotherms/s, all done).
+
+    ``chunk_size`` sets SORBRANK_CHUNK_SIZE (None: the service's default).
+    Its processes are stopped before returning, so runs do not compete.
+    """
+    import requests
+
+    label = "default" if chunk_size is None else str(chunk_size)
+    procs = Procs(work)
+    try:
+        env = env_for(work / f"store-e2e-{label}", broker_url, ROOT)
+        if chunk_size is not None:
+            env["SORBRANK_CHUNK_SIZE"] = str(chunk_size)
+        for k in range(2):
+            _, log = procs.start(f"worker-{label}-{k}", [sys.executable, "-m", "service.cli",
+                                                         "worker", "--concurrency", "1"], env, cwd=ROOT)
+            wait_for(lambda log=log: " ready." in log.read_text(errors="replace"),
+                     f"worker-{k} ready", procs, 180)
+        url = start_server(procs, f"server-e2e-{label}", env, ROOT)
+        session = requests.Session()
+        session.headers["Authorization"] = f"Bearer {TOKEN}"
+        first = time.perf_counter()
+        ids = [post(session, url, b)[1]["batch_id"] for b in bodies]
+        posted = time.perf_counter() - first
+
+        def all_done():
+            states = [session.get(f"{url}/api/v1/batches/{b}", timeout=30).json() for b in ids]
+            return states if all(s["state"] in ("done", "failed", "partial") for s in states) \
+                else None
+
+        states = wait_for(all_done, "every batch to finish", procs, timeout_s, 0.5)
+        total_s = time.perf_counter() - first
+        done = sum(s["counts"]["done"] for s in states)
+        size_text = "default chunk size" if chunk_size is None else f"SORBRANK_CHUNK_SIZE={chunk_size}"
+        print(f"end-to-end: {len(ids)} batches x {n:,} isotherms, 2 workers (distributed), "
+              f"{size_text}: {total_s:.1f} s from first POST to all done (POSTs {posted:.1f} s) "
+              f"-> {n * len(ids) / total_s:,.0f} isotherms/s; {done:,} done, states "
+              f"{sorted(set(s['state'] for s in states))}")
+        return n * len(ids) / total_s, all(s["state"] == "done" for s in states) and done == n * len(ids)
+    finally:
+        procs.stop_all()
+
+
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -160,6 +208,9 @@ def main(argv=None) -> int:
     ap.add_argument("--e2e-batches", type=int, default=2, help="batches end to end (2; 0 skips)")
     ap.add_argument("--e2e-isotherms", type=int, default=None,
                     help="isotherms per end-to-end batch (default --isotherms)")
+    ap.add_argument("--e2e-chunk-sizes", type=lambda v: [int(x) for x in v.split(",")], default=None,
+                    help="end to end once per SORBRANK_CHUNK_SIZE, side by side (e.g. 500,2000; "
+                         "default: the service's default only)")
     ap.add_argument("--timeout-s", type=float, default=1800, help="bound on the end-to-end wait")
     args = ap.parse_args(argv)
 
@@ -186,32 +237,17 @@ def main(argv=None) -> int:
         if args.e2e_batches > 0:
             n = args.e2e_isotherms or args.isotherms
             bodies = [batch_parquet(n, seed=100 + k, tag=f"E2E{k}") for k in range(args.e2e_batches)]
-            env = env_for(work / "store-e2e", broker + "/1", ROOT)
-            for k in range(2):
-                _, log = procs.start(f"worker-{k}", [sys.executable, "-m", "service.cli", "worker",
-                                                     "--concurrency", "1"], env, cwd=ROOT)
-                wait_for(lambda log=log: " ready." in log.read_text(errors="replace"),
-                         f"worker-{k} ready", procs, 180)
-            url = start_server(procs, "server-e2e", env, ROOT)
-            session = requests.Session()
-            session.headers["Authorization"] = f"Bearer {TOKEN}"
-            first = time.perf_counter()
-            ids = [post(session, url, b)[1]["batch_id"] for b in bodies]
-            posted = time.perf_counter() - first
-
-            def all_done():
-                states = [session.get(f"{url}/api/v1/batches/{b}", timeout=30).json() for b in ids]
-                return states if all(s["state"] in ("done", "failed", "partial") for s in states) \
-                    else None
-
-            states = wait_for(all_done, "every batch to finish", procs, args.timeout_s, 0.5)
-            total_s = time.perf_counter() - first
-            done = sum(s["counts"]["done"] for s in states)
-            ok &= all(s["state"] == "done" for s in states) and done == n * len(ids)
-            print(f"end-to-end: {len(ids)} batches x {n:,} isotherms, 2 workers (distributed): "
-                  f"{total_s:.1f} s from first POST to all done (POSTs {posted:.1f} s) "
-                  f"-> {n * len(ids) / total_s:,.0f} isotherms/s; {done:,} done, states "
-                  f"{sorted(set(s['state'] for s in states))}")
+            rates = {}
+            for db, chunk_size in enumerate(args.e2e_chunk_sizes or [None], start=3):
+                rate_e2e, done_ok = end_to_end(work, broker + f"/{db}", bodies, n, chunk_size,
+                                               args.timeout_s)
+                rates[chunk_size] = rate_e2e
+                ok &= done_ok
+            if len(rates) > 1:
+                first_size, *rest = rates
+                for size in rest:
+                    print(f"ratio    : end to end, chunks of {size} / chunks of {first_size} = "
+                          f"{rates[size] / rates[first_size]:.2f}x")
     finally:
         stopped = procs.stop_all()
         print(f"stopped  : {stopped} process(es)")

@@ -14,10 +14,10 @@ from typing import Mapping
 from urllib.parse import urlsplit
 
 from worker.logs import LEVELS
+from worker.pipeline import DEFAULT_CHUNK_SIZE
 
 from .auth import Token, load_tokens
 
-DEFAULT_CHUNK_SIZE = 500
 DEFAULT_MAX_UPLOAD_BYTES = 64 * 1024 * 1024
 
 

@@ -252,7 +252,9 @@ def test_bench_rankings_runs_at_a_tiny_size(tmp_path):
 @pytest.mark.integration
 def test_bench_ingest_runs_at_a_tiny_size():
     out = run("bench_ingest.py", "--isotherms", "60", "--posts", "2", "--e2e-batches", "2",
-              "--timeout-s", "300")
-    for label in ("data     :", "accepted :", "isotherms/s", "end-to-end:", "stopped  :",
-                  "result   : OK"):
+              "--e2e-chunk-sizes", "7,30", "--timeout-s", "300")
+    for label in ("data     :", "accepted :", "isotherms/s", "SORBRANK_CHUNK_SIZE=7:",
+                  "SORBRANK_CHUNK_SIZE=30:", "ratio    : end to end, chunks of 30 / chunks of 7",
+                  "stopped  :", "result   : OK"):
         assert label in out, out
+    assert out.count("end-to-end:") == 2, out

@@ -18,12 +18,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from .isotherm import Batch, Conditions, MixtureRequest
-from .pipeline import FitOptions, process_batch
+from .pipeline import DEFAULT_CHUNK_SIZE, FitOptions, process_batch
 from .store import Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
 
 log = logging.getLogger(__name__)
 
-DEFAULT_CHUNK_SIZE = 500
 # Deliveries of one chunk before it is marked failed. Counts crashes and hard
 # time-limit kills too, which Celery's own retry counter never sees.
 MAX_ATTEMPTS = 4
