@@ -52,3 +52,10 @@ def test_bench_scale_runs_resumes_and_writes_results(tmp_path):
     # a second run finds every chunk done and redoes nothing
     again = run("bench_scale.py", *args)
     assert "12 reused" in again and "2 chunk(s) already done" in again, again
+
+
+def test_bench_metrics_runs_with_its_baseline_side_by_side():
+    out = run("bench_metrics.py", "--n", "60,120", "--repeats", "1", "--baseline", "HEAD")
+    for word in ("batches  :", "n=     60:", "n=    120:", "summarize", "material rows",
+                 "| HEAD:", "ratio", "growth   :"):
+        assert word in out, out

@@ -164,3 +164,29 @@ def test_no_capacity_is_borrowed_for_a_multilayer_isotherm():
     out = summarize(packed, fits, selection, batch)
     assert np.isnan(out["q_sat_mol_per_kg"][0]) and out["q_sat_model"][0] is None
     assert "no_saturation_capacity" in out["flags"][0]
+
+
+def test_area_for_sites_is_the_mean_bet_area_of_the_material_and_a_given_area_wins():
+    # the rule written out per row, against the one-pass grouping in
+    # surface_area_for_sites, on random batches crowded with repeats and gaps
+    from types import SimpleNamespace
+
+    from worker.metrics import surface_area_for_sites
+
+    rng = np.random.default_rng(20261202)
+    for _ in range(100):
+        n = int(rng.integers(0, 40))
+        materials = [f"m{int(v)}" for v in rng.integers(0, 6, n)]
+        given = np.where(rng.random(n) < 0.3, rng.uniform(-5.0, 3000.0, n), np.nan)
+        bet = np.where(rng.random(n) < 0.5, rng.uniform(1.0, 3000.0, n), np.nan)
+        area, source = surface_area_for_sites(
+            SimpleNamespace(surface_area_m2_per_g=given, material_ids=materials), bet)
+        for i in range(n):
+            if np.isfinite(given[i]) and given[i] > 0:
+                assert (area[i], source[i]) == (given[i], "given")
+                continue
+            same = [bet[j] for j in range(n) if materials[j] == materials[i] and np.isfinite(bet[j])]
+            if same:
+                assert area[i] == pytest.approx(np.mean(same), rel=1e-13) and source[i] == "bet"
+            else:
+                assert np.isnan(area[i]) and source[i] is None

@@ -156,3 +156,23 @@ def test_three_equal_capacity_langmuir_components_equal_extended_langmuir():
     row = [r for r in material_metrics(packed, fits, selection, batch) if r["kind"] == "iast"][0]
     q_ext = q_sat * b * y * p_total / (1 + np.sum(b * y * p_total))
     np.testing.assert_allclose(row["loadings_mol_per_kg"], q_ext, rtol=1e-8)
+
+
+def test_request_for_every_material_uses_each_material_s_first_isotherm_per_gas():
+    # interleaved materials, a repeated CO2 isotherm, one material without N2 and one
+    # at another temperature: a row per material holding every component near the
+    # request's temperature, sorted, from the batch's first isotherm of each gas
+    # (the rows are grouped per material in one pass)
+    layout = [  # (isotherm id, material, gas, temperature, affinity)
+        ("b-co2", "b", "CO2", T_K, 3e-5), ("a-n2", "a", "N2", T_K, 2e-6),
+        ("a-co2-1", "a", "CO2", T_K, 3e-5), ("c-co2", "c", "CO2", T_K, 3e-5),
+        ("a-co2-2", "a", "CO2", T_K, 9e-5), ("b-n2", "b", "N2", T_K, 2e-6),
+        ("d-co2", "d", "CO2", 350.0, 3e-5), ("d-n2", "d", "N2", 350.0, 2e-6),
+    ]
+    isos = [Isotherm(i, m, gas, t, P_PA, langmuir(P_PA, 4.0, b)) for i, m, gas, t, b in layout]
+    batch, packed = batch_of(isos, mixtures=[request(0.15, 1e5, material=None)])
+    fits, selection = stack_fits([("langmuir", [4.0, b]) for *_, b in layout])
+    rows = [r for r in material_metrics(packed, fits, selection, batch) if r["kind"] == "iast"]
+    assert [(r["material_id"], r["isotherm_ids"]) for r in rows] == [
+        ("a", ["a-co2-1", "a-n2"]), ("b", ["b-co2", "b-n2"])]
+    assert rows[0]["selectivity"] == pytest.approx(3e-5 / 2e-6, rel=1e-8)  # equal capacities

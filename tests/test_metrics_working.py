@@ -69,3 +69,31 @@ def test_temperature_swing_row_uses_each_temperature_s_fit():
     assert rows[0]["working_capacity_mol_per_kg"] == pytest.approx(expected, rel=1e-12)
     assert rows[0]["working_capacity_mol_per_kg"] > 0
     assert rows[0]["flags"] == []
+
+
+def test_temperature_swing_rows_take_each_material_s_first_isotherm_at_each_temperature():
+    # interleaved materials and gases, repeats at both temperatures: one row per
+    # (material, gas) having both, in sorted order, each from the batch's first
+    # isotherm at that temperature (the rows are grouped in one pass)
+    cond = Conditions(adsorption_pressure_pa=1e5, desorption_pressure_pa=1e5,
+                      adsorption_temperature_k=298.0, desorption_temperature_k=373.0)
+    p = np.geomspace(1e3, 1e6, 10)
+    layout = [  # (isotherm id, material, gas, temperature, affinity)
+        ("b-cold-1", "b", "CO2", 298.0, 4e-5), ("a-hot-1", "a", "CO2", 373.0, 5e-6),
+        ("a-cold-1", "a", "CO2", 298.0, 3e-5), ("b-hot-1", "b", "CO2", 373.0, 6e-6),
+        ("a-cold-2", "a", "CO2", 298.0, 9e-5), ("a-hot-2", "a", "CO2", 373.0, 9e-6),
+        ("a-ch4-cold", "a", "CH4", 298.0, 2e-5), ("c-cold", "c", "CO2", 298.0, 4e-5),
+        ("b-cold-2", "b", "CO2", 298.0, 8e-5), ("a-ch4-hot", "a", "CH4", 373.0, 3e-6),
+    ]
+    isotherms = [langmuir_isotherm(i, m, gas, t, 5.0, b, p) for i, m, gas, t, b in layout]
+    batch, packed = batch_of(isotherms, conditions=cond)
+    fits, selection = stack_fits([("langmuir", [5.0, b]) for *_, b in layout])
+    rows = [r for r in material_metrics(packed, fits, selection, batch)
+            if r["kind"] == "temperature_swing"]
+    assert [(r["material_id"], r["adsorbate"], r["isotherm_ids"]) for r in rows] == [
+        ("a", "CH4", ["a-ch4-cold", "a-ch4-hot"]),
+        ("a", "CO2", ["a-cold-1", "a-hot-1"]),
+        ("b", "CO2", ["b-cold-1", "b-hot-1"]),
+    ]
+    assert rows[1]["working_capacity_mol_per_kg"] == pytest.approx(
+        langmuir(1e5, 5.0, 3e-5) - langmuir(1e5, 5.0, 5e-6), rel=1e-12)

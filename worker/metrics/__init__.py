@@ -62,12 +62,19 @@ def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
     given = np.isfinite(packed.surface_area_m2_per_g) & (packed.surface_area_m2_per_g > 0)
     area = np.where(given, packed.surface_area_m2_per_g, np.nan)
     source = np.where(given, "given", None).astype(object)
-    materials = np.asarray(packed.material_ids, dtype=object)
     measured = np.isfinite(bet_area_m2_per_g)
-    for material_id in set(materials[measured]):
-        same = materials == material_id
-        fill = same & ~given
-        area[fill] = np.mean(bet_area_m2_per_g[same & measured])
+    # rows per material in one pass (comparing every row with each material
+    # would be quadratic in the batch size)
+    rows_of: dict[str, list[int]] = {}
+    for i, material_id in enumerate(packed.material_ids):
+        rows_of.setdefault(material_id, []).append(i)
+    for rows in rows_of.values():
+        rows = np.asarray(rows)
+        with_area = rows[measured[rows]]
+        if with_area.size == 0:
+            continue
+        fill = rows[~given[rows]]
+        area[fill] = np.mean(bet_area_m2_per_g[with_area])
         source[fill] = "bet"
     return area, source
 

@@ -254,14 +254,17 @@ def iast_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
             continue
         near_t = candidates & (np.abs(packed.temperature_k - req.temperature_k)
                                <= SAME_TEMPERATURE_TOLERANCE_K)
-        materials = ([req.material_id] if req.material_id is not None
-                     else sorted({packed.material_ids[i] for i in np.flatnonzero(near_t)}))
+        # rows near the temperature per material, in batch order: one pass, not a
+        # scan of the batch per material (quadratic in the batch size)
+        by_material: dict[str, list[int]] = {}
+        for i in np.flatnonzero(near_t):
+            by_material.setdefault(packed.material_ids[i], []).append(int(i))
+        materials = [req.material_id] if req.material_id is not None else sorted(by_material)
         for material_id in materials:
             rows = []
             for gas in req.components:
-                match = [i for i in np.flatnonzero(near_t)
-                         if packed.material_ids[i] == material_id
-                         and _same_gas(packed.adsorbates[i], gas)]
+                match = [i for i in by_material.get(material_id, ())
+                         if _same_gas(packed.adsorbates[i], gas)]
                 rows.append(match[0] if match else None)  # first isotherm of the batch
             if all(i is not None for i in rows):
                 planned.append((req, material_id, np.array(rows), []))

@@ -55,17 +55,20 @@ def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection
     loading = selected_loading(packed, fits, selection, pressure)[:, 0]
     outside = outside_measured_range(packed, pressure)[:, 0]
 
+    # first isotherm of the batch at each end, per material and gas; one pass
+    # (a scan of the whole batch per key would be quadratic in the batch size)
+    first_ads: dict[tuple[str, str], int] = {}
+    first_des: dict[tuple[str, str], int] = {}
+    for i in np.flatnonzero(at_ads | at_des):
+        key = (packed.material_ids[i], packed.adsorbates[i])
+        if at_ads[i]:
+            first_ads.setdefault(key, int(i))
+        if at_des[i]:
+            first_des.setdefault(key, int(i))
+
     rows = []
-    keys = sorted({(packed.material_ids[i], packed.adsorbates[i])
-                   for i in np.flatnonzero(at_ads | at_des)})
-    for material_id, adsorbate in keys:
-        same = np.array([(m, a) == (material_id, adsorbate)
-                         for m, a in zip(packed.material_ids, packed.adsorbates)])
-        ads_rows = np.flatnonzero(same & at_ads)
-        des_rows = np.flatnonzero(same & at_des)
-        if ads_rows.size == 0 or des_rows.size == 0:
-            continue
-        i, k = ads_rows[0], des_rows[0]  # first isotherm of the batch at each temperature
+    for material_id, adsorbate in sorted(first_ads.keys() & first_des.keys()):
+        i, k = first_ads[material_id, adsorbate], first_des[material_id, adsorbate]
         flags = []
         if outside[i]:
             flags.append("extrapolated_adsorption_pressure")
