@@ -214,8 +214,6 @@ def main(argv=None) -> int:
     ap.add_argument("--timeout-s", type=float, default=1800, help="bound on the end-to-end wait")
     args = ap.parse_args(argv)
 
-    import requests
-
     work = Path(tempfile.mkdtemp(prefix="sorbrank-bench-ingest-"))
     procs = Procs(work)
     ok = True
