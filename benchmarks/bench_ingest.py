@@ -37,9 +37,7 @@ import json
 import os
 import shutil
 import statistics
-import subprocess
 import sys
-import tarfile
 import tempfile
 import time
 import uuid
@@ -47,7 +45,7 @@ from pathlib import Path
 
 import numpy as np
 
-from local_procs import LOOPBACK, Procs, free_port, start_redis, wait_for
+from local_procs import LOOPBACK, Procs, code_at, free_port, start_redis, wait_for
 
 ROOT = Path(__file__).resolve().parents[1]
 N_POINTS = 30
@@ -120,15 +118,6 @@ def post(session, url: str, body: bytes) -> tuple[float, dict]:
     if resp.status_code != 202:
         raise SystemExit(f"POST answered {resp.status_code}: {resp.text[:1000]}")
     return elapsed, resp.json()
-
-
-def code_at(rev: str, into: Path) -> Path:
-    """The repository's files at ``rev``, extracted (read-only for the repo)."""
-    archive = subprocess.run(["git", "archive", "--format=tar", rev], cwd=ROOT,
-                             capture_output=True, check=True).stdout
-    with tarfile.open(fileobj=io.BytesIO(archive)) as tar:
-        tar.extractall(into, filter="data")
-    return into
 
 
 def accepted_rate(procs: Procs, label: str, code_dir: Path, broker: str, work: Path,

@@ -26,15 +26,15 @@ material. Nothing here asserts a time.
 from __future__ import annotations
 
 import argparse
-import io
 import json
 import statistics
 import subprocess
 import sys
-import tarfile
 import tempfile
 import time
 from pathlib import Path
+
+from local_procs import code_at
 
 ROOT = Path(__file__).resolve().parents[1]
 CHUNK = 10_000  # isotherms per generated piece (bench_scale.chunk_table)
@@ -91,14 +91,6 @@ def run_side(code_dir: Path, paths: list[str], repeats: int) -> list[dict]:
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
-def code_at(rev: str, into: Path) -> Path:
-    archive = subprocess.run(["git", "archive", "--format=tar", rev, "worker"], cwd=ROOT,
-                             capture_output=True, check=True).stdout
-    with tarfile.open(fileobj=io.BytesIO(archive)) as tar:
-        tar.extractall(into, filter="data")
-    return into
-
-
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -117,7 +109,7 @@ def main(argv=None) -> int:
             write_batch(n, path)
             paths.append(str(path))
         current = run_side(ROOT, paths, args.repeats)
-        base = run_side(code_at(args.baseline, tmp / "baseline"), paths, args.repeats) \
+        base = run_side(code_at(args.baseline, tmp / "baseline", "worker"), paths, args.repeats) \
             if args.baseline != "none" else None
     print(f"batches  : {', '.join(f'{n:,}' for n in args.n)} isotherms of the scale mix, "
           f"swing 273.15 -> 298.15 K, 2 mixture requests for every material; "

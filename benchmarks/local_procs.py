@@ -1,16 +1,30 @@
 """Process handling shared by the benchmarks that start real servers:
-free loopback ports, process groups that are always stopped, bounded waits."""
+free loopback ports, process groups that are always stopped, bounded waits;
+and the repository's code at a git revision, for side-by-side baselines."""
 from __future__ import annotations
 
+import io
 import os
 import shutil
 import signal
 import socket
 import subprocess
+import tarfile
 import time
 from pathlib import Path
 
 LOOPBACK = "127.0.0.1"
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def code_at(rev: str, into: Path, *paths: str) -> Path:
+    """The repository's files at ``rev`` (only ``paths`` if given), extracted
+    into ``into`` (read-only for the repository); returns ``into``."""
+    archive = subprocess.run(["git", "archive", "--format=tar", rev, *paths], cwd=ROOT,
+                             capture_output=True, check=True).stdout
+    with tarfile.open(fileobj=io.BytesIO(archive)) as tar:
+        tar.extractall(into, filter="data")
+    return into
 
 
 def free_port() -> int:

@@ -14,7 +14,8 @@ from typing import Mapping
 from urllib.parse import urlsplit
 
 from worker.logs import LEVELS
-from worker.pipeline import DEFAULT_CHUNK_SIZE
+# defined beside the data types, so reading settings does not load the engine
+from worker.isotherm import DEFAULT_CHUNK_SIZE
 
 from .auth import Token, load_tokens
 

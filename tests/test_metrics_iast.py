@@ -175,4 +175,5 @@ def test_request_for_every_material_uses_each_material_s_first_isotherm_per_gas(
     rows = [r for r in material_metrics(packed, fits, selection, batch) if r["kind"] == "iast"]
     assert [(r["material_id"], r["isotherm_ids"]) for r in rows] == [
         ("a", ["a-co2-1", "a-n2"]), ("b", ["b-co2", "b-n2"])]
-    assert rows[0]["selectivity"] == pytest.approx(3e-5 / 2e-6, rel=1e-8)  # equal capacities
+    # equal capacities: IAST = extended Langmuir, selectivity b1 / b2 (Myers & Prausnitz 1965)
+    assert rows[0]["selectivity"] == pytest.approx(3e-5 / 2e-6, rel=1e-8)

@@ -12,6 +12,17 @@ from typing import Any
 import numpy as np
 
 
+# Isotherms per unit of work of a batch: a chunk of `sorbrank fit`'s process
+# pool and a job of the service (SORBRANK_CHUNK_SIZE). The engine's fixed costs per model
+# (seeding, each model's last few rows iterating alone) are shared by the
+# chunk, so small chunks are slow: one process fitted the scale benchmark's
+# mix at 383 isotherms/s in chunks of 500, 626/s in chunks of 2,000, 762/s in
+# chunks of 5,000 (benchmarks/bench_scale.py --n 10000 --workers 1 --chunk N);
+# 2,000 keeps a job to a few seconds and a 10,000-isotherm batch spread over
+# several workers.
+DEFAULT_CHUNK_SIZE = 2000
+
+
 @dataclass(frozen=True)
 class Issue:
     """One validation problem, located as precisely as the input allows.

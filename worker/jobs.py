@@ -17,8 +17,8 @@ from typing import Callable
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .isotherm import Batch, Conditions, MixtureRequest
-from .pipeline import DEFAULT_CHUNK_SIZE, FitOptions, process_batch
+from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, MixtureRequest
+from .pipeline import FitOptions, process_batch
 from .store import Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
 
 log = logging.getLogger(__name__)

@@ -18,20 +18,10 @@ import numpy as np
 import pyarrow as pa
 
 from .engine import WEIGHTINGS, fit_models, resolve_models
-from .isotherm import Batch
+from .isotherm import DEFAULT_CHUNK_SIZE, Batch
 from .packing import Packed, pack
 from .results import ModelFits, Selection
 from .selection import CRITERIA, linearized_langmuir, select
-
-# Isotherms per unit of work: a chunk of `sorbrank fit`'s process pool and a
-# job of the service (SORBRANK_CHUNK_SIZE). The engine's fixed costs per model
-# (seeding, each model's last few rows iterating alone) are shared by the
-# chunk, so small chunks are slow: one process fitted the scale benchmark's
-# mix at 383 isotherms/s in chunks of 500, 626/s in chunks of 2,000, 762/s in
-# chunks of 5,000 (benchmarks/bench_scale.py --n 10000 --workers 1 --chunk N);
-# 2,000 keeps a job to a few seconds and a 10,000-isotherm batch spread over
-# several workers.
-DEFAULT_CHUNK_SIZE = 2000
 
 Progress = Callable[[int, int], None]  # (isotherms done, isotherms total)
 

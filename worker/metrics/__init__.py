@@ -18,7 +18,7 @@ from ..packing import Packed
 from ..results import ModelFits, Selection
 from .bet import bet_columns
 from .capacity import capacity_columns, gas_volume_cm3stp_per_g, site_density_columns
-from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags
+from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags, rows_by
 from .henry import henry_columns
 from .iast import iast_rows
 from .isosteric import isosteric_heat_rows
@@ -63,12 +63,7 @@ def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
     area = np.where(given, packed.surface_area_m2_per_g, np.nan)
     source = np.where(given, "given", None).astype(object)
     measured = np.isfinite(bet_area_m2_per_g)
-    # rows per material in one pass (comparing every row with each material
-    # would be quadratic in the batch size)
-    rows_of: dict[str, list[int]] = {}
-    for i, material_id in enumerate(packed.material_ids):
-        rows_of.setdefault(material_id, []).append(i)
-    for rows in rows_of.values():
+    for rows in rows_by(packed.material_ids, range(len(packed.material_ids))).values():
         rows = np.asarray(rows)
         with_area = rows[measured[rows]]
         if with_area.size == 0:

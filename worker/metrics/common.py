@@ -6,7 +6,7 @@ once over all the isotherms that selected it.
 """
 from __future__ import annotations
 
-from typing import Iterator
+from typing import Hashable, Iterable, Iterator, Sequence
 
 import numpy as np
 from scipy import constants
@@ -23,6 +23,18 @@ MOLAR_VOLUME_STP_CM3_PER_MOL = constants.R * STP_TEMPERATURE_K / STP_PRESSURE_PA
 
 # Two temperatures closer than this are the same measurement condition.
 SAME_TEMPERATURE_TOLERANCE_K = 0.5
+
+
+def rows_by(keys: Sequence[Hashable], rows: Iterable[int]) -> dict[Hashable, list[int]]:
+    """The given row indices grouped by ``keys[row]``, each group in batch order.
+
+    One pass over the rows: a scan of the whole batch per material would make
+    the per-material metrics quadratic in the batch size.
+    """
+    groups: dict[Hashable, list[int]] = {}
+    for i in rows:
+        groups.setdefault(keys[i], []).append(int(i))
+    return groups
 
 
 def new_flags(n: int) -> list[list[str]]:

@@ -27,7 +27,7 @@ from ..isotherm import MixtureRequest
 from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
-from .common import SAME_TEMPERATURE_TOLERANCE_K, evaluate_model, measured_pressure_range
+from .common import SAME_TEMPERATURE_TOLERANCE_K, evaluate_model, measured_pressure_range, rows_by
 
 IAST_LOG_SPAN = np.log(1e12)
 IAST_PANELS = 24
@@ -254,11 +254,7 @@ def iast_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
             continue
         near_t = candidates & (np.abs(packed.temperature_k - req.temperature_k)
                                <= SAME_TEMPERATURE_TOLERANCE_K)
-        # rows near the temperature per material, in batch order: one pass, not a
-        # scan of the batch per material (quadratic in the batch size)
-        by_material: dict[str, list[int]] = {}
-        for i in np.flatnonzero(near_t):
-            by_material.setdefault(packed.material_ids[i], []).append(int(i))
+        by_material = rows_by(packed.material_ids, np.flatnonzero(near_t))
         materials = [req.material_id] if req.material_id is not None else sorted(by_material)
         for material_id in materials:
             rows = []

@@ -13,7 +13,7 @@ from scipy import constants
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (SAME_TEMPERATURE_TOLERANCE_K, max_measured_loading,
-                     measured_pressure_range, selected_pressure_at_loading)
+                     measured_pressure_range, rows_by, selected_pressure_at_loading)
 
 # Loading grid: QST_GRID_POINTS evenly between these fractions of the smallest
 # maximum measured loading of the group; the odd count puts QST_REFERENCE_FRACTION
@@ -33,9 +33,7 @@ def isosteric_groups(packed: Packed, usable: np.ndarray) -> list[tuple[str, str,
     """(material_id, adsorbate, rows) with usable adsorption fits at >= 2 temperatures."""
     adsorption = np.array([b == "adsorption" for b in packed.branches], dtype=bool)
     keep = usable & adsorption
-    groups = {}
-    for i in np.flatnonzero(keep):
-        groups.setdefault((packed.material_ids[i], packed.adsorbates[i]), []).append(i)
+    groups = rows_by(list(zip(packed.material_ids, packed.adsorbates)), np.flatnonzero(keep))
     out = []
     for (material_id, adsorbate), rows in sorted(groups.items()):
         rows = _temperature_window(np.array(rows), packed.temperature_k)

@@ -7,7 +7,7 @@ from ..isotherm import Batch
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (SAME_TEMPERATURE_TOLERANCE_K, add_flag, measured_pressure_range,
-                     pressure_label, selected_loading)
+                     pressure_label, rows_by, selected_loading)
 
 
 def outside_measured_range(packed: Packed, pressure_pa: np.ndarray) -> np.ndarray:
@@ -55,20 +55,13 @@ def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection
     loading = selected_loading(packed, fits, selection, pressure)[:, 0]
     outside = outside_measured_range(packed, pressure)[:, 0]
 
-    # first isotherm of the batch at each end, per material and gas; one pass
-    # (a scan of the whole batch per key would be quadratic in the batch size)
-    first_ads: dict[tuple[str, str], int] = {}
-    first_des: dict[tuple[str, str], int] = {}
-    for i in np.flatnonzero(at_ads | at_des):
-        key = (packed.material_ids[i], packed.adsorbates[i])
-        if at_ads[i]:
-            first_ads.setdefault(key, int(i))
-        if at_des[i]:
-            first_des.setdefault(key, int(i))
+    keys = list(zip(packed.material_ids, packed.adsorbates))
+    ads_rows, des_rows = rows_by(keys, np.flatnonzero(at_ads)), rows_by(keys, np.flatnonzero(at_des))
 
     rows = []
-    for material_id, adsorbate in sorted(first_ads.keys() & first_des.keys()):
-        i, k = first_ads[material_id, adsorbate], first_des[material_id, adsorbate]
+    for key in sorted(ads_rows.keys() & des_rows.keys()):
+        material_id, adsorbate = key
+        i, k = ads_rows[key][0], des_rows[key][0]  # first isotherm of the batch at each temperature
         flags = []
         if outside[i]:
             flags.append("extrapolated_adsorption_pressure")
