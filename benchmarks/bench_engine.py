@@ -12,7 +12,7 @@ plus 0.5 % multiplicative). What is fitted:
 
 Sides, all in this one process (one core each):
 
-* engine:    worker.engine.fit_model on all isotherms of a model at once;
+* engine:    sorbrank.worker.engine.fit_model on all isotherms of a model at once;
 * reference: optional (--reference-engine), another engine.py -- e.g. the
              last commit's, ``--reference-engine HEAD`` -- timed interleaved
              with the current one on the same data (before/after);
@@ -47,10 +47,10 @@ from scipy import optimize
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-import worker.engine as engine  # noqa: E402
-from worker.isotherm import Isotherm  # noqa: E402
-from worker.models import CATALOGUE  # noqa: E402
-from worker.packing import pack  # noqa: E402
+import sorbrank.worker.engine as engine  # noqa: E402
+from sorbrank.worker.isotherm import Isotherm  # noqa: E402
+from sorbrank.worker.models import CATALOGUE  # noqa: E402
+from sorbrank.worker.packing import pack  # noqa: E402
 
 N_POINTS = 30
 PARITY_RTOL = 1e-6
@@ -93,7 +93,7 @@ def make_isotherms(n: int, seed: int) -> dict[str, list[Isotherm]]:
 
 
 def load_reference_engine(spec: str):
-    """Another engine.py as module ``worker._reference_engine`` (it then uses
+    """Another engine.py as module ``sorbrank.worker._reference_engine`` (it then uses
     the current models). ``spec`` is a file path or a git revision."""
     path = Path(spec)
     if not path.is_file():
@@ -103,7 +103,7 @@ def load_reference_engine(spec: str):
         tmp.write(text)
         tmp.close()
         path = Path(tmp.name)
-    module_spec = importlib.util.spec_from_file_location("worker._reference_engine", path)
+    module_spec = importlib.util.spec_from_file_location("sorbrank.worker._reference_engine", path)
     module = importlib.util.module_from_spec(module_spec)
     sys.modules[module_spec.name] = module
     module_spec.loader.exec_module(module)
@@ -140,7 +140,7 @@ def selection_parity(cur: dict, ref: dict, rtol: float = 1e-9) -> tuple[np.ndarr
     both engines select the same model (or none) and its parameters agree to
     ``rtol`` or its SSE does. Only meaningful when every model saw the same
     isotherms (--models all)."""
-    from worker.selection import select
+    from sorbrank.worker.selection import select
 
     a, b = select(cur), select(ref)
     same_model = a.best == b.best

@@ -96,7 +96,7 @@ def start_server(procs: Procs, name: str, env: dict, code_dir: Path) -> str:
     import requests
 
     port = free_port()
-    procs.start(name, [sys.executable, "-m", "service.cli", "serve", "--host", LOOPBACK,
+    procs.start(name, [sys.executable, "-m", "sorbrank.service.cli", "serve", "--host", LOOPBACK,
                        "--port", str(port)], env, cwd=code_dir)
     url = f"http://{LOOPBACK}:{port}"
 
@@ -158,7 +158,7 @@ def end_to_end(work: Path, broker_url: str, bodies: list[bytes], n: int, chunk_s
         if chunk_size is not None:
             env["SORBRANK_CHUNK_SIZE"] = str(chunk_size)
         for k in range(2):
-            _, log = procs.start(f"worker-{label}-{k}", [sys.executable, "-m", "service.cli",
+            _, log = procs.start(f"worker-{label}-{k}", [sys.executable, "-m", "sorbrank.service.cli",
                                                          "worker", "--concurrency", "1"], env, cwd=ROOT)
             wait_for(lambda log=log: " ready." in log.read_text(errors="replace"),
                      f"worker-{k} ready", procs, 180)

@@ -99,11 +99,11 @@ def main(argv=None) -> int:
                        "scopes": ["admin"]}]))
         worker_logs = []
         for i in range(args.workers):
-            _, log = procs.start(f"worker-{i + 1}", [sys.executable, "-m", "service.cli",
+            _, log = procs.start(f"worker-{i + 1}", [sys.executable, "-m", "sorbrank.service.cli",
                                                      "worker", "--concurrency", "1"], env)
             worker_logs.append(log)
         port = free_port()
-        procs.start("server", [sys.executable, "-m", "service.cli", "serve", "--host", LOOPBACK,
+        procs.start("server", [sys.executable, "-m", "sorbrank.service.cli", "serve", "--host", LOOPBACK,
                                "--port", str(port)], env)
         url = f"http://{LOOPBACK}:{port}"
         api = url + "/api/v1"

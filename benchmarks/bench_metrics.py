@@ -54,10 +54,10 @@ def write_batch(n: int, path: Path) -> None:
 
 def measure(paths: list[str], repeats: int) -> list[dict]:
     """In the code tree this process imports: per batch file, median seconds."""
-    from worker import metrics
-    from worker.intake import Limits, read_batch
-    from worker.isotherm import Conditions, MixtureRequest
-    from worker.pipeline import FitOptions, process_batch
+    from sorbrank.worker import metrics
+    from sorbrank.worker.intake import Limits, read_batch
+    from sorbrank.worker.isotherm import Conditions, MixtureRequest
+    from sorbrank.worker.pipeline import FitOptions, process_batch
 
     out = []
     for path in paths:

@@ -1,4 +1,4 @@
-"""Rankings over a large store: worker.store.rankings and GET /api/v1/rankings.
+"""Rankings over a large store: sorbrank.worker.store.rankings and GET /api/v1/rankings.
 
 1. Build (once; cached under --dir, default a directory in the system temp
    dir named after the size) a store whose ``summaries`` table holds --rows
@@ -17,7 +17,7 @@
    side on the same store, interleaved. Prints medians and the ratio, and
    checks that both return the same page and total (exit status 1 if not).
 3. The same main query through the HTTP endpoint (Flask test client of
-   ``service.app.create_app`` on the store; JSON body), median over --repeats.
+   ``sorbrank.service.app.create_app`` on the store; JSON body), median over --repeats.
 4. --fresh-file: after the timings, add one batch and check the next query
    sees it (the listing cache must notice new chunk files).
 
@@ -67,8 +67,8 @@ LAYOUT_VERSION = "2"  # bump when the generated data changes: cached stores are 
 
 def real_summary_schema() -> pa.Schema:
     """The schema of a real summary table (a few isotherms fitted for real)."""
-    from worker.intake import read_batch
-    from worker.pipeline import FitOptions, process_batch
+    from sorbrank.worker.intake import read_batch
+    from sorbrank.worker.pipeline import FitOptions, process_batch
 
     pressures = (1, 2, 5, 10, 20, 40, 60, 80, 100)
     lines = ["material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
@@ -152,7 +152,7 @@ def chunk_table(schema: pa.Schema, rng, n: int, materials: np.ndarray, accepted_
 
 def build_store(root: Path, rows: int, batches: int, chunks: int, seed: int = 1) -> dict:
     """Write the store (skipped when a complete one is there); its description."""
-    from worker.store import Store, new_batch_id
+    from sorbrank.worker.store import Store, new_batch_id
 
     done = root / "BUILT"
     expect = f"{LAYOUT_VERSION} {rows} {batches} {chunks} {seed}"
@@ -192,7 +192,7 @@ def baseline_module(rev: str):
                             capture_output=True, text=True, check=True).stdout
     path = Path(tempfile.mkdtemp(prefix="sorbrank-baseline-")) / "store_baseline.py"
     path.write_text(source)
-    spec = importlib.util.spec_from_file_location("worker.store_baseline", path)
+    spec = importlib.util.spec_from_file_location("sorbrank.worker.store_baseline", path)
     module = importlib.util.module_from_spec(spec)
     sys.modules[spec.name] = module
     spec.loader.exec_module(module)
@@ -254,8 +254,8 @@ def main(argv=None) -> int:
     root = args.dir or Path(tempfile.gettempdir()) / (
         f"sorbrank-bench-rankings-{args.rows}-{args.batches}x{args.chunks}")
     info = build_store(root, args.rows, args.batches, args.chunks)
-    from worker import store as current
-    from worker.store import Store
+    from sorbrank.worker import store as current
+    from sorbrank.worker.store import Store
 
     files = list((root / "summaries").rglob("chunk-*.parquet"))
     print(f"store    : {root} ({args.rows:,} summary rows, {args.batches} batches x "
@@ -333,8 +333,8 @@ def main(argv=None) -> int:
 
 def _app_for(root: Path):
     """The real app on the store: no tokens (open on loopback), nothing queued."""
-    from service.app import create_app
-    from service.config import load_settings
+    from sorbrank.service.app import create_app
+    from sorbrank.service.config import load_settings
 
     settings = load_settings({"SORBRANK_DATA_DIR": str(root)})
     return create_app(settings, enqueue=lambda batch_id, chunk: None, queue_depth=lambda: 0)

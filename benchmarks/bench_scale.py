@@ -13,8 +13,8 @@
           Dubinin-Astakhov -- every model applies.
    Materials hold three isotherms each (three temperatures of one gas, or
    three N2 runs), so the per-material metrics have work to do.
-2. Fit every chunk exactly as ``sorbrank fit`` does -- worker.intake.read_batch
-   with the command's local limits, then worker.pipeline.process_batch (every
+2. Fit every chunk exactly as ``sorbrank fit`` does -- sorbrank.worker.intake.read_batch
+   with the command's local limits, then sorbrank.worker.pipeline.process_batch (every
    catalogue model that applies, AICc selection, metrics) -- one chunk per
    task on a process pool over all cores, writing the summary and the
    per-model fit tables as Parquet per chunk (temp file + rename).
@@ -85,8 +85,8 @@ def chunk_table(index: int, size: int, start: int, seed: int):
     """Chunk ``index`` (isotherms start .. start+size-1) as a long pyarrow Table."""
     import pyarrow as pa
 
-    from worker import adsorbates
-    from worker.models import CATALOGUE
+    from sorbrank.worker import adsorbates
+    from sorbrank.worker.models import CATALOGUE
 
     rng = np.random.default_rng([seed, index])
     n_mat = -(-size // 3)
@@ -176,8 +176,8 @@ def fit_chunk(job) -> dict:
     summary_path = out_dir / f"{in_path.stem}.summary.parquet"
     if summary_path.exists():
         return {"skipped": 1}
-    from worker.intake import Limits, read_batch
-    from worker.pipeline import FitOptions, process_batch
+    from sorbrank.worker.intake import Limits, read_batch
+    from sorbrank.worker.pipeline import FitOptions, process_batch
 
     start = time.perf_counter()
     limits = Limits.for_local_files()
@@ -215,7 +215,7 @@ def main(argv=None) -> int:
     if args.engine:
         # installed before the worker processes fork, so their pipeline imports it
         from bench_engine import load_reference_engine
-        sys.modules["worker.engine"] = load_reference_engine(args.engine)
+        sys.modules["sorbrank.worker.engine"] = load_reference_engine(args.engine)
 
     work = args.dir or Path(os.environ.get("TMPDIR", "/tmp")) / f"sorbrank-scale-{args.n}"
     if args.fresh and work.exists():

@@ -13,7 +13,7 @@ from typing import Callable
 
 from flask import Flask, Response, g, request
 
-from worker.store import Store
+from sorbrank.worker.store import Store
 
 from . import problems
 from .auth import Authenticator
@@ -49,7 +49,7 @@ class Runtime:
 
 
 def _celery_enqueue(batch_id: str, chunk_index: int) -> None:
-    from worker.tasks import enqueue
+    from sorbrank.worker.tasks import enqueue
 
     enqueue(batch_id, chunk_index)
 
@@ -64,7 +64,7 @@ def create_app(settings: Settings | None = None,
         if settings.broker_url:
             enqueue = _celery_enqueue
         else:
-            from worker.embedded import EmbeddedExecutor
+            from sorbrank.worker.embedded import EmbeddedExecutor
 
             executor = EmbeddedExecutor(settings.data_dir, settings.embedded_workers)
             executor.resume()

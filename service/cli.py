@@ -31,9 +31,9 @@ def build_parser() -> argparse.ArgumentParser:
     sub.required = True
     for name in COMMANDS:
         try:
-            module = importlib.import_module(f"service.commands.{name}")
+            module = importlib.import_module(f"sorbrank.service.commands.{name}")
         except ModuleNotFoundError as exc:
-            if exc.name == f"service.commands.{name}":
+            if exc.name == f"sorbrank.service.commands.{name}":
                 continue  # command not built yet
             raise
         module.register(sub)

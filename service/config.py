@@ -13,9 +13,9 @@ from pathlib import Path
 from typing import Mapping
 from urllib.parse import urlsplit
 
-from worker.logs import LEVELS
+from sorbrank.worker.logs import LEVELS
 # defined beside the data types, so reading settings does not load the engine
-from worker.isotherm import DEFAULT_CHUNK_SIZE
+from sorbrank.worker.isotherm import DEFAULT_CHUNK_SIZE
 
 from .auth import Token, load_tokens
 
@@ -176,7 +176,7 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
 
 def store_problem(settings: Settings) -> str | None:
     """Why the store root cannot take writes right now (None = it can)."""
-    from worker.store import Store
+    from sorbrank.worker.store import Store
 
     try:
         Store(settings.data_dir).check_writable()

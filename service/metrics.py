@@ -30,7 +30,7 @@ from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_l
 from prometheus_client.core import (CounterMetricFamily, GaugeMetricFamily,
                                     HistogramMetricFamily, Metric)
 
-from worker.store import Store
+from sorbrank.worker.store import Store
 
 log = logging.getLogger(__name__)
 
@@ -125,7 +125,7 @@ def broker_queue_depth(broker_url: str) -> Callable[[], int | None]:
     import redis
     from kombu.transport.redis import PRIORITY_STEPS, Channel
 
-    from worker.celery_app import QUEUE
+    from sorbrank.worker.celery_app import QUEUE
 
     client = redis.Redis.from_url(broker_url, socket_timeout=1, socket_connect_timeout=1)
     keys = [QUEUE] + [f"{QUEUE}{Channel.sep}{step}" for step in PRIORITY_STEPS if step]

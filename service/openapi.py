@@ -5,7 +5,7 @@ document validates, so the two cannot drift apart silently.
 """
 from __future__ import annotations
 
-from worker.store import BATCH_ID_PATTERN, LATEST_WINS_RULE
+from sorbrank.worker.store import BATCH_ID_PATTERN, LATEST_WINS_RULE
 
 TABULAR = {
     "application/json": {"schema": {"type": "object"}},

@@ -29,7 +29,7 @@ import matplotlib
 import numpy as np
 from matplotlib.figure import Figure
 
-from worker.models import CATALOGUE
+from sorbrank.worker.models import CATALOGUE
 
 FORMATS = ("svg", "png")
 PNG_DPI = 120

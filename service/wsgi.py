@@ -1,4 +1,4 @@
-"""WSGI entry point for production servers: ``gunicorn service.wsgi:app``.
+"""WSGI entry point for production servers: ``gunicorn sorbrank.service.wsgi:app``.
 
 Importing this module builds the Flask app from the SORBRANK_* environment,
 sends this process's logs to stderr as JSON lines (SORBRANK_LOG_LEVEL), checks
@@ -27,7 +27,7 @@ from typing import Mapping
 
 from flask import Flask
 
-from worker import logs
+from sorbrank.worker import logs
 
 from .app import create_app
 from .config import ConfigError, load_settings, store_problem
@@ -37,7 +37,7 @@ def build(env: Mapping[str, str] | None = None) -> Flask:
     settings = load_settings(env)
     problems = []
     if not settings.broker_url:
-        problems.append("SORBRANK_BROKER_URL is not set: service.wsgi:app serves distributed "
+        problems.append("SORBRANK_BROKER_URL is not set: sorbrank.service.wsgi:app serves distributed "
                         "mode only (each WSGI worker process would run its own fitting pool); "
                         "set it to redis://host:port/db, or run 'sorbrank serve' for embedded mode")
     if not settings.tokens and not settings.allow_open:

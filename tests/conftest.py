@@ -144,7 +144,7 @@ def start_redis(log_dir: Path, registry: list[Proc]) -> tuple[Proc, str]:
 
 def start_worker(env: dict[str, str], log_dir: Path, registry: list[Proc],
                  name: str = "celery-worker") -> Proc:
-    proc = start(name, [sys.executable, "-m", "service.cli", "worker", "--concurrency", "1"],
+    proc = start(name, [sys.executable, "-m", "sorbrank.service.cli", "worker", "--concurrency", "1"],
                  env, log_dir, registry)
     wait_until(lambda: " ready." in proc.log_text(), "the Celery worker to be ready", [proc])
     return proc
@@ -153,7 +153,7 @@ def start_worker(env: dict[str, str], log_dir: Path, registry: list[Proc],
 def start_server(env: dict[str, str], log_dir: Path, registry: list[Proc],
                  name: str = "server") -> tuple[Proc, str]:
     port = free_port()
-    proc = start(name, [sys.executable, "-m", "service.cli", "serve", "--host", LOOPBACK,
+    proc = start(name, [sys.executable, "-m", "sorbrank.service.cli", "serve", "--host", LOOPBACK,
                         "--port", str(port)], env, log_dir, registry)
     url = f"http://{LOOPBACK}:{port}"
     wait_until(lambda: http_ok(url + "/healthz"), f"{name} to answer /healthz", [proc])

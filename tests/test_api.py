@@ -15,13 +15,13 @@ import pytest
 from openapi_spec_validator import validate
 
 from conftest import TOKENS, clean_env, csv_batch, free_port, isotherm, json_batch, parquet_batch, tokens_json
-from service.api.formats import safe_cell
-from service.app import create_app
-from service.auth import parse_tokens
-from service.config import ConfigError, Settings, load_settings, open_access_verdict
-from service.openapi import document
-from worker import jobs
-from worker.store import Store, new_batch_id
+from sorbrank.service.api.formats import safe_cell
+from sorbrank.service.app import create_app
+from sorbrank.service.auth import parse_tokens
+from sorbrank.service.config import ConfigError, Settings, load_settings, open_access_verdict
+from sorbrank.service.openapi import document
+from sorbrank.worker import jobs
+from sorbrank.worker.store import Store, new_batch_id
 
 
 def make_app(tmp_path, *, tokens=True, **overrides):
@@ -239,7 +239,7 @@ def test_rankings_parameters(client):
 
 def test_failed_chunk_gives_partial_batch_and_keeps_the_rest(app, client, tmp_path):
     store = app.extensions["sorbrank"].store
-    from worker.intake import read_batch
+    from sorbrank.worker.intake import read_batch
 
     batch = read_batch(csv_batch([isotherm("G1", 1, 0.1), isotherm("G2", 2, 0.1),
                                   isotherm("G3", 3, 0.1)]), "csv")
@@ -320,7 +320,7 @@ def test_open_access_rules():
 
 
 def test_serve_refuses_open_non_loopback_host(tmp_path):
-    done = subprocess.run([sys.executable, "-m", "service.cli", "serve", "--host", "0.0.0.0",
+    done = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", "serve", "--host", "0.0.0.0",
                            "--port", str(free_port())],
                           env=clean_env(SORBRANK_DATA_DIR=str(tmp_path)), capture_output=True,
                           text=True, timeout=60)
@@ -347,7 +347,7 @@ def test_readyz_reports_unwritable_store_and_unreachable_broker(tmp_path):
 
 @pytest.mark.parametrize("command", ["serve", "worker", "submit", "rank", "demo"])
 def test_command_help_explains_and_gives_an_example(command, capsys):
-    from service.cli import build_parser
+    from sorbrank.service.cli import build_parser
 
     with pytest.raises(SystemExit) as exit_:
         build_parser().parse_args([command, "--help"])

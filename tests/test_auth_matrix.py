@@ -22,11 +22,11 @@ from conftest import (
     ROOT, clean_env, csv_batch, isotherm, json_batch, start_redis, start_server, start_worker,
     wait_until,
 )
-from service.app import create_app
-from service.auth import parse_tokens
-from service.config import Settings
-from worker import jobs
-from worker.store import Store
+from sorbrank.service.app import create_app
+from sorbrank.service.auth import parse_tokens
+from sorbrank.service.config import Settings
+from sorbrank.worker import jobs
+from sorbrank.worker.store import Store
 
 # tokens of this module (the secrets never leave the test; the app gets their hashes)
 SECRETS = {"only-submit": ("am-submit-5e1c0b7d9f", ["submit"]),

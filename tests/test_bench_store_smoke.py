@@ -13,7 +13,7 @@ from pathlib import Path
 import pyarrow as pa
 import pytest
 
-from worker.store import RankingQuery, Store, _rank_whole_rows, new_batch_id, rankings
+from sorbrank.worker.store import RankingQuery, Store, _rank_whole_rows, new_batch_id, rankings
 
 ROOT = Path(__file__).resolve().parents[1]
 T0 = datetime(2025, 3, 1, tzinfo=timezone.utc)
@@ -205,8 +205,8 @@ def test_inputs_table_built_by_columns_equals_the_row_by_row_table():
 
     import pyarrow.parquet as pq
 
-    from worker.intake import read_batch
-    from worker.store import _isotherms_to_table_by_rows, isotherms_to_table
+    from sorbrank.worker.intake import read_batch
+    from sorbrank.worker.store import _isotherms_to_table_by_rows, isotherms_to_table
 
     csv = "\n".join(["material_id,adsorbate,temperature_k,pressure,loading,sigma,"
                      "pressure_unit,loading_unit"]

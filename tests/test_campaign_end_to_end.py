@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from service.client import Client
+from sorbrank.service.client import Client
 from conftest import clean_env, start_server
 
 ROOT = Path(__file__).resolve().parents[1]

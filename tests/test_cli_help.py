@@ -8,12 +8,12 @@ import sys
 
 import pytest
 
-from service.cli import COMMANDS, build_parser
-from worker.models import CATALOGUE
+from sorbrank.service.cli import COMMANDS, build_parser
+from sorbrank.worker.models import CATALOGUE
 
 
 def _help(*argv: str) -> str:
-    out = subprocess.run([sys.executable, "-m", "service.cli", *argv, "--help"],
+    out = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", *argv, "--help"],
                          capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stderr
     return out.stdout

@@ -259,17 +259,17 @@ def command_problems(argv: list[str], data_dir: Path) -> list[str]:
         argv = shlex.split(argv[2])
     program, args = argv[0], argv[1:]
     if program == "sorbrank":
-        if sorbrank_script_target() != "service.cli:main":
-            return [f"console script sorbrank -> {sorbrank_script_target()}, not service.cli:main"]
+        if sorbrank_script_target() != "sorbrank.service.cli:main":
+            return [f"console script sorbrank -> {sorbrank_script_target()}, not sorbrank.service.cli:main"]
         if not args:
             return ["'sorbrank' without a subcommand"]
-        help_run = subprocess.run([sys.executable, "-m", "service.cli", args[0], "--help"],
+        help_run = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", args[0], "--help"],
                                   cwd=ROOT, env=clean_env(PYTHONPATH=str(ROOT)),
                                   capture_output=True, text=True, timeout=60)
         if help_run.returncode != 0:
             return [f"'sorbrank {args[0]} --help' exited {help_run.returncode}: "
                     f"{help_run.stderr.strip()[-500:]}"]
-        from service.cli import build_parser
+        from sorbrank.service.cli import build_parser
 
         try:
             build_parser().parse_args(args)
@@ -361,7 +361,7 @@ def test_default_command_is_gunicorn_on_the_exposed_port(instructions):
     commands = dockerfile_commands(instructions)
     assert "ENTRYPOINT" not in commands  # `docker run IMAGE sorbrank worker` must just work
     assert commands["CMD"] == ["gunicorn", "--bind", f"0.0.0.0:{API_PORT}", "--workers", "2",
-                               "service.wsgi:app"]
+                               "sorbrank.service.wsgi:app"]
     assert f"http://127.0.0.1:{API_PORT}/healthz" in commands["HEALTHCHECK"][-1]
 
 
@@ -466,19 +466,19 @@ def test_checkers_reject_a_bad_dockerfile(tmp_path):
 @pytest.mark.parametrize("argv, expected", [
     (["sorbrank", "worker", "--concurrency", "two"], "does not accept"),
     (["sorbrank"], "without a subcommand"),
-    (["gunicorn", "--bind", "0.0.0.0:8000", "service.wsgi:nope"], "did not answer"),
-    (["gunicorn", "--bind", "0.0.0.0:8000", "service.app:create_app"], "did not answer"),
-    (["celery", "-A", "worker.celery_app", "worker"], "not an entry point"),
+    (["gunicorn", "--bind", "0.0.0.0:8000", "sorbrank.service.wsgi:nope"], "did not answer"),
+    (["gunicorn", "--bind", "0.0.0.0:8000", "sorbrank.service.app:create_app"], "did not answer"),
+    (["celery", "-A", "sorbrank.worker.celery_app", "worker"], "not an entry point"),
 ])
 def test_checkers_reject_commands_the_package_does_not_have(argv, expected, tmp_path):
     problems = command_problems(argv, tmp_path)
     assert problems and expected in problems[0], problems
 
 
-# -- service.wsgi ------------------------------------------------------------------------
+# -- sorbrank.service.wsgi ------------------------------------------------------------------------
 
 def _import_wsgi(env: dict[str, str]) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-c", "import service.wsgi as w; print(type(w.app).__name__)"],
+    return subprocess.run([sys.executable, "-c", "import sorbrank.service.wsgi as w; print(type(w.app).__name__)"],
                           cwd=ROOT, env=env, capture_output=True, text=True, timeout=60)
 
 
@@ -566,7 +566,7 @@ def test_compose_api_check_fails_when_the_broker_is_down(tmp_path, instructions,
     port = free_port()
     gunicorn = str(Path(sys.executable).with_name("gunicorn"))
     api = start("gunicorn-no-broker", [gunicorn, "--bind", f"{LOOPBACK}:{port}", "--workers", "1",
-                                       "service.wsgi:app"], env, tmp_path / "logs", processes)
+                                       "sorbrank.service.wsgi:app"], env, tmp_path / "logs", processes)
     wait_until(lambda: http_ok(f"http://{LOOPBACK}:{port}/healthz"), "gunicorn /healthz", [api])
     image_check = _snippet(dockerfile_commands(instructions)["HEALTHCHECK"], port)
     compose_check = _snippet(compose_commands(compose)[("api", "healthcheck")], port)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import expit
 
-from worker.models.elementwise import logistic, softplus, zero_at_origin
+from sorbrank.worker.models.elementwise import logistic, softplus, zero_at_origin
 
 Z = np.concatenate([np.linspace(-800.0, 800.0, 4001), [-np.inf, np.inf, 0.0, 1e-300, -1e-300],
                     np.geomspace(1e-12, 700.0, 500), -np.geomspace(1e-12, 700.0, 500)])

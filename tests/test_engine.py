@@ -12,10 +12,10 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from worker.engine import fit_model, fit_models
-from worker.isotherm import Isotherm
-from worker.models import CATALOGUE
-from worker.packing import pack
+from sorbrank.worker.engine import fit_model, fit_models
+from sorbrank.worker.isotherm import Isotherm
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.packing import pack
 
 T_K = 300.0
 P0_PA = 1.0e6  # saturation pressure used for the p/p0 models (invented, truth-known)
@@ -272,7 +272,7 @@ def test_a_model_that_crashes_is_reported_not_raised():
 def _solver_rows(model, packed):
     """The engine's per-isotherm solver outcome, including iterations used
     (not part of ModelFits): (params, status, iterations, drift)."""
-    import worker.engine as engine
+    import sorbrank.worker.engine as engine
 
     x = packed.relative_pressure if model.relative_pressure else packed.pressure_pa
     xs, qs, ws, ms = engine._canonical_width(x, packed.loading_mol_per_kg,
@@ -291,7 +291,7 @@ def test_a_fit_running_off_to_its_limit_model_stops_early_as_drift(model_id, tru
     """Truth-known: exact data of the limit model (noise-free, invented) have no
     best fit at finite parameters; the solver must say so, early, and name the
     parameters and the bounds they run to."""
-    import worker.engine as engine
+    import sorbrank.worker.engine as engine
 
     truth, p = TRUTH[truth_id]
     q = true_loading(CATALOGUE[truth_id], truth, p)
@@ -304,7 +304,7 @@ def test_a_fit_running_off_to_its_limit_model_stops_early_as_drift(model_id, tru
     for name, bound in limit.items():
         assert f"{name} -> {bound}" in reason, reason
         assert fits.at_bound[0, fits.param_names.index(name)], (name, fits.at_bound[0])
-    from worker.selection import exclusion_reasons
+    from sorbrank.worker.selection import exclusion_reasons
     assert exclusion_reasons(fits)[0] == "not converged: " + reason
     _, status, iterations, _ = _solver_rows(model, packed)
     assert status[0] == engine._DRIFTING
@@ -326,7 +326,7 @@ def test_a_rows_result_does_not_depend_on_its_company(monkeypatch):
     the same bits alone and inside a batch of strangers (other lengths, other
     drifting rows), also when a small working set makes them enter the solver
     at different times."""
-    import worker.engine as engine
+    import sorbrank.worker.engine as engine
 
     f_truth, p = TRUTH["freundlich"]
     freundlich_q = true_loading(CATALOGUE["freundlich"], f_truth, p)
@@ -371,7 +371,7 @@ def _misfit_batch():
 
 @pytest.mark.parametrize("model_id", ["langmuir", "dual_site_langmuir", "sips", "toth", "redlich_peterson"])
 def test_merging_seeds_changes_no_fit_and_saves_iterations(monkeypatch, model_id):
-    import worker.engine as engine
+    import sorbrank.worker.engine as engine
 
     model, packed = CATALOGUE[model_id], pack(_misfit_batch())
     solver = engine._levenberg_marquardt
@@ -403,7 +403,7 @@ def test_merged_seeds_stops_only_the_worse_of_two_seeds_at_one_minimum():
     """Hand-built working set: two seeds of one isotherm in the quadratic regime
     near the same minimum (the lower SSE survives), and a third row of another
     isotherm that is just as close but is no sibling (never merged)."""
-    import worker.engine as engine
+    import sorbrank.worker.engine as engine
 
     k = 2
     a_one = np.eye(k)[:, :, None] * np.ones(3)           # normal matrix: identity
@@ -438,7 +438,7 @@ def test_best_scale_projection_finds_fits_at_least_as_good_in_fewer_iterations(m
     the same minima: on truth-known misfit data (invented) every fit that
     converged without it converges with it, to an SSE as low, and the solver
     spends fewer iterations in all."""
-    import worker.engine as engine
+    import sorbrank.worker.engine as engine
 
     model = CATALOGUE[model_id]
     batch = _misfit_batch()

@@ -22,7 +22,7 @@ from conftest import (
     LOOPBACK, ROOT, TOKENS, Proc, clean_env, free_port, isotherm, start, start_server,
     start_worker, tokens_json, wait_until,
 )
-from worker.store import Store
+from sorbrank.worker.store import Store
 
 pytestmark = pytest.mark.integration
 

@@ -17,10 +17,10 @@ import pyarrow.csv as pcsv
 import pyarrow.parquet as pq
 import pytest
 
-from service.cli import main
-from worker.isotherm import Batch, Isotherm
-from worker.models import CATALOGUE
-from worker.pipeline import FitOptions, process_batch, process_isotherms_parallel
+from sorbrank.service.cli import main
+from sorbrank.worker.isotherm import Batch, Isotherm
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.pipeline import FitOptions, process_batch, process_isotherms_parallel
 
 P_PA = np.geomspace(1e2, 1e6, 15)
 HEADER = ["isotherm_id", "material_id", "adsorbate", "temperature_k", "pressure", "loading",
@@ -207,7 +207,7 @@ def test_json_summary_carries_the_metric_contract(tmp_path):
     from pathlib import Path
 
     sample = Path(__file__).resolve().parents[1] / "sample_batches" / "b06_n2_77k_relative.csv"
-    out = subprocess.run([sys.executable, "-m", "service.cli", "fit", str(sample), "--format", "json",
+    out = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", "fit", str(sample), "--format", "json",
                           "--workers", "1"], capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     records = json.loads(out.stdout)["isotherms"]

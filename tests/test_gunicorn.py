@@ -53,7 +53,7 @@ def stack(tmp_path_factory):
         port = free_port()
         gunicorn = str(Path(sys.executable).with_name("gunicorn"))
         api = start("gunicorn", [gunicorn, "--bind", f"{LOOPBACK}:{port}", "--workers", "2",
-                                 "service.wsgi:app"], env, logs, procs)
+                                 "sorbrank.service.wsgi:app"], env, logs, procs)
         url = f"http://{LOOPBACK}:{port}"
         wait_until(lambda: http_ok(url + "/healthz"), "gunicorn to answer /healthz", [api])
         metrics_port = free_port()

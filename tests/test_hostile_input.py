@@ -32,10 +32,10 @@ from hypothesis import strategies as st
 from conftest import (
     LOOPBACK, ROOT, TOKENS, clean_env, csv_batch, isotherm, json_batch, start_server, tokens_json,
 )
-from service.app import create_app
-from service.auth import parse_tokens
-from service.config import Settings
-from worker.store import Store
+from sorbrank.service.app import create_app
+from sorbrank.service.auth import parse_tokens
+from sorbrank.service.config import Settings
+from sorbrank.worker.store import Store
 
 PROBLEM = "application/problem+json"
 MEDIA = {"csv": "text/csv", "json": "application/json",

@@ -14,9 +14,9 @@ import pytest
 from CoolProp.CoolProp import PropsSI
 from scipy import constants
 
-from worker.intake import Limits, read_batch
-from worker.isotherm import IntakeError
-from worker.units import MOLAR_VOLUME_STP_CM3_PER_MOL
+from sorbrank.worker.intake import Limits, read_batch
+from sorbrank.worker.isotherm import IntakeError
+from sorbrank.worker.units import MOLAR_VOLUME_STP_CM3_PER_MOL
 
 HEADER = "material_id,adsorbate,temperature_k,pressure,loading"
 UNITS = "# pressure_unit: kPa\n# loading_unit: mmol/g\n"

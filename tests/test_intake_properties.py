@@ -14,8 +14,8 @@ import pyarrow.parquet as pq
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from worker.intake import Limits, read_batch
-from worker.isotherm import Batch, IntakeError
+from sorbrank.worker.intake import Limits, read_batch
+from sorbrank.worker.isotherm import Batch, IntakeError
 
 FAST = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 SMALL_LIMITS = Limits(max_isotherms=50, max_points_per_isotherm=40, max_columns=16, max_bytes=200_000)

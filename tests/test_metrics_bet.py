@@ -14,9 +14,9 @@ import pytest
 from scipy import constants, stats
 
 from test_metrics_support import batch_of, selection_of, truth_fits
-from worker.isotherm import Isotherm
-from worker.metrics import summarize
-from worker.metrics.bet import BET_MIN_R2, best_bet_ranges
+from sorbrank.worker.isotherm import Isotherm
+from sorbrank.worker.metrics import summarize
+from sorbrank.worker.metrics.bet import BET_MIN_R2, best_bet_ranges
 
 N_M_MOL_PER_KG = 5.0
 N2_CROSS_SECTION_M2 = 0.162e-18   # IUPAC 2015 (Thommes et al.)

@@ -7,8 +7,8 @@ import pytest
 from scipy import constants, stats
 
 from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
-from worker.metrics import summarize
-from worker.metrics.capacity import (CAPACITY_EXTRAPOLATION_FRACTION, gas_volume_cm3stp_per_g,
+from sorbrank.worker.metrics import summarize
+from sorbrank.worker.metrics.capacity import (CAPACITY_EXTRAPOLATION_FRACTION, gas_volume_cm3stp_per_g,
                                      sites_per_g)
 
 P_PA = np.geomspace(1e2, 1e6, 15)
@@ -79,7 +79,7 @@ def test_dual_site_capacity_is_the_sum_with_the_covariance_of_the_sum():
     cov[0, 2] = cov[2, 0] = -0.015
     p = P_PA
     q = 1.5 * 1e-3 * p / (1 + 1e-3 * p) + 3.0 * 1e-5 * p / (1 + 1e-5 * p)
-    from worker.isotherm import Isotherm
+    from sorbrank.worker.isotherm import Isotherm
     batch, packed = batch_of([Isotherm("d", "m", "CO2", 298.0, p, q)])
     out = summarize(packed, {"dual_site_langmuir": truth_fits("dual_site_langmuir", params, [cov])},
                     selection_of(["dual_site_langmuir"]), batch)
@@ -171,7 +171,7 @@ def test_area_for_sites_is_the_mean_bet_area_of_the_material_and_a_given_area_wi
     # surface_area_for_sites, on random batches crowded with repeats and gaps
     from types import SimpleNamespace
 
-    from worker.metrics import surface_area_for_sites
+    from sorbrank.worker.metrics import surface_area_for_sites
 
     rng = np.random.default_rng(20261202)
     for _ in range(100):

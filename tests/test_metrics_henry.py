@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 
 from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
-from worker.isotherm import Isotherm
-from worker.metrics import summarize
-from worker.metrics.henry import VIRIAL_MAX_LOADING_FRACTION, virial_henry_constant
+from sorbrank.worker.isotherm import Isotherm
+from sorbrank.worker.metrics import summarize
+from sorbrank.worker.metrics.henry import VIRIAL_MAX_LOADING_FRACTION, virial_henry_constant
 
 
 def test_langmuir_henry_constant_is_q_sat_times_affinity_exactly():

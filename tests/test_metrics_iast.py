@@ -13,10 +13,10 @@ import pytest
 from scipy import integrate, optimize
 
 from test_metrics_support import batch_of, stack_fits
-from worker.isotherm import Isotherm, MixtureRequest
-from worker.metrics import material_metrics
-from worker.metrics.iast import spreading_pressure
-from worker.models import CATALOGUE
+from sorbrank.worker.isotherm import Isotherm, MixtureRequest
+from sorbrank.worker.metrics import material_metrics
+from sorbrank.worker.metrics.iast import spreading_pressure
+from sorbrank.worker.models import CATALOGUE
 
 T_K = 298.0
 P_PA = np.geomspace(10.0, 2e6, 25)

@@ -12,9 +12,9 @@ import pytest
 from scipy import constants
 
 from test_metrics_support import batch_of, stack_fits
-from worker.isotherm import Isotherm
-from worker.metrics import material_metrics
-from worker.metrics.isosteric import clausius_clapeyron
+from sorbrank.worker.isotherm import Isotherm
+from sorbrank.worker.metrics import material_metrics
+from sorbrank.worker.metrics.isosteric import clausius_clapeyron
 
 Q_J_PER_MOL = 28_000.0   # invented truth
 B0_PER_PA = 2e-10
@@ -99,7 +99,7 @@ def test_single_temperature_and_no_model_give_no_row_or_flags():
 def test_cryogenic_isotherm_is_not_combined_with_ambient_ones():
     # Clausius-Clapeyron needs a narrow temperature span; a 77 K isotherm of the
     # same material and gas must not enter the ambient group (common practice).
-    from worker.metrics.isosteric import _temperature_window
+    from sorbrank.worker.metrics.isosteric import _temperature_window
     t = np.array([298.15, 77.35, 273.15, 323.15])
     rows = _temperature_window(np.arange(4), t)
     assert sorted(t[rows]) == [273.15, 298.15, 323.15]

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 
 from test_metrics_support import batch_of, stack_fits
-from worker.isotherm import Conditions, Isotherm, MixtureRequest
-from worker.metrics import material_metrics, summarize
-from worker.models import CATALOGUE
+from sorbrank.worker.isotherm import Conditions, Isotherm, MixtureRequest
+from sorbrank.worker.metrics import material_metrics, summarize
+from sorbrank.worker.models import CATALOGUE
 
 P0_PA = 1e6
 PARAMS = {

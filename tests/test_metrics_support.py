@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from worker.isotherm import Batch, Conditions, Isotherm
-from worker.models import CATALOGUE
-from worker.packing import pack
-from worker.results import ModelFits, Selection
+from sorbrank.worker.isotherm import Batch, Conditions, Isotherm
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.packing import pack
+from sorbrank.worker.results import ModelFits, Selection
 
 
 def truth_fits(model_id: str, params, covariance=None) -> ModelFits:

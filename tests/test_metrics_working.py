@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
-from worker.isotherm import Conditions
-from worker.metrics import material_metrics, summarize
+from sorbrank.worker.isotherm import Conditions
+from sorbrank.worker.metrics import material_metrics, summarize
 
 
 def langmuir(p, q_sat, b):

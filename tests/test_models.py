@@ -15,8 +15,8 @@ import pytest
 from scipy.constants import R  # CODATA molar gas constant, J/mol/K
 from scipy.optimize import least_squares
 
-from worker.models import CATALOGUE, _MODELS, catalogue_description, get_model
-from worker.models.linear import masked_linear_fit, masked_quadratic_fit
+from sorbrank.worker.models import CATALOGUE, _MODELS, catalogue_description, get_model
+from sorbrank.worker.models.linear import masked_linear_fit, masked_quadratic_fit
 
 PRESSURE_PA = np.geomspace(1e2, 1e6, 30)      # realistic rig range (invented grid)
 RELATIVE = np.geomspace(0.005, 0.9, 30)       # p/p0 for the relative-pressure models

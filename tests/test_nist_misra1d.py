@@ -21,10 +21,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from worker.engine import fit_model
-from worker.isotherm import Isotherm
-from worker.models import CATALOGUE
-from worker.packing import pack
+from sorbrank.worker.engine import fit_model
+from sorbrank.worker.isotherm import Isotherm
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.packing import pack
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -84,7 +84,7 @@ def test_misra1d_through_the_command_line(tmp_path):
             w.writerow(["misra1d", "dental", "N2", "298.15", repr(float(x)), repr(float(y)), "Pa",
                         "mol/kg"])
     run = subprocess.run(
-        [sys.executable, "-m", "service.cli", "fit", str(path), "--models", "langmuir",
+        [sys.executable, "-m", "sorbrank.service.cli", "fit", str(path), "--models", "langmuir",
          "--format", "json"],
         capture_output=True, text=True, cwd=REPO, timeout=300)
     assert run.returncode == 0, run.stderr

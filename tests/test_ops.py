@@ -21,12 +21,12 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from conftest import (LOOPBACK, ROOT, TOKENS, clean_env, csv_batch, free_port, isotherm,
                       start_redis, start_server, tokens_json, wait_until)
-from service.config import ConfigError, load_settings, redact_url
-from service.metrics import StoreCollector, make_registry, exposition
-from worker import jobs
-from worker.intake import read_batch
-from worker.logs import JsonFormatter
-from worker.store import RankingQuery, Store, rankings
+from sorbrank.service.config import ConfigError, load_settings, redact_url
+from sorbrank.service.metrics import StoreCollector, make_registry, exposition
+from sorbrank.worker import jobs
+from sorbrank.worker.intake import read_batch
+from sorbrank.worker.logs import JsonFormatter
+from sorbrank.worker.store import RankingQuery, Store, rankings
 
 FINAL = ("done", "failed", "partial")
 
@@ -54,7 +54,7 @@ def redis_url(tmp_path_factory):
 
 
 def run_command(command: str, env: dict[str, str]) -> subprocess.CompletedProcess:
-    args = [sys.executable, "-m", "service.cli", command]
+    args = [sys.executable, "-m", "sorbrank.service.cli", command]
     if command == "serve":
         args += ["--host", LOOPBACK, "--port", str(free_port())]
     return subprocess.run(args, env=clean_env(PYTHONPATH=str(ROOT), **env), cwd=ROOT,

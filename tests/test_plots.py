@@ -13,9 +13,9 @@ import pytest
 from matplotlib import image as mpimg
 from scipy.optimize import curve_fit
 
-from service import plots
-from service.commands import plot as plot_command
-from worker.models import CATALOGUE
+from sorbrank.service import plots
+from sorbrank.service.commands import plot as plot_command
+from sorbrank.worker.models import CATALOGUE
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 AVOGADRO_PER_MOL = 6.02214076e23

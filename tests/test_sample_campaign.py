@@ -268,7 +268,7 @@ def test_isosteric_heats_match_clausius_clapeyron(truth, gen):
 
 # ------------------------------------------------------------ through intake
 def test_intake_accepts_good_and_rejects_bad_as_ground_truth_says(truth):
-    from worker.intake import read_batch
+    from sorbrank.worker.intake import read_batch
 
     good = {item["isotherm_id"]: item for item in truth["isotherms"]}
     bad = {item["isotherm_id"]: item for item in truth["bad_datasets"]}

@@ -13,12 +13,12 @@ import pytest
 import statsmodels.api as sm
 from statsmodels.tools import eval_measures
 
-from worker.engine import fit_model, fit_models
-from worker.isotherm import Isotherm
-from worker.models import CATALOGUE
-from worker.packing import pack
-from worker.results import ModelFits
-from worker.selection import AMBIGUITY_DELTA, linearized_langmuir, select
+from sorbrank.worker.engine import fit_model, fit_models
+from sorbrank.worker.isotherm import Isotherm
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.packing import pack
+from sorbrank.worker.results import ModelFits
+from sorbrank.worker.selection import AMBIGUITY_DELTA, linearized_langmuir, select
 
 
 def isotherm(iso_id, p, q):

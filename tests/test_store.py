@@ -11,8 +11,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-from worker.intake import read_batch
-from worker.store import (
+from sorbrank.worker.intake import read_batch
+from sorbrank.worker.store import (
     SCHEMA_VERSION, SCHEMA_VERSION_KEY, RankingQuery, Store, atomic_write, is_batch_id,
     isotherms_to_table, new_batch_id, rankings, table_to_isotherms,
 )
@@ -230,7 +230,7 @@ def test_manifest_json_is_atomic_and_listed_newest_first(tmp_path):
 # -- jobs on the store: chunking, re-runs, reconcile -------------------------------
 
 def test_chunks_keep_each_material_together():
-    from worker.jobs import plan_chunks
+    from sorbrank.worker.jobs import plan_chunks
 
     rng = random.Random(5)
     materials = [f"M{rng.randrange(12)}" for _ in range(60)]
@@ -255,7 +255,7 @@ def small_batch(materials=("J1", "J2", "J3")):
 
 
 def test_rerunning_a_chunk_rewrites_identical_files_without_duplicates(tmp_path):
-    from worker import jobs
+    from sorbrank.worker import jobs
 
     store = Store(tmp_path)
     manifest = jobs.accept_batch(store, small_batch(), options={"models": ["langmuir", "sips"]},
@@ -280,7 +280,7 @@ def test_rerunning_a_chunk_rewrites_identical_files_without_duplicates(tmp_path)
 
 
 def test_reconcile_enqueues_exactly_the_unsettled_chunks(tmp_path):
-    from worker import jobs
+    from sorbrank.worker import jobs
 
     store = Store(tmp_path)
     manifest = jobs.accept_batch(store, small_batch(), options={"models": ["langmuir"]},
@@ -305,7 +305,7 @@ def test_reconcile_enqueues_exactly_the_unsettled_chunks(tmp_path):
 
 
 def test_a_chunk_that_keeps_dying_is_failed_not_retried_forever(tmp_path):
-    from worker import jobs
+    from sorbrank.worker import jobs
 
     store = Store(tmp_path)
     manifest = jobs.accept_batch(store, small_batch(("K1",)), options={"models": ["langmuir"]})
@@ -324,7 +324,7 @@ def test_worker_side_never_imports_flask_or_service():
     import subprocess
     import sys
 
-    code = ("import sys, worker.store, worker.jobs, worker.embedded, worker.tasks; "
+    code = ("import sys, sorbrank.worker.store, sorbrank.worker.jobs, sorbrank.worker.embedded, sorbrank.worker.tasks; "
             "bad = sorted(m for m in sys.modules if m.split('.')[0] in ('flask', 'service')); "
             "print(bad); sys.exit(1 if bad else 0)")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
@@ -348,7 +348,7 @@ def test_idempotency_claim_has_exactly_one_winner(tmp_path):
 def test_material_rows_of_every_kind_keep_all_their_fields():
     # an isosteric-heat row first, then an IAST row with other fields: the stored
     # table must carry the union, not only the first row's keys
-    from worker.jobs import material_rows_table
+    from sorbrank.worker.jobs import material_rows_table
 
     rows = [{"kind": "isosteric_heat", "material_id": "M", "adsorbate": "CO2",
              "isosteric_heat_j_per_mol": 30000.0},
@@ -368,7 +368,7 @@ def test_latest_wins_on_integer_codes_picks_the_rows_the_full_sort_picks(seed):
     several rows of one group in one batch, equal isotherm ids, nulls in
     every key (common practice for checking an optimisation: same rows,
     any input)."""
-    from worker.store import _latest_rows, _latest_wins_by_sorting
+    from sorbrank.worker.store import _latest_rows, _latest_wins_by_sorting
 
     rng = np.random.default_rng(seed)
     n = 3000
@@ -404,7 +404,7 @@ def test_a_page_sorted_from_its_candidates_is_the_page_of_the_full_sort(descendi
     crowded with ties, NaN and nulls, for pages at the start, the middle,
     across the NaN/null tail and past the end (common practice for checking
     an optimisation: same page, any input)."""
-    from worker.store import _page_of, _sorted_for_page
+    from sorbrank.worker.store import _page_of, _sorted_for_page
 
     rng = np.random.default_rng(3)
     n = 2000

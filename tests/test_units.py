@@ -11,7 +11,7 @@ import pytest
 from CoolProp.CoolProp import PropsSI
 from scipy import constants
 
-from worker import adsorbates, units
+from sorbrank.worker import adsorbates, units
 
 
 # --- pressure ---------------------------------------------------------------

@@ -43,7 +43,7 @@ HARD_LIMIT_S = max(env_int("SORBRANK_TASK_HARD_LIMIT_S", 1800), SOFT_LIMIT_S + 1
 MAX_RETRIES = env_int("SORBRANK_TASK_MAX_RETRIES", 2)
 QUEUE = "sorbrank"
 
-app = Celery("sorbrank", broker=os.environ.get("SORBRANK_BROKER_URL"), include=["worker.tasks"])
+app = Celery("sorbrank", broker=os.environ.get("SORBRANK_BROKER_URL"), include=["sorbrank.worker.tasks"])
 app.conf.update(
     task_default_queue=QUEUE,
     task_serializer="json",

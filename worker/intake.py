@@ -46,7 +46,7 @@ no label anywhere the label is ``batch-`` + the first 12 hex digits of the
 input's SHA-256. There is no default unit: an isotherm without a pressure or
 loading unit is rejected (``missing_unit``) rather than guessed.
 
-Units: see ``worker.units`` (wt% = g adsorbate per 100 g sorbent; STP =
+Units: see ``sorbrank.worker.units`` (wt% = g adsorbate per 100 g sorbent; STP =
 273.15 K, 101.325 kPa).
 
 Rules that change data (stated so nobody is surprised)
@@ -68,7 +68,7 @@ Rules that change data (stated so nobody is surprised)
   arrays for pressure, loading, sigma and the source ``rows``), their unit
   names as sent, the adsorbate name as sent and the source format.
 * The saturation pressure comes from the input, else from
-  ``worker.adsorbates`` (None when the temperature is supercritical or out of
+  ``sorbrank.worker.adsorbates`` (None when the temperature is supercritical or out of
   the property library's range).
 
 Issue codes

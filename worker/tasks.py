@@ -1,4 +1,4 @@
-"""Celery tasks: thin wrappers around worker.jobs, idempotent by construction."""
+"""Celery tasks: thin wrappers around sorbrank.worker.jobs, idempotent by construction."""
 from __future__ import annotations
 
 import logging

@@ -8,11 +8,11 @@ import threading
 import pyarrow as pa
 from flask import Blueprint, current_app, g, request, url_for
 
-from worker import jobs
-from worker.intake import Limits, read_batch
-from worker.isotherm import IntakeError
-from worker.pipeline import FitOptions
-from worker.store import iso_utc, is_batch_id, new_batch_id, utc_now
+from sorbrank.worker import jobs
+from sorbrank.worker.intake import Limits, read_batch
+from sorbrank.worker.isotherm import IntakeError
+from sorbrank.worker.pipeline import FitOptions
+from sorbrank.worker.store import iso_utc, is_batch_id, new_batch_id, utc_now
 
 from ..auth import require
 from ..problems import Problem

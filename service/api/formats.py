@@ -12,7 +12,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from flask import Response, request
 
-from worker.store import iso_utc, nan_to_none
+from sorbrank.worker.store import iso_utc, nan_to_none
 
 from ..problems import Problem
 

@@ -3,8 +3,8 @@ from __future__ import annotations
 
 from flask import Blueprint
 
-from worker.models import catalogue_description
-from worker.store import nan_to_none
+from sorbrank.worker.models import catalogue_description
+from sorbrank.worker.store import nan_to_none
 
 from ..auth import require
 

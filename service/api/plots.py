@@ -15,8 +15,8 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 from flask import Blueprint, Response, current_app, request
 
-from worker.models import CATALOGUE
-from worker.store import Store, is_batch_id, nan_to_none
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.store import Store, is_batch_id, nan_to_none
 
 from ..auth import require
 from ..problems import Problem
@@ -53,7 +53,7 @@ class StoredIsotherm:
         return p0_pa if p0_pa is not None and math.isfinite(p0_pa) and p0_pa > 0 else None
 
     def record(self) -> dict:
-        """The record shape service.plots draws from (as ``sorbrank fit`` emits)."""
+        """The record shape sorbrank.service.plots draws from (as ``sorbrank fit`` emits)."""
         summary = self.summary or {}
         return {
             "isotherm_id": self.inputs["isotherm_id"],
@@ -144,7 +144,7 @@ def isotherm_plot(isotherm_id: str):
         raise Problem(404, "Not Found", f"no isotherm {isotherm_id!r}{where}",
                       slug="unknown-isotherm", isotherm_id=isotherm_id)
 
-    from service import plots  # matplotlib loads on the first plot, not at start
+    from sorbrank.service import plots  # matplotlib loads on the first plot, not at start
 
     record = stored.record()
     try:
@@ -180,6 +180,6 @@ def qst_plot(material_id: str):
                       "(it needs one gas measured at two or more temperatures in one batch)",
                       slug="unknown-isosteric-heat", material_id=material_id)
 
-    from service import plots
+    from sorbrank.service import plots
 
     return _image(plots.qst_plot(rows, fmt=fmt), fmt)

@@ -3,7 +3,7 @@ from __future__ import annotations
 
 from flask import Blueprint, current_app, request
 
-from worker.store import LATEST_WINS_RULE, RankingQuery, rankings
+from sorbrank.worker.store import LATEST_WINS_RULE, RankingQuery, rankings
 
 from ..auth import require
 from ..problems import Problem

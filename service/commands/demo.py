@@ -82,7 +82,7 @@ def run(args) -> int:
     data_dir.mkdir(parents=True, exist_ok=True)
     log_path = data_dir / "server.log"
     with open(log_path, "ab") as log:
-        server = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--host",
+        server = subprocess.Popen([sys.executable, "-m", "sorbrank.service.cli", "serve", "--host",
                                    "127.0.0.1", "--port", str(port)], env=env,
                                   start_new_session=True, stdin=subprocess.DEVNULL,
                                   stdout=log, stderr=log)

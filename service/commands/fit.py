@@ -123,9 +123,9 @@ def run(args) -> int:
 
     import pyarrow.compute as pc
 
-    from worker.intake import Limits, read_batch
-    from worker.isotherm import Batch, IntakeError
-    from worker.pipeline import FitOptions, process_batch
+    from sorbrank.worker.intake import Limits, read_batch
+    from sorbrank.worker.isotherm import Batch, IntakeError
+    from sorbrank.worker.pipeline import FitOptions, process_batch
 
     if args.fmt == "parquet" and not args.out:
         return _usage_error("--format parquet needs --out PATH")

@@ -5,7 +5,7 @@ import argparse
 import json
 import sys
 
-from worker.models import catalogue_description
+from sorbrank.worker.models import catalogue_description
 
 HELP = """\
 List the isotherm models sorbrank fits: id, equation, parameters with their

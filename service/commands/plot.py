@@ -64,10 +64,10 @@ def register(subparsers) -> None:
 
 def run(args: argparse.Namespace) -> int:
     # imported here so 'sorbrank --help' works without the plotting stack
-    from service import plots
-    from worker.intake import Limits, read_batch
-    from worker.isotherm import IntakeError
-    from worker.pipeline import FitOptions, process_batch
+    from sorbrank.service import plots
+    from sorbrank.worker.intake import Limits, read_batch
+    from sorbrank.worker.isotherm import IntakeError
+    from sorbrank.worker.pipeline import FitOptions, process_batch
 
     fmt = _choose_format(args.fmt, args.out)
     if args.log_pressure and args.kind != "isotherm":

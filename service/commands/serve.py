@@ -60,7 +60,7 @@ def _stop(signum, frame):
 def run(args) -> int:
     from werkzeug.serving import make_server
 
-    from worker import logs
+    from sorbrank.worker import logs
 
     from ..app import create_app
     from ..config import ConfigError, load_settings, open_access_verdict, start_problems
@@ -86,7 +86,7 @@ def run(args) -> int:
 
     executor = None
     if settings.mode == "embedded":
-        from worker.embedded import EmbeddedExecutor
+        from sorbrank.worker.embedded import EmbeddedExecutor
 
         executor = EmbeddedExecutor(settings.data_dir, settings.embedded_workers)
         app = create_app(settings, enqueue=executor.enqueue, queue_depth=executor.pending_chunks)

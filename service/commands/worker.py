@@ -73,8 +73,8 @@ def run(args) -> int:
             return 2
     loglevel = args.loglevel or settings.log_level
     os.environ["SORBRANK_LOG_LEVEL"] = loglevel  # read by the JSON log setup (worker/logs.py)
-    from worker import logs
-    from worker.celery_app import QUEUE, app
+    from sorbrank.worker import logs
+    from sorbrank.worker.celery_app import QUEUE, app
 
     logs.configure(loglevel)  # before Celery starts: its start-up warnings are JSON too
 
@@ -90,7 +90,7 @@ def _serve_metrics(settings) -> str | None:
     """Serve the store's Prometheus metrics from this (main) worker process."""
     from prometheus_client import start_http_server
 
-    from worker.store import Store
+    from sorbrank.worker.store import Store
 
     from ..metrics import broker_queue_depth, make_registry
 

@@ -15,9 +15,9 @@ import pyarrow.dataset as ds
 from flask import Blueprint, Response, current_app, render_template, request, url_for
 from werkzeug.exceptions import HTTPException
 
-from worker import jobs
-from worker.models import CATALOGUE
-from worker.store import LATEST_WINS_RULE, RankingQuery, Store, nan_to_none, rankings
+from sorbrank.worker import jobs
+from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.store import LATEST_WINS_RULE, RankingQuery, Store, nan_to_none, rankings
 
 from ..api.plots import StoredIsotherm, fit_entry, qst_rows
 from ..auth import require
