@@ -58,7 +58,7 @@ def batch_parquet(n: int, seed: int = 7, tag: str = "ING") -> bytes:
     import pyarrow.parquet as pq
 
     rng = np.random.default_rng(seed)
-    material = np.arange(n) // 3                       # three isotherms per material
+    sorbent = np.arange(n) // 3                       # three isotherms per sorbent
     adsorbate = np.array(["CO2", "N2", "CH4"])[np.arange(n) % 3]
     temperature = np.array([273.15, 298.15, 313.15])[rng.integers(0, 3, n)]
     grid = np.linspace(0.0, 1.0, N_POINTS)[None]
@@ -69,7 +69,7 @@ def batch_parquet(n: int, seed: int = 7, tag: str = "ING") -> bytes:
     rep = lambda v: np.repeat(v, N_POINTS)  # noqa: E731
     table = pa.table({
         "isotherm_id": pa.array(rep(np.array([f"{tag}-{i:06d}" for i in range(n)])), pa.string()),
-        "material_id": pa.array(rep(np.array([f"{tag}-M{m:06d}" for m in material])), pa.string()),
+        "sorbent_id": pa.array(rep(np.array([f"{tag}-M{m:06d}" for m in sorbent])), pa.string()),
         "adsorbate": pa.array(rep(adsorbate), pa.string()),
         "temperature_k": pa.array(rep(temperature), pa.float64()),
         "pressure": pa.array(pressure.ravel(), pa.float64()),

@@ -4,7 +4,7 @@ Starts its own redis-server (free loopback port, no persistence), two
 ``sorbrank worker`` processes (one fitting process each) and one
 ``sorbrank serve``, all on a temporary store, with a bearer token configured
 as in production. Then --clients threads each make --submissions POSTs of a
-small batch (--isotherms per batch, material ids unique per batch) followed
+small batch (--isotherms per batch, sorbent ids unique per batch) followed
 by one status GET, with an Idempotency-Key per submission (a POST that fails
 on the network is retried with the same key, so a retry cannot count twice).
 Afterwards it waits (bounded by --timeout-s) until every accepted batch is
@@ -49,7 +49,7 @@ PRESSURES_KPA = (1, 2, 5, 10, 20, 40, 60, 80, 100)
 
 
 def batch_csv(tag: str, n: int) -> bytes:
-    lines = ["material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
     for k in range(n):
         seed = zlib.crc32(f"{tag}-{k}".encode())
         q_sat, b = 1.0 + (seed % 50) / 10, 0.02 + (seed // 50 % 9) / 100

@@ -1,24 +1,24 @@
-"""Per-material metrics on large batches: how their time grows with the batch.
+"""Per-sorbent metrics on large batches: how their time grows with the batch.
 
 The summary metrics (capacity, Henry, loadings, BET, site density) and the
-per-material rows (isosteric heat, temperature-swing working capacity, IAST)
+per-sorbent rows (isosteric heat, temperature-swing working capacity, IAST)
 of one batch, as ``sorbrank fit`` computes them for a whole input file.
 
 1. For each --n, a batch of the scale benchmark's mix (bench_scale.py: CH4 /
-   N2 / H2 at 273-313 K, CO2 at 273.15 / 298.15 K, N2 at 77 K; materials hold
+   N2 / H2 at 273-313 K, CO2 at 273.15 / 298.15 K, N2 at 77 K; sorbents hold
    three isotherms each) is generated once as Parquet, read by intake and
    fitted (every model, AICc selection; not timed). The batch is given a
    temperature swing (adsorb at 273.15 K, desorb at 298.15 K) and two
-   mixture requests for every material (CO2/N2 15/85 and CH4/H2 50/50,
-   1 bar, 298.15 K), so every kind of material row has work to do.
+   mixture requests for every sorbent (CO2/N2 15/85 and CH4/H2 50/50,
+   1 bar, 298.15 K), so every kind of sorbent row has work to do.
 2. Timed, median of --repeats: ``metrics.summarize`` and
-   ``metrics.material_metrics`` on that batch.
+   ``metrics.sorbent_metrics`` on that batch.
 3. The same in a second process with the code of git revision --baseline
    (``git archive`` into a temp dir), side by side, and the ratios.
 
 Printed per n: seconds for each side and baseline / current. Time growing
 faster than n (compare the rows) means some step scans the batch once per
-material. Nothing here asserts a time.
+sorbent. Nothing here asserts a time.
 
     .venv/bin/python benchmarks/bench_metrics.py --baseline 133cad8
     .venv/bin/python benchmarks/bench_metrics.py --n 300 --repeats 1 --baseline none
@@ -67,14 +67,14 @@ def measure(paths: list[str], repeats: int) -> list[dict]:
         batch.mixtures = [MixtureRequest(None, ["CO2", "N2"], [0.15, 0.85], 1e5, 298.15),
                           MixtureRequest(None, ["CH4", "H2"], [0.5, 0.5], 1e5, 298.15)]
         args = (result.packed, result.fits, result.selection, batch)
-        times = {"summarize": [], "material_metrics": []}
+        times = {"summarize": [], "sorbent_metrics": []}
         rows = 0
         for _ in range(repeats):
             for name in times:
                 started = time.perf_counter()
                 value = getattr(metrics, name)(*args)
                 times[name].append(time.perf_counter() - started)
-                if name == "material_metrics":
+                if name == "sorbent_metrics":
                     rows = len(value)
         out.append({"n": len(batch.isotherms), "rows": rows,
                     **{name: statistics.median(v) for name, v in times.items()}})
@@ -112,23 +112,23 @@ def main(argv=None) -> int:
         base = run_side(code_at(args.baseline, tmp / "baseline", "worker"), paths, args.repeats) \
             if args.baseline != "none" else None
     print(f"batches  : {', '.join(f'{n:,}' for n in args.n)} isotherms of the scale mix, "
-          f"swing 273.15 -> 298.15 K, 2 mixture requests for every material; "
+          f"swing 273.15 -> 298.15 K, 2 mixture requests for every sorbent; "
           f"median of {args.repeats}")
     for k, cur in enumerate(current):
-        line = (f"n={cur['n']:>7,}: summarize {cur['summarize']:7.3f} s, material rows "
-                f"{cur['material_metrics']:7.3f} s ({cur['rows']:,} rows)")
+        line = (f"n={cur['n']:>7,}: summarize {cur['summarize']:7.3f} s, sorbent rows "
+                f"{cur['sorbent_metrics']:7.3f} s ({cur['rows']:,} rows)")
         if base is not None:
             b = base[k]
-            line += (f" | {args.baseline}: summarize {b['summarize']:7.3f} s, material rows "
-                     f"{b['material_metrics']:7.3f} s ({b['rows']:,} rows) | ratio "
+            line += (f" | {args.baseline}: summarize {b['summarize']:7.3f} s, sorbent rows "
+                     f"{b['sorbent_metrics']:7.3f} s ({b['rows']:,} rows) | ratio "
                      f"{b['summarize'] / cur['summarize']:.2f}x, "
-                     f"{b['material_metrics'] / cur['material_metrics']:.2f}x")
+                     f"{b['sorbent_metrics'] / cur['sorbent_metrics']:.2f}x")
         print(line)
     if len(current) > 1:
         first, last = current[0], current[-1]
         growth = last["n"] / first["n"]
         print(f"growth   : n x{growth:.1f} -> summarize x{last['summarize'] / first['summarize']:.1f}, "
-              f"material rows x{last['material_metrics'] / first['material_metrics']:.1f}"
+              f"sorbent rows x{last['sorbent_metrics'] / first['sorbent_metrics']:.1f}"
               f" (linear would be x{growth:.1f})")
     return 0
 

@@ -6,10 +6,10 @@
    ``BatchResult.summary_table()`` of a few fitted isotherms, the columns are
    generated with numpy and written through ``Store.write_table`` (the code
    the workers use), spread over --batches batches x --chunks chunks.
-   Materials repeat across batches (a pool of rows/20 materials, each
+   Sorbents repeat across batches (a pool of rows/20 sorbents, each
    measured for CO2 / N2 / CH4 / H2 at 273.15 / 298.15 / 313.15 K with small
    temperature jitter), so latest-wins has real work; 10 % desorption rows;
-   flags drawn from a few realistic combinations. Chunks keep each material's
+   flags drawn from a few realistic combinations. Chunks keep each sorbent's
    rows together, as jobs do.
 2. Time the queries below, each --repeats times after one warm-up, with the
    current code and with the baseline (``worker/store.py`` of the last commit,
@@ -71,7 +71,7 @@ def real_summary_schema() -> pa.Schema:
     from sorbrank.worker.pipeline import FitOptions, process_batch
 
     pressures = (1, 2, 5, 10, 20, 40, 60, 80, 100)
-    lines = ["material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
     for k, t in enumerate((273.15, 298.15)):
         for p in pressures:
             lines.append(f"S{k},CO2,{t},{p},{(2 + k) * 0.1 * p / (1 + 0.1 * p):.6f},kPa,mol/kg")
@@ -84,11 +84,11 @@ def _strings(values) -> pa.Array:
     return pa.array(np.asarray(values, dtype=object), pa.string())
 
 
-def chunk_table(schema: pa.Schema, rng, n: int, materials: np.ndarray, accepted_at: datetime,
+def chunk_table(schema: pa.Schema, rng, n: int, sorbents: np.ndarray, accepted_at: datetime,
                 batch_no: int, chunk_no: int) -> pa.Table:
-    """``n`` summary rows for the materials given (all their rows in this chunk)."""
-    per = -(-n // len(materials))
-    mat = np.repeat(materials, per)[:n]
+    """``n`` summary rows for the sorbents given (all their rows in this chunk)."""
+    per = -(-n // len(sorbents))
+    mat = np.repeat(sorbents, per)[:n]
     ads = np.array(ADSORBATES)[rng.integers(0, len(ADSORBATES), n)]
     temp = np.array(TEMPERATURES)[rng.integers(0, len(TEMPERATURES), n)]
     temp = temp + rng.choice([0.0, 0.0, 0.05, -0.1, 0.3], n)
@@ -109,7 +109,7 @@ def chunk_table(schema: pa.Schema, rng, n: int, materials: np.ndarray, accepted_
         name, kind = field.name, field.type
         if name == "isotherm_id":
             columns[name] = _strings(iso_ids)
-        elif name == "material_id":
+        elif name == "sorbent_id":
             columns[name] = _strings(mat_ids)
         elif name == "adsorbate":
             columns[name] = _strings(ads)
@@ -163,7 +163,7 @@ def build_store(root: Path, rows: int, batches: int, chunks: int, seed: int = 1)
     store = Store(root)
     schema = real_summary_schema()
     rng = np.random.default_rng(seed)
-    n_materials = max(rows // 20, 1)
+    n_sorbents = max(rows // 20, 1)
     per_chunk = max(rows // (batches * chunks), 1)
     started = time.perf_counter()
     written = 0
@@ -174,9 +174,9 @@ def build_store(root: Path, rows: int, batches: int, chunks: int, seed: int = 1)
             n = per_chunk if (b, c) != (batches - 1, chunks - 1) else rows - written
             if n <= 0:
                 continue
-            # ~12 rows per material per chunk, materials drawn from the pool
-            materials = rng.choice(n_materials, size=max(n // 12, 1), replace=False)
-            table = chunk_table(schema, rng, n, materials, accepted, b, c)
+            # ~12 rows per sorbent per chunk, sorbents drawn from the pool
+            sorbents = rng.choice(n_sorbents, size=max(n // 12, 1), replace=False)
+            table = chunk_table(schema, rng, n, sorbents, accepted, b, c)
             store.write_table("summaries", batch_id, c, table)
             written += n
     done.write_text(expect)

@@ -11,8 +11,8 @@
           as intake does), same generating models -- every model applies;
      15 % N2 at 77.35 K, p/p0 0.001..0.9, drawn from BET, GAB,
           Dubinin-Astakhov -- every model applies.
-   Materials hold three isotherms each (three temperatures of one gas, or
-   three N2 runs), so the per-material metrics have work to do.
+   Sorbents hold three isotherms each (three temperatures of one gas, or
+   three N2 runs), so the per-sorbent metrics have work to do.
 2. Fit every chunk exactly as ``sorbrank fit`` does -- sorbrank.worker.intake.read_batch
    with the command's local limits, then sorbrank.worker.pipeline.process_batch (every
    catalogue model that applies, AICc selection, metrics) -- one chunk per
@@ -90,9 +90,9 @@ def chunk_table(index: int, size: int, start: int, seed: int):
 
     rng = np.random.default_rng([seed, index])
     n_mat = -(-size // 3)
-    kind = rng.choice(3, size=n_mat, p=[0.70, 0.15, 0.15])   # per material: gas, CO2, N2 vapour
+    kind = rng.choice(3, size=n_mat, p=[0.70, 0.15, 0.15])   # per sorbent: gas, CO2, N2 vapour
     kind = np.repeat(kind, 3)[:size]
-    member = np.tile(np.arange(3), n_mat)[:size]            # isotherm number within its material
+    member = np.tile(np.arange(3), n_mat)[:size]            # isotherm number within its sorbent
     mat = start // 3 + np.arange(size) // 3
     gas_names = np.array(["CH4", "N2", "H2"])[rng.integers(0, 3, n_mat)].repeat(3)[:size]
     t = np.where(kind == 0, np.array([273.15, 298.15, 313.15])[member],
@@ -141,7 +141,7 @@ def chunk_table(index: int, size: int, start: int, seed: int):
     rep = lambda v: np.repeat(v, N_POINTS)  # noqa: E731
     return pa.table({
         "isotherm_id": pa.array(rep(iso_ids), pa.string()),
-        "material_id": pa.array(rep(mat_ids), pa.string()),
+        "sorbent_id": pa.array(rep(mat_ids), pa.string()),
         "adsorbate": pa.array(rep(ads), pa.string()),
         "temperature_k": pa.array(rep(t), pa.float64()),
         "pressure": pa.array(pressure.ravel(), pa.float64()),

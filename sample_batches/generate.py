@@ -2,12 +2,12 @@
 
     python sample_batches/generate.py [--seed N] [--out DIR]
 
-Everything here is invented: the campaign, the material ids, the families and
+Everything here is invented: the campaign, the sorbent ids, the families and
 every parameter. The isotherms come from published model forms (Langmuir,
 dual-site Langmuir, Sips, Toth; BET for N2 at 77 K) with a van 't Hoff
 affinity b(T) = b0 exp(Q / (R T)) and saturation capacities and
 heterogeneity exponents that do not depend on temperature, so each
-single-site material/gas pair has an isosteric heat of exactly Q at every
+single-site sorbent/gas pair has an isosteric heat of exactly Q at every
 loading. Output is deterministic for a seed: CSV and JSON byte-identical,
 Parquet identical in content.
 """
@@ -27,7 +27,7 @@ from scipy import constants, optimize, special
 CAMPAIGN = "Tideglass-31"
 PREFIX = "TG31"
 DEFAULT_SEED = 31
-MATERIALS_PER_FAMILY = 60
+SORBENTS_PER_FAMILY = 60
 GASES = ("CO2", "N2", "CH4")
 TEMPERATURES_K = (273.15, 298.15, 323.15)
 T_REF_K = 298.15
@@ -96,7 +96,7 @@ FAMILIES = {
         "bet": {"shape": "type_ii", "area": (100, 600)},
     },
 }
-BET_EVERY = 4  # every 4th material of each family also gets N2 at 77 K (15 per family)
+BET_EVERY = 4  # every 4th sorbent of each family also gets N2 at 77 K (15 per family)
 
 # Pressure range of a volumetric rig, Pa: sub-ambient for CO2, high pressure
 # for the weakly adsorbed gases so most data reach past half of saturation.
@@ -301,19 +301,19 @@ def measure_77k(rng, bet):
 
 
 # ---------------------------------------------------------------- campaign
-def material_ids(family):
-    return [f"{PREFIX}-{family}-{i:04d}" for i in range(1, MATERIALS_PER_FAMILY + 1)]
+def sorbent_ids(family):
+    return [f"{PREFIX}-{family}-{i:04d}" for i in range(1, SORBENTS_PER_FAMILY + 1)]
 
 
-def isotherm_id(material, gas, temperature_k, suffix=""):
-    return f"{material}-{gas}-T{round(temperature_k * 100):05d}{suffix}"
+def isotherm_id(sorbent, gas, temperature_k, suffix=""):
+    return f"{sorbent}-{gas}-T{round(temperature_k * 100):05d}{suffix}"
 
 
 def build_campaign(seed):
-    """All truths and measurements, each material on its own random stream."""
-    materials = {}
+    """All truths and measurements, each sorbent on its own random stream."""
+    sorbents = {}
     for f_index, (family, spec) in enumerate(FAMILIES.items()):
-        for m_index, material in enumerate(material_ids(family)):
+        for m_index, sorbent in enumerate(sorbent_ids(family)):
             rng = np.random.default_rng([seed, f_index, m_index])
             entry = {"family": family, "gases": {g: draw_gas(rng, spec[g]) for g in GASES},
                      "bet": draw_bet(rng, spec["bet"]) if m_index % BET_EVERY == 0 else None,
@@ -321,17 +321,17 @@ def build_campaign(seed):
             for gas in GASES:
                 for temperature_k in TEMPERATURES_K:
                     pressure, loading = measure_gas(rng, entry["gases"][gas], gas, temperature_k)
-                    entry["isotherms"].append({"isotherm_id": isotherm_id(material, gas, temperature_k),
+                    entry["isotherms"].append({"isotherm_id": isotherm_id(sorbent, gas, temperature_k),
                                                "adsorbate": gas, "temperature_k": temperature_k,
                                                "pressure_pa": pressure, "loading_mol_per_kg": loading})
             if entry["bet"] is not None:
                 x, loading = measure_77k(rng, entry["bet"])
-                entry["isotherms"].append({"isotherm_id": isotherm_id(material, "N2", N2_77K_T_K),
+                entry["isotherms"].append({"isotherm_id": isotherm_id(sorbent, "N2", N2_77K_T_K),
                                            "adsorbate": "N2", "temperature_k": N2_77K_T_K,
                                            "pressure_pa": x * N2_77K_P0_PA, "loading_mol_per_kg": loading,
                                            "relative_pressure": x})
-            materials[material] = entry
-    return materials
+            sorbents[sorbent] = entry
+    return sorbents
 
 
 # ---------------------------------------------------------------- units out
@@ -377,13 +377,13 @@ def write_csv(path, records, p_unit, q_unit, label, per_row_units=False, extra=(
     if not per_row_units:
         buf.write(f"# pressure_unit: {p_unit}\n# loading_unit: {q_unit}\n")
     buf.write(f"# batch_label: {label}\n")
-    columns = ["isotherm_id", "material_id", "adsorbate", "temperature_k", "branch",
+    columns = ["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "branch",
                "pressure", "loading"] + (["pressure_unit", "loading_unit"] if per_row_units else []) \
         + list(extra)
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(columns)
     for rec, p_i, q_i in long_rows(records, p_unit, q_unit):
-        row = [rec["isotherm_id"], rec["material_id"], rec["adsorbate"], fmt(rec["temperature_k"]),
+        row = [rec["isotherm_id"], rec["sorbent_id"], rec["adsorbate"], fmt(rec["temperature_k"]),
                "adsorption", fmt(p_i), fmt(q_i)]
         if per_row_units:
             row += [p_unit, q_unit]
@@ -393,12 +393,12 @@ def write_csv(path, records, p_unit, q_unit, label, per_row_units=False, extra=(
 
 
 def write_parquet(path, records, p_unit, q_unit, label, units_in_metadata=True, with_sigma=False):
-    cols = {k: [] for k in ("isotherm_id", "material_id", "adsorbate", "temperature_k",
+    cols = {k: [] for k in ("isotherm_id", "sorbent_id", "adsorbate", "temperature_k",
                             "pressure", "loading")}
     if with_sigma:
         cols["sigma"] = []
     for rec, p_i, q_i in long_rows(records, p_unit, q_unit):
-        for key in ("isotherm_id", "material_id", "adsorbate"):
+        for key in ("isotherm_id", "sorbent_id", "adsorbate"):
             cols[key].append(rec[key])
         cols["temperature_k"].append(rec["temperature_k"])
         cols["pressure"].append(float(fmt(p_i)))
@@ -432,7 +432,7 @@ def json_isotherm(rec, p_unit=None, q_unit=None, defaults=("bar", "cm3(STP)/g"))
     p_unit = p_unit or defaults[0]
     q_unit = q_unit or defaults[1]
     p = rec["relative_pressure"] if p_unit == "relative" else pressure_in(p_unit, rec["pressure_pa"])
-    item = {"isotherm_id": rec["isotherm_id"], "material_id": rec["material_id"],
+    item = {"isotherm_id": rec["isotherm_id"], "sorbent_id": rec["sorbent_id"],
             "adsorbate": rec["adsorbate"], "temperature_k": rec["temperature_k"],
             "pressure": rounded(p),
             "loading": rounded(loading_in(q_unit, rec["adsorbate"], rec["loading_mol_per_kg"]))}
@@ -442,7 +442,7 @@ def json_isotherm(rec, p_unit=None, q_unit=None, defaults=("bar", "cm3(STP)/g"))
 
 
 # ---------------------------------------------------------------- bad data
-def resend_records(materials, seed):
+def resend_records(sorbents, seed):
     """Re-sent isotherms at 288.15 K: some good, some deliberately broken.
 
     Returns (records for the JSON file, records for the CSV file, bad-dataset
@@ -451,9 +451,9 @@ def resend_records(materials, seed):
     rng = np.random.default_rng([seed, 99])
     t_k = 288.15
 
-    def fresh(material, gas, suffix, temperature_k=t_k):
-        pressure, loading = measure_gas(rng, materials[material]["gases"][gas], gas, temperature_k)
-        return {"isotherm_id": isotherm_id(material, gas, temperature_k, suffix), "material_id": material,
+    def fresh(sorbent, gas, suffix, temperature_k=t_k):
+        pressure, loading = measure_gas(rng, sorbents[sorbent]["gases"][gas], gas, temperature_k)
+        return {"isotherm_id": isotherm_id(sorbent, gas, temperature_k, suffix), "sorbent_id": sorbent,
                 "adsorbate": gas, "temperature_k": temperature_k,
                 "pressure_pa": pressure, "loading_mol_per_kg": loading, "good": True}
 
@@ -462,12 +462,12 @@ def resend_records(materials, seed):
     def broken(target, rec, outcome, code, words, **how):
         rec.update(good=False, **how)
         target.append(rec)
-        bad.append({"isotherm_id": rec["isotherm_id"], "material_id": rec["material_id"],
+        bad.append({"isotherm_id": rec["isotherm_id"], "sorbent_id": rec["sorbent_id"],
                     "expected": outcome, "code": code, "reason": words,
                     "max_drop_in_noise_sd": max_drop_in_noise_sd(rec["loading_mol_per_kg"])})
 
-    for material in (f"{PREFIX}-FRAM-0002", f"{PREFIX}-ZEOL-0002", f"{PREFIX}-CARB-0002"):
-        json_recs.append(fresh(material, "CO2", "-R1"))
+    for sorbent in (f"{PREFIX}-FRAM-0002", f"{PREFIX}-ZEOL-0002", f"{PREFIX}-CARB-0002"):
+        json_recs.append(fresh(sorbent, "CO2", "-R1"))
     broken(json_recs, fresh(f"{PREFIX}-FRAM-0003", "CO2", "-R1"), "rejected", "unknown_unit",
            "pressure unit 'inHg' is not a supported unit", p_unit="inHg", q_unit="mmol/g")
     broken(json_recs, fresh(f"{PREFIX}-ZEOL-0003", "CO2", "-R1"), "rejected", "unknown_unit",
@@ -477,14 +477,14 @@ def resend_records(materials, seed):
            "loading value 'n/a' at point index 7 is not a number", non_numeric_index=7)
     rec = fresh(f"{PREFIX}-POLY-0003", "CH4", "-R1")
     rec["pressure_pa"] = np.array([2e5, 2e5, 2e5, 8e5, 8e5])
-    rec["loading_mol_per_kg"] = noisy(rng, loading_mol_per_kg(materials[rec["material_id"]]["gases"]["CH4"],
+    rec["loading_mol_per_kg"] = noisy(rng, loading_mol_per_kg(sorbents[rec["sorbent_id"]]["gases"]["CH4"],
                                                               rec["pressure_pa"], t_k))
     broken(json_recs, rec, "rejected", "too_few_points",
            "5 points but only 2 distinct pressures (at least 3 needed)")
-    bet = materials[f"{PREFIX}-CARB-0005"]["bet"]
+    bet = sorbents[f"{PREFIX}-CARB-0005"]["bet"]
     x = np.concatenate([np.linspace(0.01, 0.98, 24), [1.02, 1.05]])
     rec = {"isotherm_id": isotherm_id(f"{PREFIX}-CARB-0005", "N2", N2_77K_T_K, "-R1"),
-           "material_id": f"{PREFIX}-CARB-0005", "adsorbate": "N2", "temperature_k": N2_77K_T_K,
+           "sorbent_id": f"{PREFIX}-CARB-0005", "adsorbate": "N2", "temperature_k": N2_77K_T_K,
            "relative_pressure": x, "pressure_pa": x * N2_77K_P0_PA,
            "loading_mol_per_kg": noisy(rng, n2_77k_loading(bet, x))}
     broken(json_recs, rec, "rejected", "relative_pressure_above_one",
@@ -495,8 +495,8 @@ def resend_records(materials, seed):
     broken(json_recs, rec, "accepted_flagged", "non_monotonic_loading",
            "three points 20 % below the preceding loading (a leak); accepted with flag")
 
-    for material in (f"{PREFIX}-POLY-0002", f"{PREFIX}-FRAM-0004", f"{PREFIX}-ZEOL-0004"):
-        csv_recs.append(fresh(material, "CO2", "-R2"))
+    for sorbent in (f"{PREFIX}-POLY-0002", f"{PREFIX}-FRAM-0004", f"{PREFIX}-ZEOL-0004"):
+        csv_recs.append(fresh(sorbent, "CO2", "-R2"))
     rec = fresh(f"{PREFIX}-FRAM-0005", "CH4", "-R2")
     rec["pressure_pa"] = rec["pressure_pa"].copy()
     rec["pressure_pa"][:2] = [-350.0, -120.0]  # zero-offset error of the transducer
@@ -542,13 +542,13 @@ def write_resend_csv(path, records, label):
     buf = io.StringIO()
     buf.write(f"# pressure_unit: kPa\n# loading_unit: mmol/g\n# batch_label: {label}\n")
     writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(["isotherm_id", "material_id", "adsorbate", "temperature_k", "pressure", "loading"])
+    writer.writerow(["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "pressure", "loading"])
     for rec in records:
         loadings = [fmt(q) for q in rec["loading_mol_per_kg"]]
         if "non_numeric_index" in rec:
             loadings[rec["non_numeric_index"]] = "--"
         for p_pa, q_text in zip(rec["pressure_pa"], loadings):
-            writer.writerow([rec["isotherm_id"], rec["material_id"], rec["adsorbate"],
+            writer.writerow([rec["isotherm_id"], rec["sorbent_id"], rec["adsorbate"],
                              fmt(rec["temperature_k"]), fmt(p_pa / 1e3), q_text])
     path.write_text(buf.getvalue(), encoding="utf-8")
 
@@ -580,9 +580,9 @@ def max_drop_in_noise_sd(loading):
     return float(max(0.0, drop.max()))
 
 
-def isotherm_truth(material, entry, rec, file_name):
+def isotherm_truth(sorbent, entry, rec, file_name):
     gas, t_k = rec["adsorbate"], rec["temperature_k"]
-    truth = {"isotherm_id": rec["isotherm_id"], "file": file_name, "material_id": material,
+    truth = {"isotherm_id": rec["isotherm_id"], "file": file_name, "sorbent_id": sorbent,
              "family": entry["family"], "adsorbate": gas, "temperature_k": t_k,
              "n_points": int(len(rec["pressure_pa"])), "p_min_pa": float(np.min(rec["pressure_pa"])),
              "p_max_pa": float(np.max(rec["pressure_pa"])),
@@ -610,9 +610,9 @@ def isotherm_truth(material, entry, rec, file_name):
     return truth
 
 
-def heat_truth(material, entry, gas):
+def heat_truth(sorbent, entry, gas):
     gas_truth = entry["gases"][gas]
-    out = {"material_id": material, "family": entry["family"], "adsorbate": gas,
+    out = {"sorbent_id": sorbent, "family": entry["family"], "adsorbate": gas,
            "model": gas_truth["model"],
            "site_heats_j_per_mol": [s["heat_j_per_mol"] for s in gas_truth["sites"]],
            "constant_with_loading": len(gas_truth["sites"]) == 1,
@@ -625,17 +625,17 @@ def heat_truth(material, entry, gas):
     return out
 
 
-def mixture_truth(materials, p_max_by_key):
+def mixture_truth(sorbents, p_max_by_key):
     rows = []
     for mix in MIXTURES:
         g1, g2 = mix["components"]
         t_k = mix["temperature_k"]
-        for material, entry in materials.items():
+        for sorbent, entry in sorbents.items():
             res = iast_binary(entry["gases"][g1], entry["gases"][g2], mix["mole_fractions"][0],
                               mix["total_pressure_pa"], t_k)
-            resolvable = (res["pure_pressure_1_pa"] <= p_max_by_key[material, g1, t_k]
-                          and res["pure_pressure_2_pa"] <= p_max_by_key[material, g2, t_k])
-            rows.append(dict({"mixture": mix["name"], "material_id": material}, **res,
+            resolvable = (res["pure_pressure_1_pa"] <= p_max_by_key[sorbent, g1, t_k]
+                          and res["pure_pressure_2_pa"] <= p_max_by_key[sorbent, g2, t_k])
+            rows.append(dict({"mixture": mix["name"], "sorbent_id": sorbent}, **res,
                              iast_resolvable=bool(resolvable)))
     return rows
 
@@ -689,23 +689,23 @@ FILES = {
 
 def generate(out_dir: Path, seed: int = DEFAULT_SEED) -> dict:
     out_dir.mkdir(parents=True, exist_ok=True)
-    materials = build_campaign(seed)
+    sorbents = build_campaign(seed)
     label = CAMPAIGN.lower()
 
     def gas_records(families, index_range=None):
         out = []
-        for material, entry in materials.items():
-            number = int(material.rsplit("-", 1)[1])
+        for sorbent, entry in sorbents.items():
+            number = int(sorbent.rsplit("-", 1)[1])
             if entry["family"] in families and (index_range is None or number in index_range):
-                out += [dict(rec, material_id=material) for rec in entry["isotherms"]
+                out += [dict(rec, sorbent_id=sorbent) for rec in entry["isotherms"]
                         if "relative_pressure" not in rec]
         return out
 
     batches = {
         "b01": gas_records({"FRAM"}), "b02": gas_records({"ZEOL"}), "b03": gas_records({"CARB"}),
         "b04": gas_records({"POLY"}, range(1, 31)), "b05": gas_records({"POLY"}, range(31, 61)),
-        "b06": [dict(rec, material_id=m, saturation_pressure=fmt(N2_77K_P0_PA))
-                for m, e in materials.items() for rec in e["isotherms"] if "relative_pressure" in rec],
+        "b06": [dict(rec, sorbent_id=m, saturation_pressure=fmt(N2_77K_P0_PA))
+                for m, e in sorbents.items() for rec in e["isotherms"] if "relative_pressure" in rec],
     }
     write_csv(out_dir / FILES["b01"], batches["b01"], "kPa", "mmol/g", f"{label}-b01")
     document = {"batch_label": f"{label}-b02", "defaults": {"pressure_unit": "bar", "loading_unit": "cm3(STP)/g"},
@@ -722,20 +722,20 @@ def generate(out_dir: Path, seed: int = DEFAULT_SEED) -> dict:
     # saturation_pressure is in Pa: with relative pressures there is no other unit to borrow
     write_csv(out_dir / FILES["b06"], batches["b06"], "relative", "cm3(STP)/g", f"{label}-b06",
               extra=("saturation_pressure",))
-    json_recs, csv_recs, bad = resend_records(materials, seed)
+    json_recs, csv_recs, bad = resend_records(sorbents, seed)
     write_resend_json(out_dir / FILES["b07"], json_recs, f"{label}-b07")
     write_resend_csv(out_dir / FILES["b08"], csv_recs, f"{label}-b08")
 
     isotherms, p_max_by_key = [], {}
     for key, records in batches.items():
         for rec in records:
-            truth = isotherm_truth(rec["material_id"], materials[rec["material_id"]], rec, FILES[key])
+            truth = isotherm_truth(rec["sorbent_id"], sorbents[rec["sorbent_id"]], rec, FILES[key])
             isotherms.append(truth)
-            p_max_by_key[rec["material_id"], rec["adsorbate"], rec["temperature_k"]] = truth["p_max_pa"]
+            p_max_by_key[rec["sorbent_id"], rec["adsorbate"], rec["temperature_k"]] = truth["p_max_pa"]
     for key, records in (("b07", json_recs), ("b08", csv_recs)):
         for rec in records:
             if rec["good"]:
-                isotherms.append(isotherm_truth(rec["material_id"], materials[rec["material_id"]],
+                isotherms.append(isotherm_truth(rec["sorbent_id"], sorbents[rec["sorbent_id"]],
                                                 rec, FILES[key]))
     for item in bad:
         item["file"] = FILES["b07"] if any(r["isotherm_id"] == item["isotherm_id"] for r in json_recs) \
@@ -743,7 +743,7 @@ def generate(out_dir: Path, seed: int = DEFAULT_SEED) -> dict:
 
     truth_doc = {
         "campaign": {"name": CAMPAIGN, "seed": seed, "invented": True,
-                     "material_count": len(materials), "families": list(FAMILIES),
+                     "sorbent_count": len(sorbents), "families": list(FAMILIES),
                      "files": list(FILES.values()),
                      "noise": {"relative": NOISE_REL, "absolute_mol_per_kg": NOISE_ABS_MOL_PER_KG},
                      "equations": EQUATIONS, "n2_77k": {"temperature_k": N2_77K_T_K,
@@ -752,8 +752,8 @@ def generate(out_dir: Path, seed: int = DEFAULT_SEED) -> dict:
                      "conditions": CONDITIONS, "mixtures": MIXTURES},
         "tolerances": TOLERANCES,
         "isotherms": isotherms,
-        "isosteric_heats": [heat_truth(m, e, g) for m, e in materials.items() for g in GASES],
-        "mixtures": mixture_truth(materials, p_max_by_key),
+        "isosteric_heats": [heat_truth(m, e, g) for m, e in sorbents.items() for g in GASES],
+        "mixtures": mixture_truth(sorbents, p_max_by_key),
         "bad_datasets": bad,
     }
     (out_dir / "ground_truth.json").write_text(json_text(to_jsonable(truth_doc)), encoding="utf-8")
@@ -766,7 +766,7 @@ def main(argv=None):
     parser.add_argument("--out", type=Path, default=Path(__file__).resolve().parent)
     args = parser.parse_args(argv)
     truth = generate(args.out, args.seed)
-    print(f"{CAMPAIGN}: {truth['campaign']['material_count']} materials, "
+    print(f"{CAMPAIGN}: {truth['campaign']['sorbent_count']} sorbents, "
           f"{len(truth['isotherms'])} good isotherms, {len(truth['bad_datasets'])} bad datasets -> {args.out}")
 
 

@@ -82,10 +82,10 @@ def create_app(settings: Settings | None = None,
                                          Authenticator(list(settings.tokens)), enqueue)
     problems.register(app)
 
-    from .api import batches, health, materials, models, rankings
+    from .api import batches, health, sorbents, models, rankings
 
     app.register_blueprint(health.bp)
-    for module in (batches, rankings, materials, models):
+    for module in (batches, rankings, sorbents, models):
         app.register_blueprint(module.bp, url_prefix=API_PREFIX)
     from .api import plots
     from .web import pages

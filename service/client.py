@@ -168,7 +168,7 @@ def _numeric(text: str) -> bool:
         return False
 
 
-RANK_COLUMNS = ["material_id", "adsorbate", "temperature_k", "best_model", "q_sat_mol_per_kg",
+RANK_COLUMNS = ["sorbent_id", "adsorbate", "temperature_k", "best_model", "q_sat_mol_per_kg",
                 "henry_mol_per_kg_pa", "bet_area_m2_per_g", "working_capacity_mol_per_kg", "flags"]
 
 

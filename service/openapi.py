@@ -46,14 +46,14 @@ RANKING_PARAMS = [
            {"type": "string"}),
     _query("exclude_flag", "drop rows carrying this quality flag (repeatable)", {"type": "string"}),
     _query("batch_id", "only results of this batch", {"type": "string"}),
-    _query("material_id", "only results of this material", {"type": "string"}),
+    _query("sorbent_id", "only results of this sorbent", {"type": "string"}),
     _query("sort", "any summary column, e.g. q_sat_mol_per_kg, henry_mol_per_kg_pa, "
            "bet_area_m2_per_g", {"type": "string", "default": "q_sat_mol_per_kg"}),
     _query("order", "sort direction", {"type": "string", "enum": ["asc", "desc"], "default": "desc"}),
     _query("limit", "rows per page", {"type": "integer", "minimum": 0, "maximum": 100000,
                                       "default": 100}),
     _query("offset", "rows to skip", {"type": "integer", "minimum": 0, "default": 0}),
-    _query("all", "every result instead of one per material, adsorbate, branch and temperature",
+    _query("all", "every result instead of one per sorbent, adsorbate, branch and temperature",
            {"type": "boolean", "default": False}),
     _ref("format"),
 ]
@@ -93,20 +93,20 @@ PLOT_AND_PAGE_PATHS = {
                                           "BET without a saturation pressure")},
         },
     },
-    "/api/v1/materials/{material_id}/qst-plot": {
+    "/api/v1/sorbents/{sorbent_id}/qst-plot": {
         "get": {
             "operationId": "plotIsostericHeat",
             "summary": "Isosteric heat against loading, one curve per gas (newest batch)",
             "security": READ,
             "parameters": [
-                {"name": "material_id", "in": "path", "required": True,
+                {"name": "sorbent_id", "in": "path", "required": True,
                  "schema": {"type": "string"}},
                 _query("adsorbate", "only this gas", {"type": "string"}),
                 IMAGE_FORMAT,
             ],
             "responses": {"200": {"description": "the plot", "content": IMAGES},
                           "400": _problem("bad parameter"), **AUTH_ERRORS,
-                          "404": _problem("no isosteric heat stored for this material")},
+                          "404": _problem("no isosteric heat stored for this sorbent")},
         },
     },
     "/": {
@@ -121,15 +121,15 @@ PLOT_AND_PAGE_PATHS = {
                               "400": {"description": "bad parameter (HTML page)", "content": HTML},
                               "401": {"description": "no read access (HTML page)", "content": HTML}}},
     },
-    "/materials/{material_id}": {
-        "get": {"operationId": "pageMaterial",
-                "summary": "HTML page: one material's results, plots and fits",
+    "/sorbents/{sorbent_id}": {
+        "get": {"operationId": "pageSorbent",
+                "summary": "HTML page: one sorbent's results, plots and fits",
                 "security": READ,
-                "parameters": [{"name": "material_id", "in": "path", "required": True,
+                "parameters": [{"name": "sorbent_id", "in": "path", "required": True,
                                 "schema": {"type": "string"}}],
                 "responses": {"200": {"description": "the page", "content": HTML},
                               "401": {"description": "no read access (HTML page)", "content": HTML},
-                              "404": {"description": "unknown material (HTML page)",
+                              "404": {"description": "unknown sorbent (HTML page)",
                                       "content": HTML}}},
     },
     "/assets/{filename}": {
@@ -153,7 +153,7 @@ def document() -> dict:
             "description": (
                 "Submit batches of gas-adsorption isotherms; sorbrank fits its model catalogue, "
                 "selects a model per isotherm by an information criterion, computes screening "
-                "metrics and ranks materials across every batch. Units everywhere: pressure Pa, "
+                "metrics and ranks sorbents across every batch. Units everywhere: pressure Pa, "
                 "temperature K, loading mol/kg, energy J/mol, area m2/g. Errors are problem "
                 "details (RFC 9457). Rankings: " + LATEST_WINS_RULE + "."),
         },
@@ -238,14 +238,14 @@ def document() -> dict:
             "/api/v1/batches/{batch_id}/results": {
                 "get": {
                     "operationId": "getBatchResults",
-                    "summary": "Per-isotherm summaries, per-model fits and per-material rows",
+                    "summary": "Per-isotherm summaries, per-model fits and per-sorbent rows",
                     "description": "JSON holds every table unless `table` is given; the tabular "
                                    "formats hold one table (default summary). CSV text cells "
                                    "that a spreadsheet would evaluate are prefixed with '.",
                     "security": READ,
                     "parameters": [_ref("batch_id"), _ref("format"),
                                    _query("table", "which table", {"type": "string", "enum":
-                                                                   ["summary", "fits", "materials"]})],
+                                                                   ["summary", "fits", "sorbents"]})],
                     "responses": {"200": {"description": "results so far (see X-Batch-State)",
                                           "content": TABULAR},
                                   "400": _problem("bad parameter"), **AUTH_ERRORS,
@@ -258,7 +258,7 @@ def document() -> dict:
                     "operationId": "getRankings",
                     "summary": "Rank isotherm results across every batch",
                     "description": "By default " + LATEST_WINS_RULE + "; `all=true` returns "
-                                   "every result. Batch, material, adsorbate and temperature "
+                                   "every result. Batch, sorbent, adsorbate and temperature "
                                    "filters apply before that choice, flag filters after it.",
                     "security": READ,
                     "parameters": RANKING_PARAMS,
@@ -269,16 +269,16 @@ def document() -> dict:
                                   **AUTH_ERRORS, "406": _problem("no acceptable format")},
                 },
             },
-            "/api/v1/materials/{material_id}": {
+            "/api/v1/sorbents/{sorbent_id}": {
                 "get": {
-                    "operationId": "getMaterial",
-                    "summary": "Inputs, summaries, fits and material metrics of one material",
+                    "operationId": "getSorbent",
+                    "summary": "Inputs, summaries, fits and sorbent metrics of one sorbent",
                     "security": READ,
-                    "parameters": [{"name": "material_id", "in": "path", "required": True,
+                    "parameters": [{"name": "sorbent_id", "in": "path", "required": True,
                                     "schema": {"type": "string"}}],
                     "responses": {"200": {"description": "everything known", "content": {
                         "application/json": {"schema": {"type": "object"}}}},
-                        **AUTH_ERRORS, "404": _problem("material not in any batch")},
+                        **AUTH_ERRORS, "404": _problem("sorbent not in any batch")},
                 },
             },
             "/api/v1/models": {

@@ -96,7 +96,7 @@ def bet_plot(relative_pressure, loading_mol_per_kg, summary: Mapping[str, Any] |
 
 
 def qst_plot(rows: Sequence[Mapping[str, Any]], fmt: str = "svg") -> bytes:
-    """Isosteric heat against loading, one curve per material/adsorbate row."""
+    """Isosteric heat against loading, one curve per sorbent/adsorbate row."""
     _check_format(fmt)
     return render(qst_figure(rows), fmt)
 
@@ -509,7 +509,7 @@ def _fit_label(fit, role: str) -> str:
 
 
 def _isotherm_title(record, t_k) -> str:
-    bits = [str(record.get(k)) for k in ("material_id", "adsorbate") if record.get(k)]
+    bits = [str(record.get(k)) for k in ("sorbent_id", "adsorbate") if record.get(k)]
     title = " / ".join(bits) if bits else "Isotherm"
     if t_k is not None:
         title += f" at {t_k:.1f} K"
@@ -535,7 +535,7 @@ def _fmt(value: float | None) -> str:
 
 
 def _row_label(row: Mapping[str, Any], index: int) -> str:
-    bits = [str(row.get(k)) for k in ("material_id", "adsorbate") if row.get(k)]
+    bits = [str(row.get(k)) for k in ("sorbent_id", "adsorbate") if row.get(k)]
     return " / ".join(bits) if bits else f"row {index}"
 
 

@@ -7,9 +7,9 @@ from flask import Flask, Response, json, request
 from werkzeug.exceptions import HTTPException
 
 PROBLEM_JSON = "application/problem+json"
-# paths of the HTML pages (service/web): an unmatched URL there (a material id
+# paths of the HTML pages (service/web): an unmatched URL there (a sorbent id
 # the router cannot take, a wrong method) answers with an HTML page, as documented
-HTML_PATH_PREFIXES = ("/materials/", "/assets/")
+HTML_PATH_PREFIXES = ("/sorbents/", "/assets/")
 
 
 def _is_page_path(path: str) -> bool:

@@ -225,18 +225,18 @@ def processes():
 PRESSURES_KPA = (1, 2, 5, 10, 20, 40, 60, 80, 100)
 
 
-def isotherm(material_id: str, q_sat: float, b_per_kpa: float, temperature_k: float = 298.15,
+def isotherm(sorbent_id: str, q_sat: float, b_per_kpa: float, temperature_k: float = 298.15,
              adsorbate: str = "CO2") -> dict:
-    return {"material_id": material_id, "adsorbate": adsorbate, "temperature_k": temperature_k,
+    return {"sorbent_id": sorbent_id, "adsorbate": adsorbate, "temperature_k": temperature_k,
             "pressure": list(PRESSURES_KPA),
             "loading": [round(q_sat * b_per_kpa * p / (1 + b_per_kpa * p), 6) for p in PRESSURES_KPA]}
 
 
 def csv_batch(isotherms: list[dict], extra_lines: tuple[str, ...] = ()) -> bytes:
-    lines = ["material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
     for iso in isotherms:
         for p, q in zip(iso["pressure"], iso["loading"]):
-            lines.append(f"{iso['material_id']},{iso['adsorbate']},{iso['temperature_k']},{p},{q},"
+            lines.append(f"{iso['sorbent_id']},{iso['adsorbate']},{iso['temperature_k']},{p},{q},"
                          "kPa,mol/kg")
     lines.extend(extra_lines)
     return ("\n".join(lines) + "\n").encode()
@@ -255,7 +255,7 @@ def parquet_batch(isotherms: list[dict]) -> bytes:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    rows = [{"material_id": iso["material_id"], "adsorbate": iso["adsorbate"],
+    rows = [{"sorbent_id": iso["sorbent_id"], "adsorbate": iso["adsorbate"],
              "temperature_k": iso["temperature_k"], "pressure": float(p), "loading": float(q),
              "pressure_unit": "kPa", "loading_unit": "mol/kg"}
             for iso in isotherms for p, q in zip(iso["pressure"], iso["loading"])]

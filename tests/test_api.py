@@ -127,7 +127,7 @@ def test_unreadable_and_unacceptable_bodies(client):
     assert_problem(submit(client, b"\xff\xfe\x00garbage", "text/csv"), 400)
     doc = assert_problem(submit(client, b"{not json", "application/json"), 400)
     assert doc["issues"][0]["code"] == "unparseable"
-    doc = assert_problem(submit(client, b"material_id,pressure\nM,1\n"), 422)
+    doc = assert_problem(submit(client, b"sorbent_id,pressure\nM,1\n"), 422)
     assert doc["issues"][0]["code"] == "missing_column"
     nothing = csv_batch([], extra_lines=("N1,CO2,298,1,x,kPa,mol/kg",))
     doc = assert_problem(submit(client, nothing), 422)
@@ -183,14 +183,14 @@ def test_unknown_or_malformed_batch_ids_are_404(client):
     for batch_id in ["b-20000101-000000-000000-00000000", "nope", "..", "b-x%2F..%2F..%2Fmanifest"]:
         assert_problem(client.get(f"/api/v1/batches/{batch_id}", headers=auth()), 404)
         assert_problem(client.get(f"/api/v1/batches/{batch_id}/results", headers=auth()), 404)
-    assert_problem(client.get("/api/v1/materials/never-seen", headers=auth()), 404)
+    assert_problem(client.get("/api/v1/sorbents/never-seen", headers=auth()), 404)
 
 
 def test_result_formats_and_negotiation(client):
     batch_id = submit(client, csv_batch([isotherm("F1", 3, 0.1), isotherm("F2", 1, 0.2)])).json["batch_id"]
     url = f"/api/v1/batches/{batch_id}/results"
     as_json = client.get(url, headers=auth()).json
-    assert set(as_json) >= {"summary", "fits", "materials", "rejected", "errors", "state"}
+    assert set(as_json) >= {"summary", "fits", "sorbents", "rejected", "errors", "state"}
     only = client.get(url + "?table=fits", headers=auth()).json
     assert "summary" not in only and len(only["fits"]) == len(as_json["fits"])
     for accept, media in [("text/csv", "text/csv"),
@@ -215,8 +215,8 @@ def test_csv_cells_cannot_become_spreadsheet_formulas(client):
     import csv as pycsv
 
     rows = list(pycsv.DictReader(io.StringIO(text)))
-    materials = {r["material_id"] for r in rows}
-    assert materials == {"'" + m for m in evil}
+    sorbents = {r["sorbent_id"] for r in rows}
+    assert sorbents == {"'" + m for m in evil}
     assert all(not v.startswith(("=", "+", "@")) for r in rows for v in r.values())
     # numbers stay numbers, negative ones included
     assert safe_cell(-1.5) == "-1.5" and safe_cell("-1.5e3") == "-1.5e3"
@@ -228,10 +228,10 @@ def test_rankings_parameters(client):
     for m, q in (("R1", 5.0), ("R2", 1.0), ("R3", 3.0)):
         submit(client, csv_batch([isotherm(m, q, 0.1)]))
     rows = client.get("/api/v1/rankings", headers=auth()).json["rows"]
-    assert [r["material_id"] for r in rows] == ["R1", "R3", "R2"]
+    assert [r["sorbent_id"] for r in rows] == ["R1", "R3", "R2"]
     asc = client.get("/api/v1/rankings?order=asc&limit=2", headers=auth()).json
-    assert [r["material_id"] for r in asc["rows"]] == ["R2", "R3"] and asc["total"] == 3
-    assert client.get("/api/v1/rankings?material_id=R3", headers=auth()).json["total"] == 1
+    assert [r["sorbent_id"] for r in asc["rows"]] == ["R2", "R3"] and asc["total"] == 3
+    assert client.get("/api/v1/rankings?sorbent_id=R3", headers=auth()).json["total"] == 1
     assert client.get("/api/v1/rankings?adsorbate=N2", headers=auth()).json["total"] == 0
     for bad in ("sort=nonsense", "order=up", "limit=-1", "temperature_k=warm", "all=maybe"):
         assert_problem(client.get(f"/api/v1/rankings?{bad}", headers=auth()), 400)
@@ -253,10 +253,10 @@ def test_failed_chunk_gives_partial_batch_and_keeps_the_rest(app, client, tmp_pa
     assert status["counts"] == {"accepted": 3, "done": 2, "failed": 1, "rejected": 0}
     assert status["errors"][0]["chunk"] == 1 and status["errors"][0]["message"]
     results = client.get(f"/api/v1/batches/{manifest['batch_id']}/results", headers=auth()).json
-    assert sorted(r["material_id"] for r in results["summary"]) == ["G1", "G2"]
+    assert sorted(r["sorbent_id"] for r in results["summary"]) == ["G1", "G2"]
     assert store.read_final(manifest["batch_id"])["state"] == "partial"
     # the damaged file hides nothing else
-    assert client.get("/api/v1/materials/G1", headers=auth()).json["isotherms"]
+    assert client.get("/api/v1/sorbents/G1", headers=auth()).json["isotherms"]
     assert client.get("/api/v1/rankings", headers=auth()).json["total"] == 2
 
 
@@ -358,9 +358,9 @@ def test_command_help_explains_and_gives_an_example(command, capsys):
 
 
 def test_unmatched_page_urls_answer_with_html_and_api_urls_with_problem_json(client):
-    # a material id the router cannot take (an encoded newline) on the HTML page
+    # a sorbent id the router cannot take (an encoded newline) on the HTML page
     # path is documented as text/html; the same under /api/v1 stays problem+json
-    page = client.get("/materials/a%0Ab/")
+    page = client.get("/sorbents/a%0Ab/")
     assert page.status_code == 404 and page.mimetype == "text/html"
     api = client.get("/api/v1/no-such-resource", headers=auth("reader"))
     assert api.status_code == 404 and api.mimetype == "application/problem+json"

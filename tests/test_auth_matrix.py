@@ -35,7 +35,7 @@ SECRETS = {"only-submit": ("am-submit-5e1c0b7d9f", ["submit"]),
 # documented exceptions: probes, the API description, the stylesheet, the metrics scrape
 PUBLIC = {("get", "/healthz"), ("get", "/readyz"), ("get", "/api/v1/openapi.json"),
           ("get", "/assets/{filename}"), ("get", "/metrics")}
-HTML_PATHS = ("/", "/materials/{material_id}")
+HTML_PATHS = ("/", "/sorbents/{sorbent_id}")
 
 
 def tokens_config() -> str:
@@ -72,7 +72,7 @@ def known(client) -> dict:
     resp = client.post("/api/v1/batches", data=body,
                        headers={"Content-Type": "application/json", **bearer("admin")})
     assert resp.status_code == 202, resp.get_data(as_text=True)
-    return {"batch_id": resp.json["batch_id"], "material_id": "AM-1",
+    return {"batch_id": resp.json["batch_id"], "sorbent_id": "AM-1",
             "isotherm_id": "AM-1-iso", "filename": "sorbrank.css"}
 
 
@@ -180,16 +180,16 @@ def test_token_comparison_is_constant_time_inspection():
 
 
 def test_csv_exports_neutralise_formula_cells(client):
-    evil_materials = ["=1+2", "+SUM(A1:A9)", "-2+3", "@HYPERLINK(x)", "=cmd|' -C calc'!A0"]
+    evil_sorbents = ["=1+2", "+SUM(A1:A9)", "-2+3", "@HYPERLINK(x)", "=cmd|' -C calc'!A0"]
     isotherms = [dict(isotherm(m, 2.0 + i, 0.1), isotherm_id=f"=HYPERLINK(\"x{i}\")")
-                 for i, m in enumerate(evil_materials)]
+                 for i, m in enumerate(evil_sorbents)]
     body = json_batch(isotherms, label="=batch-label")
     resp = client.post("/api/v1/batches", data=body,
                        headers={"Content-Type": "application/json", **bearer("admin")})
-    assert resp.status_code == 202 and resp.json["accepted"] == len(evil_materials), resp.json
+    assert resp.status_code == 202 and resp.json["accepted"] == len(evil_sorbents), resp.json
     batch_id = resp.json["batch_id"]
     exports = {f"results {t}": f"/api/v1/batches/{batch_id}/results?format=csv&table={t}"
-               for t in ("summary", "fits", "materials")}
+               for t in ("summary", "fits", "sorbents")}
     exports["rankings"] = f"/api/v1/rankings?format=csv&batch_id={batch_id}&all=true&limit=1000"
     seen_text = set()
     for name, url in exports.items():
@@ -204,7 +204,7 @@ def test_csv_exports_neutralise_formula_cells(client):
                         float(cell)  # only plain numbers may start so (a negative value)
                     seen_text.add(cell)
     # the hostile text is there, disarmed, not dropped
-    assert {"'" + m for m in evil_materials} <= seen_text
+    assert {"'" + m for m in evil_sorbents} <= seen_text
     assert "'=HYPERLINK(\"x0\")" in seen_text
 
 

@@ -27,7 +27,7 @@ def rows_for(seed: int, n: int) -> list[dict]:
         q = rng.choice([None, float("nan")] + [round(rng.uniform(0, 10), 3) for _ in range(8)])
         rows.append({
             "isotherm_id": f"iso-{rng.randrange(40):02d}-{seed}-{i}",  # not in key order
-            "material_id": f"M{rng.randrange(5)}",
+            "sorbent_id": f"M{rng.randrange(5)}",
             "adsorbate": rng.choice(["CO2", "N2", "CH4"]),
             "branch": rng.choice(["adsorption", "adsorption", "desorption"]),
             # 297.5 and 298.5 round half to even, as pc.round and round() do
@@ -64,8 +64,8 @@ def brute_force(stored, query: RankingQuery):
     rows = [{**r, "batch_id": b, "accepted_at": a} for b, a, batch_rows in stored for r in batch_rows]
     if query.batch_id is not None:
         rows = [r for r in rows if r["batch_id"] == query.batch_id]
-    if query.material_id is not None:
-        rows = [r for r in rows if r["material_id"] == query.material_id]
+    if query.sorbent_id is not None:
+        rows = [r for r in rows if r["sorbent_id"] == query.sorbent_id]
     if query.adsorbate is not None:
         rows = [r for r in rows if r["adsorbate"] == query.adsorbate]
     if query.temperature_k is not None:
@@ -77,7 +77,7 @@ def brute_force(stored, query: RankingQuery):
         ordered.sort(key=lambda r: (r["accepted_at"], r["batch_id"]), reverse=True)
         first = {}
         for r in ordered:
-            first.setdefault((r["material_id"], r["adsorbate"], round(r["temperature_k"]),
+            first.setdefault((r["sorbent_id"], r["adsorbate"], round(r["temperature_k"]),
                               r["branch"]), r)
         rows = list(first.values())
     want, avoid = set(query.flags), set(query.exclude_flags)
@@ -89,7 +89,7 @@ def brute_force(stored, query: RankingQuery):
 
     present = [r for r in rows if value(r) is not None]
     missing = [r for r in rows if value(r) is None]
-    present.sort(key=lambda r: (r["material_id"], r["isotherm_id"]))
+    present.sort(key=lambda r: (r["sorbent_id"], r["isotherm_id"]))
     present.sort(key=value, reverse=query.descending)
     return ([(r["batch_id"], r["isotherm_id"]) for r in present],
             {(r["batch_id"], r["isotherm_id"]) for r in missing}, len(rows))
@@ -111,8 +111,8 @@ def whole_rows(store: Store, query: RankingQuery) -> tuple[pa.Table, int]:
     where = []
     if query.batch_id is not None:
         where.append(ds.field("batch_id") == query.batch_id)
-    if query.material_id is not None:
-        where.append(ds.field("material_id") == query.material_id)
+    if query.sorbent_id is not None:
+        where.append(ds.field("sorbent_id") == query.sorbent_id)
     if query.adsorbate is not None:
         where.append(ds.field("adsorbate") == query.adsorbate)
     if query.temperature_k is not None:
@@ -132,9 +132,9 @@ QUERIES = [
     RankingQuery(limit=1000, adsorbate="N2", temperature_k=298.15, temperature_tolerance_k=-0.7),
     RankingQuery(limit=1000, sort="henry_mol_per_kg_pa", descending=False),
     RankingQuery(limit=1000, flags=("ambiguous",), exclude_flags=("at_bound",)),
-    RankingQuery(limit=1000, exclude_flags=("ambiguous",), material_id="M2"),
+    RankingQuery(limit=1000, exclude_flags=("ambiguous",), sorbent_id="M2"),
     RankingQuery(limit=1000, sort="temperature_k", flags=("at_bound",), all_results=True),
-    RankingQuery(limit=1000, sort="material_id", descending=False, adsorbate="CH4"),
+    RankingQuery(limit=1000, sort="sorbent_id", descending=False, adsorbate="CH4"),
     RankingQuery(limit=0, adsorbate="CO2"),
 ]
 
@@ -208,7 +208,7 @@ def test_inputs_table_built_by_columns_equals_the_row_by_row_table():
     from sorbrank.worker.intake import read_batch
     from sorbrank.worker.store import _isotherms_to_table_by_rows, isotherms_to_table
 
-    csv = "\n".join(["material_id,adsorbate,temperature_k,pressure,loading,sigma,"
+    csv = "\n".join(["sorbent_id,adsorbate,temperature_k,pressure,loading,sigma,"
                      "pressure_unit,loading_unit"]
                     + [f"M1,CO2,298.15,{p},{0.1 * p / (1 + 0.01 * p):.6f},0.01,kPa,mmol/g"
                        for p in (1, 3, 7, 15, 40, 90)]

@@ -56,6 +56,6 @@ def test_bench_scale_runs_resumes_and_writes_results(tmp_path):
 
 def test_bench_metrics_runs_with_its_baseline_side_by_side():
     out = run("bench_metrics.py", "--n", "60,120", "--repeats", "1", "--baseline", "HEAD")
-    for word in ("batches  :", "n=     60:", "n=    120:", "summarize", "material rows",
+    for word in ("batches  :", "n=     60:", "n=    120:", "summarize", "sorbent rows",
                  "| HEAD:", "ratio", "growth   :"):
         assert word in out, out

@@ -36,7 +36,7 @@ def campaign(tmp_path_factory):
             if path.suffix in (".csv", ".json", ".parquet") and not path.name.startswith(
                     ("ground_truth", "_")):
                 replies[path.name] = client.submit_file(path)
-        summaries, materials = {}, []
+        summaries, sorbents = {}, []
         for name, reply in replies.items():
             status = client.wait(reply["batch_id"], timeout_s=900)
             assert status["state"] == "done", (name, status)
@@ -44,9 +44,9 @@ def campaign(tmp_path_factory):
                                    {"format": "json", "table": "summary"})
             for row in doc["summary"]:
                 summaries[row["isotherm_id"]] = row
-            materials += client._get_json(f"/batches/{reply['batch_id']}/results",
-                                          {"format": "json", "table": "materials"})["materials"]
-        yield truth, replies, summaries, materials
+            sorbents += client._get_json(f"/batches/{reply['batch_id']}/results",
+                                          {"format": "json", "table": "sorbents"})["sorbents"]
+        yield truth, replies, summaries, sorbents
     finally:
         for proc in reversed(procs):
             proc.stop()
@@ -110,21 +110,21 @@ def test_every_bad_dataset_gets_its_expected_outcome(campaign):
 
 
 def test_isosteric_heats_match_the_ground_truth(campaign):
-    # single-site materials have a loading-independent heat (van 't Hoff
+    # single-site sorbents have a loading-independent heat (van 't Hoff
     # affinity, constant q_sat); tolerance: the larger of 2.5 kJ/mol and 10 %
-    truth, _, _, materials = campaign
+    truth, _, _, sorbents = campaign
     rule = truth["tolerances"]["isosteric_heat"]
-    got = {(m["material_id"], m["adsorbate"]): m for m in materials
+    got = {(m["sorbent_id"], m["adsorbate"]): m for m in sorbents
            if m["kind"] == "isosteric_heat"}
     checked, off = 0, []
     for t in truth["isosteric_heats"]:
-        row = got.get((t["material_id"], t["adsorbate"]))
+        row = got.get((t["sorbent_id"], t["adsorbate"]))
         if not t["constant_with_loading"] or row is None:
             continue
         checked += 1
         q = t["isosteric_heat_j_per_mol"]
         if abs(row["isosteric_heat_j_per_mol"] - q) > max(rule["absolute_j_per_mol"], rule["relative"] * q):
-            off.append((t["material_id"], t["adsorbate"], row["isosteric_heat_j_per_mol"], q))
+            off.append((t["sorbent_id"], t["adsorbate"], row["isosteric_heat_j_per_mol"], q))
     assert checked >= 300
     assert off == []
 
@@ -133,20 +133,20 @@ def test_iast_selectivities_match_the_ground_truth(campaign):
     # mixture requests travel in the JSON batch; the ground truth solves IAST on
     # the true pure-component models; tolerance 20 % where both pure-component
     # pressures lie inside the measured range
-    truth, _, _, materials = campaign
+    truth, _, _, sorbents = campaign
     tol = truth["tolerances"]["iast_selectivity"]["relative"]
     mixtures = {m["name"]: m for m in truth["campaign"]["mixtures"]}
-    got = {(m["material_id"], m["adsorbate"], m["temperature_k"], round(m["total_pressure_pa"])): m
-           for m in materials if m["kind"] == "iast"}
+    got = {(m["sorbent_id"], m["adsorbate"], m["temperature_k"], round(m["total_pressure_pa"])): m
+           for m in sorbents if m["kind"] == "iast"}
     checked, off = 0, []
     for t in truth["mixtures"]:
         mix = mixtures[t["mixture"]]
-        row = got.get((t["material_id"], "/".join(mix["components"]), mix["temperature_k"],
+        row = got.get((t["sorbent_id"], "/".join(mix["components"]), mix["temperature_k"],
                        round(mix["total_pressure_pa"])))
         if not t["iast_resolvable"] or row is None:
             continue
         checked += 1
         if row["selectivity"] is None or abs(row["selectivity"] / t["selectivity"] - 1) > tol:
-            off.append((t["material_id"], t["mixture"], row["selectivity"], t["selectivity"]))
+            off.append((t["sorbent_id"], t["mixture"], row["selectivity"], t["selectivity"]))
     assert checked >= 100
     assert off == []

@@ -443,7 +443,7 @@ def test_best_scale_projection_finds_fits_at_least_as_good_in_fewer_iterations(m
     model = CATALOGUE[model_id]
     batch = _misfit_batch()
     if model.relative_pressure:
-        batch = [Isotherm(i.isotherm_id, i.material_id, i.adsorbate, i.temperature_k, i.pressure_pa,
+        batch = [Isotherm(i.isotherm_id, i.sorbent_id, i.adsorbate, i.temperature_k, i.pressure_pa,
                           i.loading_mol_per_kg, saturation_pressure_pa=1.5 * float(np.max(i.pressure_pa)))
                  for i in batch]
     packed = pack(batch)

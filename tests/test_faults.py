@@ -33,8 +33,8 @@ SETTLED = ("done", "failed")
 # -- helpers -------------------------------------------------------------------------
 
 def batch_csv(prefix: str, n: int) -> tuple[bytes, list[str]]:
-    """``n`` one-isotherm materials with explicit isotherm ids (known by construction)."""
-    lines = ["isotherm_id,material_id,adsorbate,temperature_k,pressure,loading,"
+    """``n`` one-isotherm sorbents with explicit isotherm ids (known by construction)."""
+    lines = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading,"
              "pressure_unit,loading_unit"]
     ids = []
     for i in range(n):
@@ -42,7 +42,7 @@ def batch_csv(prefix: str, n: int) -> tuple[bytes, list[str]]:
         iso_id = f"{prefix}-I{i:03d}"
         ids.append(iso_id)
         for p, q in zip(iso["pressure"], iso["loading"]):
-            lines.append(f"{iso_id},{iso['material_id']},CO2,298.15,{p},{q},kPa,mol/kg")
+            lines.append(f"{iso_id},{iso['sorbent_id']},CO2,298.15,{p},{q},kPa,mol/kg")
     return ("\n".join(lines) + "\n").encode(), ids
 
 
@@ -118,7 +118,7 @@ def assert_exactly_once(s: requests.Session, api: str, batch_id: str, ids: list[
     assert sorted(r["isotherm_id"] for r in ranked["rows"]) == sorted(ids)
     latest = s.get(f"{api}/rankings", params={"batch_id": batch_id, "limit": 10_000},
                    timeout=30).json()
-    assert latest["total"] == len(ids)  # one material per isotherm: nothing deduplicated away
+    assert latest["total"] == len(ids)  # one sorbent per isotherm: nothing deduplicated away
 
 
 def start_redis_on(port: int, log_dir, registry: list[Proc], name: str) -> Proc:
@@ -252,7 +252,7 @@ def test_embedded_server_sigkill_mid_batch_resumes(tmp_path, processes):
     (store.batch_dir(batch_id) / ".chunk-00000.json.crash.tmp").write_text('{"state": "runn')
     assert_exactly_once(s, api, batch_id, ids)
     for path in (f"/batches/{batch_id}/results?format=csv", "/rankings?format=parquet",
-                 "/materials/EM-M000", "/batches"):
+                 "/sorbents/EM-M000", "/batches"):
         assert s.get(api + path, timeout=30).status_code == 200, path
 
 

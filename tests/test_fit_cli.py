@@ -23,16 +23,16 @@ from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.pipeline import FitOptions, process_batch, process_isotherms_parallel
 
 P_PA = np.geomspace(1e2, 1e6, 15)
-HEADER = ["isotherm_id", "material_id", "adsorbate", "temperature_k", "pressure", "loading",
+HEADER = ["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "pressure", "loading",
           "pressure_unit", "loading_unit"]
 # (q_sat mol/kg, affinity 1/Pa) per isotherm: q_sat order is the expected ranking
 TRUTHS = [(2.0, 1e-5), (6.0, 3e-5), (4.0, 1e-4)]
 
 
-def langmuir_rows(iso_id, material, q_sat, b, seed):
+def langmuir_rows(iso_id, sorbent, q_sat, b, seed):
     rng = np.random.default_rng(seed)
     q = q_sat * b * P_PA / (1 + b * P_PA) * (1 + 0.003 * rng.standard_normal(P_PA.size))
-    return [[iso_id, material, "CO2", "298.15", f"{p:.9g}", f"{v:.9g}", "Pa", "mol/kg"]
+    return [[iso_id, sorbent, "CO2", "298.15", f"{p:.9g}", f"{v:.9g}", "Pa", "mol/kg"]
             for p, v in zip(P_PA, q)]
 
 
@@ -69,9 +69,9 @@ def test_table_is_ranked_by_capacity_and_rejections_go_to_stderr(capsys, screen_
     assert code == 0
     assert "broken" in err and "not a number" in err
     lines = out.strip().splitlines()
-    assert lines[0].split()[:3] == ["#", "material", "gas"]
-    materials = [line.split()[1] for line in lines[2:]]
-    assert materials == ["MAT-1", "MAT-2", "MAT-0"]  # q_sat 6 > 4 > 2
+    assert lines[0].split()[:3] == ["#", "sorbent", "gas"]
+    sorbents = [line.split()[1] for line in lines[2:]]
+    assert sorbents == ["MAT-1", "MAT-2", "MAT-0"]  # q_sat 6 > 4 > 2
 
 
 def test_json_follows_the_contract_and_is_valid_json(capsys, screen_csv):
@@ -82,11 +82,11 @@ def test_json_follows_the_contract_and_is_valid_json(capsys, screen_csv):
 
     doc = json.loads(out, parse_constant=no_nan)
     assert code == 0
-    assert set(doc) >= {"isotherms", "rejected", "materials"}
+    assert set(doc) >= {"isotherms", "rejected", "sorbents"}
     assert [r["isotherm"] for r in doc["rejected"]] == ["broken"]
     rec = doc["isotherms"][0]
     assert rec["isotherm_id"] == "iso1" and rec["temperature_k"] == 298.15 and rec["n_points"] == 15
-    for key in ("material_id", "adsorbate", "best_model", "ambiguous", "flags", "fits",
+    for key in ("sorbent_id", "adsorbate", "best_model", "ambiguous", "flags", "fits",
                 "linearized_langmuir", "summary"):
         assert key in rec
     fits = {f["model"]: f for f in rec["fits"]}
@@ -123,8 +123,8 @@ def test_csv_parquet_and_fit_tables(capsys, screen_csv, tmp_path):
 
 
 def test_sort_by_another_column_ascending(capsys, screen_csv):
-    code, out, _ = run_cli(capsys, screen_csv, "--format", "csv", "--sort", "material_id")
-    ids = pcsv.read_csv(io.BytesIO(out.encode())).column("material_id").to_pylist()
+    code, out, _ = run_cli(capsys, screen_csv, "--format", "csv", "--sort", "sorbent_id")
+    ids = pcsv.read_csv(io.BytesIO(out.encode())).column("sorbent_id").to_pylist()
     assert code == 0 and ids == sorted(ids)
 
 

@@ -22,7 +22,7 @@ from conftest import (LOOPBACK, ROOT, TOKENS, clean_env, csv_batch, free_port, h
 
 pytestmark = pytest.mark.integration
 
-MATERIALS = ("GU-1", "GU-2", "GU-3")  # chunk size 2: two chunks
+SORBENTS = ("GU-1", "GU-2", "GU-3")  # chunk size 2: two chunks
 # gunicorn's own lifecycle lines ("[time] [pid] [INFO] Booting worker ...")
 GUNICORN_OWN_LINE = re.compile(r"^\[[^\]]+\] \[\d+\] \[[A-Z]+\] ")
 
@@ -73,7 +73,7 @@ def ran(stack):
     session.headers["Authorization"] = f"Bearer {TOKENS['submitter'][0]}"
     api = stack["url"] + "/api/v1"
     before = scrape(stack["url"] + "/metrics")
-    body = csv_batch([isotherm(m, 2.0 + k, 0.05) for k, m in enumerate(MATERIALS)])
+    body = csv_batch([isotherm(m, 2.0 + k, 0.05) for k, m in enumerate(SORBENTS)])
     resp = session.post(f"{api}/batches", data=body, headers={"Content-Type": "text/csv"},
                         params={"models": "langmuir,sips"}, timeout=60)
     assert resp.status_code == 202, resp.text
@@ -99,12 +99,12 @@ def test_batch_runs_end_to_end_under_gunicorn(ran):
     assert ran["state"] == "done"
     assert ran["results"].status_code == 200
     summary = ran["results"].json()["summary"]
-    assert sorted(row["material_id"] for row in summary) == sorted(MATERIALS)
+    assert sorted(row["sorbent_id"] for row in summary) == sorted(SORBENTS)
     assert all(row["best_model"] in ("langmuir", "sips") for row in summary), summary
     ranked = ran["rankings"].json()
     assert ran["rankings"].status_code == 200
     rows = ranked["rows"]
-    assert {r["batch_id"] for r in rows if r["material_id"] in MATERIALS} == {ran["batch_id"]}
+    assert {r["batch_id"] for r in rows if r["sorbent_id"] in SORBENTS} == {ran["batch_id"]}
 
 
 def test_metrics_move_when_a_batch_runs_and_agree_across_processes(ran):
@@ -115,7 +115,7 @@ def test_metrics_move_when_a_batch_runs_and_agree_across_processes(ran):
         value(before, "sorbrank_batches_done_total") + 1
     for model in ("langmuir", "sips"):
         assert value(after, "sorbrank_isotherms_fitted_total", model=model) == \
-            value(before, "sorbrank_isotherms_fitted_total", model=model) + len(MATERIALS)
+            value(before, "sorbrank_isotherms_fitted_total", model=model) + len(SORBENTS)
     assert value(after, "sorbrank_chunk_fit_duration_seconds_count") == \
         value(before, "sorbrank_chunk_fit_duration_seconds_count") + 2
     assert value(after, "sorbrank_store_size_bytes") > value(before, "sorbrank_store_size_bytes")
@@ -139,7 +139,7 @@ def test_api_and_worker_logs_are_json_with_the_batch_id_and_no_token(ran, stack)
         assert {"time", "level", "logger", "message"} <= entry.keys(), entry
     posted = [e for e in api_lines if e.get("method") == "POST" and e.get("status") == 202]
     assert [e["batch_id"] for e in posted] == [batch_id]
-    assert posted[0]["isotherm_count"] == len(MATERIALS) and posted[0]["duration_s"] >= 0
+    assert posted[0]["isotherm_count"] == len(SORBENTS) and posted[0]["duration_s"] >= 0
     assert posted[0]["path"] == "/api/v1/batches"
     finished = [e for e in worker_lines
                 if e.get("batch_id") == batch_id and e["message"] == "chunk finished"]

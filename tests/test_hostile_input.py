@@ -114,7 +114,7 @@ NASTY = ["", " ", "0", "-1", "1e999", "-1e999", "nan", "NaN", "inf", "-Infinity"
          "..\\..\\boot.ini", "/", "\\", ".", "..", "CON", "a\x00b", "\u202e", "\ud7ff", "日本",
          "CO2", "N2", "co2", "298.15", "kPa", "mmol/g", "p/p0", "bar", "wt%", "adsorption",
          "desorption", "#", "# pressure_unit: kPa", "\r", "\t", "null", "true", "[]", "{}"]
-COLUMNS = ["material_id", "adsorbate", "temperature_k", "pressure", "loading", "isotherm_id",
+COLUMNS = ["sorbent_id", "adsorbate", "temperature_k", "pressure", "loading", "isotherm_id",
            "branch", "pressure_unit", "loading_unit", "saturation_pressure", "sample_mass_g",
            "sigma", "surface_area_m2_per_g", "Pressure", " LOADING ", "extra", ""]
 cell = st.one_of(st.sampled_from(NASTY), st.text(max_size=12),
@@ -154,7 +154,7 @@ numbers = st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.integers(
 @st.composite
 def json_isotherm(draw) -> dict:
     n = draw(st.integers(0, 8))
-    iso = {"material_id": draw(cell), "adsorbate": draw(st.sampled_from(NASTY)),
+    iso = {"sorbent_id": draw(cell), "adsorbate": draw(st.sampled_from(NASTY)),
            "temperature_k": draw(numbers),
            "pressure": draw(st.lists(numbers, min_size=n, max_size=n + 1)),
            "loading": draw(st.lists(numbers, min_size=n, max_size=n + 1))}
@@ -265,11 +265,11 @@ def issues_of(doc: dict) -> list[dict]:
 
 def test_nan_and_infinity_tokens_are_rejected_by_row_and_field(client, app):
     raw = ('{"defaults": {"pressure_unit": "kPa", "loading_unit": "mol/kg"}, "isotherms": ['
-           '{"isotherm_id": "J-NAN", "material_id": "M", "adsorbate": "CO2", "temperature_k": 298,'
+           '{"isotherm_id": "J-NAN", "sorbent_id": "M", "adsorbate": "CO2", "temperature_k": 298,'
            ' "pressure": [1, 2, NaN, 4], "loading": [0.1, 0.2, 0.3, 0.4]},'
-           '{"isotherm_id": "J-INF", "material_id": "M", "adsorbate": "CO2", "temperature_k": 298,'
+           '{"isotherm_id": "J-INF", "sorbent_id": "M", "adsorbate": "CO2", "temperature_k": 298,'
            ' "pressure": [1, 2, 3, 4], "loading": [0.1, Infinity, 0.3, 0.4]},'
-           '{"isotherm_id": "J-T", "material_id": "M", "adsorbate": "CO2",'
+           '{"isotherm_id": "J-T", "sorbent_id": "M", "adsorbate": "CO2",'
            ' "temperature_k": -Infinity, "pressure": [1, 2, 3], "loading": [0.1, 0.2, 0.3]}]}')
     doc = check_answer(post(client, raw.encode(), "application/json"), "named")
     found = {(i["isotherm"], i["row"], i["field"]) for i in issues_of(doc)}
@@ -293,13 +293,13 @@ def test_ids_with_path_separators_are_rejected_and_never_become_paths(client, ap
     evil = ["../../escape", "a/b", "..\\..\\escape", "..", "/abs", "C:\\temp\\x"]
     good = isotherm("SAFE-1", 2.0, 0.1)
     isotherms = [dict(isotherm(e, 2.0, 0.1)) for e in evil]
-    isotherms += [dict(good, material_id="SAFE-2", isotherm_id=e) for e in evil]
+    isotherms += [dict(good, sorbent_id="SAFE-2", isotherm_id=e) for e in evil]
     doc = check_answer(post(client, json_batch(isotherms + [good]), "application/json"), "named",
                        app.extensions["sorbrank"].store.root)
     assert doc["accepted"] == 1
     named = {(i["isotherm"], i["field"], i["code"]) for i in doc["rejected"]}
     for e in evil:
-        assert any(code == "invalid_id" and fld == "material_id" for _, fld, code in named)
+        assert any(code == "invalid_id" and fld == "sorbent_id" for _, fld, code in named)
         assert any(code == "invalid_id" and fld == "isotherm_id" for _, fld, code in named)
     assert sum(i["code"] == "invalid_id" for i in doc["rejected"]) >= 2 * len(evil)
     assert all("path separator" in i["message"] or "relative path" in i["message"]
@@ -327,7 +327,7 @@ def test_deep_and_huge_json(client):
         doc = check_answer(post(client, body, "application/json"), "named")
         assert doc["status"] in (400, 422)
     # a 6 MB id and a 300 000-point isotherm: per-isotherm rejections, named
-    long_id = dict(isotherm("L", 1, 0.1), material_id="M" * 6_000_000)
+    long_id = dict(isotherm("L", 1, 0.1), sorbent_id="M" * 6_000_000)
     many = dict(isotherm("MANY", 1, 0.1), isotherm_id="MANY",
                 pressure=list(range(1, 300_001)), loading=[1.0] * 300_000)
     doc = check_answer(post(client, json_batch([long_id]), "application/json"), "named")
@@ -338,7 +338,7 @@ def test_deep_and_huge_json(client):
 
 
 def test_csv_with_a_million_columns(client):
-    header = b"material_id,adsorbate,temperature_k,pressure,loading" + b",x" * 1_000_000
+    header = b"sorbent_id,adsorbate,temperature_k,pressure,loading" + b",x" * 1_000_000
     doc = check_answer(post(client, header + b"\nM,CO2,298,1,1\n", "text/csv"), "named")
     assert doc["status"] in (400, 413, 422) and doc["issues"][0]["code"] == "too_many_columns"
     row = b"M,CO2,298,1,1" + b",1" * 1_000_000
@@ -479,7 +479,7 @@ def test_oversize_bodies_get_413_without_being_read(live):
     start_line = (f"POST /api/v1/batches HTTP/1.1\r\nHost: {LOOPBACK}\r\n"
                   f"Authorization: Bearer {token}\r\nContent-Type: text/csv\r\n")
     head = start_line + f"Content-Length: {claimed}\r\n\r\n"
-    answer = raw_request(port, head, iter([b"material_id," * 100] * 10), max_parts=3)
+    answer = raw_request(port, head, iter([b"sorbent_id," * 100] * 10), max_parts=3)
     assert answer.startswith(b"HTTP/1.1 413"), answer[:300]
     assert b"application/problem+json" in answer
 
@@ -501,9 +501,9 @@ def test_path_traversal_in_urls_is_404_or_400(live):
              "/api/v1/batches/%00/results",
              "/api/v1/isotherms/..%2F..%2Fetc%2Fpasswd/plot",
              "/api/v1/isotherms/x/plot?batch_id=..%2F..%2Fetc",
-             "/api/v1/materials/..%2F..%2Fetc%2Fpasswd", "/api/v1/materials/%2e%2e",
+             "/api/v1/sorbents/..%2F..%2Fetc%2Fpasswd", "/api/v1/sorbents/%2e%2e",
              "/assets/../../etc/passwd", "/assets/..%2F..%2Fservice%2Fauth.py",
-             "/assets/%2e%2e%2fpages.py", "/materials/..%2F..%2Fetc%2Fpasswd"]
+             "/assets/%2e%2e%2fpages.py", "/sorbents/..%2F..%2Fetc%2Fpasswd"]
     for path in paths:
         conn = http.client.HTTPConnection(LOOPBACK, port, timeout=30)
         conn.putrequest("GET", path, skip_accept_encoding=True)

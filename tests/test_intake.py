@@ -18,7 +18,7 @@ from sorbrank.worker.intake import Limits, read_batch
 from sorbrank.worker.isotherm import IntakeError
 from sorbrank.worker.units import MOLAR_VOLUME_STP_CM3_PER_MOL
 
-HEADER = "material_id,adsorbate,temperature_k,pressure,loading"
+HEADER = "sorbent_id,adsorbate,temperature_k,pressure,loading"
 UNITS = "# pressure_unit: kPa\n# loading_unit: mmol/g\n"
 
 
@@ -26,8 +26,8 @@ def csv_of(*rows, header=HEADER, units=UNITS):
     return units + header + "\n" + "\n".join(rows) + "\n"
 
 
-def good_rows(material="m1", adsorbate="CO2", t="298.15", extra=""):
-    return [f"{material},{adsorbate},{t},{p},{q}{extra}"
+def good_rows(sorbent="m1", adsorbate="CO2", t="298.15", extra=""):
+    return [f"{sorbent},{adsorbate},{t},{p},{q}{extra}"
             for p, q in ((10, 0.5), (50, 1.5), (100, 2.0), (200, 2.5))]
 
 
@@ -46,7 +46,7 @@ def test_csv_is_normalised_to_canonical_units_and_sorted():
     (iso,) = batch.isotherms
     np.testing.assert_array_equal(iso.pressure_pa, [1e4, 5e4, 1e5])
     np.testing.assert_array_equal(iso.loading_mol_per_kg, [0.5, 1.5, 2.0])
-    assert (iso.material_id, iso.adsorbate, iso.temperature_k, iso.branch) == ("m1", "CO2", 298.15, "adsorption")
+    assert (iso.sorbent_id, iso.adsorbate, iso.temperature_k, iso.branch) == ("m1", "CO2", 298.15, "adsorption")
     assert iso.batch_label == "b1"
     assert iso.isotherm_id.startswith("m1|CO2|298.15K|adsorption|")
     # CO2 at 298.15 K is below its critical temperature: p0 from CoolProp
@@ -149,14 +149,14 @@ def _same_data_three_ways(tmp_path):
     csv_rows = [f"{iid},mat-{iid[-1]},nitrogen,77,{p},{q}" for iid, (ps, qs) in points.items()
                 for p, q in zip(ps, qs)]
     csv_text = "# pressure_unit: torr\n# loading_unit: cm3(STP)/g\n# batch_label: same\n" \
-               "isotherm_id,material_id,adsorbate,temperature_k,pressure,loading\n" + "\n".join(csv_rows)
+               "isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading\n" + "\n".join(csv_rows)
     doc = {"batch_label": "same", "defaults": {"pressure_unit": "torr", "loading_unit": "cm3(STP)/g"},
-           "isotherms": [{"isotherm_id": iid, "material_id": f"mat-{iid[-1]}", "adsorbate": "nitrogen",
+           "isotherms": [{"isotherm_id": iid, "sorbent_id": f"mat-{iid[-1]}", "adsorbate": "nitrogen",
                           "temperature_k": 77, "pressure": ps, "loading": qs}
                          for iid, (ps, qs) in points.items()]}
     table = pa.table({
         "isotherm_id": [iid for iid, (ps, _) in points.items() for _ in ps],
-        "material_id": [f"mat-{iid[-1]}" for iid, (ps, _) in points.items() for _ in ps],
+        "sorbent_id": [f"mat-{iid[-1]}" for iid, (ps, _) in points.items() for _ in ps],
         "adsorbate": ["nitrogen"] * 7,
         "temperature_k": [77] * 7,
         "pressure": [float(p) for ps, _ in points.values() for p in ps],
@@ -177,7 +177,7 @@ def test_csv_json_parquet_give_identical_isotherms(tmp_path):
     for batch in batches[1:]:
         assert batch.label == "same" and batch.rejected == []
         for a, b in zip(reference.isotherms, batch.isotherms, strict=True):
-            for name in ("isotherm_id", "material_id", "adsorbate", "temperature_k", "branch",
+            for name in ("isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "branch",
                          "saturation_pressure_pa", "surface_area_m2_per_g", "flags", "batch_label"):
                 assert getattr(a, name) == getattr(b, name), name
             np.testing.assert_array_equal(a.pressure_pa, b.pressure_pa)
@@ -186,7 +186,7 @@ def test_csv_json_parquet_give_identical_isotherms(tmp_path):
 
 def test_json_conditions_and_mixtures_are_canonical():
     doc = {"defaults": {"pressure_unit": "bar", "loading_unit": "mmol/g"},
-           "isotherms": [{"material_id": "m", "adsorbate": "CO2", "temperature_k": 298,
+           "isotherms": [{"sorbent_id": "m", "adsorbate": "CO2", "temperature_k": 298,
                           "pressure": [0.1, 0.5, 1.0], "loading": [1, 2, 3]}],
            "conditions": {"pressure_unit": "kPa", "adsorption_pressure": 100, "desorption_pressure": 10,
                           "reference_pressures": [15, 100], "adsorption_temperature_k": 298},
@@ -197,7 +197,7 @@ def test_json_conditions_and_mixtures_are_canonical():
     assert (c.adsorption_pressure_pa, c.desorption_pressure_pa, c.reference_pressures_pa) == (1e5, 1e4, (1.5e4, 1e5))
     assert c.adsorption_temperature_k == 298 and c.desorption_temperature_k is None
     (m,) = batch.mixtures
-    assert (m.components, m.mole_fractions, m.total_pressure_pa, m.temperature_k, m.material_id) == \
+    assert (m.components, m.mole_fractions, m.total_pressure_pa, m.temperature_k, m.sorbent_id) == \
         (["CO2", "N2"], [0.15, 0.85], 1e5, 298, None)
 
 
@@ -211,7 +211,7 @@ def test_json_conditions_and_mixtures_are_canonical():
 def test_bad_mixture_is_a_batch_error(mixture, field):
     base = {"total_pressure": 1, "pressure_unit": "bar", "temperature_k": 298}
     doc = {"defaults": {"pressure_unit": "bar", "loading_unit": "mmol/g"},
-           "isotherms": [{"material_id": "m", "adsorbate": "CO2", "temperature_k": 298,
+           "isotherms": [{"sorbent_id": "m", "adsorbate": "CO2", "temperature_k": 298,
                           "pressure": [0.1, 0.5, 1.0], "loading": [1, 2, 3]}],
            "mixtures": [{**base, **mixture}]}
     with pytest.raises(IntakeError) as err:
@@ -329,14 +329,14 @@ def test_too_many_points():
     assert issue.message.endswith("4 points, limit 3")
 
 
-@pytest.mark.parametrize("material, reason", [
+@pytest.mark.parametrize("sorbent, reason", [
     ("a/b", "contains a path separator"), ("a\\b", "contains a path separator"),
     ("..", "is a relative path name"), ("x" * 201, "is longer than 200 characters"),
     ("a\x07b", "contains a control character"),
 ])
-def test_invalid_material_id(material, reason):
-    issue = only_issue(read_batch(csv_of(*good_rows(material=material))))
-    assert (issue.code, issue.field, issue.row) == ("invalid_id", "material_id", 1)
+def test_invalid_sorbent_id(sorbent, reason):
+    issue = only_issue(read_batch(csv_of(*good_rows(sorbent=sorbent))))
+    assert (issue.code, issue.field, issue.row) == ("invalid_id", "sorbent_id", 1)
     assert issue.message.endswith(reason)
 
 
@@ -377,7 +377,7 @@ def test_mixed_batch_keeps_every_good_isotherm():
     rows = (good_rows("good1") + ["bad1,CO2,298.15,10,x"] + good_rows("bad1")[1:] + good_rows("good2")
             + good_rows("bad2", adsorbate="argn") + good_rows("good3", t="273.15"))
     batch = read_batch(csv_of(*rows), batch_label="mix")
-    assert [i.material_id for i in batch.isotherms] == ["good1", "good2", "good3"]
+    assert [i.sorbent_id for i in batch.isotherms] == ["good1", "good2", "good3"]
     assert [i.code for i in batch.rejected] == ["not_a_number", "unknown_adsorbate"]
     assert batch.rejected_isotherms == ["bad1|CO2|298.15K|adsorption (from row 5)",
                                         "bad2|argn|298.15K|adsorption (from row 13)"]
@@ -399,7 +399,7 @@ def json_doc(*isotherms, **top):
 
 
 def iso_obj(**changes):
-    return {"material_id": "m1", "adsorbate": "CO2", "temperature_k": 298.15,
+    return {"sorbent_id": "m1", "adsorbate": "CO2", "temperature_k": 298.15,
             "pressure": [10, 50, 100], "loading": [0.5, 1.5, 2.0], **changes}
 
 
@@ -428,7 +428,7 @@ def test_json_isotherm_level_issue_has_no_row():
     ({"loading": [1, 2]}, "loading", "length_mismatch"),
     ({"pressure": None}, "pressure", "missing_value"),
     ({"pressure": "1,2,3"}, "pressure", "wrong_type"),
-    ({"material_id": ["m"]}, "material_id", "wrong_type"),
+    ({"sorbent_id": ["m"]}, "sorbent_id", "wrong_type"),
     ({"adsorbate": None}, "adsorbate", "missing_value"),
     ({"temperature_k": True}, "temperature_k", "not_a_number"),
     ({"temperature_k": 10 ** 400}, "temperature_k", "not_finite"),
@@ -460,13 +460,13 @@ def batch_error(source, **kw):
 
 
 def test_missing_required_column_names_it_with_hint():
-    issue = batch_error("material_id,adsorbate,temperature,pressure,loading\nm,CO2,1,2,3\n")
+    issue = batch_error("sorbent_id,adsorbate,temperature,pressure,loading\nm,CO2,1,2,3\n")
     assert (issue.code, issue.field) == ("missing_column", "temperature_k")
     assert "'temperature_k' (found 'temperature')" in issue.message
 
 
 @pytest.mark.parametrize("source, code", [
-    (b"material_id,adsorbate\xff,temperature_k,pressure,loading\n", "not_utf8"),
+    (b"sorbent_id,adsorbate\xff,temperature_k,pressure,loading\n", "not_utf8"),
     ("", "no_data"),
     (HEADER + "\n", "no_data"),
     (HEADER + "\nm,CO2,298,1,2\nm,CO2,298,1\n", "malformed_row"),
@@ -521,7 +521,7 @@ def test_path_source_and_format_inference(tmp_path):
 
 
 def test_parquet_typed_columns_and_nulls():
-    table = pa.table({"material_id": ["m"] * 4, "adsorbate": ["CO2"] * 4, "temperature_k": [298.15] * 4,
+    table = pa.table({"sorbent_id": ["m"] * 4, "adsorbate": ["CO2"] * 4, "temperature_k": [298.15] * 4,
                       "pressure": [10.0, None, 30.0, 40.0], "loading": [1, 2, 3, 4]})
     buf = io.BytesIO()
     pq.write_table(table.replace_schema_metadata({"pressure_unit": "kPa", "loading_unit": "mmol/g"}), buf)

@@ -20,7 +20,7 @@ from sorbrank.worker.isotherm import Batch, IntakeError
 FAST = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 SMALL_LIMITS = Limits(max_isotherms=50, max_points_per_isotherm=40, max_columns=16, max_bytes=200_000)
 
-HEADER = ["material_id", "adsorbate", "temperature_k", "pressure", "loading"]
+HEADER = ["sorbent_id", "adsorbate", "temperature_k", "pressure", "loading"]
 OPTIONAL = ["isotherm_id", "branch", "pressure_unit", "loading_unit", "saturation_pressure",
             "sample_mass_g", "sigma", "surface_area_m2_per_g"]
 CELLS = st.one_of(
@@ -100,7 +100,7 @@ NUMBERS = st.lists(st.one_of(st.floats(), st.integers(min_value=-10, max_value=1
 @st.composite
 def isotherm_objects(draw):
     obj = {
-        "material_id": draw(st.one_of(st.sampled_from(["m1", "m2", "a/b"]), JSON_VALUES)),
+        "sorbent_id": draw(st.one_of(st.sampled_from(["m1", "m2", "a/b"]), JSON_VALUES)),
         "adsorbate": draw(st.one_of(st.sampled_from(["CO2", "nitrogen", "argn"]), JSON_VALUES)),
         "temperature_k": draw(st.one_of(st.floats(), st.sampled_from([77, 298.15, 195, 0]), JSON_VALUES)),
         "pressure": draw(st.one_of(NUMBERS, JSON_VALUES)),
@@ -145,7 +145,7 @@ def test_deeply_nested_json(depth, bracket):
 )
 def test_random_parquet(pressure, adsorbate):
     n = len(pressure)
-    table = pa.table({"material_id": ["m"] * n, "adsorbate": [adsorbate] * n, "temperature_k": [298.15] * n,
+    table = pa.table({"sorbent_id": ["m"] * n, "adsorbate": [adsorbate] * n, "temperature_k": [298.15] * n,
                       "pressure": pressure, "loading": [1.0] * n})
     buf = io.BytesIO()
     pq.write_table(table.replace_schema_metadata({"pressure_unit": "kPa", "loading_unit": "mmol/g"}), buf)
@@ -158,7 +158,7 @@ def test_random_parquet(pressure, adsorbate):
 def test_good_points_are_kept_and_canonical(points):
     """Valid points in kPa and mmol/g come out as the same values x 1000 Pa, sorted and
     merged: a property of any correct intake (the truth is the input itself)."""
-    lines = ["material_id,adsorbate,temperature_k,pressure,loading"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading"]
     lines += [f"m,CH4,298.15,{p!r},{q!r}" for p, q in points]
     batch = check("\n".join(lines), defaults={"pressure_unit": "kPa", "loading_unit": "mmol/g"})
     distinct = sorted({p for p, _ in points})

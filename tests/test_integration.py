@@ -90,7 +90,7 @@ def test_batches_in_three_formats_results_and_rankings(service):
     doc = s.get(f"{sorbrank.service.api}/batches/{batch_id}/results").json()
     ids = sorted(r["isotherm_id"] for r in doc["summary"])
     q_sat = {r["isotherm_id"]: r["q_sat_mol_per_kg"] for r in doc["summary"]}
-    assert len(ids) == 3 and {r["material_id"] for r in doc["summary"]} == {"A1", "A2"}
+    assert len(ids) == 3 and {r["sorbent_id"] for r in doc["summary"]} == {"A1", "A2"}
     assert len(doc["fits"]) == 3 * len({r["model"] for r in doc["fits"]})
     assert abs(q_sat[next(i for i in ids if i.startswith("A2"))] - 4.0) < 0.01
     for fmt in ("csv", "parquet", "arrow"):
@@ -109,9 +109,9 @@ def test_batches_in_three_formats_results_and_rankings(service):
 
     check_rankings_against_brute_force(s, service)
 
-    material = s.get(f"{sorbrank.service.api}/materials/A1").json()
-    assert {accepted[0]["batch_id"], accepted[1]["batch_id"]} <= set(material["batches"])
-    assert len(material["summaries"]) >= 3 and material["isotherms"][0]["pressure_pa"]
+    sorbent = s.get(f"{sorbrank.service.api}/sorbents/A1").json()
+    assert {accepted[0]["batch_id"], accepted[1]["batch_id"]} <= set(sorbent["batches"])
+    assert len(sorbent["summaries"]) >= 3 and sorbent["isotherms"][0]["pressure_pa"]
 
 
 def check_rankings_against_brute_force(s, service):
@@ -126,10 +126,10 @@ def check_rankings_against_brute_force(s, service):
     newest.sort(key=lambda r: (r["accepted_at"], r["batch_id"]), reverse=True)
     winners = {}
     for r in newest:
-        winners.setdefault((r["material_id"], r["adsorbate"], r["branch"],
+        winners.setdefault((r["sorbent_id"], r["adsorbate"], r["branch"],
                             round(r["temperature_k"])), r)
     ranked = sorted((r for r in winners.values() if r["q_sat_mol_per_kg"] is not None),
-                    key=lambda r: (-r["q_sat_mol_per_kg"], r["material_id"], r["isotherm_id"]))
+                    key=lambda r: (-r["q_sat_mol_per_kg"], r["sorbent_id"], r["isotherm_id"]))
     expected = [(r["batch_id"], r["isotherm_id"]) for r in ranked]
 
     doc = s.get(f"{sorbrank.service.api}/rankings", params={"limit": 1000}).json()
@@ -256,13 +256,13 @@ def test_submit_and_rank_commands(service, tmp_path):
                                    "--adsorbate", "CO2", "--limit", "1000", "--format", "json"],
                             env=env, capture_output=True, text=True, timeout=60)
     assert ranked.returncode == 0, ranked.stderr
-    rows = {r["material_id"]: r for r in json.loads(ranked.stdout)["rows"]}
+    rows = {r["sorbent_id"]: r for r in json.loads(ranked.stdout)["rows"]}
     assert abs(rows["CLI1"]["q_sat_mol_per_kg"] - 7.5) < 0.01
     table = subprocess.run(cli + ["rank", "--url", service.url, "--token", TOKENS["reader"][0],
                                   "--sort", "q_sat_mol_per_kg", "--order", "asc", "--limit", "1000"],
                            env=env, capture_output=True, text=True, timeout=60)
     lines = table.stdout.splitlines()
-    assert lines[0].split()[:2] == ["rank", "material_id"]
+    assert lines[0].split()[:2] == ["rank", "sorbent_id"]
     names = [line.split()[1] for line in lines[2:]]
     assert names.index("CLI2") < names.index("CLI1")
 

@@ -44,8 +44,8 @@ def type_iv_smooth(x, c):
     return bet_loading(x, c) + 15.0 * (1 + np.tanh((x - 0.45) / 0.05)) / 2
 
 
-def n2_isotherm(iso_id, loading, material="m"):
-    return Isotherm(iso_id, material, "N2", 77.35, X * P0_PA, loading,
+def n2_isotherm(iso_id, loading, sorbent="m"):
+    return Isotherm(iso_id, sorbent, "N2", 77.35, X * P0_PA, loading,
                     saturation_pressure_pa=P0_PA)
 
 
@@ -139,10 +139,10 @@ def test_bet_is_skipped_for_other_gases_and_flagged_at_unusual_temperature():
     assert "bet_no_saturation_pressure" in out["flags"][2]
 
 
-def test_bet_area_fills_site_density_on_the_same_material():
-    # one N2 isotherm gives the area; a Langmuir CO2 isotherm of the same material gets
+def test_bet_area_fills_site_density_on_the_same_sorbent():
+    # one N2 isotherm gives the area; a Langmuir CO2 isotherm of the same sorbent gets
     # sites per nm2 = sites per g / (area in nm2 per g)
-    n2 = n2_isotherm("n2", type_ii(X, 100.0), material="mat")
+    n2 = n2_isotherm("n2", type_ii(X, 100.0), sorbent="mat")
     p = np.geomspace(1e2, 1e6, 12)
     co2 = Isotherm("co2", "mat", "CO2", 298.0, p, 3.0 * 1e-5 * p / (1 + 1e-5 * p))
     batch, packed = batch_of([n2, co2])

@@ -166,7 +166,7 @@ def test_no_capacity_is_borrowed_for_a_multilayer_isotherm():
     assert "no_saturation_capacity" in out["flags"][0]
 
 
-def test_area_for_sites_is_the_mean_bet_area_of_the_material_and_a_given_area_wins():
+def test_area_for_sites_is_the_mean_bet_area_of_the_sorbent_and_a_given_area_wins():
     # the rule written out per row, against the one-pass grouping in
     # surface_area_for_sites, on random batches crowded with repeats and gaps
     from types import SimpleNamespace
@@ -176,16 +176,16 @@ def test_area_for_sites_is_the_mean_bet_area_of_the_material_and_a_given_area_wi
     rng = np.random.default_rng(20261202)
     for _ in range(100):
         n = int(rng.integers(0, 40))
-        materials = [f"m{int(v)}" for v in rng.integers(0, 6, n)]
+        sorbents = [f"m{int(v)}" for v in rng.integers(0, 6, n)]
         given = np.where(rng.random(n) < 0.3, rng.uniform(-5.0, 3000.0, n), np.nan)
         bet = np.where(rng.random(n) < 0.5, rng.uniform(1.0, 3000.0, n), np.nan)
         area, source = surface_area_for_sites(
-            SimpleNamespace(surface_area_m2_per_g=given, material_ids=materials), bet)
+            SimpleNamespace(surface_area_m2_per_g=given, sorbent_ids=sorbents), bet)
         for i in range(n):
             if np.isfinite(given[i]) and given[i] > 0:
                 assert (area[i], source[i]) == (given[i], "given")
                 continue
-            same = [bet[j] for j in range(n) if materials[j] == materials[i] and np.isfinite(bet[j])]
+            same = [bet[j] for j in range(n) if sorbents[j] == sorbents[i] and np.isfinite(bet[j])]
             if same:
                 assert area[i] == pytest.approx(np.mean(same), rel=1e-13) and source[i] == "bet"
             else:

@@ -14,7 +14,7 @@ from scipy import integrate, optimize
 
 from test_metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Isotherm, MixtureRequest
-from sorbrank.worker.metrics import material_metrics
+from sorbrank.worker.metrics import sorbent_metrics
 from sorbrank.worker.metrics.iast import spreading_pressure
 from sorbrank.worker.models import CATALOGUE
 
@@ -54,11 +54,11 @@ def mixture_rows(components, mixtures):
         fit_list.append((model_id, params))
     batch, packed = batch_of(isos, mixtures=mixtures)
     fits, selection = stack_fits(fit_list)
-    return [r for r in material_metrics(packed, fits, selection, batch) if r["kind"] == "iast"]
+    return [r for r in sorbent_metrics(packed, fits, selection, batch) if r["kind"] == "iast"]
 
 
-def request(y1, p_total, material="m", gases=("CO2", "N2")):
-    return MixtureRequest(material, list(gases), [y1, 1 - y1], p_total, T_K)
+def request(y1, p_total, sorbent="m", gases=("CO2", "N2")):
+    return MixtureRequest(sorbent, list(gases), [y1, 1 - y1], p_total, T_K)
 
 
 @pytest.mark.parametrize("y1,p_total", [(0.15, 1e5), (0.5, 1e4), (0.9, 1e6), (0.02, 3e5)])
@@ -122,20 +122,20 @@ def test_numerical_spreading_pressure_equals_the_analytic_langmuir_integral():
     np.testing.assert_allclose(numeric, params[:, 0] * np.log1p(params[:, 1] * p), rtol=1e-10)
 
 
-def test_extrapolation_missing_components_and_all_materials():
+def test_extrapolation_missing_components_and_all_sorbents():
     q_sat, b1, b2 = 4.0, 3e-5, 2e-6
     comps = [("CO2", "langmuir", [q_sat, b1], lambda p: langmuir(p, q_sat, b1)),
              ("N2", "langmuir", [q_sat, b2], lambda p: langmuir(p, q_sat, b2))]
     mixtures = [
         request(0.5, 5e7),                         # p_N2^0 far above 2 MPa measured
-        request(0.5, 1e5, material=None),          # every material with both gases
-        request(0.5, 1e5, gases=("CO2", "CH4")),   # no CH4 isotherm for material m
+        request(0.5, 1e5, sorbent=None),          # every sorbent with both gases
+        request(0.5, 1e5, gases=("CO2", "CH4")),   # no CH4 isotherm for sorbent m
         MixtureRequest("m", ["CO2", "N2"], [0.7, 0.7], 1e5, T_K),  # fractions do not sum to 1
     ]
     rows = mixture_rows(comps, mixtures)
     assert len(rows) == 4
     assert "iast_extrapolated" in rows[0]["flags"]
-    assert rows[1]["material_id"] == "m" and rows[1]["flags"] == []
+    assert rows[1]["sorbent_id"] == "m" and rows[1]["flags"] == []
     assert "iast_missing_component" in rows[2]["flags"]
     assert np.isnan(rows[2]["selectivity"])
     assert "iast_invalid_request" in rows[3]["flags"]
@@ -153,27 +153,27 @@ def test_three_equal_capacity_langmuir_components_equal_extended_langmuir():
     batch, packed = batch_of(isos, mixtures=[MixtureRequest("m", ["CO2", "CH4", "N2"],
                                                             list(y), p_total, T_K)])
     fits, selection = stack_fits(fit_list)
-    row = [r for r in material_metrics(packed, fits, selection, batch) if r["kind"] == "iast"][0]
+    row = [r for r in sorbent_metrics(packed, fits, selection, batch) if r["kind"] == "iast"][0]
     q_ext = q_sat * b * y * p_total / (1 + np.sum(b * y * p_total))
     np.testing.assert_allclose(row["loadings_mol_per_kg"], q_ext, rtol=1e-8)
 
 
-def test_request_for_every_material_uses_each_material_s_first_isotherm_per_gas():
-    # interleaved materials, a repeated CO2 isotherm, one material without N2 and one
-    # at another temperature: a row per material holding every component near the
+def test_request_for_every_sorbent_uses_each_sorbent_s_first_isotherm_per_gas():
+    # interleaved sorbents, a repeated CO2 isotherm, one sorbent without N2 and one
+    # at another temperature: a row per sorbent holding every component near the
     # request's temperature, sorted, from the batch's first isotherm of each gas
-    # (the rows are grouped per material in one pass)
-    layout = [  # (isotherm id, material, gas, temperature, affinity)
+    # (the rows are grouped per sorbent in one pass)
+    layout = [  # (isotherm id, sorbent, gas, temperature, affinity)
         ("b-co2", "b", "CO2", T_K, 3e-5), ("a-n2", "a", "N2", T_K, 2e-6),
         ("a-co2-1", "a", "CO2", T_K, 3e-5), ("c-co2", "c", "CO2", T_K, 3e-5),
         ("a-co2-2", "a", "CO2", T_K, 9e-5), ("b-n2", "b", "N2", T_K, 2e-6),
         ("d-co2", "d", "CO2", 350.0, 3e-5), ("d-n2", "d", "N2", 350.0, 2e-6),
     ]
     isos = [Isotherm(i, m, gas, t, P_PA, langmuir(P_PA, 4.0, b)) for i, m, gas, t, b in layout]
-    batch, packed = batch_of(isos, mixtures=[request(0.15, 1e5, material=None)])
+    batch, packed = batch_of(isos, mixtures=[request(0.15, 1e5, sorbent=None)])
     fits, selection = stack_fits([("langmuir", [4.0, b]) for *_, b in layout])
-    rows = [r for r in material_metrics(packed, fits, selection, batch) if r["kind"] == "iast"]
-    assert [(r["material_id"], r["isotherm_ids"]) for r in rows] == [
+    rows = [r for r in sorbent_metrics(packed, fits, selection, batch) if r["kind"] == "iast"]
+    assert [(r["sorbent_id"], r["isotherm_ids"]) for r in rows] == [
         ("a", ["a-co2-1", "a-n2"]), ("b", ["b-co2", "b-n2"])]
     # equal capacities: IAST = extended Langmuir, selectivity b1 / b2 (Myers & Prausnitz 1965)
     assert rows[0]["selectivity"] == pytest.approx(3e-5 / 2e-6, rel=1e-8)

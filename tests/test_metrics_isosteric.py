@@ -13,7 +13,7 @@ from scipy import constants
 
 from test_metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Isotherm
-from sorbrank.worker.metrics import material_metrics
+from sorbrank.worker.metrics import sorbent_metrics
 from sorbrank.worker.metrics.isosteric import clausius_clapeyron
 
 Q_J_PER_MOL = 28_000.0   # invented truth
@@ -26,11 +26,11 @@ def affinity(t_k):
     return B0_PER_PA * np.exp(Q_J_PER_MOL / (constants.R * t_k))
 
 
-def langmuir_rows(temperatures, material="m", gas="CO2"):
+def langmuir_rows(temperatures, sorbent="m", gas="CO2"):
     isos, fits = [], []
     for k, t in enumerate(temperatures):
         b = affinity(t)
-        isos.append(Isotherm(f"{material}-{k}", material, gas, t, P_PA,
+        isos.append(Isotherm(f"{sorbent}-{k}", sorbent, gas, t, P_PA,
                              Q_SAT * b * P_PA / (1 + b * P_PA)))
         fits.append(("langmuir", [Q_SAT, b]))
     return isos, fits
@@ -39,7 +39,7 @@ def langmuir_rows(temperatures, material="m", gas="CO2"):
 def qst_rows(isos, fit_list):
     batch, packed = batch_of(isos)
     fits, selection = stack_fits(fit_list)
-    return [r for r in material_metrics(packed, fits, selection, batch)
+    return [r for r in sorbent_metrics(packed, fits, selection, batch)
             if r["kind"] == "isosteric_heat"]
 
 
@@ -90,15 +90,15 @@ def test_regression_standard_error_matches_scipy_linregress():
 
 
 def test_single_temperature_and_no_model_give_no_row_or_flags():
-    isos, fit_list = langmuir_rows((298.15,), material="one")
-    isos2, fit_list2 = langmuir_rows((273.15, 298.15), material="gap")
+    isos, fit_list = langmuir_rows((298.15,), sorbent="one")
+    isos2, fit_list2 = langmuir_rows((273.15, 298.15), sorbent="gap")
     fit_list2[1] = (None, None)  # the second isotherm has no selected model
     assert qst_rows(isos + isos2, fit_list + fit_list2) == []
 
 
 def test_cryogenic_isotherm_is_not_combined_with_ambient_ones():
     # Clausius-Clapeyron needs a narrow temperature span; a 77 K isotherm of the
-    # same material and gas must not enter the ambient group (common practice).
+    # same sorbent and gas must not enter the ambient group (common practice).
     from sorbrank.worker.metrics.isosteric import _temperature_window
     t = np.array([298.15, 77.35, 273.15, 323.15])
     rows = _temperature_window(np.arange(4), t)

@@ -6,7 +6,7 @@ import numpy as np
 
 from test_metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Conditions, Isotherm, MixtureRequest
-from sorbrank.worker.metrics import material_metrics, summarize
+from sorbrank.worker.metrics import sorbent_metrics, summarize
 from sorbrank.worker.models import CATALOGUE
 
 P0_PA = 1e6
@@ -41,7 +41,7 @@ def test_every_model_and_bad_parameters_flow_through_without_raising():
     fits, selection = stack_fits(fit_list)
 
     out = summarize(packed, fits, selection, batch)
-    rows = material_metrics(packed, fits, selection, batch)
+    rows = sorbent_metrics(packed, fits, selection, batch)
 
     assert set(PARAMS) <= set(CATALOGUE)
     for name, column in out.items():
@@ -50,11 +50,11 @@ def test_every_model_and_bad_parameters_flow_through_without_raising():
     assert np.isnan(out["q_sat_mol_per_kg"][-2])
     kinds = {r["kind"] for r in rows}
     assert {"isosteric_heat", "iast", "temperature_swing"} <= kinds
-    # each material's two "gases" share one fitted model here, so IAST must give x = y
+    # each sorbent's two "gases" share one fitted model here, so IAST must give x = y
     # (a gas mixed with itself) wherever the spreading pressure exists
     for r in rows:
-        if r["kind"] == "iast" and r["material_id"] in PARAMS and r["total_pressure_pa"] > 0:
-            if r["material_id"] == "temkin":   # negative loading at low p: no spreading pressure
+        if r["kind"] == "iast" and r["sorbent_id"] in PARAMS and r["total_pressure_pa"] > 0:
+            if r["sorbent_id"] == "temkin":   # negative loading at low p: no spreading pressure
                 assert "iast_no_solution" in r["flags"]
             else:
                 np.testing.assert_allclose(r["adsorbed_mole_fractions"], [0.15, 0.85], rtol=1e-9)

@@ -53,10 +53,10 @@ def selection_of(best, model_ids=None) -> Selection:
                      delta_runner_up=np.full(n, np.nan), excluded={})
 
 
-def langmuir_isotherm(iso_id, material, gas, temperature_k, q_sat, affinity, pressure_pa,
+def langmuir_isotherm(iso_id, sorbent, gas, temperature_k, q_sat, affinity, pressure_pa,
                       **kw) -> Isotherm:
     p = np.asarray(pressure_pa, dtype=float)
-    return Isotherm(iso_id, material, gas, temperature_k, p,
+    return Isotherm(iso_id, sorbent, gas, temperature_k, p,
                     q_sat * affinity * p / (1 + affinity * p), **kw)
 
 

@@ -7,7 +7,7 @@ import pytest
 
 from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
 from sorbrank.worker.isotherm import Conditions
-from sorbrank.worker.metrics import material_metrics, summarize
+from sorbrank.worker.metrics import sorbent_metrics, summarize
 
 
 def langmuir(p, q_sat, b):
@@ -62,23 +62,23 @@ def test_temperature_swing_row_uses_each_temperature_s_fit():
     batch, packed = batch_of([cold, hot, other], conditions=cond)
     fits, selection = stack_fits([("langmuir", [5.0, 4e-5]), ("langmuir", [5.0, 5e-6]),
                                   ("langmuir", [5.0, 4e-5])])
-    rows = [r for r in material_metrics(packed, fits, selection, batch)
+    rows = [r for r in sorbent_metrics(packed, fits, selection, batch)
             if r["kind"] == "temperature_swing"]
-    assert len(rows) == 1 and rows[0]["material_id"] == "m"
+    assert len(rows) == 1 and rows[0]["sorbent_id"] == "m"
     expected = langmuir(1e5, 5.0, 4e-5) - langmuir(1e5, 5.0, 5e-6)
     assert rows[0]["working_capacity_mol_per_kg"] == pytest.approx(expected, rel=1e-12)
     assert rows[0]["working_capacity_mol_per_kg"] > 0
     assert rows[0]["flags"] == []
 
 
-def test_temperature_swing_rows_take_each_material_s_first_isotherm_at_each_temperature():
-    # interleaved materials and gases, repeats at both temperatures: one row per
-    # (material, gas) having both, in sorted order, each from the batch's first
+def test_temperature_swing_rows_take_each_sorbent_s_first_isotherm_at_each_temperature():
+    # interleaved sorbents and gases, repeats at both temperatures: one row per
+    # (sorbent, gas) having both, in sorted order, each from the batch's first
     # isotherm at that temperature (the rows are grouped in one pass)
     cond = Conditions(adsorption_pressure_pa=1e5, desorption_pressure_pa=1e5,
                       adsorption_temperature_k=298.0, desorption_temperature_k=373.0)
     p = np.geomspace(1e3, 1e6, 10)
-    layout = [  # (isotherm id, material, gas, temperature, affinity)
+    layout = [  # (isotherm id, sorbent, gas, temperature, affinity)
         ("b-cold-1", "b", "CO2", 298.0, 4e-5), ("a-hot-1", "a", "CO2", 373.0, 5e-6),
         ("a-cold-1", "a", "CO2", 298.0, 3e-5), ("b-hot-1", "b", "CO2", 373.0, 6e-6),
         ("a-cold-2", "a", "CO2", 298.0, 9e-5), ("a-hot-2", "a", "CO2", 373.0, 9e-6),
@@ -88,9 +88,9 @@ def test_temperature_swing_rows_take_each_material_s_first_isotherm_at_each_temp
     isotherms = [langmuir_isotherm(i, m, gas, t, 5.0, b, p) for i, m, gas, t, b in layout]
     batch, packed = batch_of(isotherms, conditions=cond)
     fits, selection = stack_fits([("langmuir", [5.0, b]) for *_, b in layout])
-    rows = [r for r in material_metrics(packed, fits, selection, batch)
+    rows = [r for r in sorbent_metrics(packed, fits, selection, batch)
             if r["kind"] == "temperature_swing"]
-    assert [(r["material_id"], r["adsorbate"], r["isotherm_ids"]) for r in rows] == [
+    assert [(r["sorbent_id"], r["adsorbate"], r["isotherm_ids"]) for r in rows] == [
         ("a", "CH4", ["a-ch4-cold", "a-ch4-hot"]),
         ("a", "CO2", ["a-cold-1", "a-hot-1"]),
         ("b", "CO2", ["b-cold-1", "b-hot-1"]),

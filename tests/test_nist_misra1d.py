@@ -77,7 +77,7 @@ def test_misra1d_through_the_command_line(tmp_path):
     path = tmp_path / "misra1d.csv"
     with path.open("w", newline="") as fh:
         w = csv.writer(fh)
-        w.writerow(["isotherm_id", "material_id", "adsorbate", "temperature_k",
+        w.writerow(["isotherm_id", "sorbent_id", "adsorbate", "temperature_k",
                     "pressure", "loading", "pressure_unit", "loading_unit"])
         for x, y in zip(X, Y):
             # float repr round-trips: the file holds exactly the NIST values

@@ -172,8 +172,8 @@ def test_embedded_service_metrics_logs_and_a_file_uri_store(tmp_path, processes)
 
 # -- metrics computed from a store, checked against its status files -------------------
 
-def batch(materials, temperatures=(298.15,)):
-    return read_batch(csv_batch([isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(materials)
+def batch(sorbents, temperatures=(298.15,)):
+    return read_batch(csv_batch([isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(sorbents)
                                  for t in temperatures]), "csv", batch_label="ops")
 
 

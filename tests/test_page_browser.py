@@ -27,7 +27,7 @@ ARTIFACTS = ROOT / "test-artifacts"
 WAIT_S = 60  # upper bound for any page or image to appear; never asserted on
 R_J_PER_MOL_K = 8.314462618
 # markup in an id must show up as text, never as an element
-AWKWARD_MATERIAL = 'ESC<b>1&"x'
+AWKWARD_SORBENT = 'ESC<b>1&"x'
 CHROMIUM_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
                   "--no-first-run", "--disable-background-networking",
                   "--disable-component-update", "--disable-sync", "--window-size=1366,900")
@@ -76,9 +76,9 @@ def server(tmp_path, processes):
                     PYTHONPATH=str(ROOT))
     _, url = start_server(env, tmp_path / "logs", processes)
     api = url + "/api/v1"
-    gas = [isotherm(material, q_sat, b * math.exp(30_000 / R_J_PER_MOL_K * (1 / t - 1 / 298.15)),
+    gas = [isotherm(sorbent, q_sat, b * math.exp(30_000 / R_J_PER_MOL_K * (1 / t - 1 / 298.15)),
                     temperature_k=t)
-           for material, q_sat, b in (("PAGE-A", 4.0, 0.05), (AWKWARD_MATERIAL, 2.0, 0.2))
+           for sorbent, q_sat, b in (("PAGE-A", 4.0, 0.05), (AWKWARD_SORBENT, 2.0, 0.2))
            for t in (273.15, 298.15, 323.15)]
     bodies = [((ROOT / "sample_batches" / "b06_n2_77k_relative.csv").read_bytes(), "text/csv"),
               (json_batch(gas, label="page-gas"), "application/json")]
@@ -114,7 +114,7 @@ def image_loaded(driver, img) -> bool:
         "return arguments[0].complete && arguments[0].naturalWidth > 0", img))
 
 
-def test_overview_filter_sort_and_material_page(server, browser):
+def test_overview_filter_sort_and_sorbent_page(server, browser):
     from selenium.webdriver.common.by import By
     from selenium.webdriver.support.ui import Select, WebDriverWait
 
@@ -138,7 +138,7 @@ def test_overview_filter_sort_and_material_page(server, browser):
     load_fresh(browser, form.find_element(By.CSS_SELECTOR, "button[type=submit]").click, wait)
     assert "adsorbate=CO2" in browser.current_url
     assert column_texts(browser, "adsorbate") == ["CO2"] * 6
-    assert sorted(set(column_texts(browser, "material_id"))) == sorted(["PAGE-A", AWKWARD_MATERIAL])
+    assert sorted(set(column_texts(browser, "sorbent_id"))) == sorted(["PAGE-A", AWKWARD_SORBENT])
 
     # sort: a header click orders by temperature, highest first, keeping the filter
     header = browser.find_element(By.CSS_SELECTOR, "#rankings th.col-temperature_k a")
@@ -152,7 +152,7 @@ def test_overview_filter_sort_and_material_page(server, browser):
     # an id full of markup is shown as text and creates no element
     assert not browser.find_elements(By.CSS_SELECTOR, "#rankings tbody b")
 
-    # the material page: its plots load, its fit table marks the selected model
+    # the sorbent page: its plots load, its fit table marks the selected model
     link = browser.find_element(By.LINK_TEXT, "PAGE-A")
     load_fresh(browser, link.click, wait)
     assert "PAGE-A" in browser.find_element(By.TAG_NAME, "h1").text
@@ -163,12 +163,12 @@ def test_overview_filter_sort_and_material_page(server, browser):
     selected = browser.find_elements(By.CSS_SELECTOR, "table.fits tr.selected")
     assert len(selected) == 3  # one per CO2 isotherm
     assert all("selected" in row.text.lower() for row in selected)
-    browser.save_screenshot(str(ARTIFACTS / "page-material.png"))
+    browser.save_screenshot(str(ARTIFACTS / "page-sorbent.png"))
 
-    # the awkward material's page works through its URL-encoded id
+    # the awkward sorbent's page works through its URL-encoded id
     browser.get(server + "/?adsorbate=CO2")
-    load_fresh(browser, browser.find_element(By.LINK_TEXT, AWKWARD_MATERIAL).click, wait)
-    assert AWKWARD_MATERIAL in browser.find_element(By.TAG_NAME, "h1").text
+    load_fresh(browser, browser.find_element(By.LINK_TEXT, AWKWARD_SORBENT).click, wait)
+    assert AWKWARD_SORBENT in browser.find_element(By.TAG_NAME, "h1").text
     assert not browser.find_elements(By.CSS_SELECTOR, "h1 b")
     plot = browser.find_element(By.CSS_SELECTOR, "img.isotherm-plot")
     wait.until(lambda d: image_loaded(d, plot))
@@ -180,5 +180,5 @@ def test_bad_filter_gives_an_html_error_page(server, browser):
     browser.get(server + "/?temperature_k=lukewarm")
     assert "400" in browser.find_element(By.TAG_NAME, "h1").text
     assert browser.find_element(By.LINK_TEXT, "Back to the rankings")
-    resp = requests.get(server + "/materials/NOT-THERE", timeout=10)
+    resp = requests.get(server + "/sorbents/NOT-THERE", timeout=10)
     assert resp.status_code == 404 and resp.headers["Content-Type"].startswith("text/html")

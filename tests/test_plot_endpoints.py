@@ -1,7 +1,7 @@
 """The plot endpoints, and the HTML pages under bearer tokens, against a real
 ``sorbrank serve`` (embedded mode) over loopback HTTP.
 
-Two small batches are posted once: CO2 on two invented materials at three
+Two small batches are posted once: CO2 on two invented sorbents at three
 temperatures (so an isosteric heat exists) plus N2 at 298 K, and the first two
 N2 77 K isotherms of the sample campaign (so a BET range exists). Every plot
 is then checked against what the store holds for the same isotherm.
@@ -32,12 +32,12 @@ ISOTHERM_PNG_PX = (768, 672)
 def gas_batch() -> bytes:
     """CO2 with an affinity following b(T) = b(298 K) exp(Q/R (1/T - 1/298 K))."""
     isotherms = []
-    for material, q_sat, b298_per_kpa, heat_j_per_mol in (("PLOT-A", 5.0, 0.08, 30_000.0),
+    for sorbent, q_sat, b298_per_kpa, heat_j_per_mol in (("PLOT-A", 5.0, 0.08, 30_000.0),
                                                           ("PLOT-B", 3.0, 0.02, 22_000.0)):
         for t_k in (273.15, 298.15, 323.15):
             b = b298_per_kpa * math.exp(heat_j_per_mol / R_J_PER_MOL_K * (1 / t_k - 1 / 298.15))
-            isotherms.append(isotherm(material, q_sat, b, temperature_k=t_k))
-        isotherms.append(isotherm(material, 0.6 * q_sat, b298_per_kpa / 20, adsorbate="N2"))
+            isotherms.append(isotherm(sorbent, q_sat, b, temperature_k=t_k))
+        isotherms.append(isotherm(sorbent, 0.6 * q_sat, b298_per_kpa / 20, adsorbate="N2"))
     return json_batch(isotherms, label="plot-gas")
 
 
@@ -123,7 +123,7 @@ def assert_problem(resp, status: int) -> dict:
 def test_isotherm_svg_draws_the_stored_points_and_selected_fit(service, stored):
     from sorbrank.worker.models import CATALOGUE
 
-    row = pick(stored, material_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
+    row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
     svg = svg_of(stored["reader"].get(plot_url(service, row["isotherm_id"]), timeout=60))
     found = groups(svg)
     for gid in ("data", "fit-selected", "fit-runner-up", "residuals", "residuals-zero"):
@@ -137,7 +137,7 @@ def test_isotherm_svg_draws_the_stored_points_and_selected_fit(service, stored):
 
 
 def test_log_pressure_changes_the_axis_not_the_series(service, stored):
-    row = pick(stored, material_id="PLOT-B", adsorbate="CO2", temperature_k=273.15)
+    row = pick(stored, sorbent_id="PLOT-B", adsorbate="CO2", temperature_k=273.15)
     url = plot_url(service, row["isotherm_id"])
     linear = stored["reader"].get(url, timeout=60)
     logarithmic = stored["reader"].get(url, params={"log_pressure": "true"}, timeout=60)
@@ -148,7 +148,7 @@ def test_log_pressure_changes_the_axis_not_the_series(service, stored):
 
 
 def test_langmuir_linear_svg(service, stored):
-    row = pick(stored, material_id="PLOT-A", adsorbate="CO2", temperature_k=273.15)
+    row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=273.15)
     svg = svg_of(stored["reader"].get(plot_url(service, row["isotherm_id"]),
                                       params={"kind": "langmuir-linear"}, timeout=60))
     found = groups(svg)
@@ -174,7 +174,7 @@ def test_bet_svg_shows_the_stored_range_and_area(service, stored):
 def test_isotherm_png_is_a_real_image(service, stored):
     from PIL import Image
 
-    row = pick(stored, material_id="PLOT-A", adsorbate="CO2", temperature_k=323.15)
+    row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=323.15)
     resp = stored["reader"].get(plot_url(service, row["isotherm_id"]),
                                 params={"format": "png"}, timeout=60)
     assert resp.status_code == 200 and resp.headers["Content-Type"] == "image/png"
@@ -192,12 +192,12 @@ def test_isotherm_png_is_a_real_image(service, stored):
 # -- isosteric heat ----------------------------------------------------------------
 
 def test_qst_svg_for_a_gas_at_three_temperatures(service, stored):
-    resp = stored["reader"].get(f"{sorbrank.service.api}/materials/PLOT-A/qst-plot",
+    resp = stored["reader"].get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
                                 params={"adsorbate": "CO2"}, timeout=60)
     found = groups(svg_of(resp))
     assert {"qst-0", "qst-0-errorbars"} <= set(found)
     assert "qst-1" not in found  # one gas asked for, one curve drawn
-    png = stored["reader"].get(f"{sorbrank.service.api}/materials/PLOT-A/qst-plot",
+    png = stored["reader"].get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
                                params={"format": "png"}, timeout=60)
     assert png.status_code == 200 and png.content[:8] == PNG_SIGNATURE
 
@@ -206,16 +206,16 @@ def test_qst_svg_for_a_gas_at_three_temperatures(service, stored):
 
 def test_unknown_things_are_404(service, stored):
     reader = stored["reader"]
-    row = pick(stored, material_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
+    row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
     doc = assert_problem(reader.get(plot_url(service, "no-such-isotherm"), timeout=10), 404)
     assert "no-such-isotherm" in doc["detail"]
     # a well-formed batch id that holds no such isotherm
     other_batch = stored["batch_ids"][1]
     assert_problem(reader.get(plot_url(service, row["isotherm_id"]),
                               params={"batch_id": other_batch}, timeout=10), 404)
-    assert_problem(reader.get(f"{sorbrank.service.api}/materials/NO-SUCH/qst-plot", timeout=10), 404)
+    assert_problem(reader.get(f"{sorbrank.service.api}/sorbents/NO-SUCH/qst-plot", timeout=10), 404)
     # N2 was measured at one temperature only: no isosteric heat
-    assert_problem(reader.get(f"{sorbrank.service.api}/materials/PLOT-A/qst-plot",
+    assert_problem(reader.get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
                               params={"adsorbate": "N2"}, timeout=10), 404)
 
 
@@ -223,19 +223,19 @@ def test_unknown_things_are_404(service, stored):
                                     {"format": ""}, {"log_pressure": "sometimes"},
                                     {"batch_id": "../../etc"}])
 def test_bad_parameters_are_400(service, stored, params):
-    row = pick(stored, material_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
+    row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
     doc = assert_problem(stored["reader"].get(plot_url(service, row["isotherm_id"]),
                                               params=params, timeout=10), 400)
     assert doc["parameter"] == next(iter(params))
 
 
 def test_bad_qst_format_is_400(service, stored):
-    assert_problem(stored["reader"].get(f"{sorbrank.service.api}/materials/PLOT-A/qst-plot",
+    assert_problem(stored["reader"].get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
                                         params={"format": "jpeg"}, timeout=10), 400)
 
 
 def test_bet_without_saturation_pressure_is_422(service, stored):
-    row = pick(stored, material_id="PLOT-B", adsorbate="N2", temperature_k=298.15)
+    row = pick(stored, sorbent_id="PLOT-B", adsorbate="N2", temperature_k=298.15)
     doc = assert_problem(stored["reader"].get(plot_url(service, row["isotherm_id"]),
                                               params={"kind": "bet"}, timeout=10), 422)
     assert "saturation pressure" in doc["detail"]
@@ -244,9 +244,9 @@ def test_bet_without_saturation_pressure_is_422(service, stored):
 def test_plots_need_the_read_scope(service, stored):
     import requests
 
-    row = pick(stored, material_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
+    row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
     assert_problem(requests.get(plot_url(service, row["isotherm_id"]), timeout=10), 401)
-    assert_problem(requests.get(f"{sorbrank.service.api}/materials/PLOT-A/qst-plot", timeout=10), 401)
+    assert_problem(requests.get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot", timeout=10), 401)
 
 
 # -- the HTML pages when tokens are configured --------------------------------------
@@ -267,10 +267,10 @@ def test_pages_with_a_read_token(service, stored):
     assert page.status_code == 200 and page.headers["Content-Type"].startswith("text/html")
     assert "PLOT-A" in page.text and "PLOT-B" in page.text
     assert "TG31-" not in page.text  # the N2 77 K rows are filtered out
-    material = reader.get(service.url + "/materials/PLOT-A", timeout=30)
-    assert material.status_code == 200
-    assert "qst-plot" in material.text and "/plot?" in material.text
-    for path, status in (("/materials/NO-SUCH", 404), ("/?temperature_k=warm", 400),
+    sorbent = reader.get(service.url + "/sorbents/PLOT-A", timeout=30)
+    assert sorbent.status_code == 200
+    assert "qst-plot" in sorbent.text and "/plot?" in sorbent.text
+    for path, status in (("/sorbents/NO-SUCH", 404), ("/?temperature_k=warm", 400),
                          ("/?sort=colour", 400), ("/?order=sideways", 400),
                          ("/?offset=-3", 400)):
         resp = reader.get(service.url + path, timeout=30)

@@ -86,7 +86,7 @@ def make_record(p_pa, q):
     best = max(fits, key=lambda f: f["akaike_weight"])
     slope, intercept = np.polyfit(1.0 / p_pa, 1.0 / q, 1)
     return {
-        "isotherm_id": "iso-1", "material_id": "MAT-A", "adsorbate": "CO2",
+        "isotherm_id": "iso-1", "sorbent_id": "MAT-A", "adsorbate": "CO2",
         "temperature_k": 298.15, "n_points": int(q.size), "best_model": best["model"],
         "ambiguous": False, "flags": [], "fits": [failed, lang, dsl],
         "linearized_langmuir": {"q_sat": 1.0 / intercept, "affinity": intercept / slope},
@@ -393,14 +393,14 @@ def test_bet_plot_without_valid_range_says_so(summary):
 # -- isosteric heat ----------------------------------------------------------
 
 QST_ROWS = [
-    {"material_id": "MAT-A", "adsorbate": "CO2", "qst_loading_mol_per_kg": [0.5, 1.0, 1.5, 2.0],
+    {"sorbent_id": "MAT-A", "adsorbate": "CO2", "qst_loading_mol_per_kg": [0.5, 1.0, 1.5, 2.0],
      "qst_j_per_mol": [32000.0, 30500.0, 29000.0, 28200.0],
      "qst_stderr_j_per_mol": [900.0, None, 700.0, 650.0]},
-    {"material_id": "MAT-B", "adsorbate": "CO2", "qst_loading_mol_per_kg": [0.5, 1.0, None, 2.0],
+    {"sorbent_id": "MAT-B", "adsorbate": "CO2", "qst_loading_mol_per_kg": [0.5, 1.0, None, 2.0],
      "qst_j_per_mol": [24000.0, 23500.0, 23000.0, float("nan")]},
-    {"material_id": "MAT-C", "adsorbate": "N2", "qst_loading_mol_per_kg": None,
+    {"sorbent_id": "MAT-C", "adsorbate": "N2", "qst_loading_mol_per_kg": None,
      "qst_j_per_mol": None},
-    {"material_id": "MAT-D", "adsorbate": "CH4", "qst_loading_mol_per_kg": [0.2, 0.4],
+    {"sorbent_id": "MAT-D", "adsorbate": "CH4", "qst_loading_mol_per_kg": [0.2, 0.4],
      "qst_j_per_mol": [17000.0, 16500.0]},
 ]
 
@@ -474,7 +474,7 @@ def input_file(monkeypatch, tmp_path, dsl_case):
     p_pa, q, _ = dsl_case
     monkeypatch.chdir(tmp_path)
     x = np.linspace(0.02, 0.3, 8)
-    lines = ["isotherm_id,material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
     lines += [f"iso-1,MAT-A,CH4,298.15,{float(p)!r},{float(v)!r},Pa,mol/kg" for p, v in zip(p_pa, q)]
     lines += [f"iso-2,MAT-B,N2,77.35,{float(v)!r},{float(bet_eq(v, 8.0, 120.0))!r},relative,mol/kg"
               for v in x]
@@ -529,7 +529,7 @@ def test_plot_command_end_to_end_with_real_intake_and_pipeline(tmp_path):
     p_pa = np.geomspace(500.0, 2.0e5, 14)
     q = langmuir_eq(p_pa, 4.0, 2e-5)
     lines = ["# pressure_unit: Pa", "# loading_unit: mol/kg",
-             "isotherm_id,material_id,adsorbate,temperature_k,pressure,loading"]
+             "isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading"]
     lines += [f"L1,MAT-L,CO2,298.15,{float(p)!r},{float(v)!r}" for p, v in zip(p_pa, q)]
     source = tmp_path / "one.csv"
     source.write_text("\n".join(lines) + "\n")

@@ -72,7 +72,7 @@ def read_points(path: Path):
         doc = json.loads(path.read_text())
         for item in doc["isotherms"]:
             rec = out[item["isotherm_id"]]
-            rec.update(material_id=item["material_id"], adsorbate=item["adsorbate"],
+            rec.update(sorbent_id=item["sorbent_id"], adsorbate=item["adsorbate"],
                        temperature_k=item["temperature_k"],
                        p_unit=item.get("pressure_unit", doc["defaults"]["pressure_unit"]),
                        q_unit=item.get("loading_unit", doc["defaults"]["loading_unit"]),
@@ -88,7 +88,7 @@ def read_points(path: Path):
         rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
     for row in rows:
         rec = out[row["isotherm_id"]]
-        rec.update(material_id=row["material_id"], adsorbate=row["adsorbate"],
+        rec.update(sorbent_id=row["sorbent_id"], adsorbate=row["adsorbate"],
                    temperature_k=float(row["temperature_k"]),
                    p_unit=row.get("pressure_unit") or meta["pressure_unit"],
                    q_unit=row.get("loading_unit") or meta["loading_unit"])
@@ -142,19 +142,19 @@ def good_files(truth):
 
 def test_campaign_shape(good_files, truth):
     gases = defaultdict(set)
-    materials_77k = set()
+    sorbents_77k = set()
     for isotherms in good_files.values():
         for iso_id, rec in isotherms.items():
-            assert ID_PATTERN.match(iso_id) and ID_PATTERN.match(rec["material_id"]), iso_id
+            assert ID_PATTERN.match(iso_id) and ID_PATTERN.match(rec["sorbent_id"]), iso_id
             if rec["temperature_k"] < 100:
-                materials_77k.add(rec["material_id"])
+                sorbents_77k.add(rec["sorbent_id"])
             else:
-                gases[rec["material_id"]].add((rec["adsorbate"], rec["temperature_k"]))
+                gases[rec["sorbent_id"]].add((rec["adsorbate"], rec["temperature_k"]))
     assert 220 <= len(gases) <= 260
-    assert len(gases) == truth["campaign"]["material_count"]
+    assert len(gases) == truth["campaign"]["sorbent_count"]
     wanted = {(g, t) for g in ("CO2", "N2", "CH4") for t in (273.15, 298.15, 323.15)}
     assert all(found == wanted for found in gases.values())
-    assert 50 <= len(materials_77k) <= 70 and materials_77k <= set(gases)
+    assert 50 <= len(sorbents_77k) <= 70 and sorbents_77k <= set(gases)
     families = {m.split("-")[1] for m in gases}
     assert len(families) >= 3
 
@@ -248,12 +248,12 @@ def test_toth_spreading_pressure_matches_quadrature(gen):
 def test_isosteric_heats_match_clausius_clapeyron(truth, gen):
     # Clausius-Clapeyron at constant loading: Q = -R d(ln p)/d(1/T), by central
     # differences on the true model (the generator uses a closed form)
-    material = truth["isosteric_heats"][0]["material_id"]
-    materials = gen.build_campaign(truth["campaign"]["seed"])
+    sorbent = truth["isosteric_heats"][0]["sorbent_id"]
+    sorbents = gen.build_campaign(truth["campaign"]["seed"])
     for row in truth["isosteric_heats"]:
-        if row["material_id"] != material:
+        if row["sorbent_id"] != sorbent:
             continue
-        gas_truth = materials[material]["gases"][row["adsorbate"]]
+        gas_truth = sorbents[sorbent]["gases"][row["adsorbate"]]
         points = row.get("at_298_15_k") or [{"loading_mol_per_kg": 0.5,
                                              "isosteric_heat_j_per_mol": row["isosteric_heat_j_per_mol"]}]
         for point in points:

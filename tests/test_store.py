@@ -20,13 +20,13 @@ from sorbrank.worker.store import (
 T0 = datetime(2025, 1, 1, tzinfo=timezone.utc)
 
 
-def summary_rows(n, *, seed, materials=6, adsorbates=("CO2", "N2"), temps=(273.15, 298.15)):
+def summary_rows(n, *, seed, sorbents=6, adsorbates=("CO2", "N2"), temps=(273.15, 298.15)):
     rng = random.Random(seed)
     rows = []
     for i in range(n):
         rows.append({
             "isotherm_id": f"iso-{seed}-{i}",
-            "material_id": f"M{rng.randrange(materials)}",
+            "sorbent_id": f"M{rng.randrange(sorbents)}",
             "adsorbate": rng.choice(adsorbates),
             "temperature_k": rng.choice(temps) + rng.choice([0.0, 0.1, -0.2]),
             "q_sat_mol_per_kg": rng.choice([None, float("nan")] + [rng.uniform(0, 10)] * 8),
@@ -111,7 +111,7 @@ def test_chunks_with_all_null_columns_merge_with_typed_ones(tmp_path):
 
 
 def test_isotherms_round_trip_exactly_through_the_inputs_table():
-    csv = "\n".join(["material_id,adsorbate,temperature_k,pressure,loading,sigma,"
+    csv = "\n".join(["sorbent_id,adsorbate,temperature_k,pressure,loading,sigma,"
                      "pressure_unit,loading_unit"]
                     + [f"M1,CO2,298.15,{p},{0.1 * p / (1 + 0.01 * p):.6f},0.01,kPa,mmol/g"
                        for p in (1, 3, 7, 15, 40, 90)]
@@ -120,7 +120,7 @@ def test_isotherms_round_trip_exactly_through_the_inputs_table():
     assert len(batch.isotherms) == 2
     back = table_to_isotherms(isotherms_to_table(batch.isotherms))
     for before, after in zip(batch.isotherms, back):
-        for name in ("isotherm_id", "material_id", "adsorbate", "temperature_k", "branch",
+        for name in ("isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "branch",
                      "saturation_pressure_pa", "surface_area_m2_per_g", "batch_label", "flags"):
             assert getattr(after, name) == getattr(before, name), name
         # the audit copy comes back as plain JSON values (arrays as lists)
@@ -150,7 +150,7 @@ def brute_force_rankings(batches, query: RankingQuery):
         ordered.sort(key=lambda r: (r["accepted_at"], r["batch_id"]), reverse=True)
         first = {}
         for r in ordered:
-            first.setdefault((r["material_id"], r["adsorbate"], round(r["temperature_k"])), r)
+            first.setdefault((r["sorbent_id"], r["adsorbate"], round(r["temperature_k"])), r)
         rows = list(first.values())
     rows = [r for r in rows if set(query.flags) <= set(r["flags"])
             and not set(query.exclude_flags) & set(r["flags"])]
@@ -162,7 +162,7 @@ def brute_force_rankings(batches, query: RankingQuery):
     present = [r for r in rows if value(r) is not None]
     missing = [r for r in rows if value(r) is None]
     present.sort(key=lambda r: (-value(r) if query.descending else value(r),
-                                r["material_id"], r["isotherm_id"]))
+                                r["sorbent_id"], r["isotherm_id"]))
     return [(r["batch_id"], r["isotherm_id"]) for r in present], len(rows), missing
 
 
@@ -191,7 +191,7 @@ def test_rankings_match_brute_force_latest_wins(tmp_path, query):
     assert got[:len(expected)] == expected
     assert sorted(got[len(expected):]) == sorted((r["batch_id"], r["isotherm_id"]) for r in missing)
     if not query.all_results:
-        keys = [(m, a, round(t)) for m, a, t in zip(page["material_id"].to_pylist(),
+        keys = [(m, a, round(t)) for m, a, t in zip(page["sorbent_id"].to_pylist(),
                                                     page["adsorbate"].to_pylist(),
                                                     page["temperature_k"].to_pylist())]
         assert len(keys) == len(set(keys))
@@ -229,28 +229,28 @@ def test_manifest_json_is_atomic_and_listed_newest_first(tmp_path):
 
 # -- jobs on the store: chunking, re-runs, reconcile -------------------------------
 
-def test_chunks_keep_each_material_together():
+def test_chunks_keep_each_sorbent_together():
     from sorbrank.worker.jobs import plan_chunks
 
     rng = random.Random(5)
-    materials = [f"M{rng.randrange(12)}" for _ in range(60)]
+    sorbents = [f"M{rng.randrange(12)}" for _ in range(60)]
     for size in (1, 3, 7, 500):
-        chunks = plan_chunks(materials, size)
+        chunks = plan_chunks(sorbents, size)
         assert sorted(p for c in chunks for p in c) == list(range(60))
         owner = {}
         for k, chunk in enumerate(chunks):
             for position in chunk:
-                assert owner.setdefault(materials[position], k) == k
-            # a chunk only exceeds the size when one material alone does
-            assert len(chunk) <= size or len({materials[p] for p in chunk}) == 1
+                assert owner.setdefault(sorbents[position], k) == k
+            # a chunk only exceeds the size when one sorbent alone does
+            assert len(chunk) <= size or len({sorbents[p] for p in chunk}) == 1
     with pytest.raises(ValueError):
-        plan_chunks(materials, 0)
+        plan_chunks(sorbents, 0)
 
 
-def small_batch(materials=("J1", "J2", "J3")):
+def small_batch(sorbents=("J1", "J2", "J3")):
     from conftest import csv_batch, isotherm
 
-    return read_batch(csv_batch([isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(materials)
+    return read_batch(csv_batch([isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(sorbents)
                                  for t in (273.15, 298.15)]), "csv", batch_label="jobs")
 
 
@@ -345,16 +345,16 @@ def test_idempotency_claim_has_exactly_one_winner(tmp_path):
     assert [p.name for p in (tmp_path / "idempotency").iterdir()] == [f"{key_hash}.json"]
 
 
-def test_material_rows_of_every_kind_keep_all_their_fields():
+def test_sorbent_rows_of_every_kind_keep_all_their_fields():
     # an isosteric-heat row first, then an IAST row with other fields: the stored
     # table must carry the union, not only the first row's keys
-    from sorbrank.worker.jobs import material_rows_table
+    from sorbrank.worker.jobs import sorbent_rows_table
 
-    rows = [{"kind": "isosteric_heat", "material_id": "M", "adsorbate": "CO2",
+    rows = [{"kind": "isosteric_heat", "sorbent_id": "M", "adsorbate": "CO2",
              "isosteric_heat_j_per_mol": 30000.0},
-            {"kind": "iast", "material_id": "M", "adsorbate": "CO2/N2", "temperature_k": 298.15,
+            {"kind": "iast", "sorbent_id": "M", "adsorbate": "CO2/N2", "temperature_k": 298.15,
              "total_pressure_pa": 1e5, "selectivity": 40.0}]
-    table = material_rows_table(rows)
+    table = sorbent_rows_table(rows)
     back = table.to_pylist()
     assert back[1]["selectivity"] == 40.0 and back[1]["temperature_k"] == 298.15
     assert back[0]["selectivity"] is None and back[0]["isosteric_heat_j_per_mol"] == 30000.0
@@ -379,7 +379,7 @@ def test_latest_wins_on_integer_codes_picks_the_rows_the_full_sort_picks(seed):
 
     base = datetime(2026, 1, 1, tzinfo=timezone.utc)
     table = pa.table({
-        "material_id": pa.array(pick([f"m{i}" for i in range(40)])),
+        "sorbent_id": pa.array(pick([f"m{i}" for i in range(40)])),
         "adsorbate": pa.array(pick(["CO2", "N2", "CH4"])),
         "temperature_k": pa.array([None if rng.random() < 0.03 else float(v)
                                    for v in rng.choice([273.15, 273.4, 298.15, 298.6, 313.15], n)]),
@@ -412,7 +412,7 @@ def test_a_page_sorted_from_its_candidates_is_the_page_of_the_full_sort(descendi
     values = [None if rng.random() < 0.05 else v for v in values]
     table = pa.table({
         "q_sat_mol_per_kg": pa.array(values, pa.float64()),
-        "material_id": pa.array([f"m{i}" for i in rng.integers(0, 30, n)]),
+        "sorbent_id": pa.array([f"m{i}" for i in rng.integers(0, 30, n)]),
         "isotherm_id": pa.array([f"i{i}" for i in rng.integers(0, 400, n)]),
         "batch_id": pa.array([f"b{i}" for i in rng.integers(0, 5, n)]),
     })

@@ -10,11 +10,11 @@ one isotherm never raise: every problem found becomes an ``Issue`` in
 Formats
 -------
 CSV (long, one row per point) and Parquet share the columns
-``material_id, adsorbate, temperature_k, pressure, loading`` (required) and
+``sorbent_id, adsorbate, temperature_k, pressure, loading`` (required) and
 ``isotherm_id, branch, pressure_unit, loading_unit, saturation_pressure,
 sample_mass_g, sigma, surface_area_m2_per_g`` (optional); other columns are
 ignored. Column names are matched case-insensitively. Rows group into
-isotherms by ``isotherm_id`` where given, else by (material_id, adsorbate,
+isotherms by ``isotherm_id`` where given, else by (sorbent_id, adsorbate,
 temperature_k, branch). ``saturation_pressure`` is in the row's pressure unit,
 or in Pa when that unit is relative; ``sigma`` is in the loading unit.
 
@@ -123,10 +123,10 @@ class Limits:
         return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3)
 
 
-REQUIRED_COLUMNS = ("material_id", "adsorbate", "temperature_k", "pressure", "loading")
+REQUIRED_COLUMNS = ("sorbent_id", "adsorbate", "temperature_k", "pressure", "loading")
 OPTIONAL_COLUMNS = ("isotherm_id", "branch", "pressure_unit", "loading_unit",
                     "saturation_pressure", "sample_mass_g", "sigma", "surface_area_m2_per_g")
-TEXT_FIELDS = ("material_id", "adsorbate", "isotherm_id", "branch", "pressure_unit", "loading_unit")
+TEXT_FIELDS = ("sorbent_id", "adsorbate", "isotherm_id", "branch", "pressure_unit", "loading_unit")
 NUMBER_FIELDS = ("temperature_k", "pressure", "loading", "saturation_pressure",
                  "sample_mass_g", "sigma", "surface_area_m2_per_g")
 SETTINGS = ("pressure_unit", "loading_unit", "sample_mass_g", "batch_label")
@@ -803,7 +803,7 @@ def _grouping(rows: _Rows, branch_key: np.ndarray) -> tuple[np.ndarray, int]:
     n = rows.n_rows
     temperature_code, _ = _codes_by_appearance(rows.numbers["temperature_k"].value)
     key = np.zeros(n, dtype=np.int64)
-    for column in (rows.text["material_id"].codes, rows.text["adsorbate"].codes,
+    for column in (rows.text["sorbent_id"].codes, rows.text["adsorbate"].codes,
                    temperature_code, branch_key):
         # re-coding after each step keeps the combined key below n: no overflow
         shifted = column - column.min()
@@ -895,7 +895,7 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
     p0_row = number["saturation_pressure"].value * np.where(is_relative, 1.0, pa_per_unit)
     group_value = {}
     for fld, values, given, code in [
-        ("material_id", text["material_id"].codes, text["material_id"].codes >= 0, "inconsistent_value"),
+        ("sorbent_id", text["sorbent_id"].codes, text["sorbent_id"].codes >= 0, "inconsistent_value"),
         ("adsorbate", text["adsorbate"].codes, text["adsorbate"].codes >= 0, "inconsistent_value"),
         ("temperature_k", number["temperature_k"].value, number["temperature_k"].problem == _OK,
          "inconsistent_value"),
@@ -1002,7 +1002,7 @@ def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, p_unit
     def raw(name):
         return lambda i: f"value {_short(number[name].raw(i))!r}"
 
-    for name in ("material_id", "adsorbate"):
+    for name in ("sorbent_id", "adsorbate"):
         found.rows_where(text[name].codes == _BLANK, name, "missing_value",
                          lambda i, n=name: f"{n!r} is missing")
     for name in NUMBER_FIELDS:
@@ -1027,7 +1027,7 @@ def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, p_unit
                      lambda i: f"relative pressure p/p0 = {_short(number['pressure'].raw(i))} "
                                "is above 1")
 
-    for name in ("material_id", "isotherm_id"):
+    for name in ("sorbent_id", "isotherm_id"):
         column = text[name]
         problems = [_id_problem(v) for v in column.values]
         bad_value = np.array([p is not None for p in problems] + [False] * 3)
@@ -1088,7 +1088,7 @@ class _GroupNames:
         if iso.codes[r] >= 0 and _id_problem(iso.values[iso.codes[r]]) is None:
             return iso.values[iso.codes[r]]
         parts = []
-        for name in ("material_id", "adsorbate"):
+        for name in ("sorbent_id", "adsorbate"):
             column = text[name]
             parts.append(_short(column.values[column.codes[r]], 40) if column.codes[r] >= 0 else "?")
         parts.append(f"{_short(self.rows.numbers['temperature_k'].raw(r), 20)}K")
@@ -1234,7 +1234,7 @@ class _Accepted:
             ("pressure_above_saturation",
              p0 is not None and not self.relative_input[g] and p[-1] > p0)) if on]
         value = self.group_value
-        material_id = self.text["material_id"].values[int(value["material_id"][g])]
+        sorbent_id = self.text["sorbent_id"].values[int(value["sorbent_id"][g])]
         adsorbate = self.adsorbate[g]
         temperature_k = float(value["temperature_k"][g])
         branch = BRANCHES[int(value["branch"][g])]
@@ -1243,12 +1243,12 @@ class _Accepted:
         if given_id >= 0:
             isotherm_id = self.text["isotherm_id"].values[given_id]
         else:
-            content = f"{material_id}|{adsorbate.id}|{temperature_k!r}|{branch}".encode()
+            content = f"{sorbent_id}|{adsorbate.id}|{temperature_k!r}|{branch}".encode()
             digest = hashlib.sha256(content + p.tobytes() + q.tobytes()).hexdigest()[:10]
-            isotherm_id = f"{material_id}|{adsorbate.id}|{temperature_k:.2f}K|{branch}|{digest}"
+            isotherm_id = f"{sorbent_id}|{adsorbate.id}|{temperature_k:.2f}K|{branch}|{digest}"
         area = value["surface_area_m2_per_g"][g]
         return Isotherm(
-            isotherm_id=isotherm_id, material_id=material_id, adsorbate=adsorbate.id,
+            isotherm_id=isotherm_id, sorbent_id=sorbent_id, adsorbate=adsorbate.id,
             temperature_k=temperature_k, pressure_pa=p, loading_mol_per_kg=q, branch=branch,
             saturation_pressure_pa=p0, sigma_mol_per_kg=sigma,
             surface_area_m2_per_g=None if np.isnan(area) else float(area),
@@ -1325,16 +1325,16 @@ def _mixtures(raw: Any, settings: dict, label: str) -> list[MixtureRequest]:
         return []
     if not isinstance(raw, list):
         raise _batch_error(label, "invalid_mixture", "must be a list", fld="mixtures")
-    fields = ("material_id", "components", "mole_fractions", "total_pressure", "pressure_unit",
+    fields = ("sorbent_id", "components", "mole_fractions", "total_pressure", "pressure_unit",
               "temperature_k")
     out = []
     for i, item in enumerate(raw):
         where = f"mixtures[{i}]"
         item = _checked_object(item, fields, where, label, "invalid_mixture")
-        material_id = item.get("material_id")
-        if material_id is not None and (not isinstance(material_id, str) or _id_problem(material_id)):
-            raise _batch_error(label, "invalid_mixture", "material_id must be a valid id or null",
-                               fld=f"{where}.material_id")
+        sorbent_id = item.get("sorbent_id")
+        if sorbent_id is not None and (not isinstance(sorbent_id, str) or _id_problem(sorbent_id)):
+            raise _batch_error(label, "invalid_mixture", "sorbent_id must be a valid id or null",
+                               fld=f"{where}.sorbent_id")
         components = item.get("components")
         fractions = item.get("mole_fractions")
         if not isinstance(components, list) or len(components) < 2:
@@ -1360,7 +1360,7 @@ def _mixtures(raw: Any, settings: dict, label: str) -> list[MixtureRequest]:
                                fld=f"{where}.mole_fractions")
         pa_per_unit = _absolute_pa_per_unit(item, settings, where, label, "invalid_mixture")
         out.append(MixtureRequest(
-            material_id=material_id, components=ids, mole_fractions=y,
+            sorbent_id=sorbent_id, components=ids, mole_fractions=y,
             total_pressure_pa=_checked_number(item.get("total_pressure"), "positive",
                                               f"{where}.total_pressure", label,
                                               "invalid_mixture") * pa_per_unit,

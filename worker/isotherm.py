@@ -79,7 +79,7 @@ class Isotherm:
     """One validated, unit-normalised isotherm, points sorted by pressure."""
 
     isotherm_id: str
-    material_id: str
+    sorbent_id: str
     adsorbate: str
     temperature_k: float
     pressure_pa: np.ndarray
@@ -108,7 +108,7 @@ class Isotherm:
 class MixtureRequest:
     """A binary (or larger) mixture for which IAST should be evaluated."""
 
-    material_id: str | None  # None = every material with all components
+    sorbent_id: str | None  # None = every sorbent with all components
     components: list[str]
     mole_fractions: list[float]
     total_pressure_pa: float

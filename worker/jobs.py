@@ -37,21 +37,21 @@ class AttemptsExhausted(RuntimeError):
     pass
 
 
-def plan_chunks(material_ids: list[str], chunk_size: int) -> list[list[int]]:
-    """Isotherm positions per chunk; every isotherm of a material in one chunk.
+def plan_chunks(sorbent_ids: list[str], chunk_size: int) -> list[list[int]]:
+    """Isotherm positions per chunk; every isotherm of a sorbent in one chunk.
 
-    Per-material metrics (isosteric heat across temperatures, IAST across
-    gases) need all of a material's isotherms together, so a material larger
+    Per-sorbent metrics (isosteric heat across temperatures, IAST across
+    gases) need all of a sorbent's isotherms together, so a sorbent larger
     than ``chunk_size`` gets a chunk of its own rather than being split.
     """
     if chunk_size < 1:
         raise ValueError("chunk size must be at least 1")
-    by_material: dict[str, list[int]] = {}
-    for position, material in enumerate(material_ids):
-        by_material.setdefault(material, []).append(position)
+    by_sorbent: dict[str, list[int]] = {}
+    for position, sorbent in enumerate(sorbent_ids):
+        by_sorbent.setdefault(sorbent, []).append(position)
     chunks: list[list[int]] = []
     current: list[int] = []
-    for positions in by_material.values():
+    for positions in by_sorbent.values():
         if current and len(current) + len(positions) > chunk_size:
             chunks.append(current)
             current = []
@@ -72,13 +72,13 @@ def accept_batch(store: Store, batch: Batch, *, options: dict, chunk_size: int =
     FitOptions(**options)  # refuse options the pipeline would refuse, before writing
     accepted_at = utc_now()
     batch_id = batch_id or new_batch_id(accepted_at)
-    chunks = plan_chunks([iso.material_id for iso in batch.isotherms], chunk_size)
+    chunks = plan_chunks([iso.sorbent_id for iso in batch.isotherms], chunk_size)
     chunk_entries = []
     for index, positions in enumerate(chunks):
         isotherms = [batch.isotherms[p] for p in positions]
         store.write_table("inputs", batch_id, index, isotherms_to_table(isotherms))
         chunk_entries.append({"index": index, "isotherms": len(isotherms),
-                              "materials": sorted({iso.material_id for iso in isotherms})})
+                              "sorbents": sorted({iso.sorbent_id for iso in isotherms})})
     manifest = {
         "batch_id": batch_id,
         "label": batch.label,
@@ -122,9 +122,9 @@ def _with_accepted_at(table: pa.Table, accepted_at: str) -> pa.Table:
 
 def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = False,
               max_attempts: int = MAX_ATTEMPTS) -> dict:
-    """Fit one chunk and write its fits, material rows and summaries.
+    """Fit one chunk and write its fits, sorbent rows and summaries.
 
-    Summaries are written after fits and material rows, and the "done" status
+    Summaries are written after fits and sorbent rows, and the "done" status
     after all three, so a chunk counted as done always has all its files.
     """
     manifest = _manifest(store, batch_id)
@@ -157,8 +157,8 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
     return status
 
 
-def material_rows_table(rows: list[dict]) -> pa.Table:
-    """Material rows of every kind as one table: the union of their keys.
+def sorbent_rows_table(rows: list[dict]) -> pa.Table:
+    """Sorbent rows of every kind as one table: the union of their keys.
 
     Rows of different kinds (isosteric heat, IAST, temperature swing) carry
     different fields, and pyarrow infers a table's columns from the first row
@@ -176,9 +176,9 @@ def _fit_and_write(store: Store, manifest: dict, batch_id: str, chunk_index: int
     accepted_at = manifest["accepted_at"]
     fits = result.fits_table()
     store.write_table("fits", batch_id, chunk_index, _with_accepted_at(fits, accepted_at))
-    if result.material_rows:
-        materials = material_rows_table(result.material_rows)
-        store.write_table("materials", batch_id, chunk_index, _with_accepted_at(materials, accepted_at))
+    if result.sorbent_rows:
+        sorbents = sorbent_rows_table(result.sorbent_rows)
+        store.write_table("sorbents", batch_id, chunk_index, _with_accepted_at(sorbents, accepted_at))
     summaries = _with_accepted_at(result.summary_table(), accepted_at)
     store.write_table("summaries", batch_id, chunk_index, summaries)
 

@@ -17,7 +17,7 @@ class Packed:
     """
 
     isotherm_ids: list[str]
-    material_ids: list[str]
+    sorbent_ids: list[str]
     adsorbates: list[str]
     branches: list[str]
     temperature_k: np.ndarray            # (n,)
@@ -44,7 +44,7 @@ class Packed:
         pick = lambda seq: [seq[i] for i in index]  # noqa: E731
         return Packed(
             isotherm_ids=pick(self.isotherm_ids),
-            material_ids=pick(self.material_ids),
+            sorbent_ids=pick(self.sorbent_ids),
             adsorbates=pick(self.adsorbates),
             branches=pick(self.branches),
             temperature_k=self.temperature_k[index],
@@ -84,7 +84,7 @@ def pack(isotherms: list[Isotherm]) -> Packed:
                 sigma[i, :] = np.nan  # this isotherm has no sigma: engine falls back
     return Packed(
         isotherm_ids=[iso.isotherm_id for iso in isotherms],
-        material_ids=[iso.material_id for iso in isotherms],
+        sorbent_ids=[iso.sorbent_id for iso in isotherms],
         adsorbates=[iso.adsorbate for iso in isotherms],
         branches=[iso.branch for iso in isotherms],
         temperature_k=np.array([iso.temperature_k for iso in isotherms], dtype=float),

@@ -4,7 +4,7 @@ The one way isotherms get fitted: ``sorbrank fit``, the embedded server and
 the Celery worker all call ``process_batch``. Fitting and selection are
 row-independent, so a large batch is split into chunks that may run on
 several processes; metrics then run once over the whole batch because
-per-material figures (isosteric heat, IAST) need all of a material's
+per-sorbent figures (isosteric heat, IAST) need all of a sorbent's
 isotherms together.
 """
 from __future__ import annotations
@@ -62,7 +62,7 @@ class BatchResult:
     selection: Selection
     linearized: dict[str, np.ndarray]        # q_sat_mol_per_kg, affinity_per_pa (double reciprocal)
     summary: dict[str, np.ndarray] = field(default_factory=dict)   # metric columns, length n
-    material_rows: list[dict] = field(default_factory=list)
+    sorbent_rows: list[dict] = field(default_factory=list)
 
     @property
     def n(self) -> int:
@@ -98,7 +98,7 @@ class BatchResult:
         for i in range(p.n):
             records.append({
                 "isotherm_id": p.isotherm_ids[i],
-                "material_id": p.material_ids[i],
+                "sorbent_id": p.sorbent_ids[i],
                 "adsorbate": p.adsorbates[i],
                 "temperature_k": temps[i],
                 "n_points": int(p.n_points[i]),
@@ -121,14 +121,14 @@ class BatchResult:
                         "weighting": self.options.weighting},
             "isotherms": self.isotherm_records(),
             "rejected": [issue.as_dict() for issue in self.batch.rejected],
-            "materials": _json_clean(self.material_rows),
+            "sorbents": _json_clean(self.sorbent_rows),
         }
 
     # -- Arrow views --------------------------------------------------------
     def fits_table(self) -> pa.Table:
         """One row per isotherm x model, flat columns a database takes as is.
 
-        Columns: isotherm_id, material_id, adsorbate, branch, temperature_k,
+        Columns: isotherm_id, sorbent_id, adsorbate, branch, temperature_k,
         n_points, model, n_params, applicable, converged, reason, selected,
         excluded_reason, sse, rmse, r2, aic, aicc, bic, akaike_weight, then
         for every parameter name of the fitted models (units: the model
@@ -149,7 +149,7 @@ class BatchResult:
         weight_col = {mid: j for j, mid in enumerate(sel.model_ids)}
         columns = {
             "isotherm_id": pa.array(rep(p.isotherm_ids), pa.string()),
-            "material_id": pa.array(rep(p.material_ids), pa.string()),
+            "sorbent_id": pa.array(rep(p.sorbent_ids), pa.string()),
             "adsorbate": pa.array(rep(p.adsorbates), pa.string()),
             "branch": pa.array(rep(p.branches), pa.string()),
             "temperature_k": _float_array(np.repeat(p.temperature_k, n_models)),
@@ -186,7 +186,7 @@ class BatchResult:
         p, sel = self.packed, self.selection
         columns = {
             "isotherm_id": pa.array(p.isotherm_ids, pa.string()),
-            "material_id": pa.array(p.material_ids, pa.string()),
+            "sorbent_id": pa.array(p.sorbent_ids, pa.string()),
             "adsorbate": pa.array(p.adsorbates, pa.string()),
             "branch": pa.array(p.branches, pa.string()),
             "temperature_k": _float_array(p.temperature_k),
@@ -239,7 +239,7 @@ def process_batch(batch: Batch, options: FitOptions | None = None, *, workers: i
         from . import metrics  # imported here: metrics depend on the catalogue, not the reverse
 
         result.summary = metrics.summarize(packed, fits, selection, batch)
-        result.material_rows = metrics.material_metrics(packed, fits, selection, batch)
+        result.sorbent_rows = metrics.sorbent_metrics(packed, fits, selection, batch)
     return result
 
 

@@ -1,6 +1,6 @@
 """The store: a Parquet dataset plus small JSON manifests under one root.
 
-Layout (``<table>`` is inputs, summaries, fits or materials)::
+Layout (``<table>`` is inputs, summaries, fits or sorbents)::
 
     <root>/<table>/batch_id=<id>/chunk-00003.parquet   hive-partitioned by batch
     <root>/batches/<id>/manifest.json                  written once, at acceptance
@@ -42,9 +42,9 @@ import pyarrow.parquet as pq
 from . import fs
 from .isotherm import Isotherm
 
-SCHEMA_VERSION = "1"
+SCHEMA_VERSION = "2"
 SCHEMA_VERSION_KEY = b"sorbrank.schema_version"
-TABLES = ("inputs", "summaries", "fits", "materials")
+TABLES = ("inputs", "summaries", "fits", "sorbents")
 
 # Time-sortable, so a directory listing is already newest-first when reversed,
 # and strict, so an id taken from a URL can never name a path outside the store.
@@ -125,7 +125,7 @@ def read_json(path: Path) -> Any | None:
 
 INPUT_SCHEMA = pa.schema([
     ("isotherm_id", pa.string()),
-    ("material_id", pa.string()),
+    ("sorbent_id", pa.string()),
     ("adsorbate", pa.string()),
     ("temperature_k", pa.float64()),
     ("branch", pa.string()),
@@ -159,7 +159,7 @@ def isotherms_to_table(isotherms: Iterable[Isotherm]) -> pa.Table:
     isotherms = list(isotherms)
     columns = {
         "isotherm_id": pa.array([iso.isotherm_id for iso in isotherms], pa.string()),
-        "material_id": pa.array([iso.material_id for iso in isotherms], pa.string()),
+        "sorbent_id": pa.array([iso.sorbent_id for iso in isotherms], pa.string()),
         "adsorbate": pa.array([iso.adsorbate for iso in isotherms], pa.string()),
         "temperature_k": pa.array([float(iso.temperature_k) for iso in isotherms], pa.float64()),
         "branch": pa.array([iso.branch for iso in isotherms], pa.string()),
@@ -181,7 +181,7 @@ def _isotherms_to_table_by_rows(isotherms: Iterable[Isotherm]) -> pa.Table:
     """Row by row, the plain way; tests check ``isotherms_to_table`` equals it."""
     rows = [{
         "isotherm_id": iso.isotherm_id,
-        "material_id": iso.material_id,
+        "sorbent_id": iso.sorbent_id,
         "adsorbate": iso.adsorbate,
         "temperature_k": float(iso.temperature_k),
         "branch": iso.branch,
@@ -206,7 +206,7 @@ def table_to_isotherms(table: pa.Table) -> list[Isotherm]:
         sigma = row["sigma_mol_per_kg"]
         out.append(Isotherm(
             isotherm_id=row["isotherm_id"],
-            material_id=row["material_id"],
+            sorbent_id=row["sorbent_id"],
             adsorbate=row["adsorbate"],
             temperature_k=row["temperature_k"],
             pressure_pa=np.asarray(row["pressure_pa"], dtype=float),
@@ -401,7 +401,7 @@ class Store:
 # -- rankings across every batch -------------------------------------------------
 
 LATEST_WINS_RULE = (
-    "one row per material, adsorbate, branch and temperature (rounded to the nearest "
+    "one row per sorbent, adsorbate, branch and temperature (rounded to the nearest "
     "1 K); when several batches measured the same, the batch accepted last wins")
 
 
@@ -413,7 +413,7 @@ class RankingQuery:
     flags: tuple[str, ...] = ()          # keep rows carrying every one of these
     exclude_flags: tuple[str, ...] = ()  # drop rows carrying any of these
     batch_id: str | None = None
-    material_id: str | None = None
+    sorbent_id: str | None = None
     sort: str = "q_sat_mol_per_kg"
     descending: bool = True
     limit: int = 100
@@ -575,7 +575,7 @@ class _TableIndex:
 
 
 # columns latest-wins and the final order need, besides the sort column
-_RANKING_KEYS = ("batch_id", "isotherm_id", "material_id", "adsorbate", "temperature_k",
+_RANKING_KEYS = ("batch_id", "isotherm_id", "sorbent_id", "adsorbate", "temperature_k",
                  "accepted_at")
 
 
@@ -583,7 +583,7 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
     """Filtered, de-duplicated (unless ``all_results``), sorted summaries.
 
     Returns (the requested page, the number of rows before paging). Filters that
-    choose which measurements compete (batch, material, adsorbate, temperature)
+    choose which measurements compete (batch, sorbent, adsorbate, temperature)
     apply before latest-wins; flag filters apply to the winners, so an old
     result never resurfaces because the newer one lacks a flag.
 
@@ -609,8 +609,8 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
 
     if query.batch_id is not None:
         where = both(ds.field("batch_id") == query.batch_id)
-    if query.material_id is not None:
-        where = both(ds.field("material_id") == query.material_id)
+    if query.sorbent_id is not None:
+        where = both(ds.field("sorbent_id") == query.sorbent_id)
     if query.adsorbate is not None:
         where = both(ds.field("adsorbate") == query.adsorbate)
     if query.temperature_k is not None:
@@ -625,7 +625,7 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
 
 
 def _latest_rows(table: pa.Table) -> np.ndarray | None:
-    """Latest wins: row indices of one row per material, adsorbate,
+    """Latest wins: row indices of one row per sorbent, adsorbate,
     temperature (nearest 1 K) and branch -- the one accepted last, then of
     the larger batch id, then of the smaller isotherm id; nulls lose.
 
@@ -637,7 +637,7 @@ def _latest_rows(table: pa.Table) -> np.ndarray | None:
     took most of an unfiltered ranking; here the strings are ranked once per
     distinct value, the rows are ordered on integers, and isotherm ids are
     compared only between rows that tie on everything else."""
-    keys = ["material_id", "adsorbate", "temperature_k"]
+    keys = ["sorbent_id", "adsorbate", "temperature_k"]
     if "branch" in table.column_names:
         keys.append("branch")
     group = np.zeros(table.num_rows, dtype=np.int64)
@@ -708,7 +708,7 @@ def _codes(column: pa.Array, ranked: bool = False) -> tuple[np.ndarray, int]:
 def _latest_wins_by_sorting(table: pa.Table) -> pa.Table:
     newest_first = table.sort_by([("accepted_at", "descending"), ("batch_id", "descending"),
                                   ("isotherm_id", "ascending")])
-    keys = ["material_id", "adsorbate", "_temperature_key"]
+    keys = ["sorbent_id", "adsorbate", "_temperature_key"]
     if "branch" in newest_first.column_names:
         keys.append("branch")
     keyed = newest_first.append_column(
@@ -741,7 +741,7 @@ def _flag_filter(table: pa.Table, query: RankingQuery) -> pa.Table:
 
 def _sorted_for_page(table: pa.Table, query: RankingQuery) -> pa.Table:
     order = "descending" if query.descending else "ascending"
-    return table.sort_by([(query.sort, order, "at_end"), ("material_id", "ascending", "at_end"),
+    return table.sort_by([(query.sort, order, "at_end"), ("sorbent_id", "ascending", "at_end"),
                           ("isotherm_id", "ascending", "at_end"),
                           ("batch_id", "descending", "at_end")])
 
@@ -813,8 +813,8 @@ def _rank_cached(index: _TableIndex, snap: _Snapshot, query: RankingQuery
 
     if query.batch_id is not None:  # a partition value: decided per file
         mask = both(np.array([b == query.batch_id for b in snap.batch_of_file], bool)[file_of_row])
-    if query.material_id is not None:
-        mask = both(pc.equal(columns["material_id"], query.material_id))
+    if query.sorbent_id is not None:
+        mask = both(pc.equal(columns["sorbent_id"], query.sorbent_id))
     if query.adsorbate is not None:
         mask = both(pc.equal(columns["adsorbate"], query.adsorbate))
     if query.temperature_k is not None:

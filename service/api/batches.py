@@ -36,7 +36,7 @@ _INTAKE_STATUS = {"input_too_large": 413, "not_utf8": 400, "unparseable": 400,
                   "malformed_row": 400, "too_deeply_nested": 400, "unsupported_source": 400,
                   "internal_error": 500}
 OPTION_PARAMS = ("models", "criterion", "weighting")
-RESULT_TABLES = {"summary": "summaries", "fits": "fits", "materials": "materials"}
+RESULT_TABLES = {"summary": "summaries", "fits": "fits", "sorbents": "sorbents"}
 # Requests with the same Idempotency-Key are serialised by one of these; a
 # fixed number keeps memory bounded however many keys arrive.
 _KEY_LOCKS = [threading.Lock() for _ in range(64)]

@@ -1,5 +1,5 @@
 """Plots of stored results: one isotherm's fit, Langmuir or BET view, and a
-material's isosteric heat.
+sorbent's isosteric heat.
 
 Nothing is refitted here. The points are the normalised inputs the store kept
 at acceptance; the curves come from the stored fits and summary of the same
@@ -57,7 +57,7 @@ class StoredIsotherm:
         summary = self.summary or {}
         return {
             "isotherm_id": self.inputs["isotherm_id"],
-            "material_id": self.inputs["material_id"],
+            "sorbent_id": self.inputs["sorbent_id"],
             "adsorbate": self.inputs["adsorbate"],
             "temperature_k": self.inputs["temperature_k"],
             "saturation_pressure_pa": self.saturation_pressure_pa,
@@ -100,9 +100,9 @@ def load_isotherm(store: Store, isotherm_id: str, batch_id: str | None = None
     return StoredIsotherm(newest["batch_id"], newest, summaries[0] if summaries else None, fits)
 
 
-def qst_rows(store: Store, material_id: str, adsorbate: str | None = None) -> list[dict]:
-    """Newest isosteric-heat row per adsorbate of a material, sorted by adsorbate."""
-    data = store.query("materials", ds.field("material_id") == material_id)
+def qst_rows(store: Store, sorbent_id: str, adsorbate: str | None = None) -> list[dict]:
+    """Newest isosteric-heat row per adsorbate of a sorbent, sorted by adsorbate."""
+    data = store.query("sorbents", ds.field("sorbent_id") == sorbent_id)
     if "kind" not in data.column_names or not data.num_rows:
         return []
     data = data.filter(pc.equal(data["kind"], "isosteric_heat"))
@@ -168,17 +168,17 @@ def isotherm_plot(isotherm_id: str):
     return _image(body, fmt)
 
 
-@bp.get("/materials/<path:material_id>/qst-plot")
+@bp.get("/sorbents/<path:sorbent_id>/qst-plot")
 @require("read")
-def qst_plot(material_id: str):
+def qst_plot(sorbent_id: str):
     fmt = choice_arg("format", "svg", tuple(IMAGE_TYPES))
     adsorbate = request.args.get("adsorbate") or None
-    rows = qst_rows(current_app.extensions["sorbrank"].store, material_id, adsorbate)
+    rows = qst_rows(current_app.extensions["sorbrank"].store, sorbent_id, adsorbate)
     if not rows:
         gas = f" for {adsorbate}" if adsorbate else ""
-        raise Problem(404, "Not Found", f"no isosteric heat for material {material_id!r}{gas} "
+        raise Problem(404, "Not Found", f"no isosteric heat for sorbent {sorbent_id!r}{gas} "
                       "(it needs one gas measured at two or more temperatures in one batch)",
-                      slug="unknown-isosteric-heat", material_id=material_id)
+                      slug="unknown-isosteric-heat", sorbent_id=sorbent_id)
 
     from sorbrank.service import plots
 

@@ -20,7 +20,7 @@ def ranking_query() -> RankingQuery:
         flags=tuple(request.args.getlist("flag")),
         exclude_flags=tuple(request.args.getlist("exclude_flag")),
         batch_id=request.args.get("batch_id"),
-        material_id=request.args.get("material_id"),
+        sorbent_id=request.args.get("sorbent_id"),
         sort=request.args.get("sort", "q_sat_mol_per_kg"),
         descending=choice_arg("order", "desc", ("asc", "desc")) == "desc",
         limit=int_arg("limit", 100, 0, 100_000),

@@ -19,7 +19,7 @@ Run the whole round trip on one machine: start 'sorbrank serve' (embedded
 mode, loopback only) as a separate process with its own data directory,
 submit every batch file in the sample directory (*.csv, *.json, *.parquet;
 names starting with 'ground_truth' or '_' are skipped), wait until every
-batch is fitted, print the top materials per adsorbate at its most common
+batch is fitted, print the top sorbents per adsorbate at its most common
 temperature (ties: nearest 298.15 K), ranked by working capacity between the
 batch's adsorption and desorption pressures (default 1 bar -> 0.1 bar), then
 stop the server."""

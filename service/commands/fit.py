@@ -27,7 +27,7 @@ wins. Screening figures (saturation capacity, Henry constant, loadings,
 working capacity, BET area, ...) come from the selected model.
 
 Input: CSV, JSON or Parquet files as described in the README (one row per
-point: material_id, adsorbate, temperature_k, pressure, loading, with units
+point: sorbent_id, adsorbate, temperature_k, pressure, loading, with units
 given per row or per file). Isotherms that fail validation are listed on
 standard error with the reason and left out; the rest are fitted.
 
@@ -48,10 +48,10 @@ options in detail:
                 unit conversion); isotherms without it use uniform weights.
   --sort        a column of the summary table (see --format csv), e.g.
                 q_sat_mol_per_kg (default), henry_mol_per_kg_pa,
-                working_capacity_mol_per_kg, material_id. Numbers sort
+                working_capacity_mol_per_kg, sorbent_id. Numbers sort
                 largest first, text A-Z; --ascending reverses numbers.
                 Isotherms without a value go last.
-  --format      table: a ranked text table, one row per isotherm (material,
+  --format      table: a ranked text table, one row per isotherm (sorbent,
                 adsorbate, T in K, best model, q_sat in mol/kg, Henry constant
                 in mol/kg/Pa, points, flags). json: everything, including every
                 model's parameters, standard errors, 95 % intervals and
@@ -205,7 +205,7 @@ def run(args) -> int:
 # output
 
 TABLE_COLUMNS = [  # (summary column, header, format)
-    ("material_id", "material", "s"),
+    ("sorbent_id", "sorbent", "s"),
     ("adsorbate", "gas", "s"),
     ("temperature_k", "T/K", ".2f"),
     ("best_model", "best model", "s"),

@@ -5,10 +5,10 @@ import argparse
 import json
 import sys
 
-HELP = "print materials ranked across every batch (from a running service)"
+HELP = "print sorbents ranked across every batch (from a running service)"
 DESCRIPTION = """\
 Ask a running sorbrank service for its ranking across every batch. By
-default there is one row per material, adsorbate, branch and temperature
+default there is one row per sorbent, adsorbate, branch and temperature
 (nearest 1 K): when several batches measured the same, the batch accepted
 last wins. --all lists every result instead.
 

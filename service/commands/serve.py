@@ -26,7 +26,7 @@ one message naming the variable. Logs are JSON lines on stderr
 
 Environment: SORBRANK_DATA_DIR (store root: a path or a URI such as
 s3://bucket/prefix, default ./data), SORBRANK_LOG_LEVEL (default INFO),
-SORBRANK_CHUNK_SIZE (isotherms per job, default 2000; a material's isotherms
+SORBRANK_CHUNK_SIZE (isotherms per job, default 2000; a sorbent's isotherms
 always stay together), SORBRANK_MAX_UPLOAD_BYTES (default 67108864),
 SORBRANK_TOKENS_FILE or SORBRANK_TOKENS (bearer tokens as SHA-256 hashes with
 scopes submit/read/admin). Without tokens the API is open: allowed on a

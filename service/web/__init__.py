@@ -1,1 +1,1 @@
-"""Server-rendered HTML pages: the rankings overview and one page per material."""
+"""Server-rendered HTML pages: the rankings overview and one page per sorbent."""

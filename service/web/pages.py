@@ -1,4 +1,4 @@
-"""HTML pages for people: the rankings across batches, and one page per material.
+"""HTML pages for people: the rankings across batches, and one page per sorbent.
 
 Everything is rendered on the server from the same store queries the API
 uses; filters and sorting are plain GET parameters, so every view has a URL
@@ -32,7 +32,7 @@ ROWS_PER_PAGE = 50
 BATCHES_SHOWN = 20
 # (summary column, header label); the unit is part of the label
 COLUMNS = (
-    ("material_id", "Material"),
+    ("sorbent_id", "Sorbent"),
     ("adsorbate", "Gas"),
     ("temperature_k", "T (K)"),
     ("best_model", "Best model"),
@@ -41,7 +41,7 @@ COLUMNS = (
     ("bet_area_m2_per_g", "BET area (m²/g)"),
     ("working_capacity_mol_per_kg", "Working capacity (mol/kg)"),
 )
-TEXT_COLUMNS = {"material_id", "adsorbate", "best_model"}
+TEXT_COLUMNS = {"sorbent_id", "adsorbate", "best_model"}
 DEFAULT_SORT = "q_sat_mol_per_kg"
 # scripts are never needed; images come from our own API
 CONTENT_SECURITY_POLICY = ("default-src 'none'; img-src 'self'; style-src 'self'; "
@@ -210,12 +210,12 @@ def overview():
         batch_total=batch_total, rule=LATEST_WINS_RULE)
 
 
-# -- one material -----------------------------------------------------------
+# -- one sorbent -----------------------------------------------------------
 
-def _material_isotherms(store: Store, material_id: str,
+def _sorbent_isotherms(store: Store, sorbent_id: str,
                         results: list[dict]) -> list[StoredIsotherm]:
     """The stored inputs, summary and fits behind each current result row."""
-    where = ds.field("material_id") == material_id
+    where = ds.field("sorbent_id") == sorbent_id
     wanted = {(r["batch_id"], r["isotherm_id"]) for r in results}
 
     def by_key(table: str) -> dict:
@@ -244,28 +244,28 @@ def _param_units(model_id: str) -> dict[str, str]:
     return {p.name: p.unit for p in model.params} if model is not None else {}
 
 
-def _pending_isotherms(store: Store, material_id: str) -> int:
+def _pending_isotherms(store: Store, sorbent_id: str) -> int:
     data = store.dataset("inputs")
     if data is None:
         return 0
-    return data.count_rows(filter=ds.field("material_id") == material_id)
+    return data.count_rows(filter=ds.field("sorbent_id") == sorbent_id)
 
 
-@bp.get("/materials/<path:material_id>")
+@bp.get("/sorbents/<path:sorbent_id>")
 @require("read")
-def material(material_id: str):
+def sorbent(sorbent_id: str):
     store = _store()
-    current, _ = rankings(store, RankingQuery(material_id=material_id, limit=10_000))
+    current, _ = rankings(store, RankingQuery(sorbent_id=sorbent_id, limit=10_000))
     results = sorted(nan_to_none(current.to_pylist()),
                      key=lambda r: (r["adsorbate"] or "", r["temperature_k"] or 0.0,
                                     r["isotherm_id"] or ""))
-    _, every_total = rankings(store, RankingQuery(material_id=material_id, limit=0,
+    _, every_total = rankings(store, RankingQuery(sorbent_id=sorbent_id, limit=0,
                                                   all_results=True))
-    inputs_total = _pending_isotherms(store, material_id)
+    inputs_total = _pending_isotherms(store, sorbent_id)
     if not results and not inputs_total:
-        raise Problem(404, "Not Found", f"No material {material_id!r} in any batch.")
-    isotherms = _material_isotherms(store, material_id, results)
+        raise Problem(404, "Not Found", f"No sorbent {sorbent_id!r} in any batch.")
+    isotherms = _sorbent_isotherms(store, sorbent_id, results)
     return render_template(
-        "page_material.html", material_id=material_id, isotherms=isotherms,
+        "page_sorbent.html", sorbent_id=sorbent_id, isotherms=isotherms,
         superseded=every_total - len(results), unfitted=max(inputs_total - every_total, 0),
-        qst=qst_rows(store, material_id), param_units=_param_units, rule=LATEST_WINS_RULE)
+        qst=qst_rows(store, sorbent_id), param_units=_param_units, rule=LATEST_WINS_RULE)

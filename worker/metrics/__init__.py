@@ -3,7 +3,7 @@
 Two entry points, called by the pipeline after selection:
 
 * ``summarize``        one value per isotherm per column (arrays of length n);
-* ``material_metrics`` rows per material and gas (isosteric heat, temperature
+* ``sorbent_metrics`` rows per sorbent and gas (isosteric heat, temperature
                        swing) and per mixture (IAST).
 
 A figure the data cannot support is nan with a flag naming why; nothing here
@@ -57,13 +57,13 @@ def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
     """Area (n,) in m2/g to spread the sites over, and where it came from.
 
     A surface area given with the isotherm wins; otherwise the mean of the
-    valid BET areas measured on the same material in this batch.
+    valid BET areas measured on the same sorbent in this batch.
     """
     given = np.isfinite(packed.surface_area_m2_per_g) & (packed.surface_area_m2_per_g > 0)
     area = np.where(given, packed.surface_area_m2_per_g, np.nan)
     source = np.where(given, "given", None).astype(object)
     measured = np.isfinite(bet_area_m2_per_g)
-    for rows in rows_by(packed.material_ids, range(len(packed.material_ids))).values():
+    for rows in rows_by(packed.sorbent_ids, range(len(packed.sorbent_ids))).values():
         rows = np.asarray(rows)
         with_area = rows[measured[rows]]
         if with_area.size == 0:
@@ -74,9 +74,9 @@ def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
     return area, source
 
 
-def material_metrics(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+def sorbent_metrics(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
                      batch: Batch) -> list[dict]:
-    """Flat rows per material and gas, and per mixture request."""
+    """Flat rows per sorbent and gas, and per mixture request."""
     usable = has_selected_fit(selection, fits)
     rows = isosteric_heat_rows(packed, fits, selection, usable)
     rows += temperature_swing_rows(packed, fits, selection, batch, usable)
@@ -84,4 +84,4 @@ def material_metrics(packed: Packed, fits: dict[str, ModelFits], selection: Sele
     return rows
 
 
-__all__ = ["summarize", "material_metrics"]
+__all__ = ["summarize", "sorbent_metrics"]

@@ -28,8 +28,8 @@ SAME_TEMPERATURE_TOLERANCE_K = 0.5
 def rows_by(keys: Sequence[Hashable], rows: Iterable[int]) -> dict[Hashable, list[int]]:
     """The given row indices grouped by ``keys[row]``, each group in batch order.
 
-    One pass over the rows: a scan of the whole batch per material would make
-    the per-material metrics quadratic in the batch size.
+    One pass over the rows: a scan of the whole batch per sorbent would make
+    the per-sorbent metrics quadratic in the batch size.
     """
     groups: dict[Hashable, list[int]] = {}
     for i in rows:

@@ -9,7 +9,7 @@ spreading pressures psi_i(p_i^0) = psi, where psi_i(p) = integral_0^p q_i(t)/t d
 
 which is increasing in psi; both it and the inner inversions (d psi_i / d ln p
 = q_i(p)) are solved by Newton steps kept inside a shrinking bracket, batched
-over every (request, material) pair at once. Total loading follows from
+over every (request, sorbent) pair at once. Total loading follows from
 1/q_T = sum_i x_i / q_i(p_i^0), component loadings from q_i = x_i q_T.
 
 psi_i is analytic for henry, langmuir, dual_site_langmuir, sips and
@@ -244,36 +244,36 @@ def _request_is_valid(req: MixtureRequest) -> bool:
 
 def iast_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
               mixtures: list[MixtureRequest], usable: np.ndarray) -> list[dict]:
-    """One row per (mixture request, material) with the IAST solution or nan + flags."""
+    """One row per (mixture request, sorbent) with the IAST solution or nan + flags."""
     adsorption = np.array([b == "adsorption" for b in packed.branches], dtype=bool)
     candidates = usable & adsorption
-    planned = []  # (request, material_id, isotherm rows or None, flags)
+    planned = []  # (request, sorbent_id, isotherm rows or None, flags)
     for req in mixtures:
         if not _request_is_valid(req):
-            planned.append((req, req.material_id, None, ["iast_invalid_request"]))
+            planned.append((req, req.sorbent_id, None, ["iast_invalid_request"]))
             continue
         near_t = candidates & (np.abs(packed.temperature_k - req.temperature_k)
                                <= SAME_TEMPERATURE_TOLERANCE_K)
-        by_material = rows_by(packed.material_ids, np.flatnonzero(near_t))
-        materials = [req.material_id] if req.material_id is not None else sorted(by_material)
-        for material_id in materials:
+        by_sorbent = rows_by(packed.sorbent_ids, np.flatnonzero(near_t))
+        sorbents = [req.sorbent_id] if req.sorbent_id is not None else sorted(by_sorbent)
+        for sorbent_id in sorbents:
             rows = []
             for gas in req.components:
-                match = [i for i in by_material.get(material_id, ())
+                match = [i for i in by_sorbent.get(sorbent_id, ())
                          if _same_gas(packed.adsorbates[i], gas)]
                 rows.append(match[0] if match else None)  # first isotherm of the batch
             if all(i is not None for i in rows):
-                planned.append((req, material_id, np.array(rows), []))
-            elif req.material_id is not None:
-                planned.append((req, material_id, None, ["iast_missing_component"]))
+                planned.append((req, sorbent_id, np.array(rows), []))
+            elif req.sorbent_id is not None:
+                planned.append((req, sorbent_id, None, ["iast_missing_component"]))
 
     solutions = _solve_planned(packed, fits, selection, planned)
     _, p_high = measured_pressure_range(packed)
     out = []
-    for k, (req, material_id, rows, flags) in enumerate(planned):
+    for k, (req, sorbent_id, rows, flags) in enumerate(planned):
         n = len(req.components)
         row = {
-            "material_id": material_id,
+            "sorbent_id": sorbent_id,
             "adsorbate": "/".join(req.components),
             "adsorbates": list(req.components),
             "kind": "iast",

@@ -1,6 +1,6 @@
 """Isosteric heat of adsorption by Clausius-Clapeyron at constant loading.
 
-For each material and gas with selected adsorption-branch fits at two or more
+For each sorbent and gas with selected adsorption-branch fits at two or more
 temperatures, each fit is inverted for p(n) on a common loading grid, and
 ln p is regressed on 1/T: slope = -Qst / R. With exactly two isotherms this
 is Qst = R ln(p2/p1) / (1/T1 - 1/T2) and has no standard error.
@@ -30,15 +30,15 @@ QST_MAX_TEMPERATURE_RATIO = 1.5
 
 
 def isosteric_groups(packed: Packed, usable: np.ndarray) -> list[tuple[str, str, np.ndarray]]:
-    """(material_id, adsorbate, rows) with usable adsorption fits at >= 2 temperatures."""
+    """(sorbent_id, adsorbate, rows) with usable adsorption fits at >= 2 temperatures."""
     adsorption = np.array([b == "adsorption" for b in packed.branches], dtype=bool)
     keep = usable & adsorption
-    groups = rows_by(list(zip(packed.material_ids, packed.adsorbates)), np.flatnonzero(keep))
+    groups = rows_by(list(zip(packed.sorbent_ids, packed.adsorbates)), np.flatnonzero(keep))
     out = []
-    for (material_id, adsorbate), rows in sorted(groups.items()):
+    for (sorbent_id, adsorbate), rows in sorted(groups.items()):
         rows = _temperature_window(np.array(rows), packed.temperature_k)
         if _distinct_temperatures(packed.temperature_k[rows]) >= 2:
-            out.append((material_id, adsorbate, rows))
+            out.append((sorbent_id, adsorbate, rows))
     return out
 
 
@@ -73,7 +73,7 @@ def isosteric_heat_rows(packed: Packed, fits: dict[str, ModelFits], selection: S
     p_low, p_high = measured_pressure_range(packed)
 
     out = []
-    for material_id, adsorbate, rows in groups:
+    for sorbent_id, adsorbate, rows in groups:
         with np.errstate(divide="ignore", invalid="ignore"):
             qst, stderr = clausius_clapeyron(packed.temperature_k[rows], pressure[rows])
         flags = []
@@ -86,7 +86,7 @@ def isosteric_heat_rows(packed: Packed, fits: dict[str, ModelFits], selection: S
             flags.append("qst_no_standard_error")
         ref = QST_GRID_POINTS // 2
         out.append({
-            "material_id": material_id,
+            "sorbent_id": sorbent_id,
             "adsorbate": adsorbate,
             "kind": "isosteric_heat",
             "isotherm_ids": [packed.isotherm_ids[i] for i in rows],

@@ -43,7 +43,7 @@ def loading_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selec
 
 def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
                            batch: Batch, usable: np.ndarray) -> list[dict]:
-    """Per material and gas: q(p_ads, T_ads) - q(p_des, T_des) when both temperatures were fitted."""
+    """Per sorbent and gas: q(p_ads, T_ads) - q(p_des, T_des) when both temperatures were fitted."""
     cond = batch.conditions
     t_ads, t_des = cond.adsorption_temperature_k, cond.desorption_temperature_k
     if t_ads is None or t_des is None:
@@ -55,12 +55,12 @@ def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection
     loading = selected_loading(packed, fits, selection, pressure)[:, 0]
     outside = outside_measured_range(packed, pressure)[:, 0]
 
-    keys = list(zip(packed.material_ids, packed.adsorbates))
+    keys = list(zip(packed.sorbent_ids, packed.adsorbates))
     ads_rows, des_rows = rows_by(keys, np.flatnonzero(at_ads)), rows_by(keys, np.flatnonzero(at_des))
 
     rows = []
     for key in sorted(ads_rows.keys() & des_rows.keys()):
-        material_id, adsorbate = key
+        sorbent_id, adsorbate = key
         i, k = ads_rows[key][0], des_rows[key][0]  # first isotherm of the batch at each temperature
         flags = []
         if outside[i]:
@@ -68,7 +68,7 @@ def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection
         if outside[k]:
             flags.append("extrapolated_desorption_pressure")
         rows.append({
-            "material_id": material_id,
+            "sorbent_id": sorbent_id,
             "adsorbate": adsorbate,
             "kind": "temperature_swing",
             "adsorption_temperature_k": float(packed.temperature_k[i]),
