@@ -2,7 +2,9 @@
 
 Every problem is collected and reported together, naming the variable, so a
 misconfigured deployment fails at start with one readable message instead of
-at the first request.
+at the first request. The settings the Celery app reads as well (store
+root, broker, log level, task limits and retries) are parsed by
+``sorbrank.worker.settings.read_shared``, the parser the Celery app uses.
 """
 from __future__ import annotations
 
@@ -11,30 +13,28 @@ import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Mapping
-from urllib.parse import urlsplit
 
-from sorbrank.worker.logs import LEVELS
 # defined beside the data types, so reading settings does not load the engine
 from sorbrank.worker.isotherm import DEFAULT_CHUNK_SIZE
+# the rules the Celery app applies too: one parser for both
+from sorbrank.worker.settings import (
+    DEFAULT_DATA_DIR, DEFAULT_RECONCILE_INTERVAL_S, DEFAULT_TASK_HARD_LIMIT_S,
+    DEFAULT_TASK_MAX_RETRIES, DEFAULT_TASK_SOFT_LIMIT_S, ConfigError, broker_url_problem,
+    data_dir_problem, env_int, read_shared, redact_url,
+)
 
 from .auth import Token, load_tokens
 
 DEFAULT_MAX_UPLOAD_BYTES = 64 * 1024 * 1024
 
-
-class ConfigError(ValueError):
-    def __init__(self, problems: list[str]):
-        self.problems = problems
-        if len(problems) == 1:
-            super().__init__(f"invalid configuration: {problems[0]}")
-        else:
-            super().__init__("invalid configuration:\n  " + "\n  ".join(problems))
+__all__ = ["ConfigError", "Settings", "broker_url_problem", "data_dir_problem", "load_settings",
+           "open_access_verdict", "redact_url", "start_problems", "store_problem"]
 
 
 @dataclass(frozen=True)
 class Settings:
     # a local Path, or a URI string pyarrow.fs understands (s3://, gs://, file://)
-    data_dir: Path | str = Path("./data")
+    data_dir: Path | str = Path(DEFAULT_DATA_DIR)
     broker_url: str | None = None
     chunk_size: int = DEFAULT_CHUNK_SIZE
     max_upload_bytes: int = DEFAULT_MAX_UPLOAD_BYTES
@@ -47,94 +47,25 @@ class Settings:
     worker_metrics_port: int | None = None  # None: 'sorbrank worker' serves no metrics
     worker_metrics_host: str = "0.0.0.0"
     log_level: str = "INFO"
-    # read by worker/celery_app.py itself; checked here so a bad value stops at start
-    task_soft_limit_s: int = 1500
-    task_hard_limit_s: int = 1800
-    task_max_retries: int = 2
+    # the Celery app reads these itself (worker/settings.py, the same rules);
+    # checked here too so a bad value stops 'sorbrank serve/worker' at start
+    task_soft_limit_s: int = DEFAULT_TASK_SOFT_LIMIT_S
+    task_hard_limit_s: int = DEFAULT_TASK_HARD_LIMIT_S
+    task_max_retries: int = DEFAULT_TASK_MAX_RETRIES
+    reconcile_interval_s: int = DEFAULT_RECONCILE_INTERVAL_S
 
     @property
     def mode(self) -> str:
         return "distributed" if self.broker_url else "embedded"
 
 
-def _int(env, name, default, problems, minimum=1):
-    raw = env.get(name, "").strip()
-    if not raw:
-        return default
-    try:
-        value = int(raw)
-    except ValueError:
-        problems.append(f"{name}={raw!r}: expected a whole number")
-        return default
-    if value < minimum:
-        problems.append(f"{name}={value}: must be at least {minimum}")
-    return value
-
-
-def redact_url(url: str) -> str:
-    """``url`` with any password replaced, safe to print."""
-    try:
-        parts = urlsplit(url)
-        if parts.password is None:
-            return url
-        netloc = parts.netloc.replace(f":{parts.password}@", ":***@", 1)
-        return parts._replace(netloc=netloc).geturl()
-    except ValueError:
-        return "(unparseable URL)"
-
-
-def broker_url_problem(url: str) -> str | None:
-    """Why ``url`` is not a usable Redis broker URL (None = fine)."""
-    shown = redact_url(url)
-    expected = "expected redis://[:password@]host:port/db, rediss://... or unix:///path"
-    try:
-        parts = urlsplit(url)
-        port = parts.port  # raises ValueError when not a number in range
-    except ValueError as exc:
-        return f"SORBRANK_BROKER_URL={shown!r}: {exc}; {expected}"
-    if parts.scheme in ("redis", "rediss"):
-        db = parts.path.strip("/")
-        if not parts.hostname:
-            return f"SORBRANK_BROKER_URL={shown!r}: no host; {expected}"
-        if db and not db.isdigit():
-            return f"SORBRANK_BROKER_URL={shown!r}: database {db!r} is not a number; {expected}"
-        return None
-    if parts.scheme == "unix" and parts.path and port is None:
-        return None
-    return f"SORBRANK_BROKER_URL={shown!r}: {expected}"
-
-
-def data_dir_problem(raw: str) -> str | None:
-    """Why SORBRANK_DATA_DIR cannot name a store root (None = fine)."""
-    if "://" in raw:
-        import pyarrow.fs
-
-        try:
-            pyarrow.fs.FileSystem.from_uri(raw)
-        except (ValueError, OSError) as exc:  # unknown scheme, bad URI, unsupported build
-            return f"SORBRANK_DATA_DIR={raw!r}: not a filesystem URI pyarrow understands ({exc})"
-        return None
-    path = Path(raw)
-    if path.exists() and not path.is_dir():
-        return f"SORBRANK_DATA_DIR={raw}: exists and is not a directory"
-    return None
-
-
 def load_settings(env: Mapping[str, str] | None = None) -> Settings:
     env = os.environ if env is None else env
     problems: list[str] = []
-    broker = env.get("SORBRANK_BROKER_URL", "").strip() or None
-    if broker and (problem := broker_url_problem(broker)):
-        problems.append(problem)
-    data_dir_raw = env.get("SORBRANK_DATA_DIR", "").strip() or "./data"
-    if problem := data_dir_problem(data_dir_raw):
-        problems.append(problem)
-    log_level = env.get("SORBRANK_LOG_LEVEL", "").strip().upper() or "INFO"
-    if log_level not in LEVELS:
-        problems.append(f"SORBRANK_LOG_LEVEL={log_level!r}: expected one of {', '.join(LEVELS)}")
+    shared = read_shared(env, problems)
     metrics_port = None
     if env.get("SORBRANK_WORKER_METRICS_PORT", "").strip():
-        metrics_port = _int(env, "SORBRANK_WORKER_METRICS_PORT", 0, problems)
+        metrics_port = env_int(env, "SORBRANK_WORKER_METRICS_PORT", 0, problems)
         if metrics_port > 65535:
             problems.append(f"SORBRANK_WORKER_METRICS_PORT={metrics_port}: not a TCP port")
     allow_open_raw = env.get("SORBRANK_ALLOW_OPEN", "").strip()
@@ -149,25 +80,26 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
     for var, key in (("SORBRANK_MAX_ISOTHERMS", "max_isotherms"),
                      ("SORBRANK_MAX_POINTS_PER_ISOTHERM", "max_points_per_isotherm")):
         if env.get(var, "").strip():
-            limits.append((key, _int(env, var, 0, problems)))
-    soft_limit_s = _int(env, "SORBRANK_TASK_SOFT_LIMIT_S", 1500, problems)
+            limits.append((key, env_int(env, var, 0, problems)))
     settings = Settings(
-        data_dir=data_dir_raw if "://" in data_dir_raw else Path(data_dir_raw),
-        broker_url=broker,
-        chunk_size=_int(env, "SORBRANK_CHUNK_SIZE", DEFAULT_CHUNK_SIZE, problems),
-        max_upload_bytes=_int(env, "SORBRANK_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES, problems),
-        embedded_workers=_int(env, "SORBRANK_EMBEDDED_WORKERS", os.cpu_count() or 1, problems),
+        data_dir=shared.data_dir,
+        broker_url=shared.broker_url,
+        chunk_size=env_int(env, "SORBRANK_CHUNK_SIZE", DEFAULT_CHUNK_SIZE, problems),
+        max_upload_bytes=env_int(env, "SORBRANK_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES,
+                                 problems),
+        embedded_workers=env_int(env, "SORBRANK_EMBEDDED_WORKERS", os.cpu_count() or 1, problems),
         tokens=tokens,
         allow_open=allow_open_raw == "1",
         intake_limits=tuple(limits),
-        worker_concurrency=_int(env, "SORBRANK_WORKER_CONCURRENCY", os.cpu_count() or 1, problems),
+        worker_concurrency=env_int(env, "SORBRANK_WORKER_CONCURRENCY", os.cpu_count() or 1,
+                                   problems),
         worker_metrics_port=metrics_port,
         worker_metrics_host=env.get("SORBRANK_WORKER_METRICS_HOST", "").strip() or "0.0.0.0",
-        log_level=log_level,
-        task_soft_limit_s=soft_limit_s,
-        task_hard_limit_s=_int(env, "SORBRANK_TASK_HARD_LIMIT_S", max(1800, soft_limit_s + 1),
-                               problems, minimum=soft_limit_s + 1),
-        task_max_retries=_int(env, "SORBRANK_TASK_MAX_RETRIES", 2, problems, minimum=0),
+        log_level=shared.log_level,
+        task_soft_limit_s=shared.task_soft_limit_s,
+        task_hard_limit_s=shared.task_hard_limit_s,
+        task_max_retries=shared.task_max_retries,
+        reconcile_interval_s=shared.reconcile_interval_s,
     )
     if problems:
         raise ConfigError(problems)

@@ -342,7 +342,8 @@ def test_store_volume_port_and_environment(instructions):
     assert [i.args for i in final if i.keyword == "EXPOSE"] == [str(API_PORT)]
     # every setting the image sets is one the service reads (catches typos)
     settings_source = "".join(p.read_text() for p in
-                              (ROOT / "service" / "config.py", ROOT / "worker" / "celery_app.py"))
+                              (ROOT / "service" / "config.py", ROOT / "worker" / "settings.py",
+                               ROOT / "worker" / "celery_app.py"))
     for key in env:
         if key.startswith("SORBRANK_"):
             assert key in settings_source, f"ENV {key} is read by nothing"

@@ -1,49 +1,41 @@
-"""The Celery application. Configuration comes from the environment only:
+"""The Celery application. Configuration comes from the environment only,
+read by ``sorbrank.worker.settings`` (the parser and rules the API uses; see
+that module for every variable): SORBRANK_BROKER_URL, SORBRANK_DATA_DIR,
+SORBRANK_TASK_SOFT_LIMIT_S, SORBRANK_TASK_HARD_LIMIT_S,
+SORBRANK_TASK_MAX_RETRIES, SORBRANK_RECONCILE_INTERVAL_S and
+SORBRANK_LOG_LEVEL (logs are JSON lines, worker/logs.py, in every pool process).
 
-SORBRANK_BROKER_URL           redis://host:port/db (required by ``sorbrank worker``)
-SORBRANK_DATA_DIR             store root shared with the API: a path or a URI
-                              pyarrow.fs understands (default ./data)
-SORBRANK_TASK_SOFT_LIMIT_S    soft time limit per chunk, seconds (default 1500)
-SORBRANK_TASK_HARD_LIMIT_S    hard time limit per chunk, seconds (default 1800)
-SORBRANK_TASK_MAX_RETRIES     retries after a failed chunk (default 2)
-SORBRANK_LOG_LEVEL            DEBUG, INFO, WARNING or ERROR (default INFO); logs are
-                              JSON lines (worker/logs.py), in every pool process
+Bad settings stop the import with the message ``sorbrank serve`` would print,
+so ``celery -A sorbrank.worker.celery_app worker`` refuses what the API refuses.
 """
 from __future__ import annotations
 
 import logging
-import os
 
 from celery import Celery
 from celery.signals import setup_logging
 
 from . import logs
+from .settings import ConfigError, load_shared
 
-
-def env_int(name: str, default: int) -> int:
-    raw = os.environ.get(name, "").strip()
-    if not raw:
-        return default
-    try:
-        value = int(raw)
-    except ValueError:
-        raise SystemExit(f"{name} must be a whole number, got {raw!r}") from None
-    if value < 0:
-        raise SystemExit(f"{name} must not be negative, got {value}")
-    return value
+try:
+    SETTINGS = load_shared()
+except ConfigError as exc:
+    # SystemExit, not a traceback: the celery command prints this message and stops
+    raise SystemExit(f"sorbrank celery app: {exc}") from None
 
 
 def data_dir() -> str:
     # a string, not a Path: Path("s3://bucket/x") would fold the "//"
-    return os.environ.get("SORBRANK_DATA_DIR") or "./data"
+    return str(SETTINGS.data_dir)
 
 
-SOFT_LIMIT_S = env_int("SORBRANK_TASK_SOFT_LIMIT_S", 1500)
-HARD_LIMIT_S = max(env_int("SORBRANK_TASK_HARD_LIMIT_S", 1800), SOFT_LIMIT_S + 1)
-MAX_RETRIES = env_int("SORBRANK_TASK_MAX_RETRIES", 2)
+SOFT_LIMIT_S = SETTINGS.task_soft_limit_s
+HARD_LIMIT_S = SETTINGS.task_hard_limit_s
+MAX_RETRIES = SETTINGS.task_max_retries
 QUEUE = "sorbrank"
 
-app = Celery("sorbrank", broker=os.environ.get("SORBRANK_BROKER_URL"), include=["sorbrank.worker.tasks"])
+app = Celery("sorbrank", broker=SETTINGS.broker_url, include=["sorbrank.worker.tasks"])
 app.conf.update(
     task_default_queue=QUEUE,
     task_serializer="json",

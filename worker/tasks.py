@@ -7,11 +7,11 @@ import threading
 from celery.signals import worker_ready, worker_shutdown
 
 from . import jobs
-from .celery_app import MAX_RETRIES, QUEUE, app, data_dir, env_int
+from .celery_app import MAX_RETRIES, QUEUE, SETTINGS, app, data_dir
 from .store import Store
 
 # How often a worker checks for a broker that forgot its queue (seconds; 0 = never)
-RECONCILE_INTERVAL_S = env_int("SORBRANK_RECONCILE_INTERVAL_S", 60)
+RECONCILE_INTERVAL_S = SETTINGS.reconcile_interval_s
 # kombu's Redis transport keeps in-flight (unacknowledged) messages in this hash
 _UNACKED_KEY = "unacked"
 _stop_watch = threading.Event()
