@@ -115,7 +115,7 @@ def run(args) -> int:
         for path, batch_id in submitted:
             client.wait(batch_id, progress_printer(path.name), timeout_s=args.timeout_s)
 
-        winners = client.rankings({"limit": 100_000})["rows"]
+        winners = client.rankings_document({"limit": 100_000})["rows"]
         temperatures = collections.defaultdict(collections.Counter)
         for row in winners:
             temperatures[row["adsorbate"]][round(row["temperature_k"], 2)] += 1
@@ -126,7 +126,7 @@ def run(args) -> int:
             # screening teams rank on what a sorbent delivers in a process:
             # the working capacity between the batch's adsorption and
             # desorption pressures (default 1 bar -> 0.1 bar)
-            doc = client.rankings({"adsorbate": adsorbate, "temperature_k": temperature_k,
+            doc = client.rankings_document({"adsorbate": adsorbate, "temperature_k": temperature_k,
                                    "sort": "working_capacity_mol_per_kg", "limit": args.top})
             print(f"\n{adsorbate} at {temperature_k} K: top {len(doc['rows'])} of {doc['total']} "
                   f"by working capacity 1 bar -> 0.1 bar (mol/kg)")

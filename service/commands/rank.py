@@ -44,7 +44,7 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
-    from ..client import ApiError, Client, ranked_table
+    from ..client import ApiError, Client, ServiceUnreachable, ranked_table
 
     params = {"adsorbate": args.adsorbate, "temperature_k": args.temperature_k,
               "temperature_tolerance_k": args.tolerance_k if args.temperature_k is not None else None,
@@ -54,9 +54,12 @@ def run(args) -> int:
     client = Client(args.url, args.token)
     try:
         if args.format == "csv":
-            sys.stdout.write(client.rankings(params, "csv").decode())
+            sys.stdout.write(client.rankings_bytes(params, "csv").decode())
             return 0
-        doc = client.rankings(params)
+        doc = client.rankings_document(params)
+    except ServiceUnreachable as exc:
+        print(f"sorbrank rank: {exc}", file=sys.stderr)
+        return 1
     except (ApiError, OSError) as exc:
         print(f"sorbrank rank: {exc}", file=sys.stderr)
         return 1

@@ -19,7 +19,8 @@ Exit status: 0 every file was accepted as a batch (and, with --wait, finished
 done); isotherms rejected inside a batch do not change it; 1 otherwise."""
 EPILOG = """\
 example:
-  sorbrank submit run1.csv run2.parquet --pressure-unit kPa --loading-unit mmol/g --wait
+  sorbrank submit run1.csv run2.parquet --wait     # columns pressure_kpa, loading_mmol_per_g
+  sorbrank submit plain.csv --pressure-unit kPa --loading-unit mmol/g
   SORBRANK_TOKEN=... sorbrank submit --url http://fitbox:8000 campaign/*.json"""
 
 
@@ -33,8 +34,14 @@ def register(subparsers) -> None:
                    help="wait until every batch is finished, showing progress on stderr")
     p.add_argument("--timeout-s", type=float, default=3600.0,
                    help="with --wait: give up after this many seconds (default 3600)")
-    p.add_argument("--pressure-unit", help="unit of pressures the file does not name, e.g. kPa, bar")
-    p.add_argument("--loading-unit", help="unit of loadings the file does not name, e.g. mmol/g")
+    p.add_argument("--pressure-unit",
+                   help="unit of a plain 'pressure' column, e.g. kPa, bar (columns such as "
+                        "pressure_kpa carry their own)")
+    p.add_argument("--loading-unit",
+                   help="unit of a plain 'loading' column, e.g. mmol/g (columns such as "
+                        "loading_mmol_per_g carry their own)")
+    p.add_argument("--sample-mass-g", type=float,
+                   help="sample mass in grams, for loadings given as absolute amounts")
     p.add_argument("--label", help="batch label (default: from the file, else a content hash)")
     p.add_argument("--models", help="'all' (default) or comma-separated model ids")
     p.add_argument("--criterion", choices=["aicc", "aic", "bic"], help="model selection (default aicc)")
@@ -47,38 +54,50 @@ def add_connection_options(p) -> None:
     p.add_argument("--token", help="bearer token (default $SORBRANK_TOKEN)")
 
 
+def unit_options(args) -> dict | None:
+    """--pressure-unit/--loading-unit as one units declaration (None if neither)."""
+    declared = {"pressure": args.pressure_unit, "loading": args.loading_unit}
+    return {k: v for k, v in declared.items() if v} or None
+
+
 def run(args) -> int:
-    from ..client import ApiError, Client, progress_printer
+    from ..client import ApiError, Client, ServiceUnreachable, progress_printer
 
     client = Client(args.url, args.token)
-    params = {"pressure_unit": args.pressure_unit, "loading_unit": args.loading_unit,
-              "batch_label": args.label, "models": args.models, "criterion": args.criterion,
-              "weighting": args.weighting}
+    options = {"units": unit_options(args), "sample_mass_g": args.sample_mass_g,
+               "batch_label": args.label, "models": args.models, "criterion": args.criterion,
+               "weighting": args.weighting}
     ok = True
     submitted = []
     for path in args.files:
         try:
-            reply = client.submit_file(path, params)
+            batch = client.submit(path, **options)
+        except ServiceUnreachable as exc:
+            print(f"sorbrank submit: {exc}", file=sys.stderr)
+            return 1
         except (ApiError, OSError, ValueError) as exc:
             ok = False
             print(f"{path}: not accepted: {exc}", file=sys.stderr)
             for issue in getattr(exc, "problem", {}).get("issues", [])[:20]:
                 print(f"  {issue['message']}", file=sys.stderr)
             continue
-        print(f"{reply['batch_id']}\t{path}\taccepted {reply['accepted']}\t"
-              f"rejected {len(reply['rejected'])} issue(s)", flush=True)
-        for issue in reply["rejected"][:20]:
+        print(f"{batch.id}\t{path}\taccepted {batch.accepted}\t"
+              f"rejected {len(batch.rejected)} issue(s)", flush=True)
+        for issue in batch.rejected[:20]:
             print(f"  {issue['message']}", file=sys.stderr)
-        submitted.append((path, reply["batch_id"]))
+        submitted.append((path, batch))
     if args.wait:
-        for path, batch_id in submitted:
+        for path, batch in submitted:
             try:
-                status = client.wait(batch_id, progress_printer(path.name), args.timeout_s)
+                status = client.wait(batch.id, progress_printer(path.name), args.timeout_s)
+            except ServiceUnreachable as exc:
+                print(f"sorbrank submit: {exc}", file=sys.stderr)
+                return 1
             except (ApiError, OSError, TimeoutError) as exc:
-                print(f"{batch_id}: {exc}", file=sys.stderr)
+                print(f"{batch.id}: {exc}", file=sys.stderr)
                 ok = False
                 continue
-            print(f"{batch_id}\t{status['state']}\tdone {status['counts']['done']}\t"
+            print(f"{batch.id}\t{status['state']}\tdone {status['counts']['done']}\t"
                   f"failed {status['counts']['failed']}")
             ok = ok and status["state"] == "done"
     return 0 if ok else 1
