@@ -31,13 +31,13 @@ def post(session, service, body: bytes, fmt: str, key: str | None = None, **para
     headers = {"Content-Type": MEDIA[fmt]}
     if key:
         headers["Idempotency-Key"] = key
-    return session.post(f"{sorbrank.service.api}/batches", data=body, headers=headers, params=params,
+    return session.post(f"{service.api}/batches", data=body, headers=headers, params=params,
                         timeout=30)
 
 
 def wait_done(session, service, batch_id: str) -> dict:
     def settled():
-        status = session.get(f"{sorbrank.service.api}/batches/{batch_id}", timeout=10).json()
+        status = session.get(f"{service.api}/batches/{batch_id}", timeout=10).json()
         return status if status["state"] in FINAL_STATES else None
 
     return wait_until(settled, f"batch {batch_id} to finish", [p for p in service.procs],
@@ -83,44 +83,44 @@ def test_batches_in_three_formats_results_and_rankings(service):
         t = status["timings"]
         assert t["accepted_at"] <= t["started_at"] <= t["finished_at"]
         assert status["chunks"]["done"] == status["chunks"]["total"] >= 1
-    assert s.get(f"{sorbrank.service.api}/batches/{accepted[0]['batch_id']}").json()["counts"]["rejected"] == 1
+    assert s.get(f"{service.api}/batches/{accepted[0]['batch_id']}").json()["counts"]["rejected"] == 1
 
     # results: the same rows in every format
     batch_id = accepted[0]["batch_id"]
-    doc = s.get(f"{sorbrank.service.api}/batches/{batch_id}/results").json()
+    doc = s.get(f"{service.api}/batches/{batch_id}/results").json()
     ids = sorted(r["isotherm_id"] for r in doc["summary"])
     q_sat = {r["isotherm_id"]: r["q_sat_mol_per_kg"] for r in doc["summary"]}
     assert len(ids) == 3 and {r["sorbent_id"] for r in doc["summary"]} == {"A1", "A2"}
     assert len(doc["fits"]) == 3 * len({r["model"] for r in doc["fits"]})
     assert abs(q_sat[next(i for i in ids if i.startswith("A2"))] - 4.0) < 0.01
     for fmt in ("csv", "parquet", "arrow"):
-        resp = s.get(f"{sorbrank.service.api}/batches/{batch_id}/results", params={"format": fmt})
+        resp = s.get(f"{service.api}/batches/{batch_id}/results", params={"format": fmt})
         assert resp.status_code == 200, resp.text
         table = read_table(resp, fmt)
         assert sorted(table["isotherm_id"].to_pylist()) == ids
         assert dict(zip(table["isotherm_id"].to_pylist(),
                         table["q_sat_mol_per_kg"].to_pylist())) == q_sat
-    fits = read_table(s.get(f"{sorbrank.service.api}/batches/{batch_id}/results",
+    fits = read_table(s.get(f"{service.api}/batches/{batch_id}/results",
                             params={"format": "arrow", "table": "fits"}), "arrow")
     assert fits.num_rows == len(doc["fits"])
-    by_accept = s.get(f"{sorbrank.service.api}/batches/{batch_id}/results",
+    by_accept = s.get(f"{service.api}/batches/{batch_id}/results",
                       headers={"Accept": "application/vnd.apache.parquet"})
     assert by_accept.headers["Content-Type"] == "application/vnd.apache.parquet"
 
     check_rankings_against_brute_force(s, service)
 
-    sorbent = s.get(f"{sorbrank.service.api}/sorbents/A1").json()
+    sorbent = s.get(f"{service.api}/sorbents/A1").json()
     assert {accepted[0]["batch_id"], accepted[1]["batch_id"]} <= set(sorbent["batches"])
     assert len(sorbent["summaries"]) >= 3 and sorbent["isotherms"][0]["pressure_pa"]
 
 
 def check_rankings_against_brute_force(s, service):
     """Recompute latest-wins rankings from every batch's results, compare."""
-    batches = s.get(f"{sorbrank.service.api}/batches", params={"limit": 1000}).json()["batches"]
+    batches = s.get(f"{service.api}/batches", params={"limit": 1000}).json()["batches"]
     rows = []
     for b in batches:
         if b["state"] == "done":
-            rows += s.get(f"{sorbrank.service.api}/batches/{b['batch_id']}/results",
+            rows += s.get(f"{service.api}/batches/{b['batch_id']}/results",
                           params={"table": "summary"}).json()["summary"]
     newest = sorted(rows, key=lambda r: r["isotherm_id"])
     newest.sort(key=lambda r: (r["accepted_at"], r["batch_id"]), reverse=True)
@@ -132,19 +132,19 @@ def check_rankings_against_brute_force(s, service):
                     key=lambda r: (-r["q_sat_mol_per_kg"], r["sorbent_id"], r["isotherm_id"]))
     expected = [(r["batch_id"], r["isotherm_id"]) for r in ranked]
 
-    doc = s.get(f"{sorbrank.service.api}/rankings", params={"limit": 1000}).json()
+    doc = s.get(f"{service.api}/rankings", params={"limit": 1000}).json()
     assert doc["total"] == len(winners)
     got = [(r["batch_id"], r["isotherm_id"]) for r in doc["rows"]]
     assert got[:len(expected)] == expected
     assert "accepted last wins" in doc["deduplication"]
     for fmt in ("csv", "parquet", "arrow"):
-        resp = s.get(f"{sorbrank.service.api}/rankings", params={"limit": 1000, "format": fmt})
+        resp = s.get(f"{service.api}/rankings", params={"limit": 1000, "format": fmt})
         table = read_table(resp, fmt)
         assert list(zip(table["batch_id"].to_pylist(), table["isotherm_id"].to_pylist())) == got
         assert resp.headers["X-Total-Count"] == str(len(winners))
-    everything = s.get(f"{sorbrank.service.api}/rankings", params={"all": "true", "limit": 1000}).json()
+    everything = s.get(f"{service.api}/rankings", params={"all": "true", "limit": 1000}).json()
     assert everything["total"] == len(rows)
-    at_273 = s.get(f"{sorbrank.service.api}/rankings", params={"temperature_k": 273.0,
+    at_273 = s.get(f"{service.api}/rankings", params={"temperature_k": 273.0,
                                                       "temperature_tolerance_k": 0.5}).json()
     assert {r["temperature_k"] for r in at_273["rows"]} <= {273.15}
     assert at_273["total"] == sum(1 for k in winners if k[3] == 273)
@@ -154,12 +154,12 @@ def test_retried_post_with_idempotency_key_gives_one_batch(service):
     s = service.session("submitter")
     body = csv_batch([isotherm("K1", 2.0, 0.1)])
     key = f"retry-{uuid.uuid4()}"
-    before = s.get(f"{sorbrank.service.api}/batches").json()["total"]
+    before = s.get(f"{service.api}/batches").json()["total"]
     first = post(s, service, body, "csv", key=key)
     second = post(s, service, body, "csv", key=key)
     assert first.status_code == second.status_code == 202
     assert first.json() == second.json()
-    assert s.get(f"{sorbrank.service.api}/batches").json()["total"] == before + 1
+    assert s.get(f"{service.api}/batches").json()["total"] == before + 1
     reused = post(s, service, csv_batch([isotherm("K2", 2.0, 0.1)]), "csv", key=key)
     assert reused.status_code == 422
     assert reused.json()["batch_id"] == first.json()["batch_id"]
@@ -176,8 +176,8 @@ def test_client_errors_are_problem_documents(service):
         assert doc["status"] == status and doc["title"]
         return doc
 
-    problem(s.get(f"{sorbrank.service.api}/batches/b-20000101-000000-000000-00000000"), 404)
-    problem(s.get(f"{sorbrank.service.api}/batches/..%2F..%2Fetc"), 404)
+    problem(s.get(f"{service.api}/batches/b-20000101-000000-000000-00000000"), 404)
+    problem(s.get(f"{service.api}/batches/..%2F..%2Fetc"), 404)
 
     nothing_good = csv_batch([], extra_lines=("Z1,CO2,298.15,10,oops,kPa,mol/kg",
                                               "Z2,CO2,298.15,-5,1.0,kPa,mol/kg"))
@@ -189,11 +189,11 @@ def test_client_errors_are_problem_documents(service):
 
     anonymous = service.session("reader")
     anonymous.headers.pop("Authorization")
-    resp = anonymous.get(f"{sorbrank.service.api}/rankings")
+    resp = anonymous.get(f"{service.api}/rankings")
     problem(resp, 401)
     assert resp.headers["WWW-Authenticate"].startswith("Bearer")
     anonymous.headers["Authorization"] = "Bearer not-a-real-token"
-    problem(anonymous.get(f"{sorbrank.service.api}/batches"), 401)
+    problem(anonymous.get(f"{service.api}/batches"), 401)
     doc = problem(post(service.session("reader"), service, csv_batch([isotherm("R", 1, 1)]), "csv"),
                   403)
     assert doc["required_scope"] == "submit"
@@ -212,7 +212,7 @@ def test_unfinished_batch_finishes_after_restart(service):
                                   isotherm("R3", 1.0, 0.5)]), "csv", batch_label="restart")
     manifest = jobs.accept_batch(Store(service.data_dir), batch, options={}, chunk_size=2)
     s = service.session("admin")
-    status_url = f"{sorbrank.service.api}/batches/{manifest['batch_id']}"
+    status_url = f"{service.api}/batches/{manifest['batch_id']}"
     assert s.get(status_url).json()["state"] == "queued"
 
     role = "celery-worker" if service.mode == "distributed" else "server"
@@ -223,7 +223,7 @@ def test_unfinished_batch_finishes_after_restart(service):
         start_worker(service.env, service.log_dir, service.procs, name="celery-worker-2")
     else:
         _, service.url = start_server(service.env, service.log_dir, service.procs, name="server-2")
-        status_url = f"{sorbrank.service.api}/batches/{manifest['batch_id']}"
+        status_url = f"{service.api}/batches/{manifest['batch_id']}"
     status = wait_done(s, service, manifest["batch_id"])
     assert status["state"] == "done" and status["counts"]["done"] == 3
 

@@ -54,13 +54,13 @@ def n2_77k_batch(count: int = 2) -> bytes:
 
 def post_and_wait(service, body: bytes, content_type: str) -> str:
     http = service.session("submitter")
-    resp = http.post(sorbrank.service.api + "/batches", data=body,
+    resp = http.post(service.api + "/batches", data=body,
                      headers={"Content-Type": content_type}, timeout=30)
     assert resp.status_code == 202, resp.text
     batch_id = resp.json()["batch_id"]
 
     def finished():
-        state = http.get(f"{sorbrank.service.api}/batches/{batch_id}", timeout=10).json()["state"]
+        state = http.get(f"{service.api}/batches/{batch_id}", timeout=10).json()["state"]
         return state if state in ("done", "failed", "partial") else None
 
     assert wait_until(finished, f"batch {batch_id} to finish", service.procs) == "done"
@@ -75,7 +75,7 @@ def stored(service):
     reader = service.session("reader")
     summaries = {}
     for batch_id in batch_ids:
-        doc = reader.get(f"{sorbrank.service.api}/batches/{batch_id}/results?table=summary",
+        doc = reader.get(f"{service.api}/batches/{batch_id}/results?table=summary",
                          timeout=30).json()
         summaries.update({row["isotherm_id"]: row for row in doc["summary"]})
     return {"batch_ids": batch_ids, "summaries": summaries, "reader": reader}
@@ -88,7 +88,7 @@ def pick(stored, **match) -> dict:
 
 def plot_url(service, isotherm_id: str) -> str:
     # ids contain '|'; requests percent-encodes it and Flask decodes it back
-    return f"{sorbrank.service.api}/isotherms/{isotherm_id}/plot"
+    return f"{service.api}/isotherms/{isotherm_id}/plot"
 
 
 def svg_of(resp) -> ET.Element:
@@ -192,12 +192,12 @@ def test_isotherm_png_is_a_real_image(service, stored):
 # -- isosteric heat ----------------------------------------------------------------
 
 def test_qst_svg_for_a_gas_at_three_temperatures(service, stored):
-    resp = stored["reader"].get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
+    resp = stored["reader"].get(f"{service.api}/sorbents/PLOT-A/qst-plot",
                                 params={"adsorbate": "CO2"}, timeout=60)
     found = groups(svg_of(resp))
     assert {"qst-0", "qst-0-errorbars"} <= set(found)
     assert "qst-1" not in found  # one gas asked for, one curve drawn
-    png = stored["reader"].get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
+    png = stored["reader"].get(f"{service.api}/sorbents/PLOT-A/qst-plot",
                                params={"format": "png"}, timeout=60)
     assert png.status_code == 200 and png.content[:8] == PNG_SIGNATURE
 
@@ -213,9 +213,9 @@ def test_unknown_things_are_404(service, stored):
     other_batch = stored["batch_ids"][1]
     assert_problem(reader.get(plot_url(service, row["isotherm_id"]),
                               params={"batch_id": other_batch}, timeout=10), 404)
-    assert_problem(reader.get(f"{sorbrank.service.api}/sorbents/NO-SUCH/qst-plot", timeout=10), 404)
+    assert_problem(reader.get(f"{service.api}/sorbents/NO-SUCH/qst-plot", timeout=10), 404)
     # N2 was measured at one temperature only: no isosteric heat
-    assert_problem(reader.get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
+    assert_problem(reader.get(f"{service.api}/sorbents/PLOT-A/qst-plot",
                               params={"adsorbate": "N2"}, timeout=10), 404)
 
 
@@ -230,7 +230,7 @@ def test_bad_parameters_are_400(service, stored, params):
 
 
 def test_bad_qst_format_is_400(service, stored):
-    assert_problem(stored["reader"].get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot",
+    assert_problem(stored["reader"].get(f"{service.api}/sorbents/PLOT-A/qst-plot",
                                         params={"format": "jpeg"}, timeout=10), 400)
 
 
@@ -246,7 +246,7 @@ def test_plots_need_the_read_scope(service, stored):
 
     row = pick(stored, sorbent_id="PLOT-A", adsorbate="CO2", temperature_k=298.15)
     assert_problem(requests.get(plot_url(service, row["isotherm_id"]), timeout=10), 401)
-    assert_problem(requests.get(f"{sorbrank.service.api}/sorbents/PLOT-A/qst-plot", timeout=10), 401)
+    assert_problem(requests.get(f"{service.api}/sorbents/PLOT-A/qst-plot", timeout=10), 401)
 
 
 # -- the HTML pages when tokens are configured --------------------------------------
