@@ -8,7 +8,7 @@ import importlib
 import sys
 
 # order = order shown in --help
-COMMANDS = ["fit", "serve", "worker", "submit", "rank", "demo", "plot", "models"]
+COMMANDS = ["fit", "serve", "worker", "submit", "rank", "demo", "plot", "models", "migrate_store"]
 
 DESCRIPTION = """\
 sorbrank fits published isotherm models to sorbent screening data, picks the

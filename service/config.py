@@ -107,14 +107,18 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
 
 
 def store_problem(settings: Settings) -> str | None:
-    """Why the store root cannot take writes right now (None = it can)."""
+    """Why the store cannot be used right now: not writable, or written by an
+    older sorbrank and not yet migrated (None = it can be used)."""
     from sorbrank.worker.store import Store
 
+    store = Store(settings.data_dir)
     try:
-        Store(settings.data_dir).check_writable()
+        store.check_writable()
     except OSError as exc:
         reason = exc.strerror or str(exc) or type(exc).__name__
         return f"SORBRANK_DATA_DIR={settings.data_dir}: the store root is not writable ({reason})"
+    if problem := store.schema_problem():
+        return f"SORBRANK_DATA_DIR={settings.data_dir}: {problem}"
     return None
 
 

@@ -111,11 +111,11 @@ def test_chunks_with_all_null_columns_merge_with_typed_ones(tmp_path):
 
 
 def test_isotherms_round_trip_exactly_through_the_inputs_table():
-    csv = "\n".join(["sorbent_id,adsorbate,temperature_k,pressure,loading,sigma,"
-                     "pressure_unit,loading_unit"]
-                    + [f"M1,CO2,298.15,{p},{0.1 * p / (1 + 0.01 * p):.6f},0.01,kPa,mmol/g"
+    csv = "\n".join(["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mmol_per_g,"
+                     "loading_sigma"]
+                    + [f"M1,CO2,298.15,{p},{0.1 * p / (1 + 0.01 * p):.6f},0.01"
                        for p in (1, 3, 7, 15, 40, 90)]
-                    + [f"M2,N2,77.3,{p},{p},,kPa,mol/kg" for p in (1, 2, 4, 8)])
+                    + [f"M2,N2,77.3,{p},{p}," for p in (1, 2, 4, 8)])
     batch = read_batch(csv, "csv", batch_label="roundtrip")
     assert len(batch.isotherms) == 2
     back = table_to_isotherms(isotherms_to_table(batch.isotherms))
@@ -248,10 +248,14 @@ def test_chunks_keep_each_sorbent_together():
 
 
 def small_batch(sorbents=("J1", "J2", "J3")):
-    from conftest import csv_batch, isotherm
+    from conftest import isotherm
 
-    return read_batch(csv_batch([isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(sorbents)
-                                 for t in (273.15, 298.15)]), "csv", batch_label="jobs")
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
+    for iso in [isotherm(m, 1.0 + k, 0.1, t) for k, m in enumerate(sorbents)
+                for t in (273.15, 298.15)]:
+        lines += [f"{iso['sorbent_id']},{iso['adsorbate']},{iso['temperature_k']},{p},{q}"
+                  for p, q in zip(iso["pressure"], iso["loading"])]
+    return read_batch("\n".join(lines) + "\n", "csv", batch_label="jobs")
 
 
 def test_rerunning_a_chunk_rewrites_identical_files_without_duplicates(tmp_path):

@@ -45,6 +45,10 @@ from .isotherm import Isotherm
 SCHEMA_VERSION = "2"
 SCHEMA_VERSION_KEY = b"sorbrank.schema_version"
 TABLES = ("inputs", "summaries", "fits", "sorbents")
+# what only a version-1 store holds: its per-sorbent table directory, and the
+# sample's id column in every table (``worker/store_migration.py`` rewrites both)
+VERSION_1_TABLE = "materials"
+VERSION_1_ID_COLUMN = "material_id"
 
 # Time-sortable, so a directory listing is already newest-first when reversed,
 # and strict, so an id taken from a URL can never name a path outside the store.
@@ -56,6 +60,13 @@ _PARTITIONING = ds.partitioning(pa.schema([("batch_id", pa.string())]), flavor="
 
 class StoreError(RuntimeError):
     """The store holds something this code cannot read (e.g. a newer schema)."""
+
+
+def version_1_error(where: str, root: Any) -> StoreError:
+    return StoreError(
+        f"{where}: written by an older sorbrank (store schema version 1, 'material_id' and "
+        f"'materials'); this sorbrank reads version {SCHEMA_VERSION}. Stop the API and the "
+        f"workers and run 'sorbrank migrate-store --data-dir {root}' once")
 
 
 def utc_now() -> datetime:
@@ -288,6 +299,8 @@ class Store:
         path = self.table_path(table, batch_id, chunk_index)
         data = pq.read_table(str(path), filesystem=self.fs, partitioning=None)
         version = (data.schema.metadata or {}).get(SCHEMA_VERSION_KEY, b"?").decode()
+        if version == "1":
+            raise version_1_error(str(path), self.root)
         if version != SCHEMA_VERSION:
             raise StoreError(f"{path}: schema version {version}, this code reads {SCHEMA_VERSION}")
         return data
@@ -296,13 +309,33 @@ class Store:
         path = str(self.table_path(table, batch_id, chunk_index))
         return self.fs.get_file_info(path).type == pafs.FileType.File
 
+    def schema_problem(self) -> str | None:
+        """Why this store must be migrated before it is used (None = it need not).
+
+        Cheap (one lookup): a version-1 store keeps its ``materials`` table until
+        its migration has rewritten every other file."""
+        if self.fs.get_file_info(str(self._join(VERSION_1_TABLE))).type != pafs.FileType.NotFound:
+            return str(version_1_error(f"{self.root}: the store", self.root))
+        return None
+
+    def _refuse_version_1(self, schema: pa.Schema | None = None) -> None:
+        """StoreError when ``schema`` has the version-1 id column (without a
+        schema: when the store still has its version-1 table)."""
+        if schema is None:
+            if problem := self.schema_problem():
+                raise StoreError(problem)
+        elif VERSION_1_ID_COLUMN in schema.names:
+            raise version_1_error(f"{self.root}: a table with a {VERSION_1_ID_COLUMN!r} column",
+                                  self.root)
+
     def dataset(self, table: str, batch_id: str | None = None) -> ds.Dataset | None:
         """Chunks of ``table`` across batches (or of one batch), schemas unified.
 
-        None when there are no data files yet.
+        None when there are no data files yet; StoreError on a version-1 store.
         """
         if table not in TABLES:
             return None
+        self._refuse_version_1()
         base = str(self._join(table))
         scan = str(self._join(table, f"batch_id={_check_batch_id(batch_id)}")) if batch_id else base
         if self.fs.get_file_info(scan).type != pafs.FileType.Directory:
@@ -319,6 +352,7 @@ class Store:
         schema = factory.inspect(promote_options="permissive", fragments=None)
         if len(schema) <= 1:  # only the partition field: no data files yet
             return None
+        self._refuse_version_1(schema)  # one unmigrated file brings its old column
         return factory.finish(schema)
 
     def query(self, table: str, where: ds.Expression | None = None) -> pa.Table:
@@ -528,6 +562,7 @@ class _TableIndex:
             if fragments:
                 schemas = [f.physical_schema for f in fragments] + [_PARTITIONING.schema]
                 schema = pa.unify_schemas(schemas, promote_options="permissive")
+                store._refuse_version_1(schema)
                 if len(schema) > 1:
                     dataset = ds.FileSystemDataset(fragments, schema, fmt, store.fs)
             self.snapshot = _Snapshot(key, dataset, fragments, [k[3] for k in kept],
@@ -877,6 +912,7 @@ def nan_to_none(rows: list[dict]) -> list[dict]:
 
 __all__ = [
     "BATCH_ID_PATTERN", "SCHEMA_VERSION", "SCHEMA_VERSION_KEY", "Store", "StoreError",
+    "VERSION_1_ID_COLUMN", "VERSION_1_TABLE", "version_1_error",
     "atomic_write", "is_batch_id", "isotherms_to_table", "iso_utc", "nan_to_none",
     "new_batch_id", "table_to_isotherms", "utc_now", "RankingQuery", "rankings",
     "LATEST_WINS_RULE",

@@ -1,0 +1,234 @@
+"""``sorbrank migrate-store``: a version-1 store (``material_id``, ``materials/``)
+is refused with a pointer to the command, rewritten to version 2 file by file,
+and then reads exactly like the store the current code writes.
+
+The version-1 store is made the way the version-1 code wrote it (commit
+5fc6bc1, worker/store.py and worker/jobs.py): the same files with the id column
+``material_id``, the per-sorbent table under ``materials/``, schema-version
+metadata "1", manifests with ``chunks[].materials`` and
+``mixtures[].material_id``. It is built from a store the current code wrote,
+so after the migration every table must equal that original row for row.
+"""
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+from sorbrank.service.cli import main
+from sorbrank.worker import jobs, store_migration
+from sorbrank.worker.isotherm import Batch, Isotherm, MixtureRequest
+from sorbrank.worker.store import (SCHEMA_VERSION_KEY, TABLES, RankingQuery, Store, StoreError,
+                                   rankings, table_to_isotherms)
+
+PRESSURES_PA = np.array([2e3, 5e3, 1e4, 2e4, 4e4, 6e4, 8e4, 1e5])
+OPTIONS = {"models": ["langmuir", "sips"]}
+
+
+def campaign_batch(label: str, scale: float) -> Batch:
+    """Tideglass-31 (invented): Langmuir isotherms of three sorbents, two gases
+    at two temperatures each, so isosteric heat and IAST give sorbent rows."""
+    isotherms = []
+    for k, sorbent in enumerate(("TG31-A", "TG31-B", "TG31-C")):
+        for gas, q_sat, b_per_pa in (("CO2", 4.0, 4e-5), ("N2", 2.0, 2e-6)):
+            for temperature_k in (273.15, 298.15):
+                b = b_per_pa * (1 + k) * np.exp(2500.0 * (1 / temperature_k - 1 / 298.15))
+                loading = scale * q_sat * b * PRESSURES_PA / (1 + b * PRESSURES_PA)
+                isotherms.append(Isotherm(
+                    isotherm_id=f"{label}-{sorbent}-{gas}-{temperature_k}",
+                    sorbent_id=sorbent, adsorbate=gas, temperature_k=temperature_k,
+                    pressure_pa=PRESSURES_PA.copy(), loading_mol_per_kg=loading,
+                    batch_label=label,
+                    original={"pressure_pa": PRESSURES_PA.tolist(), "loading": loading.tolist()}))
+    return Batch(label=label, isotherms=isotherms, mixtures=[MixtureRequest(
+        sorbent_id=None, components=["CO2", "N2"], mole_fractions=[0.15, 0.85],
+        total_pressure_pa=1e5, temperature_k=298.15)])
+
+
+def current_store(root: Path) -> tuple[Store, list[str]]:
+    """Two batches written by the current code; the last chunk of the second
+    is left unrun (an unfinished batch must resume after the migration)."""
+    store = Store(root)
+    batch_ids = []
+    for label, scale in (("run-1", 1.0), ("run-2", 1.1)):
+        manifest = jobs.accept_batch(store, campaign_batch(label, scale), options=OPTIONS,
+                                     chunk_size=4)
+        batch_ids.append(manifest["batch_id"])
+        chunks = manifest["chunks"] if label == "run-1" else manifest["chunks"][:-1]
+        for chunk in chunks:
+            jobs.run_chunk(store, manifest["batch_id"], chunk["index"])
+    return store, batch_ids
+
+
+def as_version_1(root: Path) -> None:
+    """Rewrite a version-2 store the way the version-1 code laid it out."""
+    for path in sorted(root.rglob("*.parquet")):
+        data = pq.read_table(path, partitioning=None)
+        meta = dict(data.schema.metadata)
+        meta[SCHEMA_VERSION_KEY] = b"1"
+        names = ["material_id" if n == "sorbent_id" else n for n in data.column_names]
+        pq.write_table(data.rename_columns(names).replace_schema_metadata(meta), path)
+    (root / "sorbents").rename(root / "materials")
+    for path in root.glob("batches/*/manifest.json"):
+        manifest = json.loads(path.read_text())
+        for chunk in manifest["chunks"]:
+            chunk["materials"] = chunk.pop("sorbents")
+        for mixture in manifest["mixtures"]:
+            mixture["material_id"] = mixture.pop("sorbent_id")
+        path.write_text(json.dumps(manifest, indent=1, sort_keys=True))
+
+
+def snapshot(root: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(root)): p.read_bytes() for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture
+def stores(tmp_path):
+    """(the version-2 original, its version-1 copy, the batch ids)."""
+    original, batch_ids = current_store(tmp_path / "v2")
+    shutil.copytree(tmp_path / "v2", tmp_path / "v1")
+    as_version_1(tmp_path / "v1")
+    assert not list((tmp_path / "v1").rglob("*sorbent*"))
+    assert (tmp_path / "v1" / "materials").is_dir()
+    return original, tmp_path / "v1", batch_ids
+
+
+def migrate(root: Path, capsys) -> tuple[int, str, str]:
+    code = main(["migrate-store", "--data-dir", str(root)])
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def same(a: pa.Table, b: pa.Table) -> bool:
+    """Equal schemas and values, NaN equal to NaN (``Table.equals`` says NaN != NaN)."""
+    def ipc(table):
+        sink = pa.BufferOutputStream()
+        with pa.ipc.new_stream(sink, table.schema) as writer:
+            writer.write_table(table.combine_chunks())
+        return sink.getvalue().to_pybytes()
+    return a.schema.equals(b.schema, check_metadata=True) and ipc(a) == ipc(b)
+
+
+def assert_reads_like(original: Store, migrated: Store, batch_ids: list[str]) -> None:
+    for table in TABLES:
+        for batch_id in batch_ids:
+            want = original.batch_table(table, batch_id)
+            got = migrated.batch_table(table, batch_id)
+            assert want.num_rows > 0, (table, batch_id)
+            # row order across chunk files is the dataset's: compare in one order
+            key = [(f.name, "ascending") for f in want.schema if not pa.types.is_nested(f.type)]
+            assert same(got.sort_by(key), want.sort_by(key)), (table, batch_id)
+    query = RankingQuery(limit=1000)
+    assert same(rankings(migrated, query)[0], rankings(original, query)[0])
+    assert rankings(migrated, query)[1] == rankings(original, query)[1] > 0
+    for path in Path(migrated.root).rglob("*.parquet"):
+        assert pq.read_schema(path).metadata[SCHEMA_VERSION_KEY] == b"2"
+    for batch_id in batch_ids:
+        assert migrated.read_manifest(batch_id) == original.read_manifest(batch_id)
+        first = migrated.read_chunk("inputs", batch_id, 0)
+        assert [i.sorbent_id for i in table_to_isotherms(first)] == \
+            [i.sorbent_id for i in table_to_isotherms(original.read_chunk("inputs", batch_id, 0))]
+
+
+def test_a_version_1_store_is_refused_with_the_command_to_run(stores):
+    from sorbrank.service.config import Settings, store_problem
+
+    _, root, batch_ids = stores
+    store = Store(root)
+    for read in (lambda: rankings(store, RankingQuery()),
+                 lambda: store.batch_table("summaries", batch_ids[0]),
+                 lambda: store.query("sorbents"),
+                 lambda: store.read_chunk("inputs", batch_ids[0], 0)):
+        with pytest.raises(StoreError, match="sorbrank migrate-store --data-dir"):
+            read()
+    # 'sorbrank serve' and 'sorbrank worker' refuse to start on it
+    assert "sorbrank migrate-store" in store_problem(Settings(data_dir=root))
+    # rankings find an old file even where no materials/ directory is left
+    shutil.rmtree(root / "materials")
+    with pytest.raises(StoreError, match="material_id"):
+        rankings(Store(root), RankingQuery())
+
+
+def test_migration_rewrites_a_version_1_store_and_a_second_run_does_nothing(stores, capsys):
+    original, root, batch_ids = stores
+    code, out, err = migrate(root, capsys)
+    assert code == 0, err
+    n_files = len(list(root.rglob("*.parquet")))
+    assert f"{len(list(root.glob('sorbents/*/*.parquet')))} Parquet files moved" in out
+    assert "2 batch manifests updated" in out and "removed materials/" in out
+    assert not (root / "materials").exists()
+    assert Store(root).schema_problem() is None
+    assert_reads_like(original, Store(root), batch_ids)
+
+    before = snapshot(root)
+    code, out, err = migrate(root, capsys)
+    assert code == 0, err
+    assert out.startswith("nothing to do") and f"({n_files} Parquet files checked)" in out
+    assert snapshot(root) == before
+
+
+def test_an_unfinished_batch_resumes_after_the_migration(stores, capsys):
+    original, root, batch_ids = stores
+    assert migrate(root, capsys)[0] == 0
+    store = Store(root)
+    last = store.read_manifest(batch_ids[1])["chunks"][-1]["index"]
+    assert jobs.batch_status(store, batch_ids[1])["state"] != "done"
+    jobs.run_chunk(store, batch_ids[1], last)  # needs the manifest's mixtures as sorbent_id
+    jobs.run_chunk(original, batch_ids[1], last)
+    assert jobs.batch_status(store, batch_ids[1])["state"] == "done"
+    assert_reads_like(original, store, batch_ids)
+
+
+class Killed(BaseException):
+    """The process dies here (nothing below runs, no handler catches it)."""
+
+
+@pytest.mark.parametrize("stop_after", [3, 11, "a sorbents copy"])
+def test_a_migration_killed_half_way_is_completed_by_the_next_run(stores, capsys, monkeypatch,
+                                                                  stop_after):
+    original, root, batch_ids = stores
+    real_write = store_migration._write
+    writes = []
+
+    def write_then_die(store, path, data):
+        real_write(store, path, data)
+        writes.append(path)
+        # killed right after a write: either the n-th file, or a sorbents/
+        # copy whose materials/ original is not yet deleted
+        if len(writes) == stop_after or (stop_after == "a sorbents copy" and "/sorbents/" in path):
+            raise Killed
+
+    monkeypatch.setattr(store_migration, "_write", write_then_die)
+    with pytest.raises(Killed):
+        main(["migrate-store", "--data-dir", str(root)])
+    capsys.readouterr()
+    monkeypatch.undo()
+    half_done = Store(root)
+    assert half_done.schema_problem() is not None  # still refused, not half read
+    with pytest.raises(StoreError):
+        half_done.query("sorbents")
+    code, out, err = migrate(root, capsys)
+    assert code == 0, err
+    assert_reads_like(original, Store(root), batch_ids)
+
+
+def test_an_unknown_version_stops_the_migration_before_any_write(stores, capsys):
+    _, root, _ = stores
+    victim = sorted(root.glob("fits/*/*.parquet"))[-1]
+    data = pq.read_table(victim, partitioning=None)
+    pq.write_table(data.replace_schema_metadata({SCHEMA_VERSION_KEY: b"7"}), victim)
+    before = snapshot(root)
+    code, out, err = migrate(root, capsys)
+    assert code == 2 and "version 7" in err and "nothing was changed" in err
+    assert victim.name in err
+    assert snapshot(root) == before
+
+
+def test_no_store_at_the_path(tmp_path, capsys):
+    code, _, err = migrate(tmp_path / "nothing-here", capsys)
+    assert code == 2 and "no store at" in err
