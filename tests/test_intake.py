@@ -19,7 +19,7 @@ from sorbrank.worker.isotherm import IntakeError
 from sorbrank.worker.units import MOLAR_VOLUME_STP_CM3_PER_MOL
 
 HEADER = "sorbent_id,adsorbate,temperature_k,pressure,loading"
-UNITS = "# pressure_unit: kPa\n# loading_unit: mmol/g\n"
+UNITS = "# units: pressure:kPa,loading:mmol/g\n"
 
 
 def csv_of(*rows, header=HEADER, units=UNITS):
@@ -54,7 +54,7 @@ def test_csv_is_normalised_to_canonical_units_and_sorted():
     assert iso.flags == []
     assert iso.original["rows"].tolist() == [1, 2, 3]
     assert iso.original["pressure"].tolist() == [100.0, 10.0, 50.0]
-    assert (iso.original["pressure_unit"], iso.original["loading_unit"]) == ("kPa", "mmol/g")
+    assert iso.original["units"] == {"pressure": "kPa", "loading": "mmol/g"}
 
 
 def test_derived_id_is_stable_and_content_dependent():
@@ -73,15 +73,16 @@ def test_supercritical_isotherm_has_no_saturation_pressure():
     ("atm", constants.atm), ("torr", constants.torr), ("psi", constants.psi),
     ("bar", constants.bar), ("mmHg", constants.mmHg), ("MPa", 1e6), ("mbar", 100.0),
 ])
-def test_pressure_unit_column(unit, factor_pa):
-    rows = [f"m1,CH4,298.15,{p},{q},{unit}" for p, q in ((1, 0.5), (2, 1.0), (3, 1.2))]
-    batch = read_batch(csv_of(*rows, header=HEADER + ",pressure_unit", units="# loading_unit: mol/kg\n"))
+def test_pressure_unit_declared(unit, factor_pa):
+    # scipy.constants (SI definitions) as the reference factors
+    rows = [f"m1,CH4,298.15,{p},{q}" for p, q in ((1, 0.5), (2, 1.0), (3, 1.2))]
+    batch = read_batch(csv_of(*rows, units=f"# units: pressure:{unit},loading:mol/kg\n"))
     np.testing.assert_allclose(batch.isotherms[0].pressure_pa, np.array([1, 2, 3]) * factor_pa, rtol=1e-15)
 
 
 def test_relative_pressure_uses_computed_saturation_pressure():
     rows = [f"m1,nitrogen,77.355,{x},{q}" for x, q in ((0.05, 1.0), (0.1, 1.2), (0.2, 1.4))]
-    batch = read_batch(csv_of(*rows, units="# pressure_unit: p/p0\n# loading_unit: mmol/g\n"))
+    batch = read_batch(csv_of(*rows, units="# units: pressure:p/p0,loading:mmol/g\n"))
     (iso,) = batch.isotherms
     p0 = PropsSI("P", "T", 77.355, "Q", 0, "Nitrogen")  # CoolProp reference
     np.testing.assert_allclose(iso.pressure_pa, np.array([0.05, 0.1, 0.2]) * p0, rtol=1e-12)
@@ -91,13 +92,23 @@ def test_relative_pressure_uses_computed_saturation_pressure():
 
 def test_relative_pressure_with_given_saturation_pressure_in_pa():
     rows = [f"m1,CO2,195,{x},{q},150000" for x, q in ((0.1, 1.0), (0.2, 1.2), (0.5, 1.4))]
-    batch = read_batch(csv_of(*rows, header=HEADER + ",saturation_pressure",
-                              units="# pressure_unit: relative\n# loading_unit: mmol/g\n"))
+    batch = read_batch(csv_of(*rows, header=HEADER + ",saturation_pressure_pa",
+                              units="# units: pressure:relative,loading:mmol/g\n"))
     np.testing.assert_allclose(batch.isotherms[0].pressure_pa, [15000, 30000, 75000])
     assert batch.isotherms[0].saturation_pressure_pa == 150000
 
 
-def test_saturation_pressure_given_in_row_pressure_unit():
+def test_relative_pressure_plain_saturation_pressure_needs_its_unit():
+    rows = [f"m1,CO2,195,{x},{q},150" for x, q in ((0.1, 1.0), (0.2, 1.2), (0.5, 1.4))]
+    text = csv_of(*rows, header=HEADER + ",saturation_pressure",
+                  units="# units: pressure:relative,loading:mmol/g\n")
+    issue = only_issue(read_batch(text))
+    assert (issue.code, issue.field, issue.row) == ("missing_unit", "saturation_pressure", None)
+    declared = text.replace("loading:mmol/g", "loading:mmol/g,saturation_pressure:kPa")
+    assert read_batch(declared).isotherms[0].saturation_pressure_pa == 150000
+
+
+def test_plain_saturation_pressure_is_in_the_pressure_unit():
     rows = [f"m1,CO2,273.15,{p},{q},3485" for p, q in ((10, 1.0), (20, 1.2), (50, 1.4))]
     batch = read_batch(csv_of(*rows, header=HEADER + ",saturation_pressure"))
     assert batch.isotherms[0].saturation_pressure_pa == 3485e3
@@ -105,15 +116,15 @@ def test_saturation_pressure_given_in_row_pressure_unit():
 
 def test_absolute_loading_with_sample_mass_and_gas_volume():
     rows = [f"m1,N2,77,{p},{v}" for p, v in ((1, 22.4), (2, 33.6), (3, 44.8))]
-    text = csv_of(*rows, units="# pressure_unit: kPa\n# loading_unit: cm3(STP)\n")
-    batch = read_batch(text, defaults={"sample_mass_g": "0.5"})
+    text = csv_of(*rows, units="# units: pressure:kPa,loading:cm3(STP)\n")
+    batch = read_batch(text, sample_mass_g="0.5")
     expected = np.array([22.4, 33.6, 44.8]) / MOLAR_VOLUME_STP_CM3_PER_MOL / 0.5e-3
     np.testing.assert_allclose(batch.isotherms[0].loading_mol_per_kg, expected, rtol=1e-14)
 
 
 def test_sigma_is_converted_with_the_loading():
     rows = [f"m1,CO2,298.15,{p},{q},{s}" for p, q, s in ((10, 44.0, 0.44), (20, 88.0, 0.88), (30, 99.0, 1.0))]
-    batch = read_batch(csv_of(*rows, header=HEADER + ",sigma", units="# pressure_unit: kPa\n# loading_unit: mg/g\n"))
+    batch = read_batch(csv_of(*rows, header=HEADER + ",loading_sigma", units="# units: pressure:kPa,loading:mg/g\n"))
     iso = batch.isotherms[0]
     np.testing.assert_allclose(iso.sigma_mol_per_kg, iso.loading_mol_per_kg / 100 * np.array([1, 1, 99 / 99.0 * 100 / 99]),
                                rtol=1e-12)
@@ -126,13 +137,18 @@ def test_grouping_by_isotherm_id_and_branches():
     assert [(i.isotherm_id, i.branch) for i in batch.isotherms] == [("ads1", "adsorption"), ("des1", "desorption")]
 
 
-def test_settings_precedence_row_over_file_over_defaults():
-    rows = [f"m1,CH4,298.15,{p},{q},bar" for p, q in ((1, 0.5), (2, 1.0), (3, 1.2))]
-    text = "# pressure_unit: kPa\n" + HEADER + ",pressure_unit\n" + "\n".join(rows) + "\n"
-    batch = read_batch(text, defaults={"pressure_unit": "Pa", "loading_unit": "mol/kg", "batch_label": "d"})
-    np.testing.assert_allclose(batch.isotherms[0].pressure_pa, [1e5, 2e5, 3e5])
-    assert batch.label == "d"
-    assert read_batch(text, batch_label="arg", defaults={"loading_unit": "mol/kg", "batch_label": "d"}).label == "arg"
+def test_settings_precedence_column_over_file_over_argument():
+    rows = [f"m1,CH4,298.15,{p},{q}" for p, q in ((1, 0.5), (2, 1.0), (3, 1.2))]
+    body = "\n".join(rows) + "\n"
+    column = "# units: pressure:kPa\n# batch_label: f\n" + HEADER.replace("pressure,", "pressure_bar,") + "\n" + body
+    batch = read_batch(column, units={"pressure": "Pa", "loading": "mol/kg"})
+    np.testing.assert_allclose(batch.isotherms[0].pressure_pa, [1e5, 2e5, 3e5])     # the column's bar
+    assert batch.label == "f"
+    file_level = "# units: pressure:kPa\n" + HEADER + "\n" + body
+    batch = read_batch(file_level, units="pressure:Pa,loading:mol/kg")
+    np.testing.assert_allclose(batch.isotherms[0].pressure_pa, [1e3, 2e3, 3e3])     # the file's kPa
+    np.testing.assert_allclose(batch.isotherms[0].loading_mol_per_kg, [0.5, 1.0, 1.2])  # the argument's
+    assert read_batch(column, batch_label="arg", units="loading:mol/kg").label == "arg"
 
 
 def test_label_defaults_to_content_hash():
@@ -148,9 +164,9 @@ def _same_data_three_ways(tmp_path):
     points = {"iso-a": ([1, 10, 100, 10], [0.1, 0.9, 2.5, 1.0]), "iso-b": ([5, 50, 500], [0.2, 1.0, 1.9])}
     csv_rows = [f"{iid},mat-{iid[-1]},nitrogen,77,{p},{q}" for iid, (ps, qs) in points.items()
                 for p, q in zip(ps, qs)]
-    csv_text = "# pressure_unit: torr\n# loading_unit: cm3(STP)/g\n# batch_label: same\n" \
+    csv_text = "# units: pressure:torr,loading:cm3(STP)/g\n# batch_label: same\n" \
                "isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading\n" + "\n".join(csv_rows)
-    doc = {"batch_label": "same", "defaults": {"pressure_unit": "torr", "loading_unit": "cm3(STP)/g"},
+    doc = {"batch_label": "same", "units": {"pressure": "torr", "loading": "cm3(STP)/g"},
            "isotherms": [{"isotherm_id": iid, "sorbent_id": f"mat-{iid[-1]}", "adsorbate": "nitrogen",
                           "temperature_k": 77, "pressure": ps, "loading": qs}
                          for iid, (ps, qs) in points.items()]}
@@ -161,7 +177,7 @@ def _same_data_three_ways(tmp_path):
         "temperature_k": [77] * 7,
         "pressure": [float(p) for ps, _ in points.values() for p in ps],
         "loading": [q for _, qs in points.values() for q in qs],
-    }).replace_schema_metadata({"pressure_unit": "torr", "loading_unit": "cm3(STP)/g", "batch_label": "same"})
+    }).replace_schema_metadata({"units": "pressure:torr,loading:cm3(STP)/g", "batch_label": "same"})
     path = tmp_path / "same.parquet"
     pq.write_table(table, path)
     return csv_text, json.dumps(doc), path
@@ -185,11 +201,11 @@ def test_csv_json_parquet_give_identical_isotherms(tmp_path):
 
 
 def test_json_conditions_and_mixtures_are_canonical():
-    doc = {"defaults": {"pressure_unit": "bar", "loading_unit": "mmol/g"},
+    doc = {"units": {"pressure": "bar", "loading": "mmol/g"},
            "isotherms": [{"sorbent_id": "m", "adsorbate": "CO2", "temperature_k": 298,
                           "pressure": [0.1, 0.5, 1.0], "loading": [1, 2, 3]}],
-           "conditions": {"pressure_unit": "kPa", "adsorption_pressure": 100, "desorption_pressure": 10,
-                          "reference_pressures": [15, 100], "adsorption_temperature_k": 298},
+           "conditions": {"adsorption_pressure_kpa": 100, "desorption_pressure_kpa": 10,
+                          "reference_pressures_kpa": [15, 100], "adsorption_temperature_k": 298},
            "mixtures": [{"components": ["carbon dioxide", "N2"], "mole_fractions": [0.15, 0.85],
                          "total_pressure": 1, "temperature_k": 298}]}
     batch = read_batch(json.dumps(doc))
@@ -207,10 +223,14 @@ def test_json_conditions_and_mixtures_are_canonical():
     ({"components": ["CO2", "N3"], "mole_fractions": [0.2, 0.8]}, "mixtures[0].components"),
     ({"components": ["CO2", "N2"], "mole_fractions": [0.2, 0.8], "total_pressure": -1}, "mixtures[0].total_pressure"),
     ({"components": ["CO2", "N2"], "mole_fractions": [0.2, 0.8], "colour": 1}, "mixtures[0]"),
+    ({"components": ["CO2", "N2"], "mole_fractions": [0.2, 0.8], "total_pressure_relative": 1},
+     "mixtures[0].total_pressure_relative"),
 ])
 def test_bad_mixture_is_a_batch_error(mixture, field):
-    base = {"total_pressure": 1, "pressure_unit": "bar", "temperature_k": 298}
-    doc = {"defaults": {"pressure_unit": "bar", "loading_unit": "mmol/g"},
+    base = {"total_pressure_bar": 1, "temperature_k": 298}
+    if "total_pressure" in mixture or "total_pressure_relative" in mixture:
+        base.pop("total_pressure_bar")
+    doc = {"units": {"pressure": "bar", "loading": "mmol/g"},
            "isotherms": [{"sorbent_id": "m", "adsorbate": "CO2", "temperature_k": 298,
                           "pressure": [0.1, 0.5, 1.0], "loading": [1, 2, 3]}],
            "mixtures": [{**base, **mixture}]}
@@ -255,32 +275,39 @@ def test_unknown_adsorbate_suggests_name_once_per_isotherm():
 
 
 def test_unknown_unit_suggests_name():
-    batch = read_batch(csv_of(*good_rows(extra=",kpaa"), header=HEADER + ",pressure_unit"), batch_label="b")
-    issue = only_issue(batch)
-    assert (issue.code, issue.field, issue.row) == ("unknown_unit", "pressure_unit", 1)
+    issue = batch_error(csv_of(*good_rows(), units="# units: pressure:kpaa,loading:mmol/g\n"),
+                        batch_label="b")
+    assert (issue.code, issue.field) == ("unknown_unit", "units")
     assert issue.message.endswith("unknown pressure unit 'kpaa'; did you mean 'kPa'?")
 
 
+def test_unknown_unit_token_in_column_name_suggests_column():
+    issue = batch_error(csv_of(*good_rows(), header=HEADER.replace("pressure,", "pressure_kpaa,")))
+    assert (issue.code, issue.field) == ("unknown_unit", "pressure_kpaa")
+    assert "did you mean 'pressure_kpa'?" in issue.message
+
+
 def test_missing_unit_is_rejected_not_guessed():
-    issue = only_issue(read_batch(csv_of(*good_rows(), units="# loading_unit: mol/kg\n"), batch_label="b"))
-    assert (issue.code, issue.field) == ("missing_unit", "pressure_unit")
+    issue = only_issue(read_batch(csv_of(*good_rows(), units="# units: loading:mol/kg\n"), batch_label="b"))
+    assert (issue.code, issue.field, issue.row) == ("missing_unit", "pressure", None)
+    assert "pressure_kpa" in issue.message and "# units: pressure:kPa" in issue.message
 
 
 def test_relative_pressure_above_one():
     rows = [f"m1,N2,77,{x},{q}" for x, q in ((0.1, 1.0), (0.5, 1.2), (1.02, 1.4))]
-    issue = only_issue(read_batch(csv_of(*rows, units="# pressure_unit: p/p0\n# loading_unit: mmol/g\n")))
+    issue = only_issue(read_batch(csv_of(*rows, units="# units: pressure:p/p0,loading:mmol/g\n")))
     assert (issue.code, issue.field, issue.row) == ("relative_pressure_above_one", "pressure", 3)
 
 
 def test_relative_pressure_without_any_saturation_pressure():
     rows = [f"m1,CH4,298.15,{x},{q}" for x, q in ((0.1, 1.0), (0.5, 1.2), (0.9, 1.4))]
-    issue = only_issue(read_batch(csv_of(*rows, units="# pressure_unit: p/p0\n# loading_unit: mmol/g\n")))
+    issue = only_issue(read_batch(csv_of(*rows, units="# units: pressure:p/p0,loading:mmol/g\n")))
     assert (issue.code, issue.field, issue.row) == ("missing_saturation_pressure", "saturation_pressure", None)
     assert "CH4 at 298.15 K" in issue.message
 
 
 def test_absolute_loading_without_sample_mass():
-    issue = only_issue(read_batch(csv_of(*good_rows(), units="# pressure_unit: kPa\n# loading_unit: mmol\n")))
+    issue = only_issue(read_batch(csv_of(*good_rows(), units="# units: pressure:kPa,loading:mmol\n")))
     assert (issue.code, issue.field, issue.row) == ("missing_sample_mass", "sample_mass_g", None)
 
 
@@ -302,19 +329,21 @@ def test_duplicate_pressures_are_merged_by_mean():
 def test_duplicate_pressures_merge_sigma_as_standard_error():
     rows = ["m1,CO2,298.15,10,0.5,0.03", "m1,CO2,298.15,10,0.7,0.04", "m1,CO2,298.15,20,0.9,0.05",
             "m1,CO2,298.15,30,1.1,0.05"]
-    (iso,) = read_batch(csv_of(*rows, header=HEADER + ",sigma")).isotherms
+    (iso,) = read_batch(csv_of(*rows, header=HEADER + ",loading_sigma")).isotherms
     np.testing.assert_allclose(iso.sigma_mol_per_kg, [0.025, 0.05, 0.05], rtol=1e-12)  # sqrt(.03^2+.04^2)/2
 
 
-def test_mixed_units_inside_one_isotherm():
-    rows = [r + u for r, u in zip(good_rows(), (",kPa", ",kPa", ",bar", ",kPa"))]
-    issue = only_issue(read_batch(csv_of(*rows, header=HEADER + ",pressure_unit")))
-    assert (issue.code, issue.field, issue.row) == ("mixed_units", "pressure_unit", None)
+def test_sigma_column_with_its_own_unit():
+    rows = [f"m1,CO2,298.15,{p},{q},{s}" for p, q, s in ((10, 1.0, 10), (20, 2.0, 20), (30, 3.0, 30))]
+    iso = read_batch(csv_of(*rows, header=HEADER + ",loading_sigma_mg_per_g")).isotherms[0]
+    co2_g_per_mol = 44.009  # CIAAW atomic weights C 12.011 + 2 x O 15.999 (from memory)
+    np.testing.assert_allclose(iso.sigma_mol_per_kg, np.array([10, 20, 30]) / co2_g_per_mol, rtol=1e-4)
 
 
-def test_same_unit_in_different_spelling_is_not_mixed():
-    rows = [r + u for r, u in zip(good_rows(), (",kPa", ",KPA", ",kilopascal", ",kPa"))]
-    assert read_batch(csv_of(*rows, header=HEADER + ",pressure_unit")).rejected == []
+def test_same_unit_in_different_spelling_is_one_unit():
+    for spelling in ("kPa", "KPA", "kilopascal", "kpa"):
+        text = csv_of(*good_rows(), units=f"# units: pressure:{spelling},loading:mmol/g\n")
+        np.testing.assert_array_equal(read_batch(text).isotherms[0].pressure_pa, [1e4, 5e4, 1e5, 2e5])
 
 
 def test_inconsistent_isotherm_level_value():
@@ -364,7 +393,7 @@ def test_non_monotonic_loading_is_accepted_with_flag():
 def test_non_monotonic_allowance_widens_with_sigma():
     rows = ["m1,CO2,298.15,10,1.0,0.2", "m1,CO2,298.15,20,2.0,0.2", "m1,CO2,298.15,30,1.6,0.2",
             "m1,CO2,298.15,40,2.1,0.2"]
-    assert read_batch(csv_of(*rows, header=HEADER + ",sigma")).isotherms[0].flags == []
+    assert read_batch(csv_of(*rows, header=HEADER + ",loading_sigma")).isotherms[0].flags == []
 
 
 def test_pressure_above_saturation_is_flagged():
@@ -394,7 +423,7 @@ def test_all_problems_of_one_isotherm_are_reported_and_capped():
 # --- JSON specifics -----------------------------------------------------------
 
 def json_doc(*isotherms, **top):
-    return json.dumps({"defaults": {"pressure_unit": "kPa", "loading_unit": "mmol/g"},
+    return json.dumps({"units": {"pressure": "kPa", "loading": "mmol/g"},
                        "isotherms": list(isotherms), **top})
 
 
@@ -501,14 +530,19 @@ def test_batch_limits():
     assert batch_error(wide).code == "too_many_columns"
 
 
-@pytest.mark.parametrize("defaults, code", [
-    ({"pressure_unt": "kPa"}, "unknown_setting"),
-    ({"pressure_unit": "kpaa"}, "unknown_unit"),
-    ({"sample_mass_g": "heavy"}, "invalid_setting"),
-    ({"batch_label": "a/b"}, "invalid_batch_label"),
+@pytest.mark.parametrize("kwargs, code, field", [
+    ({"units": "presure:kPa"}, "invalid_setting", "units"),
+    ({"units": {"pressure": "kpaa"}}, "unknown_unit", "units"),
+    ({"units": "pressure kPa"}, "invalid_setting", "units"),
+    ({"sample_mass_g": "heavy"}, "invalid_setting", "sample_mass_g"),
+    ({"batch_label": "a/b"}, "invalid_batch_label", None),
+    ({"delimiter": "|"}, "invalid_setting", "delimiter"),
+    ({"decimal": ",", "delimiter": ","}, "invalid_setting", "decimal"),
+    ({"gases": [{"name": "X"}]}, "invalid_gas", "gases[0]"),
 ])
-def test_bad_batch_settings(defaults, code):
-    assert batch_error(csv_of(*good_rows()), defaults=defaults).code == code
+def test_bad_batch_settings(kwargs, code, field):
+    issue = batch_error(csv_of(*good_rows()), **kwargs)
+    assert (issue.code, issue.field) == (code, field)
 
 
 def test_path_source_and_format_inference(tmp_path):
@@ -524,6 +558,6 @@ def test_parquet_typed_columns_and_nulls():
     table = pa.table({"sorbent_id": ["m"] * 4, "adsorbate": ["CO2"] * 4, "temperature_k": [298.15] * 4,
                       "pressure": [10.0, None, 30.0, 40.0], "loading": [1, 2, 3, 4]})
     buf = io.BytesIO()
-    pq.write_table(table.replace_schema_metadata({"pressure_unit": "kPa", "loading_unit": "mmol/g"}), buf)
+    pq.write_table(table.replace_schema_metadata({"units": "pressure:kPa,loading:mmol/g"}), buf)
     issue = only_issue(read_batch(buf.getvalue()))
     assert (issue.code, issue.row, issue.field) == ("missing_value", 2, "pressure")

@@ -1,27 +1,41 @@
-"""Intake: read a batch of isotherms (CSV, JSON or Parquet), validate it and
-normalise it to canonical units (Pa, K, mol/kg).
+"""Intake: read a batch of isotherms (CSV, JSON, Parquet or a pyarrow Table),
+validate it and normalise it to canonical units (Pa, K, mol/kg).
 
 ``read_batch`` raises only ``IntakeError``, and only when the input as a whole
 cannot be used (not UTF-8, not parseable, required columns missing, over the
 batch limits, bad batch-wide settings, bad conditions or mixtures). Problems of
 one isotherm never raise: every problem found becomes an ``Issue`` in
 ``Batch.rejected`` and the good isotherms go on in ``Batch.isotherms``.
+docs/formats.md is the user's reference for everything below.
 
-Formats
+Columns
 -------
-CSV (long, one row per point) and Parquet share the columns
-``sorbent_id, adsorbate, temperature_k, pressure, loading`` (required) and
-``isotherm_id, branch, pressure_unit, loading_unit, saturation_pressure,
-sample_mass_g, sigma, surface_area_m2_per_g`` (optional); other columns are
-ignored. Column names are matched case-insensitively. Rows group into
-isotherms by ``isotherm_id`` where given, else by (sorbent_id, adsorbate,
-temperature_k, branch). ``saturation_pressure`` is in the row's pressure unit,
-or in Pa when that unit is relative; ``sigma`` is in the loading unit.
+CSV (long, one row per point), Parquet and Tables share the columns
+``sorbent_id, adsorbate, temperature_k`` plus one pressure and one loading
+column (required), and ``isotherm_id, branch, saturation_pressure,
+sample_mass_g, loading_sigma, surface_area_m2_per_g`` (optional); other
+columns are ignored. Column names are matched case-insensitively. Pressure,
+loading, saturation_pressure and loading_sigma columns carry their unit in the
+name (``pressure_kpa``, ``loading_mmol_per_g``; tokens in
+``sorbrank.worker.units.COLUMN_TOKENS``) or are plain (``pressure``) and take
+the unit from a ``units`` declaration. Two columns for one quantity
+(``pressure_kpa`` and ``pressure_bar``) are an error, so is an old spelling
+(``material_id``, ``pressure_unit``, ``loading_unit``, ``sigma``): the message
+names the new one. A plain saturation pressure without a declared unit is in
+the pressure unit (which must then be absolute); a plain loading_sigma is in
+the loading unit. Rows group into isotherms by ``isotherm_id`` where given,
+else by (sorbent_id, adsorbate, temperature_k, branch).
 
-JSON: ``{"batch_label", "defaults", "isotherms": [...], "conditions",
-"mixtures"}``, one object per isotherm with arrays ``pressure``, ``loading``
-(and ``sigma``) and scalar fields named as the CSV columns. Unknown keys at
-the top level, in ``conditions`` and in ``mixtures`` are errors (they are
+CSV files are comma-, semicolon- or tab-delimited: the header line decides
+(``delimiter=None``), and numbers may use a decimal comma in a file that is
+not comma-delimited (``decimal=None`` detects it from the number cells). In
+a decimal-comma file a number written with a point is not a number.
+
+JSON: ``{"batch_label", "units", "sample_mass_g", "gases", "isotherms": [...],
+"conditions", "mixtures"}``, one object per isotherm with arrays for the
+pressure, loading (and loading_sigma) columns, scalar fields named as the CSV
+columns, and optionally its own ``units`` and ``sample_mass_g``. Unknown keys
+at the top level, in ``conditions`` and in ``mixtures`` are errors (they are
 usually typos); unknown keys inside an isotherm are ignored, like extra CSV
 columns.
 
@@ -30,24 +44,35 @@ Row numbers in issues
 * CSV: ``row`` n is the n-th data row of the file, counted from 1. The header,
   the leading ``#`` comment lines and blank (empty or whitespace-only) lines
   are not counted.
-* Parquet: ``row`` n is the n-th row of the table, counted from 1.
+* Parquet and Tables: ``row`` n is the n-th row of the table, counted from 1.
 * JSON: ``row`` is the 0-based index of the point inside that isotherm's
-  ``pressure``/``loading`` arrays; ``None`` for isotherm-level fields. An
-  isotherm without ``isotherm_id`` is named ``isotherms[i]`` (0-based).
+  pressure/loading arrays; ``None`` for isotherm-level fields. An isotherm
+  without ``isotherm_id`` is named ``isotherms[i]`` (0-based).
+* ``field`` is the column (or JSON key) as named in the input, e.g.
+  ``pressure_kpa``.
 
 Settings and their precedence
 -----------------------------
-``pressure_unit``, ``loading_unit``, ``sample_mass_g`` and ``batch_label`` may
-be given per row / per isotherm, once per file (CSV leading comment lines
-``# pressure_unit: kPa``; JSON ``"defaults"``; Parquet key-value metadata) or
-through ``read_batch(defaults=...)``. The most specific wins: row/isotherm,
-then file, then ``defaults``. The ``batch_label`` argument overrides all; with
-no label anywhere the label is ``batch-`` + the first 12 hex digits of the
-input's SHA-256. There is no default unit: an isotherm without a pressure or
-loading unit is rejected (``missing_unit``) rather than guessed.
+``units``, ``sample_mass_g``, ``batch_label`` and declared gases may be given
+once per file (CSV leading comment lines ``# units: pressure:kPa,loading:mmol/g``,
+``# sample_mass_g: 0.5``, ``# batch_label: run-7``, one
+``# gas: <name>, molar_mass_g_per_mol=<x>, critical_temperature_k=<y>`` line
+per gas; JSON top-level keys; Parquet key-value metadata ``units``,
+``sample_mass_g``, ``batch_label``, ``gases`` (a JSON list)) or through
+``read_batch(units=..., sample_mass_g=..., gases=...)``. The most specific
+wins: the unit in a column name, then a JSON isotherm's own ``units``, then the
+file, then the argument (the HTTP query parameters and the Python API pass
+theirs there); ``sample_mass_g`` likewise (row/isotherm, file, argument). The
+``batch_label`` argument overrides all; with no label anywhere the label is
+``batch-`` + the first 12 hex digits of the input's SHA-256. There is no
+default unit: an isotherm without a pressure or loading unit is rejected
+(``missing_unit``) rather than guessed.
 
 Units: see ``sorbrank.worker.units`` (wt% = g adsorbate per 100 g sorbent; STP =
-273.15 K, 101.325 kPa).
+273.15 K, 101.325 kPa). A declared gas (name, molar mass, optionally critical
+temperature) is known for this batch only: mass-based loadings use its molar
+mass; it has no saturation-pressure table, so p/p0 needs a given saturation
+pressure.
 
 Rules that change data (stated so nobody is surprised)
 ------------------------------------------------------
@@ -65,26 +90,29 @@ Rules that change data (stated so nobody is surprised)
 * An isotherm given in absolute pressure that goes above the saturation
   pressure is accepted and flagged ``pressure_above_saturation``.
 * ``Isotherm.original`` keeps, in input order, the numbers as sent (numpy
-  arrays for pressure, loading, sigma and the source ``rows``), their unit
-  names as sent, the adsorbate name as sent and the source format.
+  arrays for pressure, loading, loading_sigma and the source ``rows``), their
+  units (``units``: quantity -> unit name), the adsorbate name as sent and the
+  source format.
 * The saturation pressure comes from the input, else from
   ``sorbrank.worker.adsorbates`` (None when the temperature is supercritical or out of
-  the property library's range).
+  the property library's range, and for declared gases).
 
 Issue codes
 -----------
 Per isotherm: missing_value, not_a_number, not_finite, negative_value,
 non_positive_value, wrong_type, length_mismatch, unknown_unit, missing_unit,
-mixed_units, inconsistent_value, unknown_adsorbate, unknown_branch,
-invalid_id, relative_pressure_above_one, missing_saturation_pressure,
-missing_sample_mass, too_few_points, too_many_points, duplicate_isotherm_id,
-more_issues (the list was cut at 25 issues), internal_error.
+conflicting_columns, old_spelling, inconsistent_value,
+unknown_adsorbate, unknown_branch, invalid_id, relative_pressure_above_one,
+missing_saturation_pressure, missing_sample_mass, too_few_points,
+too_many_points, duplicate_isotherm_id, more_issues (the list was cut at 25
+issues), internal_error.
 Whole input (IntakeError): internal_error (a defect in intake, never bad
-input), input_too_large, not_utf8, unparseable,
-unknown_format, unsupported_source, unreadable_file, missing_column,
-duplicate_column, too_many_columns, unsupported_column_type, malformed_row,
-no_data, too_many_isotherms, too_deeply_nested, wrong_type, unknown_field,
-unknown_setting, invalid_setting, unknown_unit, invalid_batch_label,
+input), input_too_large, not_utf8, unparseable, unknown_format,
+unsupported_source, unreadable_file, missing_column, wrong_delimiter,
+duplicate_column, conflicting_columns, old_spelling, too_many_columns,
+unsupported_column_type, malformed_row, no_data, too_many_isotherms,
+too_deeply_nested, wrong_type, unknown_field, unknown_setting,
+invalid_setting, unknown_unit, invalid_gas, invalid_batch_label,
 invalid_conditions, invalid_mixture.
 """
 from __future__ import annotations
@@ -123,13 +151,31 @@ class Limits:
         return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3)
 
 
-REQUIRED_COLUMNS = ("sorbent_id", "adsorbate", "temperature_k", "pressure", "loading")
-OPTIONAL_COLUMNS = ("isotherm_id", "branch", "pressure_unit", "loading_unit",
-                    "saturation_pressure", "sample_mass_g", "sigma", "surface_area_m2_per_g")
-TEXT_FIELDS = ("sorbent_id", "adsorbate", "isotherm_id", "branch", "pressure_unit", "loading_unit")
+IDENTITY_COLUMNS = ("sorbent_id", "adsorbate", "temperature_k")
+QUANTITIES = tuple(units.QUANTITY_KIND)            # columns that carry a unit
+REQUIRED_QUANTITIES = ("pressure", "loading")
+PLAIN_COLUMNS = IDENTITY_COLUMNS + ("isotherm_id", "branch", "sample_mass_g", "surface_area_m2_per_g")
+TEXT_FIELDS = ("sorbent_id", "adsorbate", "isotherm_id", "branch")
+# internal per-row text columns holding each quantity's canonical unit name
+UNIT_FIELD = {q: f"unit:{q}" for q in QUANTITIES}
 NUMBER_FIELDS = ("temperature_k", "pressure", "loading", "saturation_pressure",
-                 "sample_mass_g", "sigma", "surface_area_m2_per_g")
-SETTINGS = ("pressure_unit", "loading_unit", "sample_mass_g", "batch_label")
+                 "sample_mass_g", "loading_sigma", "surface_area_m2_per_g")
+SETTINGS = ("units", "sample_mass_g", "batch_label", "gases")
+_UNITS_HINT = ("name the unit in the column (e.g. pressure_kpa, loading_mmol_per_g) or declare "
+               "it once with units (e.g. '# units: pressure:kPa,loading:mmol/g')")
+# spellings of earlier versions: refused, with the new spelling in the message
+OLD_SPELLINGS = {
+    "material_id": "sorbent_id",
+    "pressure_unit": "a unit in the column name (e.g. pressure_kpa) or one units declaration "
+                     "(e.g. '# units: pressure:kPa,loading:mmol/g')",
+    "loading_unit": "a unit in the column name (e.g. loading_mmol_per_g) or one units declaration "
+                    "(e.g. '# units: pressure:kPa,loading:mmol/g')",
+    "sigma": "loading_sigma (in the loading's unit) or loading_sigma_<unit>, e.g. "
+             "loading_sigma_mmol_per_g",
+    "defaults": "the top-level 'units' (e.g. {\"pressure\": \"kPa\", \"loading\": \"mmol/g\"}) "
+                "and 'sample_mass_g'",
+}
+CSV_DELIMITERS = {",": "comma", ";": "semicolon", "\t": "tab"}
 BRANCHES = ("adsorption", "desorption")
 MAX_ID_CHARS = 200
 MAX_ISSUES_PER_ISOTHERM = 25
@@ -175,44 +221,75 @@ class _Rows:
     isotherm_level: frozenset = frozenset()    # fields reported with row None
     group_issues: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     settings: dict[str, Any] = field(default_factory=dict)
+    column_names: dict[str, str] = field(default_factory=dict)   # internal name -> as sent
+    group_column_names: list[dict[str, str]] | None = None        # JSON: the same per isotherm
+    decimal: str = "."
+
+    def field_name(self, fld: str | None, g: int) -> str | None:
+        """The column (or JSON key) the sender used for internal field ``fld``."""
+        if fld is None:
+            return None
+        names = self.group_column_names[g] if self.group_column_names is not None \
+            else self.column_names
+        return names.get(fld, fld)
 
 
 # ---------------------------------------------------------------------------
 # public entry point
 
 def read_batch(source, fmt: str | None = None, *, batch_label: str | None = None,
-               defaults: dict | None = None, limits: Limits | None = None) -> Batch:
+               units: dict | str | None = None, sample_mass_g: float | str | None = None,
+               delimiter: str | None = None, decimal: str | None = None,
+               gases: list[dict] | None = None, limits: Limits | None = None) -> Batch:
     """Return the validated, unit-normalised Batch read from ``source``.
 
-    ``source`` is bytes, text or a pathlib.Path; ``fmt`` is "csv", "json",
-    "parquet" or None (inferred). Raises only IntakeError.
+    ``source`` is bytes, text, a pathlib.Path or a pyarrow.Table; ``fmt`` is
+    "csv", "json", "parquet" or None (inferred). ``units`` is a units
+    declaration (text or mapping), ``sample_mass_g`` the sample mass for
+    absolute loadings, ``gases`` a list of declared gases ({"name",
+    "molar_mass_g_per_mol", optional "critical_temperature_k"}); all three
+    apply where the input gives none itself. ``delimiter`` (",", ";", "\\t" or
+    comma/semicolon/tab) and ``decimal`` ("." or ",") are for CSV; None
+    detects them. Raises only IntakeError.
     """
     limits = limits or Limits()
     fallback_label = batch_label or "(unlabelled)"
     try:
-        data = _source_bytes(source, batch_label, limits)
-        fallback_label = batch_label or f"batch-{hashlib.sha256(data).hexdigest()[:12]}"
-        fmt = _format_of(source, data, fmt, fallback_label)
-        arg_settings = _checked_settings(defaults or {}, "defaults", fallback_label)
-        if fmt == "parquet":
+        if isinstance(source, pa.Table):
+            data = None
+            fallback_label = batch_label or f"batch-{_table_digest(source, fallback_label, limits)}"
+            fmt = _table_format(fmt, fallback_label)
+        else:
+            data = _source_bytes(source, batch_label, limits)
+            fallback_label = batch_label or f"batch-{hashlib.sha256(data).hexdigest()[:12]}"
+            fmt = _format_of(source, data, fmt, fallback_label)
+        arg_settings = _checked_settings(
+            {"units": units, "sample_mass_g": sample_mass_g, "gases": gases},
+            "argument", fallback_label)
+        csv_options = _csv_options(delimiter, decimal, fallback_label)
+        doc = None
+        if fmt == "table":
+            rows = _rows_from_arrow_table(source, "table", fallback_label, limits)
+        elif fmt == "parquet":
             rows = _rows_from_parquet(data, fallback_label, limits)
-            doc = None
         else:
             text = _decoded(data, fallback_label)
             if fmt == "json":
                 doc = _parsed_json(text, fallback_label, limits)
                 rows = _rows_from_json(doc, fallback_label, limits)
             else:
-                doc = None
-                rows = _rows_from_csv(data, text, fallback_label, limits)
+                rows = _rows_from_csv(data, text, fallback_label, limits, *csv_options)
         file_settings = _checked_settings(rows.settings, "file", fallback_label)
-        settings = {**arg_settings, **file_settings}
+        settings = {**arg_settings, **file_settings,
+                    "units": {**arg_settings.get("units", {}), **file_settings.get("units", {})}}
+        declared = _declared_gases(arg_settings.get("gases", []) + file_settings.get("gases", []),
+                                   fallback_label)
         label = batch_label or settings.get("batch_label") or fallback_label
         _check_batch_label(label, fallback_label)
-        batch = _assemble(rows, settings, label, limits)
+        batch = _assemble(rows, settings, declared, label, limits)
         if doc is not None:
             batch.conditions = _conditions(doc.get("conditions"), settings, label)
-            batch.mixtures = _mixtures(doc.get("mixtures"), settings, label)
+            batch.mixtures = _mixtures(doc.get("mixtures"), settings, declared, label)
         return batch
     except IntakeError:
         raise
@@ -256,12 +333,30 @@ def _source_bytes(source, batch_label: str | None, limits: Limits) -> bytes:
     elif isinstance(source, (bytes, bytearray, memoryview)):
         data = bytes(source)
     else:
-        raise _batch_error(label, "unsupported_source",
-                           f"source must be bytes, str or pathlib.Path, not {type(source).__name__}")
+        raise _batch_error(label, "unsupported_source", "source must be bytes, str, pathlib.Path "
+                           f"or pyarrow.Table, not {type(source).__name__}")
     if len(data) > limits.max_bytes:
         raise _batch_error(label, "input_too_large",
                            f"input is {len(data)} bytes, limit {limits.max_bytes}")
     return data
+
+
+def _table_digest(table: pa.Table, label: str, limits: Limits) -> str:
+    """First 12 hex digits of the SHA-256 of the table in Arrow IPC form."""
+    if table.nbytes > limits.max_bytes:
+        raise _batch_error(label, "input_too_large",
+                           f"table holds {table.nbytes} bytes, limit {limits.max_bytes}")
+    sink = pa.BufferOutputStream()
+    with pa.ipc.new_stream(sink, table.schema) as writer:
+        writer.write_table(table)
+    return hashlib.sha256(sink.getvalue()).hexdigest()[:12]
+
+
+def _table_format(fmt: str | None, label: str) -> str:
+    if fmt is not None and str(fmt).lower() not in ("parquet", "table"):
+        raise _batch_error(label, "unknown_format",
+                           f"format {fmt!r} does not apply to a pyarrow.Table (leave it out)")
+    return "table"
 
 
 def _format_of(source, data: bytes, fmt: str | None, label: str) -> str:
@@ -289,8 +384,15 @@ def _decoded(data: bytes, label: str) -> str:
                            f"input is not UTF-8 (invalid byte at offset {exc.start})")
 
 
+def _old_spelling(name: str, where: str, label: str) -> IntakeError:
+    where = where if "'" in where else f"{where} {name!r}"
+    return _batch_error(label, "old_spelling", f"{where} is no longer read: use "
+                        f"{OLD_SPELLINGS[name]}", fld=name)
+
+
 def _checked_settings(raw: dict, where: str, label: str) -> dict[str, Any]:
-    """Return the batch-wide settings in ``raw`` checked and typed."""
+    """Return the batch-wide settings in ``raw`` checked and typed: units as
+    {quantity: canonical unit}, gases as a list of dicts."""
     if not isinstance(raw, dict):
         raise _batch_error(label, "wrong_type", f"{where} settings must be an object")
     out: dict[str, Any] = {}
@@ -298,17 +400,15 @@ def _checked_settings(raw: dict, where: str, label: str) -> dict[str, Any]:
         if value is None:
             continue
         name = str(key).strip().lower()
+        if name in OLD_SPELLINGS:
+            raise _old_spelling(name, f"{where} setting", label)
         if name not in SETTINGS:
             near = _nearest(name, SETTINGS)
             hint = f"; did you mean {near!r}?" if near else ""
             raise _batch_error(label, "unknown_setting",
                                f"unknown {where} setting {_short(key)!r}{hint}", fld=name)
-        if name in ("pressure_unit", "loading_unit"):
-            try:
-                out[name] = units.normalise_unit_name(str(value), name.split("_")[0])
-            except units.UnknownUnit as exc:
-                raise _batch_error(label, "unknown_unit", f"{where} setting: {exc}", fld=name)
-            out[name + "_as_sent"] = str(value)
+        if name == "units":
+            out[name] = _units_setting(value, f"{where} units", "units", label)
         elif name == "sample_mass_g":
             mass = _positive_float(value)
             if mass is None:
@@ -316,9 +416,84 @@ def _checked_settings(raw: dict, where: str, label: str) -> dict[str, Any]:
                                    f"{where} sample_mass_g {_short(value)!r} is not a positive number",
                                    fld=name)
             out[name] = mass
+        elif name == "gases":
+            if not isinstance(value, list):
+                raise _batch_error(label, "invalid_gas", f"{where} gases must be a list", fld=name)
+            out[name] = list(value)
         else:
             out[name] = str(value)
     return out
+
+
+def _units_setting(value: Any, where: str, fld: str, label: str) -> dict[str, str]:
+    try:
+        return units.parse_units_declaration(value)
+    except units.UnknownUnit as exc:
+        raise _batch_error(label, "unknown_unit", f"{where}: {exc}", fld=fld)
+    except ValueError as exc:
+        raise _batch_error(label, "invalid_setting", f"{where}: {exc}", fld=fld)
+
+
+def _declared_gases(raw: list, label: str) -> list:
+    """The Adsorbates declared for this batch (argument first, then the file's)."""
+    declared = []
+    for i, item in enumerate(raw):
+        fld = f"gases[{i}]"
+        if not isinstance(item, dict):
+            raise _batch_error(label, "invalid_gas", "a declared gas must be an object with name "
+                               "and molar_mass_g_per_mol", fld=fld)
+        allowed = ("name", "molar_mass_g_per_mol", "critical_temperature_k")
+        for key in item:
+            if key not in allowed:
+                near = _nearest(key, allowed)
+                raise _batch_error(label, "invalid_gas", f"unknown key {_short(key)!r}"
+                                   + (f"; did you mean {near!r}?" if near else ""), fld=fld)
+        name = item.get("name")
+        if not isinstance(name, str) or not name.strip() or _id_problem(name.strip()):
+            raise _batch_error(label, "invalid_gas", "needs a name (text usable as an id)", fld=fld)
+        mass = _positive_float(item.get("molar_mass_g_per_mol"))
+        if mass is None:
+            raise _batch_error(label, "invalid_gas", f"gas {_short(name)!r}: molar_mass_g_per_mol "
+                               f"{_short(item.get('molar_mass_g_per_mol'))!r} is not a positive "
+                               "number", fld=fld)
+        tc = item.get("critical_temperature_k")
+        if tc is not None:
+            tc = _positive_float(tc)
+            if tc is None:
+                raise _batch_error(label, "invalid_gas", f"gas {_short(name)!r}: "
+                                   "critical_temperature_k is not a positive number", fld=fld)
+        same = [g for g in declared if g.id == name.strip()]
+        if same:
+            if (same[0].molar_mass_g_per_mol, same[0].critical_temperature_k) != (mass, tc):
+                raise _batch_error(label, "invalid_gas", f"gas {_short(name)!r} is declared twice "
+                                   "with different values", fld=fld)
+            continue
+        try:
+            declared.append(adsorbates.declare(name.strip(), mass, critical_temperature_k=tc))
+        except ValueError as exc:
+            raise _batch_error(label, "invalid_gas", f"gas {_short(name)!r}: {exc}", fld=fld)
+    return declared
+
+
+def _csv_options(delimiter: str | None, decimal: str | None, label: str) -> tuple[str | None, str | None]:
+    """The CSV delimiter and decimal mark asked for (None: detect), checked."""
+    names = {v: k for k, v in CSV_DELIMITERS.items()}
+    if delimiter is not None:
+        delimiter = names.get(str(delimiter).strip().lower(), delimiter)
+        if delimiter == "\\t":
+            delimiter = "\t"
+        if delimiter not in CSV_DELIMITERS:
+            raise _batch_error(label, "invalid_setting", f"delimiter {_short(delimiter)!r} is not one "
+                               "of ',', ';', tab (or comma, semicolon, tab)", fld="delimiter")
+    if decimal is not None:
+        decimal = {"point": ".", "comma": ","}.get(str(decimal).strip().lower(), decimal)
+        if decimal not in (".", ","):
+            raise _batch_error(label, "invalid_setting", f"decimal {_short(decimal)!r} is not '.' or "
+                               "',' (or point, comma)", fld="decimal")
+        if decimal == "," and delimiter == ",":
+            raise _batch_error(label, "invalid_setting", "a decimal comma needs a delimiter other "
+                               "than a comma (';' or tab)", fld="decimal")
+    return delimiter, decimal
 
 
 def _positive_float(value: Any) -> float | None:
@@ -359,9 +534,12 @@ def _check_batch_label(label: str, fallback: str) -> None:
 # ---------------------------------------------------------------------------
 # CSV
 
-def _split_comment_header(text: str) -> tuple[dict[str, str], int]:
+HEADER_SETTINGS = ("units", "sample_mass_g", "batch_label", "gas")
+
+
+def _split_comment_header(text: str, label: str) -> tuple[dict[str, Any], int]:
     """Settings from leading ``# key: value`` lines, and where the rest starts."""
-    settings: dict[str, str] = {}
+    settings: dict[str, Any] = {}
     pos = 0
     while pos < len(text):
         end = text.find("\n", pos)
@@ -370,27 +548,125 @@ def _split_comment_header(text: str) -> tuple[dict[str, str], int]:
         if line and not line.startswith("#"):
             break
         key, sep, value = line[1:].partition(":")
+        key = key.strip().lower()
         # other comment lines are free text, and stay comments
-        if sep and key.strip().lower() in SETTINGS:
-            settings[key.strip().lower()] = value.strip()
+        if sep and key in OLD_SPELLINGS:
+            raise _old_spelling(key, "header line '# " + key + ":'", label)
+        if sep and key == "gas":
+            settings.setdefault("gases", []).append(_gas_line(value, label))
+        elif sep and key in HEADER_SETTINGS:
+            settings[key] = value.strip()
         pos = end
     return settings, pos
 
 
-def _rows_from_csv(data: bytes, text: str, label: str, limits: Limits) -> _Rows:
+def _gas_line(value: str, label: str) -> dict[str, Any]:
+    """``CH3SH, molar_mass_g_per_mol=48.107, critical_temperature_k=470`` -> a gas dict."""
+    name, *pairs = [part.strip() for part in value.split(",")]
+    gas: dict[str, Any] = {"name": name}
+    for pair in pairs:
+        key, sep, number = pair.partition("=")
+        if not sep:
+            raise _batch_error(label, "invalid_gas", f"header line '# gas:{_short(value)}': "
+                               f"{_short(pair)!r} is not key=value (numbers in header lines use "
+                               "a decimal point)", fld="gas")
+        gas[key.strip().lower()] = number.strip()
+    return gas
+
+
+def _csv_delimiter(header_line: str, given: str | None) -> str:
+    """The delimiter asked for, else the one that splits the header into the most
+    known columns (ties: the one that splits it most)."""
+    if given is not None:
+        return given
+    return max(CSV_DELIMITERS, key=lambda d: (_known_count(_header_names(header_line, d)),
+                                              header_line.count(d)))
+
+
+def _header_names(header_line: str, delimiter: str) -> list[str]:
+    try:
+        return next(csv.reader([header_line], delimiter=delimiter))
+    except (csv.Error, StopIteration):
+        return [header_line]
+
+
+def _known_count(names: list[str]) -> int:
+    count = 0
+    for name in names:
+        key = str(name).strip().lower()
+        try:
+            count += key in PLAIN_COLUMNS or units.unit_column(key) is not None
+        except units.UnitError:
+            count += 1
+    return count
+
+
+def _wrong_delimiter(header_line: str, delimiter: str, given: bool, label: str) -> IntakeError | None:
+    """An error naming the delimiter the header seems to use, when that is why the
+    required columns are missing; None when the split itself looks right."""
+    others = {d: header_line.count(d) for d in (",", ";", "\t", "|")}
+    seen = max(others, key=others.get)
+    if others[seen] == 0 or seen == delimiter or others[seen] <= header_line.count(delimiter):
+        return None
+    def name(d):
+        return CSV_DELIMITERS.get(d, repr(d))
+    n_fields = len(_header_names(header_line, delimiter))
+    if given:
+        expected = f"the delimiter asked for is a {name(delimiter)} ({delimiter!r})"
+        advice = (f"give delimiter {seen!r} or leave it to detection" if seen in CSV_DELIMITERS
+                  else "save the file comma-, semicolon- or tab-delimited")
+    else:
+        expected = "sorbrank reads comma-, semicolon- or tab-delimited files"
+        advice = "save the file with one of those"
+    return _batch_error(label, "wrong_delimiter",
+                        f"the header splits into {n_fields} column(s) on {delimiter!r} and lacks "
+                        f"the required columns; it looks {name(seen)}-delimited ({others[seen]} x "
+                        f"{seen!r} in the header), but {expected}: {advice}", fld="delimiter")
+
+
+_COMMA_NUMBER_RE = r"^\s*[+-]?([0-9]+,[0-9]*|,[0-9]+)([eE][+-]?[0-9]+)?\s*$"
+_POINT_NUMBER_RE = r"^\s*[+-]?([0-9]+\.[0-9]*|\.[0-9]+)([eE][+-]?[0-9]+)?\s*$"
+
+
+def _csv_decimal(table: pa.Table, columns: dict[str, str], delimiter: str, given: str | None) -> str:
+    """The decimal mark asked for, else "," when a non-comma-delimited file writes
+    more of its numbers with a comma than with a point."""
+    if given is not None:
+        return given
+    if delimiter == ",":
+        return "."
+    with_comma = with_point = 0
+    for name, original in columns.items():
+        if name in NUMBER_FIELDS:
+            column = table.column(original)
+            with_comma += pc.sum(pc.match_substring_regex(column, _COMMA_NUMBER_RE)).as_py() or 0
+            with_point += pc.sum(pc.match_substring_regex(column, _POINT_NUMBER_RE)).as_py() or 0
+    return "," if with_comma > with_point else "."
+
+
+def _rows_from_csv(data: bytes, text: str, label: str, limits: Limits,
+                   delimiter: str | None, decimal: str | None) -> _Rows:
     """``text`` is ``data`` decoded (checked UTF-8, BOM removed)."""
-    settings, start = _split_comment_header(text)
+    settings, start = _split_comment_header(text, label)
     header_end = text.find("\n", start)
     header_line = text[start:header_end if header_end >= 0 else len(text)].rstrip("\r\n")
     if not text[start:].strip():
         raise _batch_error(label, "no_data", "no header and no data rows")
-    if header_line.count(",") + 1 > 4 * limits.max_columns:
+    if max(header_line.count(d) for d in CSV_DELIMITERS) + 1 > 4 * limits.max_columns:
         raise _batch_error(label, "too_many_columns", f"more than {limits.max_columns} columns")
+    chosen = _csv_delimiter(header_line, delimiter)
     try:
-        names = next(csv.reader([header_line]))
+        names = next(csv.reader([header_line], delimiter=chosen))
     except (csv.Error, StopIteration) as exc:
         raise _batch_error(label, "unparseable", f"header cannot be read: {exc}")
-    columns = _known_columns(names, label, limits)
+    try:
+        columns, column_units = _known_columns(names, label, limits)
+    except IntakeError as exc:
+        if exc.issues[0].code == "missing_column":
+            wrong = _wrong_delimiter(header_line, chosen, delimiter is not None, label)
+            if wrong is not None:
+                raise wrong from None
+        raise
 
     blank_skipped = [0]
     bad_rows: list[str] = []
@@ -412,7 +688,7 @@ def _rows_from_csv(data: bytes, text: str, label: str, limits: Limits) -> _Rows:
             # one block: a row never straddles blocks, whatever the header's length
             read_options=pcsv.ReadOptions(use_threads=False,
                                           block_size=max(1 << 20, min(body.size + 1, 1 << 30))),
-            parse_options=pcsv.ParseOptions(invalid_row_handler=on_invalid_row),
+            parse_options=pcsv.ParseOptions(delimiter=chosen, invalid_row_handler=on_invalid_row),
             convert_options=pcsv.ConvertOptions(
                 column_types={original: pa.string() for original in columns.values()},
                 include_columns=list(columns.values()),
@@ -424,36 +700,60 @@ def _rows_from_csv(data: bytes, text: str, label: str, limits: Limits) -> _Rows:
         raise _batch_error(label, "unparseable", f"CSV cannot be parsed: {_short(exc, 200)}")
     if table.num_rows == 0:
         raise _batch_error(label, "no_data", "the file has a header but no data rows")
-    rows = _rows_from_table(table, columns, "csv", label)
+    rows = _rows_from_table(table, columns, column_units, "csv", label,
+                            _csv_decimal(table, columns, chosen, decimal))
     rows.settings = settings
     return rows
 
 
-def _known_columns(names: list[str], label: str, limits: Limits) -> dict[str, str]:
-    """Map each known column (normalised name) to its name in the file."""
+def _known_columns(names: list[str], label: str,
+                   limits: Limits) -> tuple[dict[str, str], dict[str, str | None]]:
+    """Map each known column (internal name) to its name in the input; and each
+    quantity present to the unit its column name carries (None: plain)."""
     if len(names) > limits.max_columns:
         raise _batch_error(label, "too_many_columns",
                            f"{len(names)} columns, limit {limits.max_columns}")
     found: dict[str, str] = {}
+    column_units: dict[str, str | None] = {}
     for original in names:
         name = str(original).strip().lower()
-        if name in REQUIRED_COLUMNS or name in OPTIONAL_COLUMNS:
-            if name in found:
+        if name in OLD_SPELLINGS:
+            raise _old_spelling(name, "column", label)
+        try:
+            quantity = units.unit_column(name)
+        except units.UnknownColumnUnit as exc:
+            raise _batch_error(label, "unknown_unit", str(exc), fld=exc.column)
+        key = quantity[0] if quantity else name
+        if quantity is None and name not in PLAIN_COLUMNS:
+            continue
+        if key in found:
+            if str(found[key]).strip().lower() == name:
                 raise _batch_error(label, "duplicate_column", f"column {name!r} appears twice", fld=name)
-            found[name] = original
-    missing = [c for c in REQUIRED_COLUMNS if c not in found]
+            raise _batch_error(label, "conflicting_columns",
+                               f"columns {str(found[key]).strip()!r} and {str(original).strip()!r} "
+                               f"both give the {key.replace('_', ' ')}; keep one", fld=key)
+        found[key] = original
+        if quantity:
+            column_units[key] = quantity[1]
+    missing = [c for c in IDENTITY_COLUMNS + REQUIRED_QUANTITIES if c not in found]
     if missing:
         present = [str(n).strip().lower() for n in names]
         hints = []
         for col in missing:
-            near = _nearest(col, [p for p in present if p not in found])
-            hints.append(f"{col!r}" + (f" (found {near!r})" if near else ""))
+            near = _nearest(col, [p for p in present if p not in found.values()])
+            if col in REQUIRED_QUANTITIES:
+                example = "pressure_kpa" if col == "pressure" else "loading_mmol_per_g"
+                hints.append(f"a {col} column (e.g. {example}, or {col!r} with a units declaration)"
+                             + (f" (found {near!r})" if near else ""))
+            else:
+                hints.append(f"{col!r}" + (f" (found {near!r})" if near else ""))
         raise _batch_error(label, "missing_column", "missing required column(s): " + ", ".join(hints),
                            fld=missing[0])
-    return found
+    return found, column_units
 
 
-def _rows_from_table(table: pa.Table, columns: dict[str, str], source: str, label: str) -> _Rows:
+def _rows_from_table(table: pa.Table, columns: dict[str, str], column_units: dict[str, str | None],
+                     source: str, label: str, decimal: str = ".") -> _Rows:
     text: dict[str, _Text] = {}
     numbers: dict[str, _Numbers] = {}
     for name, original in columns.items():
@@ -464,10 +764,15 @@ def _rows_from_table(table: pa.Table, columns: dict[str, str], source: str, labe
                 or pa.types.is_decimal(column.type):
             numbers[name] = _numbers_from_arrow_numeric(column)
         else:
-            numbers[name] = _numbers_from_strings(_as_strings(column, name, label))
+            numbers[name] = _numbers_from_strings(_as_strings(column, name, label), decimal)
     n = table.num_rows
+    for quantity, unit in column_units.items():
+        # one unit per column: every row carries it (blank for a plain column)
+        text[UNIT_FIELD[quantity]] = _Text(np.full(n, _BLANK if unit is None else 0, dtype=np.int64),
+                                           [] if unit is None else [unit])
     return _Rows(source=source, n_rows=n, text=text, numbers=numbers,
-                 row_label=np.arange(1, n + 1))
+                 row_label=np.arange(1, n + 1),
+                 column_names={k: str(v).strip() for k, v in columns.items()}, decimal=decimal)
 
 
 def _as_strings(column: pa.Array, name: str, label: str) -> pa.Array:
@@ -492,9 +797,17 @@ def _text_from_arrow(strings: pa.Array) -> _Text:
     return _Text(codes, values)
 
 
-def _numbers_from_strings(strings: pa.Array) -> _Numbers:
-    finite = pc.match_substring_regex(strings, _FINITE_NUMBER_RE).to_numpy(zero_copy_only=False)
-    parsed = pc.cast(pc.if_else(pa.array(finite), strings, pa.scalar(None, pa.string())), pa.float64())
+def _numbers_from_strings(strings: pa.Array, decimal: str = ".") -> _Numbers:
+    if decimal == ",":
+        # a point in a decimal-comma file is not read: it may be a thousands separator
+        with_point = pc.match_substring(strings, ".").to_numpy(zero_copy_only=False)
+        strings_read = pc.if_else(pa.array(with_point), pa.scalar("?", pa.string()),
+                                  pc.replace_substring(strings, ",", "."))
+    else:
+        strings_read = strings
+    finite = pc.match_substring_regex(strings_read, _FINITE_NUMBER_RE).to_numpy(zero_copy_only=False)
+    parsed = pc.cast(pc.if_else(pa.array(finite), strings_read, pa.scalar(None, pa.string())),
+                     pa.float64())
     value = parsed.to_numpy(zero_copy_only=False).astype(float)
     problem = np.full(len(strings), _NOT_NUMBER, dtype=np.int8)
     if not finite.all():
@@ -524,7 +837,12 @@ def _rows_from_parquet(data: bytes, label: str, limits: Limits) -> _Rows:
         table = pq.read_table(pa.BufferReader(data))
     except Exception as exc:  # noqa: BLE001 - any reader failure means "not readable"
         raise _batch_error(label, "unparseable", f"Parquet cannot be read: {_short(exc, 200)}")
-    columns = _known_columns(table.column_names, label, limits)
+    return _rows_from_arrow_table(table, "parquet", label, limits)
+
+
+def _rows_from_arrow_table(table: pa.Table, source: str, label: str, limits: Limits) -> _Rows:
+    """Rows of a Parquet file's table or of a pyarrow.Table handed over directly."""
+    columns, column_units = _known_columns(table.column_names, label, limits)
     for name, original in columns.items():
         kind = table.schema.field(original).type
         if pa.types.is_nested(kind) or pa.types.is_binary(kind):
@@ -532,12 +850,21 @@ def _rows_from_parquet(data: bytes, label: str, limits: Limits) -> _Rows:
                                f"column {name!r} has type {kind}, expected text or numbers", fld=name)
     if table.num_rows == 0:
         raise _batch_error(label, "no_data", "the table has no rows")
-    rows = _rows_from_table(table, columns, "parquet", label)
+    rows = _rows_from_table(table, columns, column_units, source, label)
     metadata = table.schema.metadata or {}
     for key, value in metadata.items():
         name = key.decode("utf-8", "replace").strip().lower()
-        if name in SETTINGS:
-            rows.settings[name] = value.decode("utf-8", "replace")
+        text = value.decode("utf-8", "replace")
+        if name in OLD_SPELLINGS:
+            raise _old_spelling(name, "metadata key", label)
+        if name == "gases":
+            try:
+                rows.settings[name] = json.loads(text)
+            except ValueError:
+                raise _batch_error(label, "invalid_gas", "metadata 'gases' must be a JSON list of "
+                                   "gas objects", fld="gases")
+        elif name in SETTINGS:
+            rows.settings[name] = text
     return rows
 
 
@@ -552,8 +879,10 @@ def _parsed_json(text: str, label: str, limits: Limits) -> dict:
         raise _batch_error(label, "unparseable", f"JSON cannot be parsed: {_short(exc, 200)}")
     if not isinstance(doc, dict):
         raise _batch_error(label, "wrong_type", "the JSON document must be an object")
-    allowed = ("batch_label", "defaults", "isotherms", "conditions", "mixtures")
+    allowed = ("batch_label", "units", "sample_mass_g", "gases", "isotherms", "conditions", "mixtures")
     for key in doc:
+        if key in OLD_SPELLINGS:
+            raise _old_spelling(key, "top-level key", label)
         if key not in allowed:
             near = _nearest(key, allowed)
             raise _batch_error(label, "unknown_field", f"unknown top-level key {_short(key)!r}"
@@ -590,12 +919,7 @@ def _rows_from_json(doc: dict, label: str, limits: Limits) -> _Rows:
     for index, item in enumerate(items):
         builder.add(index, item)
     rows = builder.rows()
-    defaults = doc.get("defaults")
-    if defaults is not None and not isinstance(defaults, dict):
-        raise _batch_error(label, "wrong_type", "'defaults' must be an object", fld="defaults")
-    rows.settings = dict(defaults or {})
-    if doc.get("batch_label") is not None:
-        rows.settings["batch_label"] = doc["batch_label"]
+    rows.settings = {key: doc[key] for key in SETTINGS if doc.get(key) is not None}
     return rows
 
 
@@ -628,23 +952,66 @@ class _JsonRows:
     """Accumulates JSON isotherm objects into the column-wise _Rows form.
 
     Isotherm-level values are kept once per isotherm and repeated over its
-    points at the end, so the work per point stays inside numpy.
+    points at the end, so the work per point stays inside numpy. Each isotherm
+    names its own pressure/loading keys, so each may carry its own units.
     """
 
     SCALAR_NUMBERS = ("temperature_k", "saturation_pressure", "sample_mass_g", "surface_area_m2_per_g")
-    ARRAYS = ("pressure", "loading", "sigma")
+    ARRAYS = ("pressure", "loading", "loading_sigma")
+    UNIT_TEXT = tuple(UNIT_FIELD.values())
 
     def __init__(self, limits: Limits):
         self.limits = limits
-        self.text_code: dict[str, list[int]] = {f: [] for f in TEXT_FIELDS}
-        self.text_values: dict[str, dict[str, int]] = {f: {} for f in TEXT_FIELDS}
+        self.text_fields = TEXT_FIELDS + self.UNIT_TEXT
+        self.text_code: dict[str, list[int]] = {f: [] for f in self.text_fields}
+        self.text_values: dict[str, dict[str, int]] = {f: {} for f in self.text_fields}
         self.scalar: dict[str, list[tuple[float, int]]] = {f: [] for f in self.SCALAR_NUMBERS}
         self.scalar_raw: dict[str, list] = {f: [] for f in self.SCALAR_NUMBERS}
         self.array: dict[str, list[tuple[np.ndarray, np.ndarray]]] = {f: [] for f in self.ARRAYS}
         self.array_raw: dict[str, list] = {f: [] for f in self.ARRAYS}
         self.n_points: list[int] = []
         self.names: list[str] = []
+        self.column_names: list[dict[str, str]] = []
         self.issues: list[tuple[int, str | None, str, str]] = []
+
+    def _quantity_keys(self, index: int, item: dict) -> tuple[dict[str, str], dict[str, str]]:
+        """Per quantity: the key this isotherm uses, and the unit its name carries."""
+        keys: dict[str, str] = {}
+        key_units: dict[str, str] = {}
+        for key in item:
+            name = str(key).strip().lower()
+            if name in OLD_SPELLINGS and name != "defaults":
+                self.issues.append((index, name, "old_spelling",
+                                    f"{name!r} is no longer read: use {OLD_SPELLINGS[name]}"))
+                continue
+            try:
+                found = units.unit_column(name)
+            except units.UnknownColumnUnit as exc:
+                self.issues.append((index, exc.column, "unknown_unit", str(exc)))
+                continue
+            if found is None:
+                continue
+            quantity, unit = found
+            if quantity in keys:
+                self.issues.append((index, quantity, "conflicting_columns",
+                                    f"keys {keys[quantity]!r} and {key!r} both give the "
+                                    f"{quantity.replace('_', ' ')}; keep one"))
+                continue
+            keys[quantity] = key
+            if unit is not None:
+                key_units[quantity] = unit
+        return keys, key_units
+
+    def _own_units(self, index: int, item: dict) -> dict[str, str]:
+        raw = item.get("units")
+        if raw is None:
+            return {}
+        try:
+            return units.parse_units_declaration(raw)
+        except ValueError as exc:
+            code = "unknown_unit" if isinstance(exc, units.UnknownUnit) else "wrong_type"
+            self.issues.append((index, "units", code, f"'units': {exc}"))
+            return {}
 
     def add(self, index: int, item: Any) -> None:
         name = f"isotherms[{index}]"
@@ -656,15 +1023,19 @@ class _JsonRows:
         if not isinstance(item, dict):
             self.issues.append((index, None, "wrong_type", "an isotherm must be a JSON object"))
             item = {"pressure": [], "loading": []}  # nothing more to report about it
-        arrays = {key: self._array(index, key, item.get(key)) for key in self.ARRAYS}
+        keys, key_units = self._quantity_keys(index, item)
+        self.column_names.append(dict(keys))
+        own_units = {**self._own_units(index, item), **key_units}
+        arrays = {q: self._array(index, q, keys.get(q), item) for q in self.ARRAYS}
+        pressure_key = keys.get("pressure", "pressure")
         n = min(len(arrays["pressure"]), len(arrays["loading"]))
-        for key in ("loading", "sigma"):
-            if arrays[key] is not None and len(arrays[key]) != len(arrays["pressure"]):
-                self.issues.append((index, key, "length_mismatch",
-                                    f"{key!r} has {len(arrays[key])} values, 'pressure' has "
-                                    f"{len(arrays['pressure'])}"))
-        if arrays["sigma"] is not None:
-            n = min(n, len(arrays["sigma"]))
+        for q in ("loading", "loading_sigma"):
+            if arrays[q] is not None and len(arrays[q]) != len(arrays["pressure"]):
+                self.issues.append((index, q, "length_mismatch",
+                                    f"{keys.get(q, q)!r} has {len(arrays[q])} values, "
+                                    f"{pressure_key!r} has {len(arrays['pressure'])}"))
+        if arrays["loading_sigma"] is not None:
+            n = min(n, len(arrays["loading_sigma"]))
         if n > self.limits.max_points_per_isotherm:
             self.issues.append((index, None, "too_many_points",
                                 f"{n} points, limit {self.limits.max_points_per_isotherm}"))
@@ -672,9 +1043,14 @@ class _JsonRows:
         self.n_points.append(n)
         for key in TEXT_FIELDS:
             self.text_code[key].append(self._text_code(index, key, item.get(key)))
+        for quantity, fld in UNIT_FIELD.items():
+            unit = own_units.get(quantity)
+            self.text_code[fld].append(_BLANK if unit is None else
+                                       self.text_values[fld].setdefault(unit, len(self.text_values[fld])))
         for key in self.SCALAR_NUMBERS:
-            self.scalar[key].append(_json_number(item.get(key)))
-            self.scalar_raw[key].append(item.get(key))
+            value = item.get(keys.get(key, key))
+            self.scalar[key].append(_json_number(value))
+            self.scalar_raw[key].append(value)
         for key in self.ARRAYS:
             values = arrays[key]
             if values is None:  # optional sigma absent: every point missing
@@ -685,16 +1061,20 @@ class _JsonRows:
                 self.array[key].append(_json_numbers(values))
             self.array_raw[key].append(values)
 
-    def _array(self, index: int, key: str, value: Any) -> list | None:
+    def _array(self, index: int, quantity: str, key: str | None, item: dict) -> list | None:
+        value = item.get(key) if key is not None else None
         if isinstance(value, list):
             return value
         if value is None:
-            if key == "sigma":
+            if quantity == "loading_sigma":
                 return None
-            self.issues.append((index, key, "missing_value", f"{key!r} is missing"))
+            example = "pressure_kpa" if quantity == "pressure" else "loading_mmol_per_g"
+            self.issues.append((index, quantity, "missing_value",
+                                f"{key or quantity!r} is missing (a list of numbers, e.g. "
+                                f"{example!r}, or {quantity!r} with units)"))
         else:
-            self.issues.append((index, key, "wrong_type", f"{key!r} must be a list of numbers"))
-        return None if key == "sigma" else []
+            self.issues.append((index, quantity, "wrong_type", f"{key!r} must be a list of numbers"))
+        return None if quantity == "loading_sigma" else []
 
     def _text_code(self, index: int, key: str, value: Any) -> int:
         if value is None:
@@ -714,7 +1094,7 @@ class _JsonRows:
         group = np.repeat(np.arange(counts.size), counts)
         point = np.arange(group.size) - np.repeat(np.cumsum(counts) - counts, counts)
         text = {k: _Text(np.repeat(np.array(self.text_code[k], dtype=np.int64), counts),
-                         list(self.text_values[k])) for k in TEXT_FIELDS}
+                         list(self.text_values[k])) for k in self.text_fields}
         numbers = {}
         for k in self.SCALAR_NUMBERS:
             pairs = self.scalar[k]
@@ -730,8 +1110,8 @@ class _JsonRows:
                 lambda i, r=self.array_raw[k]: _json_text(r[group[i]][point[i]]))
         return _Rows(source="json", n_rows=int(group.size), text=text, numbers=numbers,
                      row_label=point, group=group, n_groups=len(self.names), group_names=self.names,
-                     isotherm_level=frozenset(TEXT_FIELDS + self.SCALAR_NUMBERS),
-                     group_issues=self.issues)
+                     isotherm_level=frozenset(TEXT_FIELDS + self.SCALAR_NUMBERS + self.UNIT_TEXT),
+                     group_issues=self.issues, group_column_names=self.column_names)
 
 
 def _json_text(value: Any) -> str:
@@ -826,23 +1206,25 @@ def _resolved_text(rows: _Rows, name: str, default: str | None) -> _Text:
     return _Text(codes, values)
 
 
-def _unit_index(column: _Text, kind: str, table: list[str]):
-    """Per-row index into ``table`` of canonical units, -1 unknown, -2 blank, -3 wrong type;
-    and the UnknownUnit error per unknown value code."""
-    per_value = np.full(len(column.values) + 3, -2, dtype=np.int64)
-    errors: dict[int, units.UnknownUnit] = {}
-    for code, value in enumerate(column.values):
-        try:
-            per_value[code] = table.index(units.normalise_unit_name(value, kind))
-        except units.UnknownUnit as exc:
-            per_value[code] = -1
-            errors[code] = exc
-    per_value[_BLANK] = -2
-    per_value[_WRONG_TYPE] = -3
-    return per_value[column.codes], errors
+def _unit_index(column: _Text, table: list[str]) -> np.ndarray:
+    """Per-row index into ``table`` of canonical unit names (the column holds only
+    checked canonical names), -1 where blank."""
+    per_value = np.array([table.index(v) for v in column.values] + [-1, -1, -1], dtype=np.int64)
+    return per_value[column.codes]
 
 
-def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
+def _loading_factor(unit: np.ndarray, table: list[str], molar_mass, mass_g) -> np.ndarray:
+    """Per row: mol/kg per unit of the row's loading unit (nan where unknown)."""
+    factor = np.full(unit.size, np.nan)
+    for index, unit_name in enumerate(table):
+        rows_in_unit = unit == index
+        if rows_in_unit.any():
+            factor[rows_in_unit] = units.loading_to_mol_per_kg(
+                1.0, unit_name, molar_mass[rows_in_unit], mass_g[rows_in_unit])
+    return factor
+
+
+def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: Limits) -> Batch:
     n = rows.n_rows
     number = rows.numbers
     for name in NUMBER_FIELDS:  # absent optional columns: every cell missing
@@ -855,8 +1237,9 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
         mass.problem = np.where(fill, _OK, mass.problem).astype(np.int8)
     text = {name: rows.text.get(name) or _Text(np.full(n, _BLANK, dtype=np.int64), [])
             for name in TEXT_FIELDS}
-    text["pressure_unit"] = _resolved_text(rows, "pressure_unit", settings.get("pressure_unit_as_sent"))
-    text["loading_unit"] = _resolved_text(rows, "loading_unit", settings.get("loading_unit_as_sent"))
+    declared_units = settings.get("units", {})
+    for quantity, fld in UNIT_FIELD.items():
+        text[fld] = _resolved_text(rows, fld, declared_units.get(quantity))
 
     # branch: blank means adsorption
     branch_of_value = np.array([BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
@@ -872,7 +1255,7 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
     names = _GroupNames(rows, text, gid)
 
     # adsorbate per row
-    known = [adsorbates.lookup(v) for v in text["adsorbate"].values]
+    known = [_lookup(v, declared) for v in text["adsorbate"].values]
     table = [a for a in dict.fromkeys(a for a in known if a is not None)]
     ads_of_value = np.array([table.index(a) if a is not None else -1 for a in known] + [-2, -2, -2],
                             dtype=np.int64)
@@ -882,17 +1265,24 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
 
     p_table = list(units.PRESSURE_PA_PER_UNIT)
     l_table = list(units.LOADING_UNIT_TABLE)
-    p_unit, p_unknown = _unit_index(text["pressure_unit"], "pressure", p_table)
-    l_unit, l_unknown = _unit_index(text["loading_unit"], "loading", l_table)
     relative_unit = p_table.index(units.RELATIVE)
+    p_unit = _unit_index(text[UNIT_FIELD["pressure"]], p_table)
+    l_unit = _unit_index(text[UNIT_FIELD["loading"]], l_table)
     is_relative = p_unit == relative_unit
+    # a plain saturation pressure is in the pressure unit, if that is absolute;
+    # a plain loading_sigma in the loading unit
+    p0_unit = _unit_index(text[UNIT_FIELD["saturation_pressure"]], p_table)
+    p0_unit = np.where((p0_unit < 0) & ~is_relative, p_unit, p0_unit)
+    sigma_unit = _unit_index(text[UNIT_FIELD["loading_sigma"]], l_table)
+    sigma_unit = np.where(sigma_unit < 0, l_unit, sigma_unit)
 
-    _row_checks(found, rows, text, number, branch, ads, p_unit, l_unit, p_unknown, l_unknown)
+    _row_checks(found, rows, text, number, branch, ads, is_relative)
 
     # isotherm-level values: each must be the same on every row that gives it
-    pa_per_unit = np.array([np.nan if f is None else f for f in units.PRESSURE_PA_PER_UNIT.values()]
-                           + [np.nan] * 3)[p_unit]
-    p0_row = number["saturation_pressure"].value * np.where(is_relative, 1.0, pa_per_unit)
+    pa_per_unit_of = np.array([np.nan if f is None else f for f in units.PRESSURE_PA_PER_UNIT.values()]
+                              + [np.nan])
+    pa_per_unit = pa_per_unit_of[p_unit]
+    p0_row = number["saturation_pressure"].value * pa_per_unit_of[p0_unit]
     group_value = {}
     for fld, values, given, code in [
         ("sorbent_id", text["sorbent_id"].codes, text["sorbent_id"].codes >= 0, "inconsistent_value"),
@@ -900,8 +1290,6 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
         ("temperature_k", number["temperature_k"].value, number["temperature_k"].problem == _OK,
          "inconsistent_value"),
         ("branch", branch_key, np.ones(n, dtype=bool), "inconsistent_value"),
-        ("pressure_unit", p_unit, p_unit >= 0, "mixed_units"),
-        ("loading_unit", l_unit, l_unit >= 0, "mixed_units"),
         ("saturation_pressure", p0_row, np.isfinite(p0_row), "inconsistent_value"),
         ("sample_mass_g", number["sample_mass_g"].value, number["sample_mass_g"].problem == _OK,
          "inconsistent_value"),
@@ -909,16 +1297,25 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
          number["surface_area_m2_per_g"].problem == _OK, "inconsistent_value"),
     ]:
         low, high = _group_range(values.astype(float), given, gid, n_groups)
-        what = "units" if code == "mixed_units" else "values"
         found.groups_where(high > low, fld, code,
-                           lambda g, f=fld, w=what: f"rows of this isotherm give different {w} for {f!r}")
+                           lambda g, f=fld: f"rows of this isotherm give different values for "
+                                            f"{rows.field_name(f, g)!r}")
         group_value[fld] = np.where(np.isfinite(low), low, np.nan)
 
-    sigma_given = number["sigma"].problem == _OK
+    # units: one per quantity and isotherm (a JSON isotherm's own, else the batch's)
+    for quantity, unit, needed in (
+            ("pressure", p_unit, np.ones(n, dtype=bool)),
+            ("loading", l_unit, np.ones(n, dtype=bool)),
+            ("saturation_pressure", p0_unit, number["saturation_pressure"].problem == _OK)):
+        missing = np.bincount(gid, weights=needed & (unit < 0), minlength=n_groups) > 0
+        found.groups_where(missing, quantity, "missing_unit",
+                           lambda g, q=quantity: _missing_unit(q, rows.field_name(q, g)))
+
+    sigma_given = number["loading_sigma"].problem == _OK
     n_sigma = np.bincount(gid, weights=sigma_given, minlength=n_groups)
     counts = np.bincount(gid, minlength=n_groups)
-    found.groups_where((n_sigma > 0) & (n_sigma < counts), "sigma", "missing_value",
-                       lambda g: "sigma is given for some points but not all")
+    found.groups_where((n_sigma > 0) & (n_sigma < counts), "loading_sigma", "missing_value",
+                       lambda g: "loading_sigma is given for some points but not all")
     found.groups_where(counts > limits.max_points_per_isotherm, None, "too_many_points",
                        lambda g: f"{counts[g]} points, limit {limits.max_points_per_isotherm}")
 
@@ -929,19 +1326,21 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
     ads_index_g[np.isfinite(low)] = low[np.isfinite(low)].astype(np.int64)
     p0_g = group_value["saturation_pressure"].copy()
     for g in np.flatnonzero(np.isnan(p0_g) & (ads_index_g >= 0) & np.isfinite(temperature_g)):
-        computed = adsorbates.saturation_pressure_pa(table[ads_index_g[g]], temperature_g[g])
+        gas = table[ads_index_g[g]]
+        computed = None if gas in declared else adsorbates.saturation_pressure_pa(gas, temperature_g[g])
         p0_g[g] = np.nan if computed is None else computed
     relative_g = _group_range(is_relative.astype(float), p_unit >= 0, gid, n_groups)[1] == 1.0
-    found.groups_where(relative_g & np.isnan(p0_g) & (ads_index_g >= 0) & np.isfinite(temperature_g),
+    p0_sent_g = np.bincount(gid, weights=number["saturation_pressure"].problem == _OK,
+                            minlength=n_groups) > 0   # sent without a usable unit: reported above
+    found.groups_where(relative_g & np.isnan(p0_g) & ~p0_sent_g & (ads_index_g >= 0)
+                       & np.isfinite(temperature_g),
                        "saturation_pressure", "missing_saturation_pressure",
-                       lambda g: (f"pressures are relative but no saturation pressure is given and "
-                                  f"none is defined for {table[ads_index_g[g]].id} at "
-                                  f"{temperature_g[g]:g} K (supercritical or outside the property "
-                                  f"table's range); give 'saturation_pressure' in Pa"))
+                       lambda g: _missing_p0(table[ads_index_g[g]], temperature_g[g],
+                                             table[ads_index_g[g]] in declared))
     absolute_g = np.zeros(n_groups, dtype=bool)
     for index, unit_name in enumerate(l_table):
         if not units.LOADING_UNIT_TABLE[unit_name].per_kg_sorbent:
-            absolute_g[np.unique(gid[l_unit == index])] = True
+            absolute_g[np.unique(gid[(l_unit == index) | (sigma_given & (sigma_unit == index))])] = True
     mass_g = group_value["sample_mass_g"]
     found.groups_where(absolute_g & np.isnan(mass_g), "sample_mass_g", "missing_sample_mass",
                        lambda g: "the loading unit is an absolute amount; 'sample_mass_g' is needed "
@@ -950,14 +1349,9 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
     # canonical values per row
     with np.errstate(all="ignore"):
         pressure_pa = number["pressure"].value * np.where(is_relative, p0_g[gid], pa_per_unit)
-        loading_factor = np.full(n, np.nan)
-        for index, unit_name in enumerate(l_table):
-            rows_in_unit = l_unit == index
-            if rows_in_unit.any():
-                loading_factor[rows_in_unit] = units.loading_to_mol_per_kg(
-                    1.0, unit_name, molar_mass[rows_in_unit], mass_g[gid][rows_in_unit])
-        loading = number["loading"].value * loading_factor
-        sigma = number["sigma"].value * loading_factor
+        loading = number["loading"].value * _loading_factor(l_unit, l_table, molar_mass, mass_g[gid])
+        sigma = number["loading_sigma"].value * _loading_factor(sigma_unit, l_table, molar_mass,
+                                                                mass_g[gid])
 
     points = _merged_points(gid, n_groups, pressure_pa, loading, sigma)
     found.groups_where(~found.bad_groups() & (points.n_distinct < 3), None, "too_few_points",
@@ -996,11 +1390,39 @@ def _assemble(rows: _Rows, settings: dict, label: str, limits: Limits) -> Batch:
     return batch
 
 
-def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, p_unit, l_unit,
-                p_unknown, l_unknown) -> None:
+def _missing_unit(quantity: str, sent_as: str) -> str:
+    if quantity == "saturation_pressure":
+        return (f"no unit for {sent_as!r}: the pressures are relative, so name its unit "
+                "(e.g. saturation_pressure_kpa) or declare it (units saturation_pressure:kPa)")
+    return f"no unit for {sent_as!r}: {_UNITS_HINT}"
+
+
+def _missing_p0(gas, temperature_k: float, is_declared: bool) -> str:
+    if is_declared:
+        why = f"{gas.id} is a declared gas, which has no saturation-pressure table"
+    else:
+        why = (f"none is defined for {gas.id} at {temperature_k:g} K (supercritical or outside "
+               "the property table's range)")
+    return (f"pressures are relative but no saturation pressure is given and {why}; give it "
+            "in a saturation_pressure column (e.g. saturation_pressure_kpa)")
+
+
+def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, is_relative) -> None:
     """Record every per-row problem (vectorised; messages built lazily)."""
     def raw(name):
         return lambda i: f"value {_short(number[name].raw(i))!r}"
+
+    def not_a_number(name):
+        def detail(i):
+            value = str(number[name].raw(i))
+            if rows.decimal == ",":
+                note = " (this file's numbers use decimal commas)"
+            elif rows.source == "csv" and "," in value:
+                note = " (this file's numbers use decimal points)"
+            else:
+                note = ""
+            return f"value {_short(value)!r} is not a number{note}"
+        return detail
 
     for name in ("sorbent_id", "adsorbate"):
         found.rows_where(text[name].codes == _BLANK, name, "missing_value",
@@ -1008,21 +1430,21 @@ def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, p_unit
     for name in NUMBER_FIELDS:
         problem = number[name].problem
         required = name in ("temperature_k", "pressure", "loading")
+        sent = rows.column_names.get(name, name)
         if required:
-            found.rows_where(problem == _MISSING, name, "missing_value", lambda i, n=name: f"{n!r} is missing")
-        found.rows_where(problem == _NOT_NUMBER, name, "not_a_number",
-                         lambda i, r=raw(name): f"{r(i)} is not a number")
+            found.rows_where(problem == _MISSING, name, "missing_value",
+                             lambda i, n=sent: f"{n!r} is missing")
+        found.rows_where(problem == _NOT_NUMBER, name, "not_a_number", not_a_number(name))
         found.rows_where(problem == _NOT_FINITE, name, "not_finite",
                          lambda i, r=raw(name): f"{r(i)} is not finite (NaN or infinity)")
     for name in ("pressure", "loading"):
         found.rows_where(number[name].value < 0, name, "negative_value",
                          lambda i, r=raw(name): f"{r(i)} is negative")
-    for name in ("temperature_k", "saturation_pressure", "sample_mass_g", "sigma",
+    for name in ("temperature_k", "saturation_pressure", "sample_mass_g", "loading_sigma",
                  "surface_area_m2_per_g"):
         found.rows_where(number[name].value <= 0, name, "non_positive_value",
                          lambda i, r=raw(name): f"{r(i)} must be greater than zero")
-    relative = p_unit == list(units.PRESSURE_PA_PER_UNIT).index(units.RELATIVE)
-    found.rows_where(relative & (number["pressure"].value > 1.0), "pressure",
+    found.rows_where(is_relative & (number["pressure"].value > 1.0), "pressure",
                      "relative_pressure_above_one",
                      lambda i: f"relative pressure p/p0 = {_short(number['pressure'].raw(i))} "
                                "is above 1")
@@ -1040,12 +1462,11 @@ def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, p_unit
     found.rows_where(branch == -1, "branch", "unknown_branch",
                      lambda i: f"branch {_short(text['branch'].values[text['branch'].codes[i]])!r} "
                                f"is not one of {', '.join(BRANCHES)}", once=True)
-    for name, unit, unknown in (("pressure_unit", p_unit, p_unknown), ("loading_unit", l_unit, l_unknown)):
-        column = text[name]
-        found.rows_where(unit == -1, name, "unknown_unit",
-                         lambda i, c=column, u=unknown: str(u[c.codes[i]]), once=True)
-        found.rows_where(unit == -2, name, "missing_unit",
-                         lambda i, n=name: f"no {n} given (column, file setting or defaults)", once=True)
+
+
+def _lookup(name: str, declared: list):
+    """The Adsorbate called ``name``: a gas declared for this batch or one of the table."""
+    return adsorbates.lookup(name, declared=declared) if declared else adsorbates.lookup(name)
 
 
 def _unknown_adsorbate(name: str) -> str:
@@ -1116,7 +1537,8 @@ def _issues(found: _Findings, names: _GroupNames, label: str) -> list[Issue]:
         total[g] += 1
         bucket = per_group.setdefault(g, [])
         if len(bucket) < MAX_ISSUES_PER_ISOTHERM:
-            bucket.append(_issue(label, names[g], row, fld, code, detail_fn()))
+            bucket.append(_issue(label, names[g], row, found.rows.field_name(fld, g), code,
+                                 detail_fn()))
 
     for g, fld, code, detail in found.rows.group_issues:
         add(g, None, fld, code, lambda d=detail: d)
@@ -1137,7 +1559,7 @@ def _issues(found: _Findings, names: _GroupNames, label: str) -> list[Issue]:
             g = int(found.gid[i])
             row = None if per_isotherm else found.rows.row_label[i]
             per_group.setdefault(g, []).append(
-                _issue(label, names[g], row, fld, code, detail(int(i))))
+                _issue(label, names[g], row, found.rows.field_name(fld, g), code, detail(int(i))))
     out: list[Issue] = []
     for g in sorted(per_group):
         bucket = sorted(per_group[g], key=lambda s: (s.row is not None, s.row or 0))
@@ -1269,16 +1691,22 @@ class _Accepted:
             return float(column.value[first]) if column.problem[first] == _OK else None
 
         number = self.number
+        given = {"pressure": True, "loading": True, "loading_sigma": bool(self.has_sigma[g]),
+                 "saturation_pressure": number["saturation_pressure"].problem[first] == _OK}
+        sent_units = {q: as_sent(UNIT_FIELD[q]) for q in QUANTITIES if given[q]}
+        # plain saturation_pressure / loading_sigma columns take the pressure / loading unit
+        for quantity, kind in (("saturation_pressure", "pressure"), ("loading_sigma", "loading")):
+            if quantity in sent_units and sent_units[quantity] is None:
+                sent_units[quantity] = sent_units[kind]
         return {
             "source": self.rows.source,
             "rows": self.rows.row_label[in_input],
             "adsorbate": as_sent("adsorbate"),
             "temperature_k": scalar("temperature_k"),
             "pressure": number["pressure"].value[in_input],
-            "pressure_unit": as_sent("pressure_unit"),
             "loading": number["loading"].value[in_input],
-            "loading_unit": as_sent("loading_unit"),
-            "sigma": number["sigma"].value[in_input] if self.has_sigma[g] else None,
+            "loading_sigma": number["loading_sigma"].value[in_input] if self.has_sigma[g] else None,
+            "units": {q: u for q, u in sent_units.items() if u is not None},
             "saturation_pressure": scalar("saturation_pressure"),
             "sample_mass_g": scalar("sample_mass_g"),
         }
@@ -1287,32 +1715,77 @@ class _Accepted:
 # ---------------------------------------------------------------------------
 # conditions and mixtures (JSON only)
 
+CONDITION_PRESSURES = ("adsorption_pressure", "desorption_pressure", "reference_pressures")
+CONDITION_TEMPERATURES = ("adsorption_temperature_k", "desorption_temperature_k")
+
+
+def _pressure_keys(raw: dict, bases: tuple, others: tuple, settings: dict, where: str, label: str,
+                   code: str) -> dict[str, tuple[Any, float]]:
+    """{base: (value, Pa per unit)} for keys ``base`` (in the declared pressure unit) or
+    ``base_<token>``; any other key outside ``others`` is an error."""
+    if not isinstance(raw, dict):
+        raise _batch_error(label, code, "must be an object", fld=where)
+    out: dict[str, tuple[Any, float]] = {}
+    for key, value in raw.items():
+        name = str(key).strip().lower()
+        if name in others:
+            continue
+        if name == "pressure_unit":
+            raise _batch_error(label, "old_spelling", f"{where}: 'pressure_unit' is no longer read: "
+                               f"name the unit in each key (e.g. {bases[0]}_kpa) or declare the "
+                               "top-level units", fld=f"{where}.pressure_unit")
+        base = next((b for b in bases if name == b or name.startswith(b + "_")), None)
+        if base is None:
+            near = _nearest(name, [f"{b}_kpa" for b in bases] + list(others))
+            raise _batch_error(label, code, f"unknown key {_short(key)!r}"
+                               + (f"; did you mean {near!r}?" if near else ""), fld=where)
+        if base in out:
+            raise _batch_error(label, code, f"two keys give {base}; keep one", fld=f"{where}.{key}")
+        if name == base:
+            unit = settings.get("units", {}).get("pressure")
+            if unit is None:
+                raise _batch_error(label, code, f"{base!r} has no unit: name it in the key "
+                                   f"(e.g. {base}_kpa) or declare the top-level units",
+                                   fld=f"{where}.{key}")
+        else:
+            token = name[len(base) + 1:]
+            unit = units.COLUMN_TOKENS["pressure"].get(token)
+            if unit is None:
+                raise _batch_error(label, code, f"{token!r} is not a pressure unit token (tokens: "
+                                   f"{', '.join(units.COLUMN_TOKENS['pressure'])})",
+                                   fld=f"{where}.{key}")
+        factor = units.PRESSURE_PA_PER_UNIT[unit]
+        if factor is None:
+            raise _batch_error(label, code, "must be an absolute pressure, not relative",
+                               fld=f"{where}.{key}")
+        out[base] = (value, factor)
+    return out
+
+
 def _conditions(raw: Any, settings: dict, label: str) -> Conditions:
     if raw is None:
         return Conditions()
     where = "conditions"
-    fields = ("pressure_unit", "adsorption_pressure", "desorption_pressure", "reference_pressures",
-              "adsorption_temperature_k", "desorption_temperature_k")
-    raw = _checked_object(raw, fields, where, label, "invalid_conditions")
-    pa_per_unit = _absolute_pa_per_unit(raw, settings, where, label, "invalid_conditions")
-    base = Conditions()
+    pressures = _pressure_keys(raw, CONDITION_PRESSURES, CONDITION_TEMPERATURES, settings, where,
+                               label, "invalid_conditions")
     out = {}
     for key, minimum in (("adsorption_pressure", "positive"), ("desorption_pressure", "non_negative")):
-        if key in raw:
-            out[key + "_pa"] = _checked_number(raw[key], minimum, f"{where}.{key}", label,
+        if key in pressures:
+            value, pa_per_unit = pressures[key]
+            out[key + "_pa"] = _checked_number(value, minimum, f"{where}.{key}", label,
                                                "invalid_conditions") * pa_per_unit
-    if "reference_pressures" in raw:
-        values = raw["reference_pressures"]
+    if "reference_pressures" in pressures:
+        values, pa_per_unit = pressures["reference_pressures"]
         if not isinstance(values, list) or not values:
             raise _batch_error(label, "invalid_conditions", "must be a non-empty list of numbers",
                                fld=f"{where}.reference_pressures")
         out["reference_pressures_pa"] = tuple(
             _checked_number(v, "non_negative", f"{where}.reference_pressures[{i}]", label,
                             "invalid_conditions") * pa_per_unit for i, v in enumerate(values))
-    for key in ("adsorption_temperature_k", "desorption_temperature_k"):
+    for key in CONDITION_TEMPERATURES:
         if raw.get(key) is not None:
             out[key] = _checked_number(raw[key], "positive", f"{where}.{key}", label, "invalid_conditions")
-    conditions = Conditions(**{**base.__dict__, **out})
+    conditions = Conditions(**{**Conditions().__dict__, **out})
     if conditions.desorption_pressure_pa > conditions.adsorption_pressure_pa:
         raise _batch_error(label, "invalid_conditions",
                            "desorption pressure must not be above the adsorption pressure",
@@ -1320,17 +1793,17 @@ def _conditions(raw: Any, settings: dict, label: str) -> Conditions:
     return conditions
 
 
-def _mixtures(raw: Any, settings: dict, label: str) -> list[MixtureRequest]:
+def _mixtures(raw: Any, settings: dict, declared: list, label: str) -> list[MixtureRequest]:
     if raw is None:
         return []
     if not isinstance(raw, list):
         raise _batch_error(label, "invalid_mixture", "must be a list", fld="mixtures")
-    fields = ("sorbent_id", "components", "mole_fractions", "total_pressure", "pressure_unit",
-              "temperature_k")
+    fields = ("sorbent_id", "components", "mole_fractions", "temperature_k")
     out = []
     for i, item in enumerate(raw):
         where = f"mixtures[{i}]"
-        item = _checked_object(item, fields, where, label, "invalid_mixture")
+        pressures = _pressure_keys(item, ("total_pressure",), fields, settings, where, label,
+                                   "invalid_mixture")
         sorbent_id = item.get("sorbent_id")
         if sorbent_id is not None and (not isinstance(sorbent_id, str) or _id_problem(sorbent_id)):
             raise _batch_error(label, "invalid_mixture", "sorbent_id must be a valid id or null",
@@ -1342,7 +1815,7 @@ def _mixtures(raw: Any, settings: dict, label: str) -> list[MixtureRequest]:
                                fld=f"{where}.components")
         ids = []
         for c in components:
-            found = adsorbates.lookup(c) if isinstance(c, str) else None
+            found = _lookup(c, declared) if isinstance(c, str) else None
             if found is None:
                 raise _batch_error(label, "invalid_mixture", _unknown_adsorbate(str(c)),
                                    fld=f"{where}.components")
@@ -1358,40 +1831,17 @@ def _mixtures(raw: Any, settings: dict, label: str) -> list[MixtureRequest]:
         if abs(sum(y) - 1.0) > 1e-6:
             raise _batch_error(label, "invalid_mixture", f"mole fractions sum to {sum(y):.9g}, not 1",
                                fld=f"{where}.mole_fractions")
-        pa_per_unit = _absolute_pa_per_unit(item, settings, where, label, "invalid_mixture")
+        if "total_pressure" not in pressures:
+            raise _batch_error(label, "invalid_mixture", "needs a total pressure (e.g. "
+                               "total_pressure_bar)", fld=f"{where}.total_pressure")
+        value, pa_per_unit = pressures["total_pressure"]
         out.append(MixtureRequest(
             sorbent_id=sorbent_id, components=ids, mole_fractions=y,
-            total_pressure_pa=_checked_number(item.get("total_pressure"), "positive",
-                                              f"{where}.total_pressure", label,
+            total_pressure_pa=_checked_number(value, "positive", f"{where}.total_pressure", label,
                                               "invalid_mixture") * pa_per_unit,
             temperature_k=_checked_number(item.get("temperature_k"), "positive",
                                           f"{where}.temperature_k", label, "invalid_mixture")))
     return out
-
-
-def _checked_object(raw: Any, fields: tuple, where: str, label: str, code: str) -> dict:
-    if not isinstance(raw, dict):
-        raise _batch_error(label, code, "must be an object", fld=where)
-    for key in raw:
-        if key not in fields:
-            near = _nearest(key, fields)
-            raise _batch_error(label, code, f"unknown key {_short(key)!r}"
-                               + (f"; did you mean {near!r}?" if near else ""), fld=where)
-    return raw
-
-
-def _absolute_pa_per_unit(raw: dict, settings: dict, where: str, label: str, code: str) -> float:
-    unit = raw.get("pressure_unit", settings.get("pressure_unit"))
-    if unit is None:
-        raise _batch_error(label, code, "pressure_unit is needed", fld=f"{where}.pressure_unit")
-    try:
-        factor = units.PRESSURE_PA_PER_UNIT[units.normalise_unit_name(str(unit), "pressure")]
-    except units.UnknownUnit as exc:
-        raise _batch_error(label, code, str(exc), fld=f"{where}.pressure_unit")
-    if factor is None:
-        raise _batch_error(label, code, "must be an absolute pressure unit, not relative",
-                           fld=f"{where}.pressure_unit")
-    return factor
 
 
 def _checked_number(value: Any, minimum: str, fld: str, label: str, code: str) -> float:

@@ -21,6 +21,17 @@ Conventions:
   is R*T/p with R from scipy.constants (CODATA), never typed by hand.
 * mmHg and torr both take scipy.constants' value (atm/760); the
   conventional mmHg differs by 1.4e-7 relative, far below any rig's precision.
+
+Units in column names
+---------------------
+Input columns carry their unit the way output columns do (``temperature_k``,
+``pressure_pa``): a quantity, an underscore and a unit token, e.g.
+``pressure_kpa`` or ``loading_mmol_per_g``. ``COLUMN_TOKENS`` is the one
+table of tokens; ``unit_column`` reads a column name with it and
+``column_name`` writes one. A plain ``pressure``/``loading`` column takes its
+unit from a ``units`` declaration, ``pressure:kPa,loading:mmol/g`` as text or
+``{"pressure": "kPa", "loading": "mmol/g"}`` as a mapping, read by
+``parse_units_declaration``.
 """
 from __future__ import annotations
 
@@ -54,8 +65,7 @@ class UnknownUnit(UnitError):
         self.kind = kind
         self.suggestion = _nearest(name, kind)
         hint = f"; did you mean {self.suggestion!r}?" if self.suggestion else ""
-        super().__init__(f"unknown {kind} unit {name!r}{hint}",
-                         field=f"{kind}_unit", code="unknown_unit")
+        super().__init__(f"unknown {kind} unit {name!r}{hint}", field=kind, code="unknown_unit")
 
 
 class MissingReference(UnitError):
@@ -122,14 +132,14 @@ LOADING_UNIT_TABLE: dict[str, LoadingUnit] = {u.name: u for u in [
 ]}
 
 _LOADING_ALIASES = {
-    "mol/kg": ["mol/kg", "mol kg-1", "mol.kg-1"],
-    "mmol/g": ["mmol/g", "mmol g-1", "mmol.g-1"],
-    "mol/g": ["mol/g"],
-    "mg/g": ["mg/g"],
-    "g/g": ["g/g"],
+    "mol/kg": ["mol/kg", "mol kg-1", "mol.kg-1", "mol_per_kg"],
+    "mmol/g": ["mmol/g", "mmol g-1", "mmol.g-1", "mmol_per_g"],
+    "mol/g": ["mol/g", "mol_per_g"],
+    "mg/g": ["mg/g", "mg_per_g"],
+    "g/g": ["g/g", "g_per_g"],
     "wt%": ["wt%", "wt.%", "weight%", "wt_percent", "wtpercent"],
     "cm3(STP)/g": ["cm3(stp)/g", "cm3/g stp", "cm3/g(stp)", "cm3stp/g", "ccstp/g", "cc(stp)/g",
-                   "ml(stp)/g", "ml/g stp", "ml/g(stp)", "mlstp/g"],
+                   "ml(stp)/g", "ml/g stp", "ml/g(stp)", "mlstp/g", "cm3stp_per_g"],
     "cm3(STP)": ["cm3(stp)", "cm3 stp", "cm3stp", "ccstp", "cc(stp)", "ml(stp)", "ml stp", "mlstp"],
     "mmol": ["mmol"],
     "mol": ["mol"],
@@ -221,3 +231,124 @@ def loading_to_mol_per_kg(values, unit: str, molar_mass_g_per_mol,
     if spec.quantity == "gas_volume":
         return scaled / MOLAR_VOLUME_STP_CM3_PER_MOL
     return scaled
+
+
+# ---------------------------------------------------------------------------
+# units in column names and the ``units`` declaration
+
+# Quantities an input column can carry a unit for, longest prefix first so that
+# "loading_sigma_mol_per_kg" is a sigma column, not a loading in "sigma_mol_per_kg".
+# saturation_pressure and loading_sigma take the units of their kind.
+QUANTITY_KIND = {"saturation_pressure": "pressure", "loading_sigma": "loading",
+                 "pressure": "pressure", "loading": "loading"}
+
+# column-name token -> canonical unit name, per kind; tokens are lower case
+COLUMN_TOKENS: dict[str, dict[str, str]] = {
+    "pressure": {
+        "pa": "Pa", "kpa": "kPa", "mpa": "MPa", "bar": "bar", "mbar": "mbar", "atm": "atm",
+        "torr": "torr", "mmhg": "mmHg", "psi": "psi", "relative": RELATIVE,
+    },
+    "loading": {
+        "mol_per_kg": "mol/kg", "mmol_per_g": "mmol/g", "mol_per_g": "mol/g", "mg_per_g": "mg/g",
+        "g_per_g": "g/g", "wt_percent": "wt%", "cm3stp_per_g": "cm3(STP)/g",
+        # absolute amounts, divided by sample_mass_g
+        "cm3stp": "cm3(STP)", "mmol": "mmol", "mol": "mol",
+    },
+}
+_TOKEN_OF_UNIT = {kind: {unit: token for token, unit in tokens.items()}
+                  for kind, tokens in COLUMN_TOKENS.items()}
+
+
+class UnknownColumnUnit(UnitError):
+    """A column name starts like a unit column but its unit token is not in the table."""
+
+    def __init__(self, column: str, quantity: str, token: str, message: str):
+        self.column = column
+        self.quantity = quantity
+        self.token = token
+        super().__init__(message, field=column, code="unknown_unit")
+
+
+def unit_column(name: str) -> tuple[str, str | None] | None:
+    """Return (quantity, canonical unit or None for a plain column) of column ``name``,
+    or None when it is no unit column.
+
+    Raises UnknownColumnUnit when the name starts with a quantity (``pressure_``)
+    but the rest is not a token of COLUMN_TOKENS, or names a relative
+    saturation pressure.
+    """
+    key = str(name).strip().lower()
+    for quantity, kind in QUANTITY_KIND.items():
+        if key == quantity:
+            return quantity, None
+        if not key.startswith(quantity + "_"):
+            continue
+        token = key[len(quantity) + 1:]
+        unit = COLUMN_TOKENS[kind].get(token)
+        if unit is not None and not (quantity == "saturation_pressure" and unit == RELATIVE):
+            return quantity, unit
+        tokens = [t for t in COLUMN_TOKENS[kind] if not (quantity == "saturation_pressure"
+                                                        and COLUMN_TOKENS[kind][t] == RELATIVE)]
+        near = difflib.get_close_matches(token, tokens, n=1, cutoff=0.6)
+        hint = f"; did you mean '{quantity}_{near[0]}'?" if near else ""
+        raise UnknownColumnUnit(
+            str(name).strip(), quantity, token,
+            f"column {str(name).strip()!r}: {token!r} is not a {kind} unit token{hint} "
+            f"(tokens: {', '.join(tokens)})")
+    return None
+
+
+def column_name(quantity: str, unit: str) -> str:
+    """The input column name carrying ``unit``, e.g. ("pressure", "kPa") -> "pressure_kpa"."""
+    kind = QUANTITY_KIND[quantity]
+    return f"{quantity}_{_TOKEN_OF_UNIT[kind][normalise_unit_name(unit, kind)]}"
+
+
+def parse_units_declaration(value) -> dict[str, str]:
+    """Return {quantity: canonical unit} from a ``units`` declaration.
+
+    ``value`` is text, ``"pressure:kPa,loading:mmol/g"`` (items separated by
+    commas or semicolons), or a mapping ``{"pressure": "kPa", ...}``.
+    Quantities: pressure, loading, saturation_pressure, loading_sigma. Raises
+    ValueError (UnknownUnit for a unit name not in the tables) with a message
+    that says what is wrong.
+    """
+    if isinstance(value, str):
+        items = []
+        for part in value.replace(";", ",").split(","):
+            if not part.strip():
+                continue
+            quantity, sep, unit = part.partition(":")
+            if not sep:
+                raise ValueError(f"units item {part.strip()!r} is not quantity:unit "
+                                 "(e.g. pressure:kPa,loading:mmol/g)")
+            items.append((quantity, unit))
+    elif isinstance(value, dict):
+        items = list(value.items())
+    else:
+        raise ValueError(f"units must be text like 'pressure:kPa,loading:mmol/g' or a mapping, "
+                         f"not {type(value).__name__}")
+    if not items:
+        raise ValueError("units declaration is empty (e.g. pressure:kPa,loading:mmol/g)")
+    out: dict[str, str] = {}
+    for quantity, unit in items:
+        key = str(quantity).strip().lower()
+        if key not in QUANTITY_KIND:
+            near = difflib.get_close_matches(key, list(QUANTITY_KIND), n=1, cutoff=0.6)
+            hint = f"; did you mean {near[0]!r}?" if near else ""
+            raise ValueError(f"units: unknown quantity {str(quantity).strip()!r}{hint} "
+                             f"(quantities: {', '.join(QUANTITY_KIND)})")
+        if key in out:
+            raise ValueError(f"units: {key!r} is declared twice")
+        if not isinstance(unit, str) or not unit.strip():
+            raise ValueError(f"units: {key!r} needs a unit name, e.g. {key}:kPa")
+        canonical = normalise_unit_name(unit, QUANTITY_KIND[key])
+        if key == "saturation_pressure" and canonical == RELATIVE:
+            raise ValueError("units: saturation_pressure must be an absolute pressure unit")
+        out[key] = canonical
+    return out
+
+
+def format_units_declaration(declared: dict[str, str]) -> str:
+    """The text form of a units mapping: {"pressure": "kPa"} -> "pressure:kPa"."""
+    return ",".join(f"{quantity}:{unit}" for quantity, unit in declared.items())
