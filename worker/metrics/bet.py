@@ -31,7 +31,10 @@ on the first linear stretch of the BET plot, the one around the monolayer.
 from __future__ import annotations
 
 import numpy as np
-from scipy import constants, stats
+# scipy.special, not scipy.stats: the same quantile functions (stats.t.ppf and
+# stats.norm.ppf call them) without the 0.5 s import of scipy.stats at every start
+from scipy import constants
+from scipy.special import stdtrit
 
 from ..adsorbates import ADSORBATES, lookup
 from ..packing import Packed
@@ -251,7 +254,7 @@ def _no_bend_on_the_way_up(below, x, y, a, b):
     prediction interval of the line through the window's points below it."""
     n_below = below["n"]
     dof = n_below - 2.0
-    t = stats.t.ppf(0.5 + BET_BEND_CONFIDENCE / 2.0, np.where(dof >= 1, dof, 1.0))
+    t = stdtrit(np.where(dof >= 1, dof, 1.0), 0.5 + BET_BEND_CONFIDENCE / 2.0)
     s = np.sqrt(below["sse"] / np.where(dof >= 1, dof, np.nan))
     xb, yb = x[:, b], y[:, b]
     predicted = below["intercept"] + below["slope"] * xb

@@ -2,7 +2,10 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy import constants, stats
+# scipy.special, not scipy.stats: the same quantile functions (stats.t.ppf and
+# stats.norm.ppf call them) without the 0.5 s import of scipy.stats at every start
+from scipy import constants
+from scipy.special import ndtri
 
 from ..packing import Packed
 from ..results import ModelFits, Selection
@@ -11,7 +14,7 @@ from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loadin
 # A capacity is an extrapolation when the data never reach half of it.
 CAPACITY_EXTRAPOLATION_FRACTION = 0.5
 # Two-sided 95 % normal quantile: the delta method is an asymptotic argument.
-Z_95 = stats.norm.ppf(0.975)
+Z_95 = ndtri(0.975)
 
 
 def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
