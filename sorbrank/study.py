@@ -63,7 +63,8 @@ def fit(data, *, units=None, models="all", criterion: str = "aicc", weighting: s
     batch = read_data(data, units=units, sample_mass_g=sample_mass_g, gases=gases,
                       batch_label=batch_label)
     if conditions is not None or mixtures is not None:
-        _apply_conditions(batch, conditions, mixtures, units)
+        _apply_conditions(batch, conditions, mixtures,
+                          {"units": units, "sample_mass_g": sample_mass_g, "gases": gases})
     return Results(process_batch(batch, options, workers=workers))
 
 
@@ -182,21 +183,18 @@ def _checked_sample_mass(value):
     return float(value)
 
 
-def _apply_conditions(batch, conditions, mixtures, units) -> None:
-    """Conditions and mixtures given as keywords, read by intake's JSON rules."""
+def _apply_conditions(batch, conditions, mixtures, settings: dict) -> None:
+    """Conditions and mixtures given as keywords, read by intake's rules for the
+    JSON batch format, with the units and gases declared beside them."""
     from sorbrank.worker import intake
 
-    settings = {}
-    if units is not None:
-        from sorbrank.worker import units as unit_tables
-
-        declared = unit_tables.parse_units_declaration(units)
-        if "pressure" in declared:
-            settings["pressure_unit"] = declared["pressure"]
+    # intake's own settings check and gas declarations, exactly as read_batch runs them
+    checked = intake._checked_settings(settings, "argument", batch.label)
+    declared = intake._declared_gases(checked.get("gases", []), batch.label)
     if conditions is not None:
-        batch.conditions = intake._conditions(conditions, settings, batch.label)
+        batch.conditions = intake._conditions(conditions, checked, batch.label)
     if mixtures is not None:
-        batch.mixtures = intake._mixtures(mixtures, settings, batch.label)
+        batch.mixtures = intake._mixtures(mixtures, checked, declared, batch.label)
 
 
 def pandas_module():
