@@ -34,4 +34,6 @@ if [ "${#need_apt[@]}" -gt 0 ]; then
     fi
 fi
 
+# the linter first (pyproject.toml [tool.ruff]): seconds, and it fails fast
+.venv/bin/ruff check .
 exec .venv/bin/python -m pytest "$@"

@@ -67,7 +67,7 @@ class EmbeddedExecutor:
             jobs.record_chunk_failure(self.store, batch_id, chunk_index,
                                       f"worker process failed: {type(exc).__name__}: {exc}")
             jobs.finalize_batch(self.store, batch_id)
-        except Exception:  # noqa: BLE001 - logged; reconcile on next start retries
+        except Exception:  # logged; reconcile on next start retries
             log.exception("could not record failure of chunk %s of batch %s", chunk_index, batch_id)
 
     def resume(self) -> list[tuple[str, int]]:

@@ -131,7 +131,7 @@ def fit_models(packed: Packed, models="all", weighting: str = "uniform") -> dict
     for model in resolve_models(models):
         try:
             out[model.id] = fit_model(model, packed, weighting)
-        except Exception as exc:  # noqa: BLE001 - one broken model must not sink the others
+        except Exception as exc:  # one broken model must not sink the others
             log.exception("model %s failed on the whole batch", model.id)
             fits = _empty_fits(model, packed.n, packed.n_points, np.ones(packed.n, dtype=bool))
             fits.reason[:] = f"internal error: {type(exc).__name__}: {exc}"

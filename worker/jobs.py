@@ -230,7 +230,7 @@ def execute_chunk(store: Store, batch_id: str, chunk_index: int, *, attempts: in
             break
         except UnknownBatch:
             raise
-        except Exception as exc:  # noqa: BLE001 - any failure is recorded, never lost
+        except Exception as exc:  # any failure is recorded, never lost
             log.exception("chunk %s of batch %s failed", chunk_index, batch_id)
             error = f"{type(exc).__name__}: {exc}"
             if isinstance(exc, AttemptsExhausted):

@@ -28,7 +28,7 @@ def fit_chunk(self, batch_id: str, chunk_index: int) -> None:
         log.error("chunk %s of batch %s: not in the store %s; dropped", chunk_index, batch_id,
                   store.root)
         return
-    except Exception as exc:  # noqa: BLE001 - recorded below once retries run out
+    except Exception as exc:  # recorded below once retries run out
         if self.request.retries < self.max_retries and not isinstance(exc, jobs.AttemptsExhausted):
             raise self.retry(exc=exc, countdown=2 ** self.request.retries)
         log.exception("chunk %s of batch %s failed for good", chunk_index, batch_id)
@@ -46,7 +46,7 @@ def reconcile_on_start(**_):
     # knows which batches are unfinished, so enqueue their missing chunks again
     try:
         jobs.reconcile(Store(data_dir()), enqueue)
-    except Exception:  # noqa: BLE001 - a failed reconcile must not stop the worker
+    except Exception:  # a failed reconcile must not stop the worker
         log.exception("reconcile on start failed; unfinished batches wait for the next start")
 
 
@@ -80,7 +80,7 @@ def _watch_broker() -> None:
     while not _stop_watch.wait(RECONCILE_INTERVAL_S):
         try:
             reconcile_if_broker_forgot()
-        except Exception:  # noqa: BLE001 - broker down right now: try again next round
+        except Exception:  # broker down right now: try again next round
             log.debug("broker check failed; next try in %s s", RECONCILE_INTERVAL_S, exc_info=True)
 
 

@@ -97,7 +97,7 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
         params = model_fits.params[rows]
         try:
             value = model.saturation_capacity(params)
-        except Exception:
+        except Exception:  # noqa: BLE001 - a model bug gives nan, not a failed batch
             value = None
         if value is None:
             continue

@@ -100,7 +100,7 @@ def evaluate_model(model, params: np.ndarray, temperature_k: np.ndarray,
     with np.errstate(all="ignore"):
         try:
             q = model.evaluate(x, temperature_k[:, None], *columns)
-        except Exception:  # a model bug must not take the batch down
+        except Exception:  # noqa: BLE001 - a model bug must not take the batch down
             return np.full(pressure_pa.shape, np.nan)
     q = np.broadcast_to(np.asarray(q, dtype=float), pressure_pa.shape).copy()
     if model.relative_pressure:

@@ -25,7 +25,7 @@ def model_henry_constant(packed: Packed, fits: dict[str, ModelFits],
             with np.errstate(all="ignore"):
                 k_h = model.henry_constant(model_fits.params[rows], packed.temperature_k[rows],
                                            packed.saturation_pressure_pa[rows])
-        except Exception:
+        except Exception:  # noqa: BLE001 - a model bug gives nan, not a failed batch
             k_h = None
         if k_h is not None:
             out[rows] = np.broadcast_to(np.asarray(k_h, dtype=float), rows.shape)
