@@ -323,12 +323,15 @@ def progress_line(label: str, status: dict, width: int = 30) -> str:
             f"{status['state']:<8} {counts.get('done', 0)}/{counts.get('accepted', 0)} isotherms")
 
 
-def progress_printer(label: str, stream=sys.stderr):
+def progress_printer(label: str, stream=None):
+    """A callback drawing the progress bar on ``stream`` (default: the
+    sys.stderr of the moment, which a notebook or a test may have replaced)."""
     def show(status: dict) -> None:
-        stream.write(progress_line(label, status))
+        out = stream or sys.stderr
+        out.write(progress_line(label, status))
         if status["state"] in FINAL_STATES:
-            stream.write("\n")
-        stream.flush()
+            out.write("\n")
+        out.flush()
     return show
 
 
