@@ -1,4 +1,5 @@
 """The ``sorbrank`` command. Each subcommand lives in service/commands/<name>.py
+(a command's dashes are underscores there: migrate-store in migrate_store.py)
 and exposes ``register(subparsers)``; this module only wires them together, so
 a missing optional dependency of one command never breaks the others."""
 from __future__ import annotations
@@ -8,7 +9,7 @@ import importlib
 import sys
 
 # order = order shown in --help
-COMMANDS = ["fit", "serve", "worker", "submit", "rank", "demo", "plot", "models", "migrate_store"]
+COMMANDS = ["fit", "serve", "worker", "submit", "rank", "demo", "plot", "models", "migrate-store"]
 
 DESCRIPTION = """\
 sorbrank fits published isotherm models to sorbent screening data, picks the
@@ -20,7 +21,10 @@ Every number sorbrank prints or stores is in canonical units: pressure Pa,
 temperature K, loading mol/kg, energy J/mol, area m2/g."""
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(argv: list[str] | None = None) -> argparse.ArgumentParser:
+    """The parser for ``argv``: only the named command's module is imported
+    when ``argv`` starts with a known command (a start-up cost every run
+    would pay otherwise); every command for --help, errors or ``argv=None``."""
     parser = argparse.ArgumentParser(
         prog="sorbrank",
         description=DESCRIPTION,
@@ -29,11 +33,13 @@ def build_parser() -> argparse.ArgumentParser:
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
-    for name in COMMANDS:
+    chosen = argv[0] if argv and argv[0] in COMMANDS else None
+    for name in [chosen] if chosen else COMMANDS:
+        module_name = f"sorbrank.service.commands.{name.replace('-', '_')}"
         try:
-            module = importlib.import_module(f"sorbrank.service.commands.{name}")
+            module = importlib.import_module(module_name)
         except ModuleNotFoundError as exc:
-            if exc.name == f"sorbrank.service.commands.{name}":
+            if exc.name == module_name:
                 continue  # command not built yet
             raise
         module.register(sub)
@@ -41,8 +47,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: list[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    argv = sys.argv[1:] if argv is None else list(argv)
+    args = build_parser(argv).parse_args(argv)
     try:
         return int(args.func(args) or 0)
     except KeyboardInterrupt:

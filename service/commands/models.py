@@ -5,8 +5,6 @@ import argparse
 import json
 import sys
 
-from sorbrank.worker.models import catalogue_description
-
 HELP = """\
 List the isotherm models sorbrank fits: id, equation, parameters with their
 canonical units and bounds, and the published source. Models marked p/p0
@@ -27,6 +25,9 @@ def register(subparsers) -> None:
 
 
 def run(args) -> int:
+    # imported here: 'sorbrank --help' lists this command without loading the models
+    from sorbrank.worker.models import catalogue_description
+
     catalogue = catalogue_description()
     if args.format == "json":
         json.dump(catalogue, sys.stdout, indent=2)
