@@ -172,10 +172,19 @@ def document() -> dict:
                         _query("format", "body format when Content-Type does not say "
                                "(application/octet-stream)",
                                {"type": "string", "enum": ["csv", "json", "parquet"]}),
-                        _query("pressure_unit", "unit of pressures that do not name their own "
-                               "(e.g. Pa, kPa, bar)", {"type": "string"}),
-                        _query("loading_unit", "unit of loadings that do not name their own "
-                               "(e.g. mol/kg, mmol/g)", {"type": "string"}),
+                        _query("units", "units of plain pressure/loading columns that do not "
+                               "name their own (a column such as pressure_kpa carries its unit), "
+                               "e.g. pressure:kPa,loading:mmol/g; see docs/formats.md",
+                               {"type": "string", "example": "pressure:kPa,loading:mmol/g"}),
+                        _query("sample_mass_g", "sample mass in g, for absolute loadings (e.g. "
+                               "loading_mmol) where the body gives none",
+                               {"type": "number", "exclusiveMinimum": 0}),
+                        _query("delimiter", "CSV delimiter; detected from the header line when "
+                               "left out", {"type": "string",
+                                            "enum": ["comma", "semicolon", "tab", ",", ";"]}),
+                        _query("decimal", "CSV decimal mark; a comma only in files not "
+                               "comma-delimited; detected when left out",
+                               {"type": "string", "enum": ["point", "comma", ".", ","]}),
                         _query("batch_label", "a name for the batch", {"type": "string"}),
                         _query("models", "'all' or comma-separated model ids (see /api/v1/models)",
                                {"type": "string", "default": "all"}),

@@ -233,17 +233,16 @@ def isotherm(sorbent_id: str, q_sat: float, b_per_kpa: float, temperature_k: flo
 
 
 def csv_batch(isotherms: list[dict], extra_lines: tuple[str, ...] = ()) -> bytes:
-    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
     for iso in isotherms:
         for p, q in zip(iso["pressure"], iso["loading"]):
-            lines.append(f"{iso['sorbent_id']},{iso['adsorbate']},{iso['temperature_k']},{p},{q},"
-                         "kPa,mol/kg")
+            lines.append(f"{iso['sorbent_id']},{iso['adsorbate']},{iso['temperature_k']},{p},{q}")
     lines.extend(extra_lines)
     return ("\n".join(lines) + "\n").encode()
 
 
 def json_batch(isotherms: list[dict], label: str | None = None) -> bytes:
-    doc = {"defaults": {"pressure_unit": "kPa", "loading_unit": "mol/kg"}, "isotherms": isotherms}
+    doc = {"units": {"pressure": "kPa", "loading": "mol/kg"}, "isotherms": isotherms}
     if label:
         doc["batch_label"] = label
     return json.dumps(doc).encode()
@@ -256,8 +255,8 @@ def parquet_batch(isotherms: list[dict]) -> bytes:
     import pyarrow.parquet as pq
 
     rows = [{"sorbent_id": iso["sorbent_id"], "adsorbate": iso["adsorbate"],
-             "temperature_k": iso["temperature_k"], "pressure": float(p), "loading": float(q),
-             "pressure_unit": "kPa", "loading_unit": "mol/kg"}
+             "temperature_k": iso["temperature_k"], "pressure_kpa": float(p),
+             "loading_mol_per_kg": float(q)}
             for iso in isotherms for p, q in zip(iso["pressure"], iso["loading"])]
     sink = io.BytesIO()
     pq.write_table(pa.Table.from_pylist(rows), sink)

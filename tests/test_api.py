@@ -99,9 +99,10 @@ def test_submit_csv_json_parquet_and_octet_stream(client):
     assert client.get("/api/v1/batches?state=queued", headers=auth()).json["total"] == 0
 
 
-def test_batch_wide_defaults_and_fit_options_from_query(client):
-    body = csv_batch([isotherm("D1", 2, 0.1)]).replace(b",kPa,mol/kg", b",,")
-    resp = submit(client, body, query_string={"pressure_unit": "kPa", "loading_unit": "mol/kg",
+def test_batch_wide_units_and_fit_options_from_query(client):
+    body = csv_batch([isotherm("D1", 2, 0.1)]).replace(b"pressure_kpa,loading_mol_per_kg",
+                                                       b"pressure,loading")
+    resp = submit(client, body, query_string={"units": "pressure:kPa,loading:mol/kg",
                                               "models": "langmuir,sips", "criterion": "bic",
                                               "batch_label": "defaults-test"})
     assert resp.status_code == 202, resp.json
@@ -117,10 +118,34 @@ def test_batch_wide_defaults_and_fit_options_from_query(client):
 @pytest.mark.parametrize("params, name", [({"criterion": "r2"}, "criterion"),
                                           ({"models": "langmuir,nope"}, "models"),
                                           ({"weighting": "heavy"}, "weighting"),
-                                          ({"format": "xlsx"}, "format")])
+                                          ({"format": "xlsx"}, "format"),
+                                          ({"units": "pressure:kpaa"}, "units"),
+                                          ({"units": "presure:kPa"}, "units"),
+                                          ({"pressure_unit": "kPa"}, "pressure_unit"),
+                                          ({"loading_unit": "mol/kg"}, "loading_unit")])
 def test_bad_submit_parameters_are_400(client, params, name):
     doc = assert_problem(submit(client, csv_batch([isotherm("X", 1, 1)]), query_string=params), 400)
     assert name in doc["parameter"]
+    if name in ("pressure_unit", "loading_unit"):
+        assert "use units=" in doc["detail"]
+
+
+def test_semicolon_decimal_comma_body_with_sample_mass_from_query(client):
+    # the same isotherm as a comma file in mol/kg, sent semicolon-delimited with decimal
+    # commas as absolute mmol on a 0.5 g sample: 1 mol/kg = 0.5 mmol on 0.5 g
+    iso = isotherm("SC1", 2, 0.1)
+    lines = ["sorbent_id;adsorbate;temperature_k;pressure_kpa;loading_mmol"]
+    lines += [f"SC1;CO2;298,15;{p};{q * 0.5}".replace(".", ",") for p, q in
+              zip(iso["pressure"], iso["loading"])]
+    body = ("\n".join(lines) + "\n").encode()
+    resp = submit(client, body, query_string={"sample_mass_g": "0.5", "models": "langmuir"})
+    assert resp.status_code == 202, resp.json
+    results = client.get(f"{resp.json['status_url']}/results", headers=auth()).json
+    assert abs(results["summary"][0]["q_sat_mol_per_kg"] - 2.0) < 0.01
+    wrong = assert_problem(submit(client, body, query_string={"delimiter": "comma",
+                                                              "sample_mass_g": "0.5"}), 422)
+    assert wrong["issues"][0]["field"] == "delimiter"
+    assert "semicolon-delimited" in wrong["issues"][0]["message"]
 
 
 def test_unreadable_and_unacceptable_bodies(client):
@@ -129,9 +154,9 @@ def test_unreadable_and_unacceptable_bodies(client):
     assert doc["issues"][0]["code"] == "unparseable"
     doc = assert_problem(submit(client, b"sorbent_id,pressure\nM,1\n"), 422)
     assert doc["issues"][0]["code"] == "missing_column"
-    nothing = csv_batch([], extra_lines=("N1,CO2,298,1,x,kPa,mol/kg",))
+    nothing = csv_batch([], extra_lines=("N1,CO2,298,1,x",))
     doc = assert_problem(submit(client, nothing), 422)
-    assert doc["issues"][0]["row"] == 1 and doc["issues"][0]["field"] == "loading"
+    assert doc["issues"][0]["row"] == 1 and doc["issues"][0]["field"] == "loading_mol_per_kg"
     assert "N1" in doc["issues"][0]["isotherm"]
     assert_problem(submit(client, b"a,b\n", "text/plain"), 415)
     assert client.get("/api/v1/batches", headers=auth()).json["total"] == 0
@@ -139,7 +164,7 @@ def test_unreadable_and_unacceptable_bodies(client):
 
 def test_body_over_the_limit_is_413_before_reading(tmp_path):
     client = make_app(tmp_path, max_upload_bytes=1000).test_client()
-    doc = assert_problem(submit(client, csv_batch([isotherm("B", 1, 1)] * 3)), 413)
+    doc = assert_problem(submit(client, csv_batch([isotherm("B", 1, 1)] * 6)), 413)
     assert doc["max_bytes"] == 1000
     assert not (tmp_path / "data" / "batches").exists()
 

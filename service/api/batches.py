@@ -12,6 +12,7 @@ from sorbrank.worker import jobs
 from sorbrank.worker.intake import Limits, read_batch
 from sorbrank.worker.isotherm import IntakeError
 from sorbrank.worker.pipeline import FitOptions
+from sorbrank.worker.units import parse_units_declaration
 from sorbrank.worker.store import iso_utc, is_batch_id, new_batch_id, utc_now
 
 from ..auth import require
@@ -28,7 +29,10 @@ CONTENT_FORMATS = {
     "application/vnd.apache.parquet": "parquet",
     "application/x-parquet": "parquet",
 }
-UNIT_PARAMS = ("pressure_unit", "loading_unit", "sample_mass_g")
+# query parameters handed to intake as they are (intake checks them)
+INTAKE_PARAMS = ("units", "sample_mass_g", "delimiter", "decimal")
+OLD_PARAMS = {"pressure_unit": "units=pressure:<unit> (e.g. units=pressure:kPa,loading:mmol/g)",
+              "loading_unit": "units=loading:<unit> (e.g. units=pressure:kPa,loading:mmol/g)"}
 # whole-input intake errors: size -> 413, cannot even be parsed -> 400, else 422
 # internal_error means a defect in intake itself: say so honestly with a 500
 # (the hostile-input tests then catch it) rather than blame the client
@@ -75,6 +79,23 @@ def _fit_options() -> dict:
         raise Problem(400, "Bad Request", f"fit options: {exc}", slug="bad-parameter",
                       parameter=",".join(options)) from None
     return options
+
+
+def _intake_params() -> dict:
+    """The intake query parameters, the units declaration checked here so that a bad
+    one is a 400 naming the parameter."""
+    for old, new in OLD_PARAMS.items():
+        if old in request.args:
+            raise Problem(400, "Bad Request", f"{old} is no longer read: use {new}",
+                          slug="bad-parameter", parameter=old)
+    params = {k: request.args[k] for k in INTAKE_PARAMS if k in request.args}
+    if "units" in params:
+        try:
+            parse_units_declaration(params["units"])
+        except ValueError as exc:
+            raise Problem(400, "Bad Request", f"units={params['units']!r}: {exc}",
+                          slug="bad-parameter", parameter="units") from None
+    return params
 
 
 def _issues_problem(status: int, title: str, detail: str, issues) -> Problem:
@@ -127,7 +148,7 @@ def submit_batch():
     _check_size()
     fmt = _body_format()
     options = _fit_options()
-    defaults = {k: request.args[k] for k in UNIT_PARAMS if k in request.args}
+    defaults = _intake_params()
     label = request.args.get("batch_label")
     key = request.headers.get("Idempotency-Key")
     if key is not None and not (0 < len(key) <= 200 and key.isprintable()):
@@ -173,7 +194,7 @@ def _parse(runtime, body: bytes, fmt: str, label, defaults):
     """The batch read from ``body``; a problem document when none of it is usable."""
     limits = Limits(**dict(runtime.settings.intake_limits))
     try:
-        batch = read_batch(body, fmt, batch_label=label, defaults=defaults or None, limits=limits)
+        batch = read_batch(body, fmt, batch_label=label, limits=limits, **defaults)
     except IntakeError as exc:
         status = max((_INTAKE_STATUS.get(i.code, 422) for i in exc.issues), default=422)
         title = {400: "Bad Request", 413: "Content Too Large",

@@ -36,7 +36,7 @@ EPILOG = """\
 example:
   SORBRANK_DATA_DIR=/srv/sorbrank sorbrank serve --port 8000
   curl -X POST --data-binary @run1.csv -H 'Content-Type: text/csv' \\
-       'http://127.0.0.1:8000/api/v1/batches?pressure_unit=kPa&loading_unit=mmol/g'"""
+       'http://127.0.0.1:8000/api/v1/batches?units=pressure:kPa,loading:mmol/g'"""
 
 
 def register(subparsers) -> None:
