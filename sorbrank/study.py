@@ -77,10 +77,6 @@ def read_data(data, *, units=None, sample_mass_g=None, gases=None, batch_label=N
     """
     from sorbrank.worker.isotherm import Batch
 
-    units = _checked_units(units)
-    sample_mass_g = _checked_sample_mass(sample_mass_g)
-    if gases is not None and not isinstance(gases, (list, tuple)):
-        raise ValueError("gases must be a list of dicts with name and molar_mass_g_per_mol")
     if isinstance(data, (list, tuple)):
         if not data:
             raise ValueError("data is an empty list: give at least one input")
@@ -113,12 +109,9 @@ def _read_one(data, units, sample_mass_g, gases, batch_label):
     else:
         raise TypeError("data must be a pandas DataFrame, a pyarrow Table, a path, a list of "
                         f"paths or bytes; got {type(data).__name__}")
-    kwargs: dict[str, Any] = {"batch_label": batch_label, "limits": Limits.for_local_files()}
-    # only what was given: intake's own defaults stay in one place
-    for name, value in (("units", units), ("sample_mass_g", sample_mass_g), ("gases", gases)):
-        if value is not None:
-            kwargs[name] = value
-    return read_batch(source, **kwargs)
+    # intake checks units, sample mass and gases (IntakeError, a ValueError naming them)
+    return read_batch(source, batch_label=batch_label, units=units, sample_mass_g=sample_mass_g,
+                      gases=gases, limits=Limits.for_local_files())
 
 
 def _existing_path(value) -> Path:
@@ -163,24 +156,6 @@ def dataframe_to_table(df):
 
 def _missing(value) -> bool:
     return value is None or (isinstance(value, float) and math.isnan(value))
-
-
-def _checked_units(units):
-    """``units`` as given, after intake's parser found it well formed (ValueError if not)."""
-    if units is not None:
-        from sorbrank.worker.units import parse_units_declaration
-
-        parse_units_declaration(units)  # the error names the bad part, before any data is read
-    return units
-
-
-def _checked_sample_mass(value):
-    if value is None:
-        return None
-    if isinstance(value, bool) or not isinstance(value, (int, float)) \
-            or not math.isfinite(value) or value <= 0:
-        raise ValueError(f"sample_mass_g must be a positive number of grams; got {value!r}")
-    return float(value)
 
 
 def _apply_conditions(batch, conditions, mixtures, settings: dict) -> None:
