@@ -5,8 +5,12 @@ Every command the image or the compose file runs (CMD, ENTRYPOINT,
 HEALTHCHECK, compose ``command`` and healthcheck ``test``) is extracted and
 checked against the package: ``sorbrank`` subcommands parse with the real
 parser, gunicorn targets load through gunicorn's own loader and answer as WSGI
-apps, ``python -c`` snippets compile; the HTTP and Celery health checks are run
-against a real gunicorn, redis-server and Celery worker. No container engine
+apps, ``python -c`` snippets compile and every module they import exists in
+the installed package; the HTTP and Celery health checks are run against a
+real gunicorn, redis-server and Celery worker. Commands run from a directory
+outside the source tree with no PYTHONPATH, as in the image, so a target named
+by a folder of the repository (``worker.celery_app`` instead of
+``sorbrank.worker.celery_app``) fails here as it would there. No container engine
 is needed; ``docker compose config`` runs only when a compose client exists.
 """
 from __future__ import annotations
@@ -19,6 +23,7 @@ import shutil
 import subprocess
 import sys
 import tomllib
+from ast import Import, ImportFrom, parse, walk
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -29,6 +34,9 @@ from conftest import (LOOPBACK, ROOT, clean_env, free_port, http_ok, start, star
                       start_worker, tokens_json, wait_until)
 
 DOCKERFILE = ROOT / "docker" / "Dockerfile"
+# where the commands run: not the repository root, whose service/ and worker/
+# folders would be importable by their bare names from there
+AWAY = ROOT / "docker"
 COMPOSE = ROOT / "docker" / "compose.yaml"
 API_PORT = 8000
 
@@ -238,7 +246,7 @@ def sorbrank_script_target() -> str:
 
 def wsgi_env(data_dir: Path, broker_url: str = "redis://127.0.0.1:1/0") -> dict[str, str]:
     return clean_env(SORBRANK_DATA_DIR=str(data_dir), SORBRANK_BROKER_URL=broker_url,
-                     SORBRANK_TOKENS=tokens_json(), PYTHONPATH=str(ROOT))
+                     SORBRANK_TOKENS=tokens_json())
 
 
 LOAD_WSGI = """
@@ -253,6 +261,20 @@ print(status[0], body.decode())
 """
 
 
+# which of the modules named in argv cannot be found (a missing parent counts)
+FIND_MODULES = """
+import importlib.util, json, sys
+
+def missing(name):
+    try:
+        return importlib.util.find_spec(name) is None
+    except ModuleNotFoundError:
+        return True
+
+print(json.dumps([m for m in sys.argv[1:] if missing(m)]))
+"""
+
+
 def command_problems(argv: list[str], data_dir: Path) -> list[str]:
     """Why ``argv`` does not run a real entry point of the package (empty = fine)."""
     if argv[:2] == ["/bin/sh", "-c"]:
@@ -264,7 +286,7 @@ def command_problems(argv: list[str], data_dir: Path) -> list[str]:
         if not args:
             return ["'sorbrank' without a subcommand"]
         help_run = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", args[0], "--help"],
-                                  cwd=ROOT, env=clean_env(PYTHONPATH=str(ROOT)),
+                                  cwd=AWAY, env=clean_env(),
                                   capture_output=True, text=True, timeout=60)
         if help_run.returncode != 0:
             return [f"'sorbrank {args[0]} --help' exited {help_run.returncode}: "
@@ -285,7 +307,7 @@ def command_problems(argv: list[str], data_dir: Path) -> list[str]:
             return [f"gunicorn does not accept {args}: exit {exc.code}"]
         if len(parsed.args) != 1:
             return [f"gunicorn needs exactly one module:attr target, got {parsed.args}"]
-        run = subprocess.run([sys.executable, "-c", LOAD_WSGI, parsed.args[0]], cwd=ROOT,
+        run = subprocess.run([sys.executable, "-c", LOAD_WSGI, parsed.args[0]], cwd=AWAY,
                              env=wsgi_env(data_dir), capture_output=True, text=True, timeout=120)
         if run.returncode != 0 or not run.stdout.startswith("200"):
             return [f"gunicorn target {parsed.args[0]} did not answer GET /healthz with 200: "
@@ -293,10 +315,18 @@ def command_problems(argv: list[str], data_dir: Path) -> list[str]:
         return []
     if program in ("python", "python3") and args[:1] == ["-c"] and len(args) >= 2:
         try:
-            compile(args[1], "<python -c>", "exec")
+            tree = parse(args[1], "<python -c>")
         except SyntaxError as exc:
             return [f"python -c snippet does not compile: {exc}"]
-        return []
+        modules = sorted({alias.name for node in walk(tree) if isinstance(node, Import)
+                          for alias in node.names}
+                         | {node.module for node in walk(tree)
+                            if isinstance(node, ImportFrom) and node.level == 0})
+        found = subprocess.run([sys.executable, "-c", FIND_MODULES, *modules], cwd=AWAY,
+                               env=clean_env(), capture_output=True, text=True, timeout=60)
+        missing = json.loads(found.stdout) if found.returncode == 0 else modules
+        return [f"python -c snippet imports {m!r}, which the package does not provide"
+                for m in missing]
     return [f"{program!r} is not an entry point of the package"]
 
 
@@ -326,6 +356,15 @@ def test_dockerfile_is_multi_stage_wheels_only(instructions):
     assert len(installs) == 1 and "--no-index" in installs[0] and "/wheels" in installs[0], \
         "the final stage installs from the builder's wheels only"
     assert any(i.keyword == "WORKDIR" for i in final)
+
+
+def test_builder_copies_every_source_folder_of_the_package(instructions):
+    pyproject = tomllib.loads((ROOT / "pyproject.toml").read_text())
+    folders = set(pyproject["tool"]["setuptools"]["package-dir"].values())
+    copied = {src.rstrip("/") for i in instructions if i.stage == 0 and i.keyword == "COPY"
+              for src in shlex.split(i.args)[:-1] if not src.startswith("--")}
+    assert folders | {"pyproject.toml", "README.md"} <= copied, \
+        f"the builder stage does not copy {sorted(folders - copied)}"
 
 
 def test_final_stage_is_non_root_without_build_tools(instructions):
@@ -470,17 +509,24 @@ def test_checkers_reject_a_bad_dockerfile(tmp_path):
     (["gunicorn", "--bind", "0.0.0.0:8000", "sorbrank.service.wsgi:nope"], "did not answer"),
     (["gunicorn", "--bind", "0.0.0.0:8000", "sorbrank.service.app:create_app"], "did not answer"),
     (["celery", "-A", "sorbrank.worker.celery_app", "worker"], "not an entry point"),
+    # the repository's folder names are not import names of the installed package
+    (["gunicorn", "--bind", "0.0.0.0:8000", "service.wsgi:app"], "did not answer"),
+    (["python", "-c", "from worker.celery_app import app"], "imports 'worker.celery_app'"),
+    (["sorbrank", "worker", "--concurrency", "2"], None),
 ])
 def test_checkers_reject_commands_the_package_does_not_have(argv, expected, tmp_path):
     problems = command_problems(argv, tmp_path)
-    assert problems and expected in problems[0], problems
+    if expected is None:  # the control: a command the package has
+        assert problems == []
+    else:
+        assert problems and expected in problems[0], problems
 
 
 # -- sorbrank.service.wsgi ------------------------------------------------------------------------
 
 def _import_wsgi(env: dict[str, str]) -> subprocess.CompletedProcess:
     return subprocess.run([sys.executable, "-c", "import sorbrank.service.wsgi as w; print(type(w.app).__name__)"],
-                          cwd=ROOT, env=env, capture_output=True, text=True, timeout=60)
+                          cwd=AWAY, env=env, capture_output=True, text=True, timeout=60)
 
 
 def test_wsgi_refuses_embedded_mode(tmp_path):
@@ -512,7 +558,7 @@ def _snippet(argv: list[str], port: int | None = None) -> str:
 
 
 def _run_check(code: str, env: dict[str, str]) -> int:
-    return subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env, capture_output=True,
+    return subprocess.run([sys.executable, "-c", code], cwd=AWAY, env=env, capture_output=True,
                           text=True, timeout=60).returncode
 
 
