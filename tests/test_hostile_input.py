@@ -113,10 +113,13 @@ NASTY = ["", " ", "0", "-1", "1e999", "-1e999", "nan", "NaN", "inf", "-Infinity"
          "1e-320", "1" * 400, "0x10", "1,5", '"', "'", "=cmd|' /C calc'!A0", "../../etc/passwd",
          "..\\..\\boot.ini", "/", "\\", ".", "..", "CON", "a\x00b", "\u202e", "\ud7ff", "日本",
          "CO2", "N2", "co2", "298.15", "kPa", "mmol/g", "p/p0", "bar", "wt%", "adsorption",
-         "desorption", "#", "# pressure_unit: kPa", "\r", "\t", "null", "true", "[]", "{}"]
-COLUMNS = ["sorbent_id", "adsorbate", "temperature_k", "pressure", "loading", "isotherm_id",
-           "branch", "pressure_unit", "loading_unit", "saturation_pressure", "sample_mass_g",
-           "sigma", "surface_area_m2_per_g", "Pressure", " LOADING ", "extra", ""]
+         "desorption", "#", "# units: pressure:kPa", "\r", "\t", "null", "true", "[]", "{}",
+         "pressure:kPa,loading:mmol/g", "loading:", ";", "1,5e3"]
+COLUMNS = ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa", "loading_mol_per_kg",
+           "isotherm_id", "branch", "pressure", "loading", "pressure_unit", "loading_unit",
+           "material_id", "saturation_pressure", "saturation_pressure_bar", "sample_mass_g",
+           "loading_sigma", "sigma", "surface_area_m2_per_g", "units", "Pressure_KPA", "pressure_bar",
+           " LOADING ", "loading_wt_percent", "loading_furlongs", "extra", ""]
 cell = st.one_of(st.sampled_from(NASTY), st.text(max_size=12),
                  st.floats(allow_nan=True, allow_infinity=True).map(repr),
                  st.integers(-10**30, 10**30).map(str))
@@ -129,9 +132,12 @@ def csv_bodies(draw) -> bytes:
         header = COLUMNS[:5] + header
     width = max(len(header), 1)
     rows = draw(st.lists(st.lists(cell, min_size=0, max_size=width + 2), max_size=12))
-    comments = draw(st.lists(st.sampled_from(["# pressure_unit: kPa", "# loading_unit: nope",
+    comments = draw(st.lists(st.sampled_from(["# units: pressure:kPa", "# units: loading:nope",
+                                              "# pressure_unit: kPa", "# gas: G, molar_mass_g_per_mol=x",
+                                              "# gas: H2S, molar_mass_g_per_mol=34.08",
                                               "# batch_label: ../x", "#", "# :"]), max_size=3))
-    text = "\n".join(comments + [",".join(header)] + [",".join(r) for r in rows])
+    delimiter = draw(st.sampled_from([",", ",", ";", "\t", "|"]))
+    text = "\n".join(comments + [delimiter.join(header)] + [delimiter.join(r) for r in rows])
     data = text.encode("utf-8", "surrogatepass")
     if draw(st.booleans()):
         data = draw(st.sampled_from([b"\xef\xbb\xbf", b"\xff\xfe", b"", b"\x00"])) + data
@@ -142,8 +148,10 @@ json_values = st.recursive(
     st.one_of(st.none(), st.booleans(), st.floats(allow_nan=True, allow_infinity=True),
               st.integers(-10**20, 10**20), st.sampled_from(NASTY), st.text(max_size=8)),
     lambda children: st.lists(children, max_size=4) | st.dictionaries(
-        st.sampled_from(COLUMNS + ["isotherms", "defaults", "conditions", "mixtures",
-                                   "batch_label", "components", "mole_fractions"]),
+        st.sampled_from(COLUMNS + ["isotherms", "defaults", "conditions", "mixtures", "gases",
+                                   "batch_label", "components", "mole_fractions", "name",
+                                   "molar_mass_g_per_mol", "total_pressure_bar",
+                                   "adsorption_pressure_kpa", "adsorption_pressure"]),
         children, max_size=5),
     max_leaves=25)
 
@@ -154,10 +162,12 @@ numbers = st.one_of(st.floats(allow_nan=True, allow_infinity=True), st.integers(
 @st.composite
 def json_isotherm(draw) -> dict:
     n = draw(st.integers(0, 8))
+    p_key, q_key = draw(st.sampled_from([("pressure", "loading"), ("pressure_kpa", "loading_mmol_per_g"),
+                                         ("pressure_relative", "loading_mg_per_g")]))
     iso = {"sorbent_id": draw(cell), "adsorbate": draw(st.sampled_from(NASTY)),
            "temperature_k": draw(numbers),
-           "pressure": draw(st.lists(numbers, min_size=n, max_size=n + 1)),
-           "loading": draw(st.lists(numbers, min_size=n, max_size=n + 1))}
+           p_key: draw(st.lists(numbers, min_size=n, max_size=n + 1)),
+           q_key: draw(st.lists(numbers, min_size=n, max_size=n + 1))}
     for key in draw(st.lists(st.sampled_from(COLUMNS[5:]), max_size=4)):
         iso[key] = draw(st.one_of(cell, numbers))
     for key in draw(st.lists(st.sampled_from(list(iso)), max_size=2)):
@@ -174,8 +184,9 @@ def json_bodies(draw) -> bytes:
         if draw(st.booleans()):
             doc["isotherms"].append(isotherm("GOOD", 2.0, 0.1))
         if draw(st.booleans()):
-            doc["defaults"] = draw(st.dictionaries(st.sampled_from(
-                ["pressure_unit", "loading_unit", "sample_mass_g", "bogus"]), cell, max_size=3))
+            doc.update(draw(st.dictionaries(st.sampled_from(
+                ["units", "sample_mass_g", "gases", "defaults", "bogus"]),
+                st.one_of(cell, json_values), max_size=3)))
         if draw(st.booleans()):
             doc["conditions"] = draw(json_values)
         if draw(st.booleans()):
@@ -205,8 +216,9 @@ def parquet_bodies(draw) -> bytes:
                           max_size=9))
     table = pa.table({name: draw(arrow_columns) for name in names}) if names else \
         pa.table({"x": pa.array([1])})
-    meta = draw(st.dictionaries(st.sampled_from(["pressure_unit", "loading_unit", "batch_label",
-                                                 "junk"]), st.sampled_from(NASTY), max_size=3))
+    meta = draw(st.dictionaries(st.sampled_from(["units", "pressure_unit", "batch_label", "gases",
+                                                 "sample_mass_g", "junk"]), st.sampled_from(NASTY),
+                                max_size=3))
     table = table.replace_schema_metadata(meta)
     sink = io.BytesIO()
     try:
@@ -248,9 +260,9 @@ def test_fuzzed_parquet_bodies_never_5xx(client, app, body):
 @FUZZ
 @given(body=st.binary(max_size=400), media=st.sampled_from(
     list(MEDIA.values()) + ["application/octet-stream", "text/plain", "", "multipart/form-data"]),
-    query=st.dictionaries(st.sampled_from(["format", "pressure_unit", "loading_unit",
-                                           "batch_label", "models", "criterion", "weighting",
-                                           "sample_mass_g"]), cell, max_size=3))
+    query=st.dictionaries(st.sampled_from(["format", "units", "pressure_unit", "delimiter",
+                                           "decimal", "batch_label", "models", "criterion",
+                                           "weighting", "sample_mass_g"]), cell, max_size=3))
 def test_random_bytes_media_types_and_query_never_5xx(client, body, media, query):
     resp = client.post("/api/v1/batches", data=body, query_string=query,
                        headers={"Content-Type": media, **auth()})
@@ -264,7 +276,7 @@ def issues_of(doc: dict) -> list[dict]:
 
 
 def test_nan_and_infinity_tokens_are_rejected_by_row_and_field(client, app):
-    raw = ('{"defaults": {"pressure_unit": "kPa", "loading_unit": "mol/kg"}, "isotherms": ['
+    raw = ('{"units": {"pressure": "kPa", "loading": "mol/kg"}, "isotherms": ['
            '{"isotherm_id": "J-NAN", "sorbent_id": "M", "adsorbate": "CO2", "temperature_k": 298,'
            ' "pressure": [1, 2, NaN, 4], "loading": [0.1, 0.2, 0.3, 0.4]},'
            '{"isotherm_id": "J-INF", "sorbent_id": "M", "adsorbate": "CO2", "temperature_k": 298,'
@@ -278,12 +290,12 @@ def test_nan_and_infinity_tokens_are_rejected_by_row_and_field(client, app):
 
     tokens = ["nan", "NaN", "inf", "-inf", "Infinity", "1e999"]
     good = csv_batch([isotherm("CSV-OK", 2.0, 0.1)])
-    bad_rows = tuple(f"CSV-BAD{i},CO2,298.15,{10 + i},{tok},kPa,mol/kg"
+    bad_rows = tuple(f"CSV-BAD{i},CO2,298.15,{10 + i},{tok}"
                      for i, tok in enumerate(tokens))
     doc = check_answer(post(client, good + "\n".join(bad_rows).encode() + b"\n", "text/csv"),
                        "named")
     assert doc["accepted"] == 1
-    rows = {i["row"]: i for i in doc["rejected"] if i["field"] == "loading"}
+    rows = {i["row"]: i for i in doc["rejected"] if i["field"] == "loading_mol_per_kg"}
     first_bad = len(isotherm("x", 1, 1)["pressure"]) + 1
     assert set(rows) >= set(range(first_bad, first_bad + len(tokens))), rows
     assert all(rows[r]["code"] in ("not_finite", "not_a_number") for r in rows)

@@ -21,8 +21,9 @@ FAST = settings(max_examples=60, deadline=None, suppress_health_check=[HealthChe
 SMALL_LIMITS = Limits(max_isotherms=50, max_points_per_isotherm=40, max_columns=16, max_bytes=200_000)
 
 HEADER = ["sorbent_id", "adsorbate", "temperature_k", "pressure", "loading"]
-OPTIONAL = ["isotherm_id", "branch", "pressure_unit", "loading_unit", "saturation_pressure",
-            "sample_mass_g", "sigma", "surface_area_m2_per_g"]
+OPTIONAL = ["isotherm_id", "branch", "pressure_kpa", "loading_mmol_per_g", "saturation_pressure",
+            "saturation_pressure_bar", "sample_mass_g", "loading_sigma", "loading_sigma_mg_per_g",
+            "surface_area_m2_per_g", "pressure_unit", "sigma", "units", "pressure_kpaa"]
 CELLS = st.one_of(
     st.sampled_from(["", "m1", "m/2", "..", "CO2", "N2", "nitrogen", "argn", "77", "298.15", "0", "-1",
                      "1e999", "nan", "NaN", "inf", "-inf", "1,5", "0.5", "1e-3", "kPa", "p/p0", "mmol",
@@ -70,14 +71,18 @@ def test_random_text(text):
 @given(
     extra=st.lists(st.sampled_from(OPTIONAL + ["junk", "Pressure", ""]), max_size=4),
     rows=st.lists(st.lists(CELLS, min_size=4, max_size=11), max_size=25),
-    comments=st.lists(st.sampled_from(["# pressure_unit: kPa", "# loading_unit: mmol/g", "# pressure_unit: ??",
+    comments=st.lists(st.sampled_from(["# units: pressure:kPa,loading:mmol/g", "# units: pressure:??",
+                                       "# units: loading", "# pressure_unit: kPa", "# gas: X",
+                                       "# gas: Y, molar_mass_g_per_mol=5", "# sample_mass_g: -1",
                                        "# batch_label: b/1", "# note: x", "#", ""]), max_size=3),
+    delimiter=st.sampled_from([",", ";", "\t"]),
 )
-def test_random_csv_tables(extra, rows, comments):
+def test_random_csv_tables(extra, rows, comments, delimiter):
     header = HEADER + extra
-    lines = comments + [",".join(header)] + [",".join(r) for r in rows]
+    lines = comments + [delimiter.join(header)] + [delimiter.join(r) for r in rows]
     check("\n".join(lines))
     check(("\n".join(lines)).encode("utf-8", "surrogatepass"), fmt="csv")
+    check("\n".join(lines), delimiter=delimiter, decimal="," if delimiter != "," else None)
 
 
 @FAST
@@ -114,15 +119,17 @@ def isotherm_objects(draw):
 @FAST
 @given(
     isotherms=st.lists(st.one_of(isotherm_objects(), JSON_VALUES), max_size=6),
-    defaults=st.one_of(st.none(), st.dictionaries(st.sampled_from(["pressure_unit", "loading_unit",
-                                                                   "sample_mass_g", "batch_label", "x"]),
-                                                  JSON_VALUES, max_size=3)),
+    defaults=st.one_of(st.none(), st.dictionaries(st.sampled_from(["units", "sample_mass_g", "gases",
+                                                                   "batch_label", "defaults", "x"]),
+                                                  st.one_of(JSON_VALUES, st.sampled_from(
+                                                      ["pressure:kPa,loading:mmol/g", "pressure:p/p0"])),
+                                                  max_size=3)),
     conditions=st.one_of(st.none(), JSON_VALUES),
     mixtures=st.one_of(st.none(), JSON_VALUES),
 )
 def test_random_json_documents(isotherms, defaults, conditions, mixtures):
-    doc = {"isotherms": isotherms}
-    for key, value in (("defaults", defaults), ("conditions", conditions), ("mixtures", mixtures)):
+    doc = {"isotherms": isotherms, **(defaults or {})}
+    for key, value in (("conditions", conditions), ("mixtures", mixtures)):
         if value is not None:
             doc[key] = value
     text = json.dumps(doc)  # NaN and Infinity tokens included where floats drew them
@@ -148,7 +155,7 @@ def test_random_parquet(pressure, adsorbate):
     table = pa.table({"sorbent_id": ["m"] * n, "adsorbate": [adsorbate] * n, "temperature_k": [298.15] * n,
                       "pressure": pressure, "loading": [1.0] * n})
     buf = io.BytesIO()
-    pq.write_table(table.replace_schema_metadata({"pressure_unit": "kPa", "loading_unit": "mmol/g"}), buf)
+    pq.write_table(table.replace_schema_metadata({"units": "pressure:kPa,loading:mmol/g"}), buf)
     check(buf.getvalue())
     check(buf.getvalue()[: max(4, len(buf.getvalue()) // 2)])  # truncated file
 
@@ -160,7 +167,7 @@ def test_good_points_are_kept_and_canonical(points):
     merged: a property of any correct intake (the truth is the input itself)."""
     lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading"]
     lines += [f"m,CH4,298.15,{p!r},{q!r}" for p, q in points]
-    batch = check("\n".join(lines), defaults={"pressure_unit": "kPa", "loading_unit": "mmol/g"})
+    batch = check("\n".join(lines), units={"pressure": "kPa", "loading": "mmol/g"})
     distinct = sorted({p for p, _ in points})
     if len(distinct) < 3:
         assert batch.isotherms == [] and batch.rejected[0].code == "too_few_points"
@@ -170,3 +177,30 @@ def test_good_points_are_kept_and_canonical(points):
     for p, q_out in zip(distinct, iso.loading_mol_per_kg):
         same = [q for pp, q in points if pp == p]
         assert math.isclose(q_out, sum(same) / len(same), rel_tol=1e-12, abs_tol=1e-300)
+
+
+@FAST
+@given(points=st.lists(st.tuples(st.floats(1e-3, 1e6), st.floats(0, 100)), min_size=3, max_size=20),
+       delimiter=st.sampled_from([",", ";", "\t"]), decimal_comma=st.booleans(),
+       temperature=st.floats(50, 600))
+def test_delimiters_and_decimal_commas_read_the_same_numbers(points, delimiter, decimal_comma,
+                                                              temperature):
+    """The same points written comma-, semicolon- or tab-delimited, with a decimal comma
+    where the delimiter allows it, are read (delimiter and decimal mark detected) as the
+    numbers written: a property of any correct reader, the truth being the input."""
+    decimal_comma = decimal_comma and delimiter != ","
+
+    def cell(x):
+        text = repr(float(x))
+        return text.replace(".", ",") if decimal_comma else text
+
+    header = ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa", "loading_mmol_per_g"]
+    lines = [delimiter.join(header)] + [delimiter.join(["m", "CH4", cell(temperature), cell(p), cell(q)])
+                                        for p, q in points]
+    reference = "\n".join([",".join(header)] + [f"m,CH4,{temperature!r},{p!r},{q!r}" for p, q in points])
+    got, want = check("\n".join(lines)), check(reference)
+    assert [i.code for i in got.rejected] == [i.code for i in want.rejected]
+    for a, b in zip(got.isotherms, want.isotherms, strict=True):
+        assert a.temperature_k == b.temperature_k
+        np.testing.assert_array_equal(a.pressure_pa, b.pressure_pa)
+        np.testing.assert_array_equal(a.loading_mol_per_kg, b.loading_mol_per_kg)
