@@ -23,8 +23,8 @@ from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.pipeline import FitOptions, process_batch, process_isotherms_parallel
 
 P_PA = np.geomspace(1e2, 1e6, 15)
-HEADER = ["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "pressure", "loading",
-          "pressure_unit", "loading_unit"]
+HEADER = ["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "pressure_pa",
+          "loading_mol_per_kg"]
 # (q_sat mol/kg, affinity 1/Pa) per isotherm: q_sat order is the expected ranking
 TRUTHS = [(2.0, 1e-5), (6.0, 3e-5), (4.0, 1e-4)]
 
@@ -32,7 +32,7 @@ TRUTHS = [(2.0, 1e-5), (6.0, 3e-5), (4.0, 1e-4)]
 def langmuir_rows(iso_id, sorbent, q_sat, b, seed):
     rng = np.random.default_rng(seed)
     q = q_sat * b * P_PA / (1 + b * P_PA) * (1 + 0.003 * rng.standard_normal(P_PA.size))
-    return [[iso_id, sorbent, "CO2", "298.15", f"{p:.9g}", f"{v:.9g}", "Pa", "mol/kg"]
+    return [[iso_id, sorbent, "CO2", "298.15", f"{p:.9g}", f"{v:.9g}"]
             for p, v in zip(P_PA, q)]
 
 
@@ -44,7 +44,7 @@ def screen_csv(tmp_path):
         w.writerow(HEADER)
         for i, (q_sat, b) in enumerate(TRUTHS):
             w.writerows(langmuir_rows(f"iso{i}", f"MAT-{i}", q_sat, b, seed=i))
-        w.writerow(["broken", "MAT-X", "CO2", "298.15", "not-a-number", "1.0", "Pa", "mol/kg"])
+        w.writerow(["broken", "MAT-X", "CO2", "298.15", "not-a-number", "1.0"])
     return path
 
 
@@ -148,7 +148,7 @@ def test_missing_file_and_unknown_option_exit_2(capsys, tmp_path):
 
 def test_nothing_acceptable_exits_1(capsys, tmp_path):
     path = tmp_path / "bad.csv"
-    path.write_text(",".join(HEADER) + "\n" + "a,M,CO2,298.15,x,1,Pa,mol/kg\n")
+    path.write_text(",".join(HEADER) + "\n" + "a,M,CO2,298.15,x,1\n")
     code, _, err = run_cli(capsys, path)
     assert code == 1 and "rejected" in err
 
@@ -225,3 +225,254 @@ def test_json_summary_carries_the_metric_contract(tmp_path):
         else:
             assert summary["bet_area_m2_per_g"] is None and "bet_no_valid_range" in summary["flags"]
     assert with_range >= 0.9 * len(records)
+
+
+# ---------------------------------------------------------------------------
+# reading options: one units declaration, sample mass, delimiters, gases
+
+# an invented Tideglass-31 CO2 isotherm at 298.15 K in kPa and mmol/g
+KPA = [5.0, 10.0, 20.0, 40.0, 60.0, 80.0, 100.0, 150.0]
+MMOL_PER_G = [0.31, 0.58, 1.02, 1.66, 2.12, 2.45, 2.71, 3.12]
+
+
+def _points_file(path, header, rows, delimiter=",", preamble=""):
+    lines = [delimiter.join(header)] + [delimiter.join(map(str, r)) for r in rows]
+    path.write_text(preamble + "\n".join(lines) + "\n")
+    return path
+
+
+def _summary(capsys, *argv):
+    code, out, err = run_cli(capsys, *argv, "--format", "csv", "--workers", "1")
+    assert code == 0, err
+    return pcsv.read_csv(io.BytesIO(out.encode())).to_pylist()
+
+
+NUMBERS = ("temperature_k", "n_points", "q_sat_mol_per_kg", "q_sat_ci95_low_mol_per_kg",
+           "henry_mol_per_kg_pa", "working_capacity_mol_per_kg", "loading_ads_mol_per_kg")
+
+
+def _assert_same_numbers(rows, expected):
+    assert len(rows) == len(expected) == 1
+    for name in NUMBERS:
+        assert rows[0][name] == pytest.approx(expected[0][name], rel=1e-9), name
+    assert rows[0]["best_model"] == expected[0]["best_model"]
+
+
+def test_units_options_give_the_numbers_of_unit_carrying_columns(capsys, tmp_path):
+    ident = ["TG31-UNIT-0001", "CO2", "298.15"]
+    carrying = _points_file(tmp_path / "carrying.csv",
+                            ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa",
+                             "loading_mmol_per_g"], [ident + [p, q] for p, q in zip(KPA, MMOL_PER_G)])
+    plain = _points_file(tmp_path / "plain.csv",
+                         ["sorbent_id", "adsorbate", "temperature_k", "pressure", "loading"],
+                         [ident + [p, q] for p, q in zip(KPA, MMOL_PER_G)])
+    expected = _summary(capsys, carrying)
+    # kPa and mmol/g are 1000 Pa and 1 mol/kg: the same isotherm, the same fit
+    assert expected[0]["q_sat_mol_per_kg"] > 2.71
+    _assert_same_numbers(_summary(capsys, plain, "--units", "pressure:kPa,loading:mmol/g"), expected)
+    _assert_same_numbers(_summary(capsys, plain, "--pressure-unit", "kPa", "--loading-unit", "mmol/g"),
+                         expected)
+    _assert_same_numbers(_summary(capsys, plain, "--units", "loading:mmol/g", "--pressure-unit", "kPa"),
+                         expected)
+    # absolute amounts: mmol adsorbed by a 0.25 g sample, divided by --sample-mass-g
+    absolute = _points_file(tmp_path / "absolute.csv",
+                            ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa", "loading"],
+                            [ident + [p, q * 0.25] for p, q in zip(KPA, MMOL_PER_G)])
+    _assert_same_numbers(_summary(capsys, absolute, "--loading-unit", "mmol", "--sample-mass-g", "0.25"),
+                         expected)
+    # and the same isotherm in bar, declared once
+    in_bar = _points_file(tmp_path / "bar.csv",
+                          ["sorbent_id", "adsorbate", "temperature_k", "pressure", "loading_mmol_per_g"],
+                          [ident + [p / 100.0, q] for p, q in zip(KPA, MMOL_PER_G)])
+    _assert_same_numbers(_summary(capsys, in_bar, "--pressure-unit", "bar"), expected)
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["--units", "pressure:furlongs"], ["furlongs"]),
+    (["--units", "pressure:kPa", "--pressure-unit", "bar"], ["pressure", "twice"]),
+    (["--sample-mass-g", "-1"], ["positive"]),
+    (["--gas", "R134a"], ["NAME:MOLAR_MASS"]),
+    (["--gas", "R134a:heavy"], ["molar_mass"]),
+])
+def test_bad_reading_options_are_usage_errors(capsys, tmp_path, argv, words):
+    path = _points_file(tmp_path / "p.csv", ["sorbent_id", "adsorbate", "temperature_k", "pressure",
+                                             "loading"], [["S", "CO2", 298.15, 1, 1]])
+    try:
+        code, _, err = run_cli(capsys, path, *argv)
+    except SystemExit as stop:  # argparse refuses a value its type check rejects
+        code, err = stop.code, capsys.readouterr().err
+    assert code == 2
+    for word in words:
+        assert word in err, err
+    assert "Traceback" not in err
+
+
+def test_semicolon_and_decimal_comma_file(capsys, tmp_path):
+    header = ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa", "loading_mmol_per_g"]
+    comma_file = _points_file(tmp_path / "points.csv", header,
+                              [["TG31-EU-0001", "CO2", "298.15", p, q] for p, q in zip(KPA, MMOL_PER_G)])
+    european = _points_file(tmp_path / "export.csv", header,
+                            [["TG31-EU-0001", "CO2", "298,15", str(p).replace(".", ","),
+                              str(q).replace(".", ",")] for p, q in zip(KPA, MMOL_PER_G)],
+                            delimiter=";")
+    expected = _summary(capsys, comma_file)
+    _assert_same_numbers(_summary(capsys, european), expected)  # detected
+    _assert_same_numbers(_summary(capsys, european, "--delimiter", "semicolon", "--decimal", "comma"),
+                         expected)
+    tab_file = _points_file(tmp_path / "points.tsv", header,
+                            [["TG31-EU-0001", "CO2", "298.15", p, q] for p, q in zip(KPA, MMOL_PER_G)],
+                            delimiter="\t")
+    _assert_same_numbers(_summary(capsys, tab_file, "--delimiter", "tab"), expected)
+
+
+def test_wrong_delimiter_names_the_file_and_what_it_saw(capsys, tmp_path):
+    european = _points_file(tmp_path / "export.csv",
+                            ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa",
+                             "loading_mmol_per_g"],
+                            [["TG31-EU-0001", "CO2", "298,15", "10", "0,5"]], delimiter=";")
+    code, out, err = run_cli(capsys, european, "--delimiter", "tab")
+    assert code == 2 and out == ""
+    assert str(european) in err and "';'" in err and "delimiter" in err
+    assert "Traceback" not in err
+
+
+def test_a_declared_gas_is_accepted(capsys, tmp_path):
+    # an invented gas (Tideglass-31 test gas, 88.0 g/mol): loadings in mg/g need
+    # its molar mass, so the isotherm is refused until it is declared
+    header = ["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa", "loading_mg_per_g"]
+    path = _points_file(tmp_path / "tg_gas.csv", header,
+                        [["TG31-GAS-0001", "TG31-TESTGAS", "298.15", p, q * 88.0]
+                         for p, q in zip(KPA, MMOL_PER_G)])
+    code, _, err = run_cli(capsys, path)
+    assert code == 1 and "TG31-TESTGAS" in err
+    # models on absolute pressure only: CO2 has a p0 at 298.15 K, the test gas none
+    models = ("--models", "langmuir,sips,toth")
+    rows = _summary(capsys, path, "--gas", "TG31-TESTGAS:88.0", *models)
+    assert rows[0]["adsorbate"] == "TG31-TESTGAS"
+    # mg/g over g/mol is mmol/g: the loadings, hence q_sat, are the mmol/g file's
+    same = _points_file(tmp_path / "mmol.csv", header[:4] + ["loading_mmol_per_g"],
+                        [["TG31-GAS-0001", "CO2", "298.15", p, q] for p, q in zip(KPA, MMOL_PER_G)])
+    assert rows[0]["q_sat_mol_per_kg"] == pytest.approx(
+        _summary(capsys, same, *models)[0]["q_sat_mol_per_kg"], rel=1e-9)
+
+
+# ---------------------------------------------------------------------------
+# the table: q_sat interval, BET area, working capacity with its conditions
+
+# BET with monolayer 10 mol/kg and C = 100 at x = p/p0 0.02..0.30 (invented,
+# truth known): the area is n_m N_A sigma(N2) = 10e-3 mol/g x 6.02214076e23
+# /mol x 0.162e-18 m2 = 975.6 m2/g (sigma 0.162 nm2: ISO 9277, from memory)
+BET_X = np.linspace(0.02, 0.30, 15)
+BET_Q = 10.0 * 100.0 * BET_X / ((1 - BET_X) * (1 - BET_X + 100.0 * BET_X))
+
+
+def _conditions_doc(isotherms, adsorption_kpa, desorption_kpa):
+    return {"isotherms": isotherms,
+            "conditions": {"adsorption_pressure_kpa": adsorption_kpa,
+                           "desorption_pressure_kpa": desorption_kpa}}
+
+
+def test_table_shows_q_sat_interval_bet_area_and_working_capacity(capsys, tmp_path):
+    path = tmp_path / "n2_and_co2.json"
+    q_co2 = [6.0 * 3e-5 * p / (1 + 3e-5 * p) for p in P_PA]
+    path.write_text(json.dumps(_conditions_doc([
+        {"sorbent_id": "TG31-BET-0001", "adsorbate": "N2", "temperature_k": 77.35,
+         "pressure_relative": BET_X.tolist(), "loading_mol_per_kg": BET_Q.tolist()},
+        {"sorbent_id": "TG31-LANG-0001", "adsorbate": "CO2", "temperature_k": 298.15,
+         "pressure_pa": P_PA.tolist(),
+         "loading_mol_per_kg": [q * (1 + 0.003 * np.sin(7 * i)) for i, q in enumerate(q_co2)]},
+    ], adsorption_kpa=500, desorption_kpa=100)))
+    code, out, err = run_cli(capsys, path, "--workers", "1", "--sort", "sorbent_id")
+    assert code == 0, err
+    header, _, *rows = out.splitlines()
+    for title in ("q_sat mol/kg [95 %]", "BET m2/g", "work. cap. mol/kg", "flags"):
+        assert title in header
+    summary = {r["sorbent_id"]: r for r in _summary(capsys, path, "--sort", "sorbent_id")}
+    bet_row = next(r for r in rows if "TG31-BET-0001" in r)
+    lang_row = next(r for r in rows if "TG31-LANG-0001" in r)
+
+    bet = summary["TG31-BET-0001"]
+    assert bet["bet_area_m2_per_g"] == pytest.approx(975.6, rel=0.01)
+    assert f"  {bet['bet_area_m2_per_g']:.0f}  " in bet_row
+
+    lang = summary["TG31-LANG-0001"]
+    assert lang["best_model"] in lang_row.split()
+    q, lo, hi = (lang[k] for k in ("q_sat_mol_per_kg", "q_sat_ci95_low_mol_per_kg",
+                                   "q_sat_ci95_high_mol_per_kg"))
+    assert lo < q < hi and q == pytest.approx(6.0, rel=0.02)
+    assert f"{q:.2f} [{lo:.2f}, {hi:.2f}]" in lang_row
+    # the batch's pressure swing, 500 -> 100 kPa, is 5 -> 1 bar
+    assert f"{lang['working_capacity_mol_per_kg']:.3g} (5→1 bar)" in lang_row
+    assert "—" in lang_row.split("(5→1 bar)")[0]  # no BET area for CO2 at 298 K
+
+
+def test_table_marks_a_missing_interval_and_ends_long_lines_at_the_terminal(capsys):
+    import pyarrow as pa
+
+    from sorbrank.service.commands.fit import render_table
+    from sorbrank.worker.isotherm import Conditions
+
+    table = pa.table({
+        "sorbent_id": ["TG31-A", "TG31-B"], "adsorbate": ["CO2", "CO2"],
+        "temperature_k": [298.15, 298.15], "best_model": ["langmuir", None],
+        "q_sat_mol_per_kg": [4.2134, None], "q_sat_ci95_low_mol_per_kg": [None, None],
+        "q_sat_ci95_high_mol_per_kg": [None, None], "bet_area_m2_per_g": [None, None],
+        "working_capacity_mol_per_kg": [1.5, None], "n_points": [8, 3],
+        "flags": [["capacity_extrapolated", "extrapolated_adsorption_pressure"], []],
+    })
+    text = render_table(table, "q_sat_mol_per_kg", Conditions(), width=None)
+    first, second = text.splitlines()[2:]
+    assert "4.21 [—]" in first and "1.5 (1→0.1 bar)" in first
+    assert first.endswith("capacity_extrapolated,extrapolated_adsorption_pressure")
+    assert second.split()[1:5] == ["TG31-B", "CO2", "298.15", "—"]
+    narrow = render_table(table, "q_sat_mol_per_kg", Conditions(), width=60)
+    assert all(len(line) <= 60 for line in narrow.splitlines())
+    assert narrow.splitlines()[2].endswith("…")
+
+
+# ---------------------------------------------------------------------------
+# JSON through orjson: the same document the json module wrote
+
+def test_json_output_equals_the_json_module_document(capsys, screen_csv):
+    from sorbrank.worker.intake import Limits, read_batch
+
+    code, out, _ = run_cli(capsys, screen_csv, "--format", "json", "--sort", "isotherm_id",
+                           "--workers", "1")
+    assert code == 0
+    result = process_batch(read_batch(screen_csv, limits=Limits.for_local_files()), FitOptions())
+    doc = result.to_json()
+    doc["isotherms"].sort(key=lambda rec: rec["isotherm_id"])
+    before = json.loads(json.dumps(doc, allow_nan=False, indent=1))  # how fit wrote it before
+    assert json.loads(out) == before
+    assert len(before["isotherms"]) == 3 and before["rejected"]
+
+
+def test_json_bytes_writes_non_finite_numbers_as_null():
+    from sorbrank.service.commands.fit import json_bytes
+
+    text = json_bytes({"a": [1.5, float("nan"), float("inf"), -float("inf")], "b": None})
+    assert json.loads(text, parse_constant=lambda token: pytest.fail(token)) == \
+        {"a": [1.5, None, None, None], "b": None}
+
+
+# ---------------------------------------------------------------------------
+# what a fit loads: not the web stack, plots, the property library or scipy.stats
+
+def test_fit_imports_no_service_plotting_or_property_library(tmp_path):
+    import subprocess
+    import sys
+
+    path = _points_file(tmp_path / "six.csv", ["sorbent_id", "adsorbate", "temperature_k",
+                                               "pressure_kpa", "loading_mmol_per_g"],
+                        [["TG31-FAST-0001", "CO2", "298.15", p, q]
+                         for p, q in zip(KPA[:6], MMOL_PER_G[:6])])
+    probe = (
+        "import sys\n"
+        "from sorbrank.service.cli import main\n"
+        f"code = main(['fit', {str(path)!r}])\n"
+        "heavy = ('flask', 'celery', 'matplotlib', 'CoolProp', 'scipy.stats', 'redis', 'gunicorn',\n"
+        "         'sorbrank.service.commands.serve', 'sorbrank.service.commands.plot')\n"
+        "print('LOADED', code, sorted(m for m in heavy if m in sys.modules))\n")
+    run = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300)
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.splitlines()[-1] == "LOADED 0 []", run.stdout

@@ -2,7 +2,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import math
 import os
 import sys
@@ -12,7 +11,8 @@ FORMATS = ("table", "json", "csv", "parquet")
 CRITERIA = ("aicc", "bic", "aic")
 WEIGHTINGS = ("uniform", "relative", "sigma")
 DEFAULT_SORT = "q_sat_mol_per_kg"
-# the CLI reads local files: allow far more than the HTTP service accepts
+DELIMITERS = {"auto": None, "comma": ",", "semicolon": ";", "tab": "\t"}
+DECIMALS = {"auto": None, "point": ".", "comma": ","}
 
 DESCRIPTION = """\
 Fit every published isotherm model to each isotherm of the input files, pick
@@ -27,15 +27,40 @@ wins. Screening figures (saturation capacity, Henry constant, loadings,
 working capacity, BET area, ...) come from the selected model.
 
 Input: CSV, JSON or Parquet files as described in the README (one row per
-point: sorbent_id, adsorbate, temperature_k, pressure, loading, with units
-given per row or per file). Isotherms that fail validation are listed on
-standard error with the reason and left out; the rest are fitted.
+point: sorbent_id, adsorbate, temperature_k and pressure, loading columns
+whose names carry their units, e.g. pressure_kpa, loading_mmol_per_g; or
+plain pressure, loading columns with the units declared by --units, by
+--pressure-unit/--loading-unit or in the file's '# units:' line). CSV may be
+comma-, semicolon- or tab-delimited, with decimal points or commas (detected,
+or set by --delimiter/--decimal). Isotherms that fail validation are listed
+on standard error with the reason and left out; the rest are fitted.
 
 Every number printed or written is in canonical units: pressure Pa,
 temperature K, loading mol/kg, energy J/mol, area m2/g."""
 
 EPILOG = """\
 options in detail:
+  --units       the one units declaration for plain pressure/loading columns,
+                e.g. pressure:kPa,loading:mmol/g (also saturation_pressure,
+                loading_sigma). Applies to every input file; a file's own
+                '# units:' line and unit-carrying column names take precedence.
+  --pressure-unit, --loading-unit
+                the same declaration one quantity at a time: --pressure-unit kPa
+                is --units pressure:kPa. Pressure units: Pa, kPa, MPa, bar, mbar,
+                atm, torr, mmHg, psi, p/p0 (relative); loading units: mol/kg,
+                mmol/g, mol/g, mg/g, g/g, wt%, cm3(STP)/g, and the absolute
+                amounts mmol, mol, cm3(STP) (these need --sample-mass-g).
+  --sample-mass-g
+                sample mass in g, dividing loadings given as absolute amounts
+                (mmol, mol, cm3(STP)) to per gram of sorbent.
+  --delimiter, --decimal
+                CSV only. auto (default) detects comma, semicolon or tab, and a
+                decimal point or comma; name them when detection cannot tell.
+  --gas         a gas sorbrank does not know, as NAME:MOLAR_MASS_G_PER_MOL or
+                NAME:MOLAR_MASS_G_PER_MOL:CRITICAL_TEMPERATURE_K (repeat for
+                more gases), e.g. --gas R134a:102.03:374.21. The molar mass
+                converts mass and gas-volume loadings; the critical
+                temperature marks isotherms above it as supercritical.
   --models      'all' (default) or a comma list of model ids, e.g.
                 langmuir,sips,dual_site_langmuir; 'sorbrank models' lists them.
   --criterion   aicc (default; AIC with the small-sample correction, best for
@@ -51,9 +76,11 @@ options in detail:
                 working_capacity_mol_per_kg, sorbent_id. Numbers sort
                 largest first, text A-Z; --ascending reverses numbers.
                 Isotherms without a value go last.
-  --format      table: a ranked text table, one row per isotherm (sorbent,
-                adsorbate, T in K, best model, q_sat in mol/kg, Henry constant
-                in mol/kg/Pa, points, flags). json: everything, including every
+  --format      table: a ranked text table, one row per isotherm: sorbent, gas,
+                T in K, best model, q_sat in mol/kg with its 95 % interval
+                [low, high], BET area in m2/g, working capacity in mol/kg with
+                its pressure swing (adsorption -> desorption), points, flags;
+                '—' where a figure does not exist. json: everything, including every
                 model's parameters, standard errors, 95 % intervals and
                 criteria (null where a value does not exist). csv, parquet:
                 the summary table, one row per isotherm; with --fits the fit
@@ -62,13 +89,17 @@ options in detail:
 
 examples:
   sorbrank fit screen.csv
+  sorbrank fit rig7.csv --units pressure:kPa,loading:mmol/g
+  sorbrank fit export.csv --delimiter semicolon --decimal comma --pressure-unit bar --loading-unit mg/g
+  sorbrank fit r134a.csv --gas R134a:102.03:374.21 --units pressure:kPa,loading:mg/g
   sorbrank fit run1.csv run2.json --models langmuir,sips --top 20
   sorbrank fit screen.csv --sort henry_mol_per_kg_pa --format csv --out ranked.csv
   sorbrank fit screen.parquet --fits --format parquet --out fits.parquet
 
 exit status: 0 at least one isotherm has a selected model; 1 nothing could be
 fitted (every isotherm rejected or without an acceptable model); 2 usage error
-or an input file that cannot be read at all."""
+or an input file that cannot be read at all (wrong delimiter, missing column,
+...): the message names the file."""
 
 
 def register(subparsers) -> None:
@@ -81,6 +112,7 @@ def register(subparsers) -> None:
     )
     parser.add_argument("inputs", nargs="+", metavar="INPUT",
                         help="batch files (CSV, JSON or Parquet; format from the content/suffix)")
+    add_intake_options(parser)
     parser.add_argument("--models", default="all", metavar="all|ID,ID",
                         help="models to fit (default: all)")
     parser.add_argument("--criterion", choices=CRITERIA, default="aicc",
@@ -104,6 +136,34 @@ def register(subparsers) -> None:
     parser.set_defaults(func=run)
 
 
+def add_intake_options(parser) -> None:
+    """The options that say how to read input files (shared with 'sorbrank plot')."""
+    parser.add_argument("--units", metavar="QUANTITY:UNIT,...", default=None,
+                        help="units of plain pressure/loading columns, e.g. pressure:kPa,loading:mmol/g")
+    parser.add_argument("--pressure-unit", metavar="UNIT", default=None,
+                        help="pressure unit of a plain pressure column (fills --units)")
+    parser.add_argument("--loading-unit", metavar="UNIT", default=None,
+                        help="loading unit of a plain loading column (fills --units)")
+    parser.add_argument("--sample-mass-g", metavar="G", type=_positive_float, default=None,
+                        help="sample mass in g, for loadings given as absolute amounts")
+    parser.add_argument("--delimiter", choices=tuple(DELIMITERS), default="auto",
+                        help="CSV field delimiter (default: auto)")
+    parser.add_argument("--decimal", choices=tuple(DECIMALS), default="auto",
+                        help="CSV decimal mark (default: auto)")
+    parser.add_argument("--gas", metavar="NAME:MOLAR_MASS[:TC_K]", action="append", default=[],
+                        type=_declared_gas, dest="gases",
+                        help="declare a gas: molar mass in g/mol, optional critical "
+                             "temperature in K (repeatable)")
+
+
+def intake_options(args) -> dict:
+    """read_batch keyword arguments from the options of ``add_intake_options``.
+    Raises ValueError for a units declaration that cannot be used."""
+    return {"units": units_declaration(args), "sample_mass_g": args.sample_mass_g,
+            "delimiter": DELIMITERS[args.delimiter], "decimal": DECIMALS[args.decimal],
+            "gases": args.gases or None}
+
+
 def _positive_int(text: str) -> int:
     try:
         value = int(text)
@@ -112,6 +172,47 @@ def _positive_int(text: str) -> int:
     if value < 1:
         raise argparse.ArgumentTypeError(f"must be at least 1: {text!r}")
     return value
+
+
+def _positive_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not (value > 0 and math.isfinite(value)):
+        raise argparse.ArgumentTypeError(f"must be a positive number: {text!r}")
+    return value
+
+
+def _declared_gas(text: str) -> dict:
+    """A --gas value as read_batch's declared-gas dict."""
+    parts = text.split(":")
+    if len(parts) not in (2, 3) or not parts[0].strip():
+        raise argparse.ArgumentTypeError(
+            f"expected NAME:MOLAR_MASS_G_PER_MOL[:CRITICAL_TEMPERATURE_K], got {text!r}")
+    gas = {"name": parts[0].strip()}
+    for key, value in zip(("molar_mass_g_per_mol", "critical_temperature_k"), parts[1:]):
+        try:
+            gas[key] = _positive_float(value)
+        except argparse.ArgumentTypeError as exc:
+            raise argparse.ArgumentTypeError(f"--gas {text!r}: {key}: {exc}") from None
+    return gas
+
+
+def units_declaration(args) -> dict[str, str] | None:
+    """The one units declaration from --units, --pressure-unit and --loading-unit
+    (canonical unit names), None when none was given. Raises ValueError."""
+    from sorbrank.worker.units import parse_units_declaration
+
+    declared = dict(parse_units_declaration(args.units)) if args.units else {}
+    for quantity, unit in (("pressure", args.pressure_unit), ("loading", args.loading_unit)):
+        if unit is None:
+            continue
+        if quantity in declared:
+            raise ValueError(f"the {quantity} unit is given twice: by --units and by "
+                             f"--{quantity}-unit")
+        declared[quantity] = unit
+    return parse_units_declaration(declared) if declared else None
 
 
 def _usage_error(message: str) -> int:
@@ -136,6 +237,11 @@ def run(args) -> int:
     except ValueError as exc:
         return _usage_error(str(exc))
 
+    try:
+        reading = intake_options(args)
+    except ValueError as exc:
+        return _usage_error(str(exc))
+
     limits = Limits.for_local_files()
     batches = []
     for name in args.inputs:
@@ -143,7 +249,7 @@ def run(args) -> int:
         if not path.is_file():
             return _usage_error(f"no such file: {name}")
         try:
-            batches.append(read_batch(path, limits=limits))
+            batches.append(read_batch(path, **reading, limits=limits))
         except IntakeError as exc:
             for issue in exc.issues:
                 print(f"{name}: {issue}", file=sys.stderr)
@@ -186,9 +292,11 @@ def run(args) -> int:
     if args.fmt == "json":
         doc = result.to_json()
         doc["isotherms"] = [doc["isotherms"][i] for i in index]
-        _emit_text(json.dumps(doc, allow_nan=False, indent=1) + "\n", args.out)
+        _emit_bytes(json_bytes(doc), args.out)
     elif args.fmt == "table":
-        _emit_text(render_table(summary.take(index), sort), args.out)
+        width = _terminal_width() if args.out is None else None
+        _emit_text(render_table(summary.take(index), sort, result.batch.conditions, width),
+                   args.out)
     else:
         table = _fits_rows(result.fits_table(), index, len(result.fits)) if args.fits \
             else summary.take(index)
@@ -204,44 +312,139 @@ def run(args) -> int:
 # ---------------------------------------------------------------------------
 # output
 
-TABLE_COLUMNS = [  # (summary column, header, format)
-    ("sorbent_id", "sorbent", "s"),
-    ("adsorbate", "gas", "s"),
-    ("temperature_k", "T/K", ".2f"),
-    ("best_model", "best model", "s"),
-    ("q_sat_mol_per_kg", "q_sat mol/kg", ".4g"),
-    ("henry_mol_per_kg_pa", "henry mol/kg/Pa", ".4g"),
-    ("n_points", "n", "d"),
-    ("flags", "flags", "flags"),
-]
+def json_bytes(doc: dict) -> bytes:
+    """The --format json document as UTF-8 bytes, through orjson (about 40 %
+    of a 20,000-isotherm run went to the json module; see bench_start.py).
+
+    ``to_json`` already holds None where a number is NaN or infinite; orjson
+    would write null for any that slipped through, so the output is always
+    valid JSON (the json module's allow_nan=False raised instead)."""
+    import orjson
+
+    return orjson.dumps(doc, option=orjson.OPT_INDENT_2 | orjson.OPT_APPEND_NEWLINE)
 
 
-def render_table(table, sort: str) -> str:
-    """A ranked plain-text table (one line per isotherm)."""
-    columns = [c for c in TABLE_COLUMNS if c[0] in table.column_names]
-    if sort not in {c[0] for c in columns} and sort != "isotherm_id":
-        columns.insert(-1, (sort, sort, ".4g" if _is_numeric(table.schema.field(sort).type) else "s"))
-    headers = ["#"] + [h for _, h, _ in columns]
+MISSING = "—"
+
+
+def render_table(table, sort: str, conditions=None, width: int | None = None) -> str:
+    """A ranked plain-text table, one line per isotherm: identity, best model,
+    q_sat with its 95 % interval, BET area, working capacity with the pressure
+    swing of ``conditions`` (a worker.isotherm.Conditions), points and flags.
+    Lines longer than ``width`` characters end in an ellipsis."""
+    names = set(table.column_names)
+    columns = [c for c in _table_columns(conditions) if c[0] in names]
+    shown = {source for c in columns for source in _TABLE_SOURCES[c[0]]}
+    data = {name: table[name].to_pylist() for name in shown if name in names}
+    if sort not in shown and sort != "isotherm_id":
+        data[sort] = table[sort].to_pylist()
+        numeric = _is_numeric(table.schema.field(sort).type)
+        columns.insert(-1, (sort, sort, (lambda row, s=sort: _number(row[s], ".4g")) if numeric
+                            else (lambda row, s=sort: _text(row[s])), numeric))
+    headers = ["#"] + [header for _, header, _, _ in columns]
+    right = [True] + [r for _, _, _, r in columns]
     rows = []
-    data = {name: table[name].to_pylist() for name, _, _ in columns}
     for i in range(table.num_rows):
-        cells = [str(i + 1)]
-        for name, _, fmt in columns:
-            cells.append(_cell(data[name][i], fmt))
-        rows.append(cells)
+        row = {name: values[i] for name, values in data.items()}
+        rows.append([str(i + 1)] + [render(row) for _, _, render, _ in columns])
     widths = [max(len(r[j]) for r in rows + [headers]) for j in range(len(headers))]
-    line = lambda cells: "  ".join(c.ljust(w) for c, w in zip(cells, widths)).rstrip()  # noqa: E731
-    return "\n".join([line(headers), line(["-" * w for w in widths])] + [line(r) for r in rows]) + "\n"
+
+    def line(cells):
+        text = "  ".join(c.rjust(w) if r else c.ljust(w)
+                         for c, w, r in zip(cells, widths, right)).rstrip()
+        return text if width is None or len(text) <= width else text[: width - 1] + "…"
+
+    # the last column is ragged (flags): its rule spans the header only
+    rule = ["-" * w for w in widths[:-1]] + ["-" * len(headers[-1])]
+    return "\n".join([line(headers), line(rule)] + [line(r) for r in rows]) + "\n"
 
 
-def _cell(value, fmt: str) -> str:
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "-" if value is None or value != value else str(value)
-    if fmt == "flags":
-        return ",".join(value) if value else ""
-    if fmt == "s":
+# summary columns each table column is drawn from (the first names it)
+_TABLE_SOURCES = {
+    "sorbent_id": ("sorbent_id",),
+    "adsorbate": ("adsorbate",),
+    "temperature_k": ("temperature_k",),
+    "best_model": ("best_model",),
+    "q_sat_mol_per_kg": ("q_sat_mol_per_kg", "q_sat_ci95_low_mol_per_kg",
+                         "q_sat_ci95_high_mol_per_kg"),
+    "bet_area_m2_per_g": ("bet_area_m2_per_g",),
+    "working_capacity_mol_per_kg": ("working_capacity_mol_per_kg",),
+    "n_points": ("n_points",),
+    "flags": ("flags",),
+}
+
+
+def _table_columns(conditions):
+    """(summary column, header, row -> cell text, right-aligned) in display order."""
+    swing = "" if conditions is None else \
+        f" ({pressure_swing(conditions.adsorption_pressure_pa, conditions.desorption_pressure_pa)})"
+    return [
+        ("sorbent_id", "sorbent", lambda r: _text(r["sorbent_id"]), False),
+        ("adsorbate", "gas", lambda r: _text(r["adsorbate"]), False),
+        ("temperature_k", "T/K", lambda r: _number(r["temperature_k"], ".2f"), True),
+        ("best_model", "best model", lambda r: _text(r["best_model"]), False),
+        ("q_sat_mol_per_kg", "q_sat mol/kg [95 %]", _q_sat_cell, True),
+        ("bet_area_m2_per_g", "BET m2/g", lambda r: _area(r.get("bet_area_m2_per_g")), True),
+        ("working_capacity_mol_per_kg", "work. cap. mol/kg",
+         lambda r: _with_suffix(_number(r["working_capacity_mol_per_kg"], ".3g"), swing), True),
+        ("n_points", "n", lambda r: _number(r["n_points"], "d"), True),
+        ("flags", "flags", lambda r: ",".join(r["flags"] or []), False),
+    ]
+
+
+def pressure_swing(adsorption_pa: float, desorption_pa: float) -> str:
+    """'1→0.1 bar': adsorption -> desorption pressure, in bar, kPa or Pa
+    (the largest unit in which the lower pressure is at least 0.01)."""
+    low = min(adsorption_pa, desorption_pa)
+    for unit, pa in (("bar", 1e5), ("kPa", 1e3), ("Pa", 1.0)):
+        if low >= 0.01 * pa or unit == "Pa":
+            return f"{adsorption_pa / pa:g}→{desorption_pa / pa:g} {unit}"
+    raise AssertionError("unreachable")
+
+
+def _q_sat_cell(row) -> str:
+    """'4.21 [3.98, 4.45]': three significant digits of q_sat, its interval to
+    the same decimal place; '4.21 [—]' where the fit gives no interval."""
+    q = row["q_sat_mol_per_kg"]
+    if not _finite(q):
+        return _number(q, ".3g")
+    places = max(0, 2 - math.floor(math.log10(abs(q)))) if q else 2
+    low, high = row.get("q_sat_ci95_low_mol_per_kg"), row.get("q_sat_ci95_high_mol_per_kg")
+    if _finite(low) and _finite(high):
+        return f"{q:.{places}f} [{low:.{places}f}, {high:.{places}f}]"
+    return f"{q:.{places}f} [{MISSING}]"
+
+
+def _area(value) -> str:
+    # areas run from ~1 to ~7000 m2/g: whole numbers above 100 read best
+    return _number(value, ".0f" if _finite(value) and abs(value) >= 100 else ".3g")
+
+
+def _with_suffix(cell: str, suffix: str) -> str:
+    return cell if cell == MISSING else cell + suffix
+
+
+def _finite(value) -> bool:
+    return isinstance(value, (int, float)) and math.isfinite(value)
+
+
+def _number(value, fmt: str) -> str:
+    if value is None or (isinstance(value, float) and value != value):
+        return MISSING
+    if isinstance(value, float) and not math.isfinite(value):
         return str(value)
     return format(value, fmt)
+
+
+def _text(value) -> str:
+    return MISSING if value is None else str(value)
+
+
+def _terminal_width() -> int | None:
+    """Columns of the terminal standard output is, None when it is not one."""
+    import shutil
+
+    return shutil.get_terminal_size().columns if sys.stdout.isatty() else None
 
 
 def _fits_rows(fits_table, index, n_models: int):
@@ -252,6 +455,8 @@ def _fits_rows(fits_table, index, n_models: int):
 
 
 def _write_table(table, fmt: str, out: str | None) -> None:
+    import json
+
     import pyarrow as pa
     import pyarrow.csv as pcsv
     import pyarrow.parquet as pq
@@ -279,6 +484,19 @@ def _emit_text(text: str, out: str | None) -> None:
         Path(out).write_text(text)
     else:
         sys.stdout.write(text)
+
+
+def _emit_bytes(data: bytes, out: str | None) -> None:
+    if out:
+        Path(out).write_bytes(data)
+        return
+    buffer = getattr(sys.stdout, "buffer", None)
+    if buffer is None:  # a text-only stream, e.g. contextlib.redirect_stdout(io.StringIO())
+        sys.stdout.write(data.decode())
+        return
+    sys.stdout.flush()
+    buffer.write(data)
+    buffer.flush()
 
 
 def _is_nested(arrow_type) -> bool:
