@@ -7,7 +7,11 @@ import re
 import sys
 from pathlib import Path
 
+from sorbrank.service.commands.fit import add_intake_options, intake_options
+
 KINDS = ("isotherm", "langmuir-linear", "bet")
+# temperatures as typed (298) name the isotherm recorded at 298.15 K
+TEMPERATURE_TOLERANCE_K = 0.5
 
 DESCRIPTION = """\
 Fit one isotherm of an input file with the default options of 'sorbrank fit'
@@ -25,16 +29,25 @@ Kinds of plot:
                    chosen for the BET area shaded, and the fitted BET line.
                    Needs a saturation pressure p0 for the isotherm.
 
+Choose the isotherm by --sorbent, --adsorbate and --temperature-k (within
+0.5 K; --branch where adsorption and desorption were both measured), giving
+as many of them as it takes to name one isotherm, or by --isotherm and its
+isotherm_id. When nothing or several isotherms match, the message lists the
+ones that do exist. The input is read as 'sorbrank fit' reads it, with the
+same --units, --delimiter, --decimal, --gas ... options.
+
 Only the chosen isotherm is fitted; the model choice is made by the same
 engine and criteria as a full batch run."""
 
 EPILOG = """\
 examples:
-  sorbrank plot screen.csv --isotherm MOF-5_CO2_298K
-  sorbrank plot screen.csv --isotherm MOF-5_CO2_298K --log-pressure --out fit.png
-  sorbrank plot n2.json --isotherm S12_N2_77K --kind bet --format png --out -
+  sorbrank plot screen.csv --sorbent TG31-FRAM-0001 --adsorbate CO2 --temperature-k 298.15
+  sorbrank plot screen.csv --sorbent TG31-FRAM-0001 --adsorbate CO2 --temperature-k 298 --log-pressure --out fit.png
+  sorbrank plot n2.csv --sorbent TG31-FRAM-0001 --adsorbate N2 --kind bet --format png --out -
+  sorbrank plot screen.csv --isotherm 'TG31-FRAM-0001|CO2|298.15|adsorption'
 
-exit status: 0 plot written, 2 unreadable input or isotherm not plottable."""
+exit status: 0 plot written, 2 unreadable input, no single matching isotherm,
+or isotherm not plottable."""
 
 
 def register(subparsers) -> None:
@@ -47,8 +60,17 @@ def register(subparsers) -> None:
     )
     parser.add_argument("input", metavar="INPUT",
                         help="batch file (CSV, JSON or Parquet, as accepted by 'sorbrank fit')")
-    parser.add_argument("--isotherm", required=True, metavar="ID",
-                        help="isotherm_id of the isotherm to draw")
+    parser.add_argument("--sorbent", metavar="ID", default=None,
+                        help="sorbent_id of the isotherm to draw")
+    parser.add_argument("--adsorbate", metavar="GAS", default=None,
+                        help="its adsorbate (formula or name, e.g. CO2, ethylene)")
+    parser.add_argument("--temperature-k", metavar="T", type=float, default=None,
+                        help=f"its temperature in K (matched within {TEMPERATURE_TOLERANCE_K} K)")
+    parser.add_argument("--branch", choices=("adsorption", "desorption"), default=None,
+                        help="its branch, where both were measured")
+    parser.add_argument("--isotherm", metavar="ID", default=None,
+                        help="or: the isotherm_id of the isotherm to draw")
+    add_intake_options(parser)
     parser.add_argument("--kind", choices=KINDS, default="isotherm",
                         help="which plot (default: isotherm)")
     parser.add_argument("--log-pressure", action="store_true",
@@ -69,6 +91,17 @@ def run(args: argparse.Namespace) -> int:
     from sorbrank.worker.isotherm import IntakeError
     from sorbrank.worker.pipeline import FitOptions, process_batch
 
+    by_identity = (args.sorbent, args.adsorbate, args.temperature_k, args.branch)
+    if args.isotherm is None and all(v is None for v in by_identity):
+        return _fail("name the isotherm: --sorbent ID --adsorbate GAS --temperature-k T "
+                     "(or --isotherm ID)")
+    if args.isotherm is not None and any(v is not None for v in by_identity):
+        return _fail("--isotherm names the isotherm alone; leave out --sorbent, --adsorbate, "
+                     "--temperature-k and --branch")
+    try:
+        reading = intake_options(args)
+    except ValueError as exc:
+        return _fail(str(exc))
     fmt = _choose_format(args.fmt, args.out)
     if args.log_pressure and args.kind != "isotherm":
         print("sorbrank plot: --log-pressure applies to the isotherm kind only; ignored",
@@ -79,15 +112,21 @@ def run(args: argparse.Namespace) -> int:
     limits = Limits.for_local_files()
     try:
         # a Path, not a str: read_batch takes a str as the file's content
-        batch = read_batch(path, limits=limits)
+        batch = read_batch(path, **reading, limits=limits)
     except IntakeError as exc:
         return _fail(f"cannot read {args.input}:\n  " + "\n  ".join(str(i) for i in exc.issues))
 
-    iso = next((i for i in batch.isotherms if i.isotherm_id == args.isotherm), None)
-    if iso is None:
-        return _fail(_not_found_message(batch, args.isotherm))
+    if args.isotherm is not None:
+        iso = next((i for i in batch.isotherms if i.isotherm_id == args.isotherm), None)
+        if iso is None:
+            return _fail(_not_found_message(batch, args.isotherm))
+    else:
+        iso, problem = find_isotherm(batch, args.sorbent, args.adsorbate, args.temperature_k,
+                                     args.branch)
+        if iso is None:
+            return _fail(problem)
     if args.kind == "bet" and iso.relative_pressure is None:
-        return _fail(f"isotherm {args.isotherm!r} has no saturation pressure: "
+        return _fail(f"isotherm {iso.isotherm_id!r} has no saturation pressure: "
                      "a BET plot needs p/p0")
 
     # fits are per isotherm, so fitting the chosen one alone gives the same record
@@ -96,7 +135,7 @@ def run(args: argparse.Namespace) -> int:
     record = next((r for r in result.isotherm_records()
                    if r.get("isotherm_id") == iso.isotherm_id), None)
     if record is None:
-        return _fail(f"isotherm {args.isotherm!r} produced no result record")
+        return _fail(f"isotherm {iso.isotherm_id!r} produced no result record")
 
     if args.kind == "isotherm":
         image = plots.isotherm_plot(iso.pressure_pa, iso.loading_mol_per_kg, record,
@@ -125,6 +164,57 @@ def _choose_format(fmt: str | None, out: str | None) -> str:
         return fmt
     suffix = Path(out).suffix.lower().lstrip(".") if out and out != "-" else ""
     return suffix if suffix in ("svg", "png") else "svg"
+
+
+def find_isotherm(batch, sorbent_id: str | None, adsorbate: str | None,
+                  temperature_k: float | None, branch: str | None):
+    """(the one isotherm of ``batch`` matching every given criterion, None) or
+    (None, a message listing what exists) when none or several match."""
+    from sorbrank.worker import adsorbates
+
+    wanted = None
+    if adsorbate is not None:
+        known = adsorbates.lookup(adsorbate)
+        wanted = {adsorbate.strip().casefold()} | ({known.id.casefold()} if known else set())
+
+    def matches(iso) -> bool:
+        return ((sorbent_id is None or iso.sorbent_id == sorbent_id)
+                and (wanted is None or iso.adsorbate.casefold() in wanted)
+                and (temperature_k is None
+                     or abs(iso.temperature_k - temperature_k) <= TEMPERATURE_TOLERANCE_K)
+                and (branch is None or iso.branch == branch))
+
+    found = [iso for iso in batch.isotherms if matches(iso)]
+    if len(found) == 1:
+        return found[0], None
+    asked = ", ".join(part for part in (
+        f"sorbent {sorbent_id}" if sorbent_id is not None else "",
+        f"adsorbate {adsorbate}" if adsorbate is not None else "",
+        f"{temperature_k:g} K (±{TEMPERATURE_TOLERANCE_K:g} K)" if temperature_k is not None else "",
+        f"branch {branch}" if branch is not None else "") if part)
+    if found:
+        return None, (f"{len(found)} isotherms match {asked}; add --sorbent, --adsorbate, "
+                      f"--temperature-k or --branch to choose one:\n  " + _listing(found))
+    # what exists for the sorbent (or the whole input), so the next try can succeed
+    near = [iso for iso in batch.isotherms if sorbent_id is None or iso.sorbent_id == sorbent_id]
+    where = f"for sorbent {sorbent_id}" if sorbent_id is not None and near else "in the input"
+    message = f"no isotherm matches {asked}; isotherms {where}:\n  " + \
+        _listing(near or batch.isotherms)
+    rejected = batch.rejected_isotherms
+    if rejected:
+        shown = ", ".join(str(r) for r in rejected[:10]) + (", ..." if len(rejected) > 10 else "")
+        message += (f"\n{len(rejected)} isotherm(s) were rejected at intake ('sorbrank fit' "
+                    f"says why): {shown}")
+    return None, message
+
+
+def _listing(isotherms, limit: int = 20) -> str:
+    """One line per isotherm: sorbent, gas, temperature, branch (the first ``limit``)."""
+    lines = [f"{iso.sorbent_id}  {iso.adsorbate}  {iso.temperature_k:g} K  {iso.branch}"
+             for iso in isotherms[:limit]]
+    if len(isotherms) > limit:
+        lines.append(f"... ({len(isotherms)} in all)")
+    return "\n  ".join(lines) or "none"
 
 
 def _not_found_message(batch, isotherm_id: str) -> str:
