@@ -264,17 +264,6 @@ class SubmittedBatch:
 
 def batch_body(data) -> tuple[bytes, str]:
     """(body, media type) to POST for ``data``: DataFrame/Table, path or bytes."""
-    pd = sys.modules.get("pandas")
-    if pd is not None and isinstance(data, pd.DataFrame):
-        from sorbrank.study import dataframe_to_table
-
-        data = dataframe_to_table(data)
-    if type(data).__module__.startswith("pyarrow") and type(data).__name__ == "Table":
-        import pyarrow.parquet as pq
-
-        sink = io.BytesIO()
-        pq.write_table(data, sink)
-        return sink.getvalue(), PARQUET_MEDIA
     if isinstance(data, (bytes, bytearray, memoryview)):
         body = bytes(data)
         if body.startswith(b"PAR1"):
@@ -286,8 +275,19 @@ def batch_body(data) -> tuple[bytes, str]:
         if media is None:
             raise ValueError(f"{path}: unknown batch file type (use .csv, .json or .parquet)")
         return path.read_bytes(), media
-    raise TypeError("a batch is a pandas DataFrame, a pyarrow Table, a path or bytes; "
-                    f"got {type(data).__name__}")
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from sorbrank.study import dataframe_to_table, is_dataframe
+
+    if is_dataframe(data):
+        data = dataframe_to_table(data)
+    if not isinstance(data, pa.Table):
+        raise TypeError("a batch is a pandas DataFrame, a pyarrow Table, a path or bytes; "
+                        f"got {type(data).__name__}")
+    sink = io.BytesIO()
+    pq.write_table(data, sink)
+    return sink.getvalue(), PARQUET_MEDIA
 
 
 def units_text(units) -> str | None:

@@ -98,7 +98,7 @@ def _read_one(data, units, sample_mass_g, gases, batch_label):
 
     from sorbrank.worker.intake import Limits, read_batch
 
-    if _is_dataframe(data):
+    if is_dataframe(data):
         source = dataframe_to_table(data)
     elif isinstance(data, pa.Table):
         source = data
@@ -124,7 +124,8 @@ def _existing_path(value) -> Path:
     raise FileNotFoundError(f"no such file: {value}")
 
 
-def _is_dataframe(value) -> bool:
+def is_dataframe(value) -> bool:
+    """Whether ``value`` is a pandas DataFrame (pandas is not imported to find out)."""
     # pandas cannot have made a DataFrame unless it is imported: no import here
     pd = sys.modules.get("pandas")
     return pd is not None and isinstance(value, pd.DataFrame)
@@ -356,4 +357,4 @@ def _isotherm_name(iso) -> str:
 
 
 
-__all__ = ["Results", "dataframe_to_table", "fit", "read_data"]
+__all__ = ["Results", "dataframe_to_table", "fit", "is_dataframe", "read_data"]

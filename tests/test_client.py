@@ -120,6 +120,13 @@ def test_a_missing_token_is_an_api_error_not_a_crash(server):
     assert info.value.status == 401
 
 
+def test_what_is_not_a_batch_is_refused_before_sending(client, tmp_path):
+    with pytest.raises(TypeError, match="DataFrame, a pyarrow Table, a path or bytes"):
+        client.submit(42)
+    with pytest.raises(ValueError, match="unknown batch file type"):
+        client.submit(tmp_path / "notes.txt")
+
+
 def refused_url() -> str:
     return f"http://{LOOPBACK}:{free_port()}"  # a port nothing listens on
 
