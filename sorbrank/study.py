@@ -23,6 +23,7 @@ TABLES = ("summary", "fits", "sorbents")
 HTML_COLUMNS = ("sorbent_id", "adsorbate", "temperature_k", "best_model", "q_sat_mol_per_kg",
                 "henry_mol_per_kg_pa", "working_capacity_mol_per_kg", "flags")
 HTML_ROWS = 10
+HTML_ISSUES = 3
 # temperatures of one isotherm as typed by people: 298 and 298.15 name the same one
 TEMPERATURE_MATCH_K = 0.5
 
@@ -347,6 +348,11 @@ class Results:
         if summary.num_rows > HTML_ROWS:
             lines.append(f"<p>... {summary.num_rows - HTML_ROWS} more row(s); "
                          f".summary holds all {summary.num_columns} columns</p>")
+        rejected = self._result.batch.rejected
+        if rejected:
+            shown = "".join(f"<li>{esc(issue.message)}</li>" for issue in rejected[:HTML_ISSUES])
+            lines.append(f"<p>Rejected (first {min(len(rejected), HTML_ISSUES)} of "
+                         f"{len(rejected)}; all in .rejected):</p><ul>{shown}</ul>")
         lines.append("</div>")
         return "\n".join(lines)
 

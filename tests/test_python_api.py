@@ -257,6 +257,13 @@ def test_html_view_is_compact_and_escaped():
     assert "TG31-&lt;b&gt;&quot;x&quot;&amp;y" in page and '<b>"x"' not in page
     assert "298.15" in page and "q_sat_mol_per_kg" in page
     assert repr(results).startswith("<sorbrank.Results batch ")
+    assert "Rejected" not in page
+    # rejections are counted and the first few shown, escaped
+    typo = frame(truth[-1:]).astype({"loading_mmol_per_g": object})
+    typo.loc[3, "loading_mmol_per_g"] = "<i>n/a</i>"
+    page = sorbrank.fit(typo)._repr_html_()
+    assert "0 isotherm(s)" in page and "Rejected (first 1 of 1" in page
+    assert "&lt;i&gt;n/a&lt;/i&gt;" in page and "<i>n/a" not in page
 
 
 def run_python(code: str) -> subprocess.CompletedProcess:
