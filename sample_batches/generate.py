@@ -340,6 +340,17 @@ PRESSURE_PA_PER_UNIT = {"Pa": 1.0, "kPa": 1e3, "MPa": 1e6, "bar": 1e5, "mbar": 1
                         "atm": constants.atm, "psi": constants.psi}
 
 
+# input column tokens (docs/formats.md), written out here so that the generator
+# runs without the package installed
+COLUMN_TOKEN = {"Pa": "pa", "kPa": "kpa", "bar": "bar", "mbar": "mbar", "psi": "psi",
+                "relative": "relative", "mol/kg": "mol_per_kg", "mmol/g": "mmol_per_g",
+                "mg/g": "mg_per_g", "cm3(STP)/g": "cm3stp_per_g"}
+
+
+def unit_column(quantity, unit):
+    return f"{quantity}_{COLUMN_TOKEN[unit]}"
+
+
 def pressure_in(unit, pressure_pa):
     return np.asarray(pressure_pa) / PRESSURE_PA_PER_UNIT[unit]
 
@@ -372,46 +383,52 @@ def long_rows(records, p_unit, q_unit):
             yield rec, p_i, q_i
 
 
-def write_csv(path, records, p_unit, q_unit, label, per_row_units=False, extra=()):
+def write_csv(path, records, p_unit, q_unit, label, units_in_header=False, delimiter=",",
+              decimal_comma=False, extra=()):
+    """Units in the column names (pressure_kpa), or plain columns with a
+    ``# units:`` header line; ``extra`` columns are copied from the records."""
     buf = io.StringIO()
-    if not per_row_units:
-        buf.write(f"# pressure_unit: {p_unit}\n# loading_unit: {q_unit}\n")
+    if units_in_header:
+        buf.write(f"# units: pressure:{p_unit},loading:{q_unit}\n")
+        quantities = ["pressure", "loading"]
+    else:
+        quantities = [unit_column("pressure", p_unit), unit_column("loading", q_unit)]
     buf.write(f"# batch_label: {label}\n")
-    columns = ["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "branch",
-               "pressure", "loading"] + (["pressure_unit", "loading_unit"] if per_row_units else []) \
+    columns = ["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "branch"] + quantities \
         + list(extra)
-    writer = csv.writer(buf, lineterminator="\n")
+    writer = csv.writer(buf, delimiter=delimiter, lineterminator="\n")
     writer.writerow(columns)
+
+    def number(value):
+        return fmt(value).replace(".", ",") if decimal_comma else fmt(value)
+
     for rec, p_i, q_i in long_rows(records, p_unit, q_unit):
-        row = [rec["isotherm_id"], rec["sorbent_id"], rec["adsorbate"], fmt(rec["temperature_k"]),
-               "adsorption", fmt(p_i), fmt(q_i)]
-        if per_row_units:
-            row += [p_unit, q_unit]
+        row = [rec["isotherm_id"], rec["sorbent_id"], rec["adsorbate"], number(rec["temperature_k"]),
+               "adsorption", number(p_i), number(q_i)]
         row += [rec[c] for c in extra]
         writer.writerow(row)
     path.write_text(buf.getvalue(), encoding="utf-8")
 
 
-def write_parquet(path, records, p_unit, q_unit, label, units_in_metadata=True, with_sigma=False):
-    cols = {k: [] for k in ("isotherm_id", "sorbent_id", "adsorbate", "temperature_k",
-                            "pressure", "loading")}
+def write_parquet(path, records, p_unit, q_unit, label, units_in_metadata=False, with_sigma=False):
+    """Units in the column names, or plain columns with ``units`` in the key-value metadata."""
+    p_col, q_col = ("pressure", "loading") if units_in_metadata else \
+        (unit_column("pressure", p_unit), unit_column("loading", q_unit))
+    cols = {k: [] for k in ("isotherm_id", "sorbent_id", "adsorbate", "temperature_k", p_col, q_col)}
     if with_sigma:
-        cols["sigma"] = []
+        cols["loading_sigma"] = []
     for rec, p_i, q_i in long_rows(records, p_unit, q_unit):
         for key in ("isotherm_id", "sorbent_id", "adsorbate"):
             cols[key].append(rec[key])
         cols["temperature_k"].append(rec["temperature_k"])
-        cols["pressure"].append(float(fmt(p_i)))
-        cols["loading"].append(float(fmt(q_i)))
+        cols[p_col].append(float(fmt(p_i)))
+        cols[q_col].append(float(fmt(q_i)))
         if with_sigma:
             # the rig's own uncertainty estimate, same unit as loading
-            cols["sigma"].append(float(fmt(NOISE_REL * abs(q_i) + NOISE_ABS_MOL_PER_KG)))
+            cols["loading_sigma"].append(float(fmt(NOISE_REL * abs(q_i) + NOISE_ABS_MOL_PER_KG)))
     metadata = {"batch_label": label}
     if units_in_metadata:
-        metadata.update(pressure_unit=p_unit, loading_unit=q_unit)
-    else:
-        n = len(cols["pressure"])
-        cols["pressure_unit"], cols["loading_unit"] = [p_unit] * n, [q_unit] * n
+        metadata["units"] = f"pressure:{p_unit},loading:{q_unit}"
     table = pa.table(cols).replace_schema_metadata(metadata)
     pq.write_table(table, path, compression="zstd")
 
@@ -429,16 +446,18 @@ def json_text(document):
 
 
 def json_isotherm(rec, p_unit=None, q_unit=None, defaults=("bar", "cm3(STP)/g")):
+    """Plain pressure/loading keys in the document's units; keys carrying their unit
+    (pressure_relative, loading_cm3stp_per_g) where this isotherm's units differ."""
     p_unit = p_unit or defaults[0]
     q_unit = q_unit or defaults[1]
     p = rec["relative_pressure"] if p_unit == "relative" else pressure_in(p_unit, rec["pressure_pa"])
-    item = {"isotherm_id": rec["isotherm_id"], "sorbent_id": rec["sorbent_id"],
+    same = (p_unit, q_unit) == tuple(defaults)
+    p_key, q_key = ("pressure", "loading") if same else \
+        (unit_column("pressure", p_unit), unit_column("loading", q_unit))
+    return {"isotherm_id": rec["isotherm_id"], "sorbent_id": rec["sorbent_id"],
             "adsorbate": rec["adsorbate"], "temperature_k": rec["temperature_k"],
-            "pressure": rounded(p),
-            "loading": rounded(loading_in(q_unit, rec["adsorbate"], rec["loading_mol_per_kg"]))}
-    if (p_unit, q_unit) != tuple(defaults):
-        item["pressure_unit"], item["loading_unit"] = p_unit, q_unit
-    return item
+            p_key: rounded(p),
+            q_key: rounded(loading_in(q_unit, rec["adsorbate"], rec["loading_mol_per_kg"]))}
 
 
 # ---------------------------------------------------------------- bad data
@@ -524,25 +543,28 @@ def write_resend_json(path, records, label):
         p_unit, q_unit = rec.get("p_unit", "kPa"), rec.get("q_unit", "mmol/g")
         # unsupported units still carry plausible numbers: inHg really
         # converted, "mmol/cm3" holding mmol/g values as a confused rig would
-        item = json_isotherm(rec, "kPa" if p_unit == "inHg" else p_unit,
-                             "mmol/g" if q_unit == "mmol/cm3" else q_unit, defaults=("kPa", "mmol/g"))
+        unsupported = p_unit == "inHg" or q_unit == "mmol/cm3"
+        item = json_isotherm(rec, "kPa" if unsupported else p_unit,
+                             "mmol/g" if unsupported else q_unit, defaults=("kPa", "mmol/g"))
         if p_unit == "inHg":
             item["pressure"] = rounded(rec["pressure_pa"] / INHG_PA)
-        if (p_unit, q_unit) != ("kPa", "mmol/g"):
-            item["pressure_unit"], item["loading_unit"] = p_unit, q_unit
+        if unsupported:  # an isotherm's own units declaration, naming a unit not in the tables
+            item["units"] = {"pressure": p_unit, "loading": q_unit}
         if "non_numeric_index" in rec:
             item["loading"][rec["non_numeric_index"]] = "n/a"
         isotherms.append(item)
-    document = {"batch_label": label, "defaults": {"pressure_unit": "kPa", "loading_unit": "mmol/g"},
+    document = {"batch_label": label, "units": {"pressure": "kPa", "loading": "mmol/g"},
                 "isotherms": isotherms}
     path.write_text(json_text(document), encoding="utf-8")
 
 
 def write_resend_csv(path, records, label):
+    """Tab-delimited, as a spreadsheet exports it; units in the column names."""
     buf = io.StringIO()
-    buf.write(f"# pressure_unit: kPa\n# loading_unit: mmol/g\n# batch_label: {label}\n")
-    writer = csv.writer(buf, lineterminator="\n")
-    writer.writerow(["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "pressure", "loading"])
+    buf.write(f"# batch_label: {label}\n")
+    writer = csv.writer(buf, delimiter="\t", lineterminator="\n")
+    writer.writerow(["isotherm_id", "sorbent_id", "adsorbate", "temperature_k", "pressure_kpa",
+                     "loading_mmol_per_g"])
     for rec in records:
         loadings = [fmt(q) for q in rec["loading_mol_per_kg"]]
         if "non_numeric_index" in rec:
@@ -564,8 +586,8 @@ MIXTURES = [
     {"name": "nitrogen-rejection", "components": ["CH4", "N2"], "mole_fractions": [0.3, 0.7],
      "total_pressure_pa": 1e6, "temperature_k": 298.15},
 ]
-CONDITIONS = {"pressure_unit": "bar", "adsorption_pressure": 1.0, "desorption_pressure": 0.1,
-              "reference_pressures": [0.15, 1.0], "adsorption_temperature_k": 298.15,
+CONDITIONS = {"adsorption_pressure_bar": 1.0, "desorption_pressure_bar": 0.1,
+              "reference_pressures_bar": [0.15, 1.0], "adsorption_temperature_k": 298.15,
               "desorption_temperature_k": 323.15}
 
 
@@ -704,24 +726,26 @@ def generate(out_dir: Path, seed: int = DEFAULT_SEED) -> dict:
     batches = {
         "b01": gas_records({"FRAM"}), "b02": gas_records({"ZEOL"}), "b03": gas_records({"CARB"}),
         "b04": gas_records({"POLY"}, range(1, 31)), "b05": gas_records({"POLY"}, range(31, 61)),
-        "b06": [dict(rec, sorbent_id=m, saturation_pressure=fmt(N2_77K_P0_PA))
+        "b06": [dict(rec, sorbent_id=m, saturation_pressure_pa=fmt(N2_77K_P0_PA))
                 for m, e in sorbents.items() for rec in e["isotherms"] if "relative_pressure" in rec],
     }
     write_csv(out_dir / FILES["b01"], batches["b01"], "kPa", "mmol/g", f"{label}-b01")
-    document = {"batch_label": f"{label}-b02", "defaults": {"pressure_unit": "bar", "loading_unit": "cm3(STP)/g"},
+    document = {"batch_label": f"{label}-b02", "units": {"pressure": "bar", "loading": "cm3(STP)/g"},
                 "conditions": CONDITIONS,
                 "mixtures": [{"components": m["components"], "mole_fractions": m["mole_fractions"],
-                              "total_pressure": m["total_pressure_pa"] / 1e5, "pressure_unit": "bar",
+                              "total_pressure_bar": m["total_pressure_pa"] / 1e5,
                               "temperature_k": m["temperature_k"]} for m in MIXTURES],
                 "isotherms": [json_isotherm(rec) for rec in batches["b02"]]}
     (out_dir / FILES["b02"]).write_text(json_text(document), encoding="utf-8")
     write_parquet(out_dir / FILES["b03"], batches["b03"], "Pa", "mol/kg", f"{label}-b03", with_sigma=True)
-    write_csv(out_dir / FILES["b04"], batches["b04"], "mbar", "mg/g", f"{label}-b04", per_row_units=True)
+    # as a spreadsheet in a decimal-comma locale exports it
+    write_csv(out_dir / FILES["b04"], batches["b04"], "mbar", "mg/g", f"{label}-b04", delimiter=";",
+              decimal_comma=True)
     write_parquet(out_dir / FILES["b05"], batches["b05"], "psi", "mmol/g", f"{label}-b05",
-                  units_in_metadata=False)
-    # saturation_pressure is in Pa: with relative pressures there is no other unit to borrow
+                  units_in_metadata=True)
+    # with relative pressures the saturation pressure's column names its own unit
     write_csv(out_dir / FILES["b06"], batches["b06"], "relative", "cm3(STP)/g", f"{label}-b06",
-              extra=("saturation_pressure",))
+              units_in_header=True, extra=("saturation_pressure_pa",))
     json_recs, csv_recs, bad = resend_records(sorbents, seed)
     write_resend_json(out_dir / FILES["b07"], json_recs, f"{label}-b07")
     write_resend_csv(out_dir / FILES["b08"], csv_recs, f"{label}-b08")

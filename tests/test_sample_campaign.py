@@ -64,6 +64,26 @@ def regenerated(tmp_path_factory, truth):
     return out
 
 
+# input column-name tokens (docs/formats.md), typed here independently of the product
+TOKEN_UNIT = {"pa": "Pa", "kpa": "kPa", "bar": "bar", "mbar": "mbar", "psi": "psi",
+              "relative": "relative", "mol_per_kg": "mol/kg", "mmol_per_g": "mmol/g",
+              "mg_per_g": "mg/g", "cm3stp_per_g": "cm3(STP)/g"}
+
+
+def quantity_column(names, quantity, declared):
+    """(column name, unit) of ``quantity`` among ``names``: a unit-suffixed name, else the
+    plain one with the declared unit."""
+    for name in names:
+        if name.startswith(quantity + "_") and name[len(quantity) + 1:] in TOKEN_UNIT:
+            return name, TOKEN_UNIT[name[len(quantity) + 1:]]
+    assert quantity in names, names
+    return quantity, declared[quantity]
+
+
+def declaration(text):
+    return dict(item.split(":", 1) for item in text.split(","))
+
+
 def read_points(path: Path):
     """{isotherm_id: dict(adsorbate, temperature_k, p_unit, q_unit, pressure, loading)}
     from any of the three formats, good isotherms only parsed as floats."""
@@ -72,28 +92,39 @@ def read_points(path: Path):
         doc = json.loads(path.read_text())
         for item in doc["isotherms"]:
             rec = out[item["isotherm_id"]]
+            declared = {**doc["units"], **item.get("units", {})}
+            p_key, p_unit = quantity_column(list(item), "pressure", declared)
+            q_key, q_unit = quantity_column(list(item), "loading", declared)
             rec.update(sorbent_id=item["sorbent_id"], adsorbate=item["adsorbate"],
-                       temperature_k=item["temperature_k"],
-                       p_unit=item.get("pressure_unit", doc["defaults"]["pressure_unit"]),
-                       q_unit=item.get("loading_unit", doc["defaults"]["loading_unit"]),
-                       pressure=item["pressure"], loading=item["loading"])
+                       temperature_k=item["temperature_k"], p_unit=p_unit, q_unit=q_unit,
+                       pressure=item[p_key], loading=item[q_key])
         return dict(out)
+    decimal_comma = False
     if path.suffix == ".parquet":
         table = pq.read_table(path)
         meta = {k.decode(): v.decode() for k, v in (table.schema.metadata or {}).items()}
-        rows = table.to_pylist()
+        rows, names = table.to_pylist(), table.column_names
     else:
         lines = path.read_text().splitlines()
         meta = dict(line[1:].strip().split(": ", 1) for line in lines if line.startswith("#"))
-        rows = list(csv.DictReader(line for line in lines if not line.startswith("#")))
+        body = [line for line in lines if not line.startswith("#")]
+        delimiter = max(",;\t", key=body[0].count)
+        decimal_comma = delimiter != ","
+        rows = list(csv.DictReader(body, delimiter=delimiter))
+        names = list(rows[0])
+    declared = declaration(meta["units"]) if "units" in meta else {}
+    p_key, p_unit = quantity_column(names, "pressure", declared)
+    q_key, q_unit = quantity_column(names, "loading", declared)
+
+    def number(value):
+        return value.replace(",", ".") if decimal_comma and isinstance(value, str) else value
+
     for row in rows:
         rec = out[row["isotherm_id"]]
         rec.update(sorbent_id=row["sorbent_id"], adsorbate=row["adsorbate"],
-                   temperature_k=float(row["temperature_k"]),
-                   p_unit=row.get("pressure_unit") or meta["pressure_unit"],
-                   q_unit=row.get("loading_unit") or meta["loading_unit"])
-        rec["pressure"].append(row["pressure"])
-        rec["loading"].append(row["loading"])
+                   temperature_k=float(number(row["temperature_k"])), p_unit=p_unit, q_unit=q_unit)
+        rec["pressure"].append(number(row[p_key]))
+        rec["loading"].append(number(row[q_key]))
     return dict(out)
 
 
