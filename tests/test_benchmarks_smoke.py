@@ -59,3 +59,10 @@ def test_bench_metrics_runs_with_its_baseline_side_by_side():
     for word in ("batches  :", "n=     60:", "n=    120:", "summarize", "sorbent rows",
                  "| HEAD:", "ratio", "growth   :"):
         assert word in out, out
+
+
+def test_bench_start_prints_the_ratio_and_the_json_shares():
+    out = run("bench_start.py", "--runs", "1", "--large-n", "12", "--workers", "1")
+    for word in ("machine  :", "vector extensions:", "bare   :", "fit    :", "ratio    :",
+                 "x the bare interpreter", "json module:", "orjson     :", "12 isotherms"):
+        assert word in out, out

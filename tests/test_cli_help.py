@@ -37,3 +37,24 @@ def test_models_command_lists_the_catalogue(capsys):
     assert args.func(args) == 0
     listed = [m["id"] for m in json.loads(capsys.readouterr().out)]
     assert listed == list(CATALOGUE)
+
+
+def test_fit_help_names_every_unit_intake_reads():
+    from sorbrank.worker.units import LOADING_UNITS, PRESSURE_UNITS
+
+    text = _help("fit")
+    for option in ("--units", "--pressure-unit", "--loading-unit", "--sample-mass-g",
+                   "--delimiter", "--decimal", "--gas"):
+        assert option in text
+    missing = [unit for unit in [*PRESSURE_UNITS, *LOADING_UNITS] if unit not in text]
+    assert not missing, f"'sorbrank fit --help' does not name {missing}"
+
+
+def test_a_command_loads_only_its_own_module():
+    probe = ("import sys\n"
+             "from sorbrank.service.cli import build_parser\n"
+             "build_parser(['models'])\n"
+             "print(sorted(m for m in sys.modules if m.startswith('sorbrank.service.commands.')))\n")
+    run = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=120)
+    assert run.returncode == 0, run.stderr
+    assert run.stdout.strip() == "['sorbrank.service.commands.models']"
