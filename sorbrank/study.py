@@ -49,8 +49,8 @@ def fit(data, *, units=None, models="all", criterion: str = "aicc", weighting: s
     objects of the JSON batch format and replace those of the input.
     ``gases`` declares gases the property table does not know (dicts with
     ``name``, ``molar_mass_g_per_mol`` and optionally
-    ``critical_temperature_k``). ``workers`` > 1 fits chunks in that many
-    processes (same results).
+    ``critical_temperature_k``). ``workers`` > 1 fits chunks of 2,000
+    isotherms (DEFAULT_CHUNK_SIZE) in that many processes (same results).
 
     Raises ValueError for a bad keyword value or an input that cannot be read
     as a whole (``sorbrank.worker.isotherm.IntakeError``); problems of single
