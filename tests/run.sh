@@ -10,6 +10,9 @@ if [ ! -x .venv/bin/python ]; then
 fi
 .venv/bin/python -m pip install -q --disable-pip-version-check --upgrade pip >/dev/null
 .venv/bin/python -m pip install -q --disable-pip-version-check -e '.[test]'
+# the build backend pyproject.toml names, in the venv itself: tests/test_packaging.py
+# builds the wheel with it, without build isolation (no download at test time)
+.venv/bin/python -m pip install -q --disable-pip-version-check 'setuptools>=77' wheel
 
 # System programs the integration tests start themselves (on free loopback
 # ports): redis-server; and Chromium + ChromeDriver for the page test. Installed from Debian's packages when missing.
