@@ -315,3 +315,14 @@ def test_a_dataframe_index_is_left_out():
     summary = sorbrank.fit(df).summary
     assert len(summary) == len(TRUTH)
     assert not any(c.startswith("__index_level") for c in summary.columns)
+
+
+def test_workers_split_a_large_batch_with_the_same_results():
+    rng = np.random.default_rng(31)
+    truth = [(f"TG31-{i:04d}", "CO2", 298.15, float(q), float(b))
+             for i, (q, b) in enumerate(zip(rng.uniform(1, 6, 2100), rng.uniform(0.01, 0.5, 2100)))]
+    df = frame(truth)
+    serial = sorbrank.fit(df, models=["langmuir"]).to_arrow()
+    parallel = sorbrank.fit(df, models=["langmuir"], workers=2).to_arrow()
+    assert serial.num_rows == 2100  # more than one 2,000-isotherm chunk
+    assert parallel.equals(serial)
