@@ -16,7 +16,9 @@ Idempotency-Key, so a batch is never submitted twice.
 Prints one line per file: batch id, file, isotherms accepted, isotherms
 rejected. With --wait, shows progress on stderr and prints the final state.
 Exit status: 0 every file was accepted as a batch (and, with --wait, finished
-done); isotherms rejected inside a batch do not change it; 1 otherwise."""
+done); isotherms rejected inside a batch do not change it; 1 otherwise,
+including when no service answers at the address (the message says how to
+start one)."""
 EPILOG = """\
 example:
   sorbrank submit run1.csv run2.parquet --wait     # columns pressure_kpa, loading_mmol_per_g
