@@ -108,7 +108,7 @@ def test_bad_rows_are_listed_with_row_and_field(client):
     batch = client.submit(df)
     assert batch.accepted == len(TRUTH) - 1
     issue = next(i for i in batch.rejected if i["code"] == "not_a_number")
-    assert issue["row"] == 15 and "loading" in issue["field"]
+    assert issue["row"] == 15 and issue["field"] == "loading_mmol_per_g"
     with pytest.raises(ApiError) as info:
         client.submit(plain(frame()))  # no units anywhere: nothing is acceptable
     assert info.value.status == 422

@@ -178,7 +178,7 @@ def test_bad_rows_reach_rejected_with_row_and_field_and_the_rest_is_fitted():
     assert len(issues) == 1
     issue = issues[0]
     assert issue["row"] == bad_row + 1  # 1-based table row, as for Parquet
-    assert "loading" in issue["field"]
+    assert issue["field"] == "loading_mmol_per_g"  # the column as named in the frame
     assert set(issue) == {"batch", "isotherm", "row", "field", "code", "message"}
     assert "TG31-0001" in issue["message"] or "TG31-0001" in str(issue["isotherm"])
 
