@@ -8,17 +8,23 @@ The version-1 store is made the way the version-1 code wrote it (commit
 metadata "1", manifests with ``chunks[].materials`` and
 ``mixtures[].material_id``. It is built from a store the current code wrote,
 so after the migration every table must equal that original row for row.
+Where the repository's history is at hand, a store written by the version-1
+code itself (run from that revision) is migrated and read as well.
 """
 from __future__ import annotations
 
 import json
 import shutil
+import subprocess
+import sys
 from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
+
+from conftest import ROOT, clean_env
 
 from sorbrank.service.cli import main
 from sorbrank.worker import jobs, store_migration
@@ -232,3 +238,85 @@ def test_an_unknown_version_stops_the_migration_before_any_write(stores, capsys)
 def test_no_store_at_the_path(tmp_path, capsys):
     code, _, err = migrate(tmp_path / "nothing-here", capsys)
     assert code == 2 and "no store at" in err
+
+
+# -- a store written by the version-1 code itself --------------------------------
+
+# the last revision whose code wrote schema version 1 (import names worker.*)
+VERSION_1_REVISION = "5fc6bc1"
+VERSION_1_WRITER = """
+import sys
+from worker import jobs
+from worker.intake import read_batch
+from worker.store import SCHEMA_VERSION, Store
+
+assert SCHEMA_VERSION == "1"
+store = Store(sys.argv[1])
+batch = read_batch(sys.stdin.buffer.read(), "csv", batch_label="old")
+assert not batch.rejected, batch.rejected
+manifest = jobs.accept_batch(store, batch, options={"models": ["langmuir", "sips"]}, chunk_size=4)
+for chunk in manifest["chunks"]:
+    jobs.run_chunk(store, manifest["batch_id"], chunk["index"])
+print(manifest["batch_id"])
+"""
+
+
+def version_1_code(target: Path) -> Path | None:
+    """The version-1 code's worker/ folder, from the repository's history."""
+    import io
+    import tarfile
+
+    if shutil.which("git") is None:
+        return None
+    done = subprocess.run(["git", "-C", str(ROOT), "archive", VERSION_1_REVISION, "worker"],
+                          capture_output=True, timeout=60)
+    if done.returncode != 0:  # e.g. a shallow clone without that revision
+        return None
+    with tarfile.open(fileobj=io.BytesIO(done.stdout)) as archive:
+        archive.extractall(target, filter="data")
+    return target
+
+
+def test_a_store_the_version_1_code_wrote_reads_after_the_migration(tmp_path, capsys):
+    code = version_1_code(tmp_path / "old-code")
+    if code is None:
+        pytest.skip(f"revision {VERSION_1_REVISION} is not in this clone's history")
+    rows = ["material_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    for batch in (campaign_batch("old", 1.0),):
+        for iso in batch.isotherms:
+            rows += [f"{iso.sorbent_id},{iso.adsorbate},{iso.temperature_k},{float(p)!r},"
+                     f"{float(q)!r},Pa,mol/kg"
+                     for p, q in zip(iso.pressure_pa, iso.loading_mol_per_kg)]
+    root = tmp_path / "store"
+    env = clean_env(PYTHONPATH=str(code))
+    done = subprocess.run([sys.executable, "-c", VERSION_1_WRITER, str(root)], cwd=code, env=env,
+                          input="\n".join(rows).encode() + b"\n", capture_output=True, timeout=300)
+    assert done.returncode == 0, done.stderr.decode()[-3000:]
+    batch_id = done.stdout.decode().split()[-1]
+    assert (root / "materials").is_dir() and not (root / "sorbents").exists()
+    with pytest.raises(StoreError, match="migrate-store"):
+        rankings(Store(root), RankingQuery())
+
+    code_, out, err = migrate(root, capsys)
+    assert code_ == 0, err
+    store = Store(root)
+    assert jobs.batch_status(store, batch_id)["state"] == "done"
+    page, total = rankings(store, RankingQuery(limit=100))
+    assert total == 12 and set(page["sorbent_id"].to_pylist()) == {"TG31-A", "TG31-B", "TG31-C"}
+    for table in TABLES:
+        assert store.batch_table(table, batch_id).num_rows > 0, table
+    isotherms = table_to_isotherms(store.read_chunk("inputs", batch_id, 0))
+    assert {i.sorbent_id for i in isotherms} <= {"TG31-A", "TG31-B", "TG31-C"}
+    # the same data through the current code: the same isotherms, models and capacities
+    current = Store(tmp_path / "now")
+    manifest = jobs.accept_batch(current, campaign_batch("old", 1.0), options=OPTIONS, chunk_size=4)
+    for chunk in manifest["chunks"]:
+        jobs.run_chunk(current, manifest["batch_id"], chunk["index"])
+    key = [(c, "ascending") for c in ("sorbent_id", "adsorbate", "temperature_k")]
+    a = store.batch_table("summaries", batch_id).sort_by(key)
+    b = current.batch_table("summaries", manifest["batch_id"]).sort_by(key)
+    assert a.num_rows == b.num_rows == 12
+    for column in ("sorbent_id", "adsorbate", "temperature_k", "best_model"):
+        assert a[column].to_pylist() == b[column].to_pylist(), column
+    np.testing.assert_allclose(a["q_sat_mol_per_kg"].to_numpy(zero_copy_only=False),
+                               b["q_sat_mol_per_kg"].to_numpy(zero_copy_only=False), rtol=1e-6)
