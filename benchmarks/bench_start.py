@@ -34,6 +34,8 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 BARE_IMPORTS = "import numpy, scipy.optimize, pyarrow"
+# pyarrow imports pandas, where installed, when it builds its first array
+FIRST_ARRAY = BARE_IMPORTS + "; pyarrow.array([0])"
 TARGET_RATIO = 2.5
 # vector extensions worth naming, widest last (numpy's own feature names)
 VECTOR_FEATURES = ("SSE42", "AVX", "FMA3", "AVX2", "AVX512F", "AVX512_SKX", "AVX512_ICL")
@@ -90,17 +92,27 @@ def timed_run(argv: list[str]) -> float:
 def bench_start(work: Path, runs: int) -> None:
     small = work / "six_points.csv"
     small.write_text(SIX_POINTS)
-    bare = [sys.executable, "-c", BARE_IMPORTS]
-    fit = [*sorbrank_command(), "fit", str(small)]
-    timed_run(bare), timed_run(fit)  # warm the file cache; not counted
-    times: dict[str, list[float]] = {"bare": [], "fit": []}
-    for _ in range(runs):  # interleaved, so drift in machine load hits both
-        times["bare"].append(timed_run(bare))
-        times["fit"].append(timed_run(fit))
+    commands = {"bare": [sys.executable, "-c", BARE_IMPORTS],
+                "array": [sys.executable, "-c", FIRST_ARRAY],
+                "fit": [*sorbrank_command(), "fit", str(small)]}
+    for argv in commands.values():
+        timed_run(argv)  # warm the file cache; not counted
+    times: dict[str, list[float]] = {name: [] for name in commands}
+    for _ in range(runs):  # interleaved, so drift in machine load hits all
+        for name, argv in commands.items():
+            times[name].append(timed_run(argv))
     bare_s, fit_s = statistics.median(times["bare"]), statistics.median(times["fit"])
+    array_s = statistics.median(times["array"])
+    try:
+        import importlib.util
+        pandas = "installed" if importlib.util.find_spec("pandas") else "not installed"
+    except ValueError:
+        pandas = "unknown"
     print(f"start    : medians of {runs} interleaved runs")
     print(f"  bare   : {bare_s:.3f} s  python -c \"{BARE_IMPORTS}\"  "
           f"(min {min(times['bare']):.3f}, max {max(times['bare']):.3f})")
+    print(f"  array  : {array_s:.3f} s  the same and pyarrow's first array (pandas {pandas}: "
+          f"pyarrow imports it then): +{array_s - bare_s:.3f} s")
     print(f"  fit    : {fit_s:.3f} s  sorbrank fit six_points.csv (table)  "
           f"(min {min(times['fit']):.3f}, max {max(times['fit']):.3f})")
     verdict = "within" if fit_s / bare_s <= TARGET_RATIO else "ABOVE"

@@ -476,3 +476,14 @@ def test_fit_imports_no_service_plotting_or_property_library(tmp_path):
     run = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=300)
     assert run.returncode == 0, run.stderr
     assert run.stdout.splitlines()[-1] == "LOADED 0 []", run.stdout
+
+    # the command line itself, as python -X importtime lists what it imported
+    run = subprocess.run([sys.executable, "-X", "importtime", "-m", "sorbrank.service.cli", "fit",
+                          str(path)], capture_output=True, text=True, timeout=300)
+    assert run.returncode == 0, run.stderr
+    imported = {line.rsplit("|", 1)[1].strip() for line in run.stderr.splitlines()
+                if line.startswith("import time:") and "|" in line}
+    assert "sorbrank.worker.engine" in imported  # the listing is what it claims to be
+    roots = {name.split(".")[0] for name in imported}
+    assert not roots & {"flask", "celery", "matplotlib", "CoolProp", "redis", "gunicorn"}
+    assert "scipy.stats" not in imported
