@@ -49,8 +49,9 @@ def test_csv_is_normalised_to_canonical_units_and_sorted():
     assert (iso.sorbent_id, iso.adsorbate, iso.temperature_k, iso.branch) == ("m1", "CO2", 298.15, "adsorption")
     assert iso.batch_label == "b1"
     assert iso.isotherm_id.startswith("m1|CO2|298.15K|adsorption|")
-    # CO2 at 298.15 K is below its critical temperature: p0 from CoolProp
-    assert iso.saturation_pressure_pa == pytest.approx(PropsSI("P", "T", 298.15, "Q", 0, "CO2"), rel=1e-12)
+    # CO2 at 298.15 K is below its critical temperature: p0 from the shipped table, which
+    # reproduces CoolProp to 1e-7 in p0 (worker/saturation_table.py)
+    assert iso.saturation_pressure_pa == pytest.approx(PropsSI("P", "T", 298.15, "Q", 0, "CO2"), rel=1e-6)
     assert iso.flags == []
     assert iso.original["rows"].tolist() == [1, 2, 3]
     assert iso.original["pressure"].tolist() == [100.0, 10.0, 50.0]
@@ -85,7 +86,8 @@ def test_relative_pressure_uses_computed_saturation_pressure():
     batch = read_batch(csv_of(*rows, units="# units: pressure:p/p0,loading:mmol/g\n"))
     (iso,) = batch.isotherms
     p0 = PropsSI("P", "T", 77.355, "Q", 0, "Nitrogen")  # CoolProp reference
-    np.testing.assert_allclose(iso.pressure_pa, np.array([0.05, 0.1, 0.2]) * p0, rtol=1e-12)
+    # the shipped saturation table reproduces CoolProp to 1e-7 in p0
+    np.testing.assert_allclose(iso.pressure_pa, np.array([0.05, 0.1, 0.2]) * p0, rtol=1e-6)
     np.testing.assert_allclose(iso.relative_pressure, [0.05, 0.1, 0.2], rtol=1e-12)
     assert iso.adsorbate == "N2"
 
@@ -561,3 +563,234 @@ def test_parquet_typed_columns_and_nulls():
     pq.write_table(table.replace_schema_metadata({"units": "pressure:kPa,loading:mmol/g"}), buf)
     issue = only_issue(read_batch(buf.getvalue()))
     assert (issue.code, issue.row, issue.field) == ("missing_value", 2, "pressure")
+
+
+# --- the units declaration, wherever it is given -------------------------------
+
+POINTS_BAR = ([0.1, 0.5, 1.0, 2.0], [20.0, 45.0, 60.0, 70.0])   # bar, cm3(STP)/g
+
+
+def _columns(p_col="pressure", q_col="loading"):
+    ps, qs = POINTS_BAR
+    return {"sorbent_id": ["m1"] * 4, "adsorbate": ["N2"] * 4, "temperature_k": [77.35] * 4,
+            p_col: ps, q_col: qs}
+
+
+def _same_isotherm_every_way():
+    """One isotherm, its units given in every place intake reads them."""
+    ps, qs = POINTS_BAR
+    plain = HEADER + "\n" + "\n".join(f"m1,N2,77.35,{p},{q}" for p, q in zip(ps, qs)) + "\n"
+    obj = {"sorbent_id": "m1", "adsorbate": "N2", "temperature_k": 77.35, "pressure": ps, "loading": qs}
+    declared = {"pressure": "bar", "loading": "cm3(STP)/g"}
+
+    def parquet(table):
+        buf = io.BytesIO()
+        pq.write_table(table, buf)
+        return buf.getvalue()
+
+    return {
+        "column names": read_batch(plain.replace("pressure,loading", "pressure_bar,loading_cm3stp_per_g")),
+        "csv header line": read_batch("# units: pressure:bar,loading:cm3(STP)/g\n" + plain),
+        "argument text": read_batch(plain, units="pressure:bar,loading:cm3(STP)/g"),
+        "argument mapping": read_batch(plain, units=declared),
+        "json top level": read_batch(json.dumps({"units": declared, "isotherms": [obj]})),
+        "json top level text": read_batch(json.dumps({"units": "pressure:bar,loading:cm3(STP)/g",
+                                                      "isotherms": [obj]})),
+        "json isotherm": read_batch(json.dumps({"isotherms": [dict(obj, units=declared)]})),
+        "json keys": read_batch(json.dumps({"isotherms": [
+            {**{k: v for k, v in obj.items() if k not in ("pressure", "loading")},
+             "pressure_bar": ps, "loading_cm3stp_per_g": qs}]})),
+        "parquet metadata": read_batch(parquet(pa.table(_columns()).replace_schema_metadata(
+            {"units": "pressure:bar,loading:cm3(STP)/g"}))),
+        "parquet columns": read_batch(parquet(pa.table(_columns("pressure_bar", "loading_cm3stp_per_g")))),
+        "table": read_batch(pa.table(_columns()), units=declared),
+        "table columns": read_batch(pa.table(_columns("Pressure_Bar", "loading_cm3stp_per_g"))),
+    }
+
+
+def test_units_declared_anywhere_give_identical_isotherms():
+    batches = _same_isotherm_every_way()
+    reference = batches["column names"].isotherms[0]
+    # 1 bar = 1e5 Pa (scipy.constants.bar); 1 cm3(STP) = 1 / 22413.97 mol (CODATA R)
+    np.testing.assert_allclose(reference.pressure_pa, np.array(POINTS_BAR[0]) * constants.bar, rtol=1e-15)
+    np.testing.assert_allclose(reference.loading_mol_per_kg,
+                               np.array(POINTS_BAR[1]) / MOLAR_VOLUME_STP_CM3_PER_MOL * 1000, rtol=1e-14)
+    for where, batch in batches.items():
+        assert batch.rejected == [], where
+        (iso,) = batch.isotherms
+        np.testing.assert_array_equal(iso.pressure_pa, reference.pressure_pa, err_msg=where)
+        np.testing.assert_array_equal(iso.loading_mol_per_kg, reference.loading_mol_per_kg, err_msg=where)
+        assert iso.saturation_pressure_pa == reference.saturation_pressure_pa, where
+        assert iso.original["units"] == {"pressure": "bar", "loading": "cm3(STP)/g"}, where
+
+
+def test_json_isotherms_may_mix_units_in_one_body():
+    doc = {"units": {"pressure": "kPa", "loading": "mmol/g"}, "isotherms": [
+        iso_obj(isotherm_id="a"),
+        iso_obj(isotherm_id="b", pressure=None, pressure_bar=[0.1, 0.5, 1.0]),
+        iso_obj(isotherm_id="c", units="pressure:Pa")]}
+    doc["isotherms"][1].pop("pressure")
+    a, b, c = read_batch(json.dumps(doc)).isotherms
+    np.testing.assert_allclose(a.pressure_pa, [1e4, 5e4, 1e5])
+    np.testing.assert_allclose(b.pressure_pa, [1e4, 5e4, 1e5])
+    np.testing.assert_allclose(c.pressure_pa, [10, 50, 100])
+
+
+def test_table_source_rows_and_label():
+    table = pa.table(_columns("pressure_kpa", "loading_mmol_per_g"))
+    batch = read_batch(table)
+    assert batch.label.startswith("batch-") and batch.label == read_batch(table).label
+    assert batch.isotherms[0].original["source"] == "table"
+    bad = table.set_column(3, "pressure_kpa", pa.array([1.0, None, 3.0, 4.0]))
+    issue = only_issue(read_batch(bad))
+    assert (issue.row, issue.field, issue.code) == (2, "pressure_kpa", "missing_value")
+    assert batch_error(table, fmt="csv").code == "unknown_format"
+
+
+# --- old spellings and column conflicts ----------------------------------------------
+
+@pytest.mark.parametrize("source, field, new", [
+    (csv_of(*good_rows(), header=HEADER.replace("sorbent_id", "material_id")), "material_id", "sorbent_id"),
+    (csv_of(*good_rows(extra=",kPa"), header=HEADER + ",pressure_unit"), "pressure_unit", "pressure_kpa"),
+    (csv_of(*good_rows(extra=",0.1"), header=HEADER + ",sigma"), "sigma", "loading_sigma"),
+    ("# pressure_unit: kPa\n# loading_unit: mmol/g\n" + HEADER + "\nm1,CO2,298,1,2\n", "pressure_unit",
+     "# units: pressure:kPa,loading:mmol/g"),
+    ('{"defaults": {"pressure_unit": "kPa"}, "isotherms": []}', "defaults", "'units'"),
+])
+def test_old_spellings_are_refused_naming_the_new(source, field, new):
+    issue = batch_error(source)
+    assert (issue.code, issue.field) == ("old_spelling", field)
+    assert "no longer read" in issue.message and new in issue.message
+
+
+def test_old_spellings_in_json_isotherms_and_conditions():
+    issue = only_issue(read_batch(json_doc(iso_obj(pressure_unit="kPa"))))
+    assert (issue.code, issue.field) == ("old_spelling", "pressure_unit")
+    assert "pressure_kpa" in issue.message
+    doc = json_doc(iso_obj(), conditions={"pressure_unit": "bar", "adsorption_pressure": 1})
+    issue = batch_error(doc)
+    assert (issue.code, issue.field) == ("old_spelling", "conditions.pressure_unit")
+    assert "adsorption_pressure_kpa" in issue.message
+
+
+def test_old_query_spelling_as_argument_setting_is_refused():
+    with pytest.raises(TypeError):
+        read_batch(csv_of(*good_rows()), defaults={"pressure_unit": "kPa"})
+
+
+@pytest.mark.parametrize("header, field", [
+    (HEADER.replace("pressure,", "pressure_kpa,pressure_bar,"), "pressure"),
+    (HEADER.replace("pressure,", "pressure,pressure_bar,"), "pressure"),
+    (HEADER + ",loading_mol_per_kg", "loading"),
+    (HEADER + ",saturation_pressure_pa,saturation_pressure_kpa", "saturation_pressure"),
+])
+def test_two_columns_for_one_quantity_are_an_error(header, field):
+    issue = batch_error(header + "\nm1,CO2,298,1,2,3,4\n")
+    assert (issue.code, issue.field) == ("conflicting_columns", field)
+    assert "keep one" in issue.message
+
+
+def test_missing_quantity_column_says_how_to_name_it():
+    issue = batch_error("sorbent_id,adsorbate,temperature_k,loading_mol_per_kg\nm,CO2,298,1\n")
+    assert (issue.code, issue.field) == ("missing_column", "pressure")
+    assert "pressure_kpa" in issue.message
+
+
+# --- delimiters and decimal commas ----------------------------------------------------
+
+def _body(delimiter, decimal_comma=False):
+    rows = [("m1", "CO2", "298.15", "10.5", "0.5"), ("m1", "CO2", "298.15", "50.25", "1.5"),
+            ("m1", "CO2", "298.15", "100", "2.125")]
+    cells = [[c.replace(".", ",") if decimal_comma else c for c in r] for r in rows]
+    header = delimiter.join(["sorbent_id", "adsorbate", "temperature_k", "pressure_kpa",
+                             "loading_mmol_per_g"])
+    return "\n".join([header] + [delimiter.join(r) for r in cells]) + "\n"
+
+
+@pytest.mark.parametrize("delimiter, decimal_comma", [(";", False), ("\t", False), (";", True),
+                                                      ("\t", True)])
+def test_semicolon_and_tab_files_and_decimal_commas_read_as_comma_files(delimiter, decimal_comma):
+    reference = read_batch(_body(",")).isotherms[0]
+    iso = read_batch(_body(delimiter, decimal_comma)).isotherms[0]
+    np.testing.assert_array_equal(iso.pressure_pa, [10500.0, 50250.0, 100000.0])
+    np.testing.assert_array_equal(iso.pressure_pa, reference.pressure_pa)
+    np.testing.assert_array_equal(iso.loading_mol_per_kg, reference.loading_mol_per_kg)
+    assert iso.temperature_k == 298.15
+    named = {";": "semicolon", "\t": "tab"}[delimiter]
+    again = read_batch(_body(delimiter, decimal_comma), delimiter=named,
+                       decimal="comma" if decimal_comma else ".").isotherms[0]
+    np.testing.assert_array_equal(again.pressure_pa, reference.pressure_pa)
+
+
+def test_decimal_comma_in_a_comma_file_is_not_guessed():
+    # "1,5" in a comma file is two cells: the row has one field too many
+    assert batch_error(_body(",").replace("10.5", "10,5")).code == "malformed_row"
+
+
+def test_point_in_a_decimal_comma_file_is_not_a_number():
+    text = _body(";", decimal_comma=True).replace("50,25", "50.25")
+    issue = only_issue(read_batch(text))
+    assert (issue.code, issue.row, issue.field) == ("not_a_number", 2, "pressure_kpa")
+    assert issue.message.endswith("value '50.25' is not a number (this file's numbers use decimal commas)")
+
+
+@pytest.mark.parametrize("body, given, saw, expected", [
+    (_body(";"), "comma", "semicolon", "the delimiter asked for is a comma (',')"),
+    (_body(","), ";", "comma", "the delimiter asked for is a semicolon (';')"),
+    (_body(",").replace(",", "|"), None, "'|'", "sorbrank reads comma-, semicolon- or tab-delimited files"),
+])
+def test_wrong_delimiter_names_what_it_saw_and_what_it_expected(body, given, saw, expected):
+    issue = batch_error(body, delimiter=given)
+    assert (issue.code, issue.field) == ("wrong_delimiter", "delimiter")
+    assert f"it looks {saw}-delimited" in issue.message and expected in issue.message
+
+
+# --- declared gases --------------------------------------------------------------------
+
+MESH_G_PER_MOL = 48.107   # CH3SH from CIAAW atomic weights C 12.011, H 1.008, S 32.06 (from memory)
+MESH_ROWS = [f"m1,methanethiol-x,298.15,{p},{q}" for p, q in ((10, 48.107), (50, 96.214), (100, 144.321))]
+
+
+@pytest.mark.parametrize("how", ["header", "argument", "json"])
+def test_declared_gas_gives_mass_loadings_its_molar_mass(how):
+    header = HEADER.replace("loading", "loading_mg_per_g").replace("pressure,", "pressure_kpa,")
+    gas = {"name": "methanethiol-x", "molar_mass_g_per_mol": MESH_G_PER_MOL, "critical_temperature_k": 469.9}
+    if how == "header":
+        batch = read_batch(f"# gas: methanethiol-x, molar_mass_g_per_mol={MESH_G_PER_MOL}, "
+                           "critical_temperature_k=469.9\n" + header + "\n" + "\n".join(MESH_ROWS))
+    elif how == "argument":
+        batch = read_batch(header + "\n" + "\n".join(MESH_ROWS), gases=[gas])
+    else:
+        batch = read_batch(json.dumps({"gases": [gas], "isotherms": [{
+            "sorbent_id": "m1", "adsorbate": "methanethiol-x", "temperature_k": 298.15,
+            "pressure_kpa": [10, 50, 100], "loading_mg_per_g": [48.107, 96.214, 144.321]}]}))
+    (iso,) = batch.isotherms
+    np.testing.assert_allclose(iso.loading_mol_per_kg, [1.0, 2.0, 3.0], rtol=1e-12)
+    assert iso.saturation_pressure_pa is None
+
+
+def test_undeclared_gas_is_unknown_and_declared_gas_needs_p0_for_relative_pressure():
+    header = HEADER.replace("pressure,", "pressure_relative,")
+    rows = [r.replace(",10,", ",0.1,").replace(",50,", ",0.5,").replace(",100,", ",0.9,") for r in MESH_ROWS]
+    text = header + "\n" + "\n".join(rows) + "\n"
+    issue = only_issue(read_batch(text, units="loading:mmol/g"))
+    assert issue.code == "unknown_adsorbate"
+    gas = [{"name": "methanethiol-x", "molar_mass_g_per_mol": MESH_G_PER_MOL}]
+    issue = only_issue(read_batch(text, units="loading:mmol/g", gases=gas))
+    assert (issue.code, issue.field) == ("missing_saturation_pressure", "saturation_pressure")
+    assert "declared gas" in issue.message
+    with_p0 = text.replace(header, header + ",saturation_pressure_kpa").replace("\n", ",150\n")
+    with_p0 = with_p0.replace(header + ",saturation_pressure_kpa,150", header + ",saturation_pressure_kpa")
+    (iso,) = read_batch(with_p0, units="loading:mmol/g", gases=gas).isotherms
+    np.testing.assert_allclose(iso.pressure_pa, [15000, 75000, 135000])
+
+
+@pytest.mark.parametrize("line", ["# gas: X", "# gas: X, molar_mass_g_per_mol=heavy",
+                                  "# gas: X, molar_mass_g_per_mol=48,1", "# gas: X, colour=3"])
+def test_bad_gas_line_is_a_batch_error(line):
+    assert batch_error(line + "\n" + csv_of(*good_rows(), units="")).code == "invalid_gas"
+
+
+def test_same_gas_declared_twice_differently():
+    gases = [{"name": "G", "molar_mass_g_per_mol": 40.0}, {"name": "G", "molar_mass_g_per_mol": 41.0}]
+    assert batch_error(csv_of(*good_rows()), gases=gases).code == "invalid_gas"

@@ -174,7 +174,8 @@ def test_nitrogen_normal_boiling_point():
 def test_saturation_pressure_is_coolprop_value(formula, temperature_k):
     ads = adsorbates.lookup(formula)
     expected = PropsSI("P", "T", temperature_k, "Q", 0, ads.coolprop_name)  # CoolProp reference
-    assert adsorbates.saturation_pressure_pa(ads, temperature_k) == pytest.approx(expected, rel=1e-12)
+    # the shipped table interpolates CoolProp within 1e-7 (worker/saturation_table.py)
+    assert adsorbates.saturation_pressure_pa(ads, temperature_k) == pytest.approx(expected, rel=1e-6)
 
 
 @pytest.mark.parametrize("adsorbate, temperature_k", [
@@ -185,3 +186,94 @@ def test_saturation_pressure_is_coolprop_value(formula, temperature_k):
 ])
 def test_saturation_pressure_undefined_is_none_never_raises(adsorbate, temperature_k):
     assert adsorbates.saturation_pressure_pa(adsorbate, temperature_k) is None
+
+
+# --- units carried in column names ------------------------------------------
+
+# each token's unit, with its value in Pa or mol/kg from an outside definition
+PRESSURE_TOKENS = {   # scipy.constants (CODATA / SI definitions)
+    "pa": 1.0, "kpa": 1e3, "mpa": 1e6, "bar": constants.bar, "mbar": constants.bar / 1e3,
+    "atm": constants.atm, "torr": constants.torr, "mmhg": constants.mmHg, "psi": constants.psi,
+}
+STP_CM3_PER_MMOL = constants.R * 273.15 / constants.atm * 1e3   # ideal gas at 273.15 K, 1 atm
+LOADING_TOKENS = {    # mol/kg per unit for CO2 (CIAAW-based molar mass above, from memory)
+    "mol_per_kg": 1.0, "mmol_per_g": 1.0, "mol_per_g": 1e3,
+    "mg_per_g": 1.0 / CO2_G_PER_MOL, "g_per_g": 1e3 / CO2_G_PER_MOL,
+    "wt_percent": 10.0 / CO2_G_PER_MOL,           # 1 g per 100 g sorbent = 10 g/kg
+    "cm3stp_per_g": 1.0 / STP_CM3_PER_MMOL,
+}
+ABSOLUTE_TOKENS = {"mmol": 1e-3, "mol": 1.0, "cm3stp": 1e-3 / STP_CM3_PER_MMOL}  # mol per unit
+
+
+def test_token_tables_are_the_documented_ones():
+    assert set(units.COLUMN_TOKENS["pressure"]) == set(PRESSURE_TOKENS) | {"relative"}
+    assert set(units.COLUMN_TOKENS["loading"]) == set(LOADING_TOKENS) | set(ABSOLUTE_TOKENS)
+
+
+@pytest.mark.parametrize("token, pa_per_unit", PRESSURE_TOKENS.items())
+def test_every_pressure_token_converts_like_its_definition(token, pa_per_unit):
+    quantity, unit = units.unit_column(f"pressure_{token}")
+    assert quantity == "pressure"
+    np.testing.assert_allclose(units.pressure_to_pa([2.5], unit), [2.5 * pa_per_unit], rtol=1e-15)
+    assert units.unit_column(f"Saturation_Pressure_{token.upper()}") == ("saturation_pressure", unit)
+    assert units.column_name("pressure", unit) == f"pressure_{token}"
+
+
+@pytest.mark.parametrize("token, mol_per_kg_per_unit", LOADING_TOKENS.items())
+def test_every_loading_token_converts_like_its_definition(token, mol_per_kg_per_unit):
+    quantity, unit = units.unit_column(f"loading_{token}")
+    assert quantity == "loading"
+    got = units.loading_to_mol_per_kg([3.0], unit, CO2_G_PER_MOL)
+    np.testing.assert_allclose(got, [3.0 * mol_per_kg_per_unit], rtol=1e-12)
+    assert units.unit_column(f"loading_sigma_{token}") == ("loading_sigma", unit)
+    assert units.column_name("loading", unit) == f"loading_{token}"
+
+
+@pytest.mark.parametrize("token, mol_per_unit", ABSOLUTE_TOKENS.items())
+def test_absolute_tokens_divide_by_the_sample_mass(token, mol_per_unit):
+    _, unit = units.unit_column(f"loading_{token}")
+    got = units.loading_to_mol_per_kg([3.0], unit, CO2_G_PER_MOL, sample_mass_g=0.5)
+    np.testing.assert_allclose(got, [3.0 * mol_per_unit / 0.5e-3], rtol=1e-12)
+
+
+def test_relative_token_and_plain_columns():
+    assert units.unit_column("pressure_relative") == ("pressure", "p/p0")
+    assert units.unit_column("pressure") == ("pressure", None)
+    assert units.unit_column("loading_sigma") == ("loading_sigma", None)
+    assert units.unit_column("sorbent_id") is None
+    assert units.unit_column("temperature_k") is None
+
+
+@pytest.mark.parametrize("name, hint", [("pressure_kpaa", "pressure_kpa"),
+                                        ("loading_mmol_per_gram", "loading_mmol_per_g"),
+                                        ("saturation_pressure_relative", None),
+                                        ("loading_sigma_kpa", None)])
+def test_unknown_token_names_the_column_and_the_nearest(name, hint):
+    with pytest.raises(units.UnknownColumnUnit) as err:
+        units.unit_column(name)
+    assert err.value.field == name and err.value.code == "unknown_unit"
+    assert (f"did you mean '{hint}'?" in str(err.value)) if hint else "did you mean" not in str(err.value)
+
+
+# --- the units declaration --------------------------------------------------
+
+def test_declaration_text_and_mapping_are_one():
+    expected = {"pressure": "kPa", "loading": "mmol/g"}
+    assert units.parse_units_declaration("pressure:kPa,loading:mmol/g") == expected
+    assert units.parse_units_declaration(" Pressure : KPA ; loading: mmol_per_g ") == expected
+    assert units.parse_units_declaration({"pressure": "kilopascal", "loading": "mmol/g"}) == expected
+    assert units.format_units_declaration(expected) == "pressure:kPa,loading:mmol/g"
+    assert units.parse_units_declaration("saturation_pressure:bar,loading_sigma:mg/g") == \
+        {"saturation_pressure": "bar", "loading_sigma": "mg/g"}
+
+
+@pytest.mark.parametrize("value, words", [
+    ("presure:kPa", "did you mean 'pressure'?"), ("pressure kPa", "is not quantity:unit"),
+    ("pressure:kPa,pressure:bar", "declared twice"), ("", "is empty"), (42, "not int"),
+    ("pressure:", "needs a unit name"), ("saturation_pressure:p/p0", "absolute"),
+    ("pressure:kpaa", "did you mean 'kPa'?"),
+])
+def test_bad_declarations_say_what_is_wrong(value, words):
+    with pytest.raises(ValueError) as err:
+        units.parse_units_declaration(value)
+    assert words in str(err.value)
