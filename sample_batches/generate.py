@@ -524,8 +524,10 @@ def resend_records(sorbents, seed):
     rec["pressure_pa"], rec["loading_mol_per_kg"] = rec["pressure_pa"][[5, 15]], rec["loading_mol_per_kg"][[5, 15]]
     broken(csv_recs, rec, "rejected", "too_few_points", "only 2 points (at least 3 distinct pressures needed)")
     rec = fresh(f"{PREFIX}-CARB-0006", "CO2", "-R2")
-    rec["adsorbate"], rec["isotherm_id"] = "SF6", rec["isotherm_id"].replace("-CO2-", "-SF6-")
-    broken(csv_recs, rec, "rejected", "unknown_adsorbate", "adsorbate 'SF6' is not in the supported list")
+    # a typed zero for the letter O: refused with a suggestion, never corrected
+    rec["adsorbate"], rec["isotherm_id"] = "C02", rec["isotherm_id"].replace("-CO2-", "-C02-")
+    broken(csv_recs, rec, "rejected", "unknown_adsorbate",
+           "adsorbate 'C02' (zero for O) is not a known gas; the message suggests CO2")
     rec = fresh(f"{PREFIX}-POLY-0006", "CO2", "-R2")
     broken(csv_recs, rec, "rejected", "not_a_number", "loading '--' in the isotherm's 5th row is not a number",
            non_numeric_index=4)
