@@ -469,6 +469,15 @@ def test_every_compose_command_is_a_package_entry_point(compose, tmp_path):
             f"{service} {what}: {argv}"
 
 
+def test_commands_the_docker_readme_runs_in_a_service_are_entry_points(compose, tmp_path):
+    text = (ROOT / "docker" / "README.md").read_text()
+    runs = re.findall(r"docker compose [^\n]*? run (?:--\S+ )*(\w+) ([^#\n]+)", text)
+    assert runs, "docker/README.md shows how to run a one-off command (migrate-store)"
+    for service, command in runs:
+        assert service in compose["services"], service
+        assert command_problems(shlex.split(command), tmp_path / service) == [], command
+
+
 def test_compose_interpolation_takes_the_environment():
     compose = load_compose({"SORBRANK_WORKER_CONCURRENCY": "7", "SORBRANK_WORKER_REPLICAS": "3"})
     worker = compose["services"]["worker"]
