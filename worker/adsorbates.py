@@ -173,8 +173,8 @@ def _make(record: dict, composition_count: dict[frozenset, int]) -> Adsorbate:
     curated = _CURATED.get(name)
     # CoolProp's formula-like aliases ("C2H6O" for ethanol) name the fluid only when no
     # other fluid has that composition
-    aliases = [a for a in record["aliases"]
-               if (c := parse_formula(a)) is None or c != counts or composition_unique]
+    aliases = record["aliases"] if composition_unique or counts is None else [
+        a for a in record["aliases"] if parse_formula(a) != counts]
     coolprop = f"CoolProp {COOLPROP_VERSION}"
     sources = {
         "critical_temperature_k": f"{coolprop} critical temperature (equation of state)",
@@ -196,7 +196,8 @@ def _make(record: dict, composition_count: dict[frozenset, int]) -> Adsorbate:
             sources["cross_section_nm2"] = cross_section_source
         names = (*common, name, *aliases)
     else:
-        formula_aliases = [a for a in aliases if counts and parse_formula(a) == counts]
+        formula_aliases = [a for a in aliases if counts and any(ch.isdigit() for ch in a)
+                           and parse_formula(a) == counts] if composition_unique else []
         id_ = formula_aliases[0] if formula_aliases else name
         cross_section = None
         names = (name, *aliases)
