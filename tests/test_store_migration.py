@@ -104,7 +104,7 @@ def stores(tmp_path):
     return original, tmp_path / "v1", batch_ids
 
 
-def migrate(root: Path, capsys) -> tuple[int, str, str]:
+def migrate(root: Path | str, capsys) -> tuple[int, str, str]:
     code = main(["migrate-store", "--data-dir", str(root)])
     out = capsys.readouterr()
     return code, out.out, out.err
@@ -176,6 +176,15 @@ def test_migration_rewrites_a_version_1_store_and_a_second_run_does_nothing(stor
     assert code == 0, err
     assert out.startswith("nothing to do") and f"({n_files} Parquet files checked)" in out
     assert snapshot(root) == before
+
+
+def test_a_store_named_by_a_uri_migrates_through_pyarrow_fs(stores, capsys):
+    # every file operation of the migration goes through the store's
+    # pyarrow.fs filesystem, as the store's own do (README "Storage URIs")
+    original, root, batch_ids = stores
+    code, out, err = migrate(f"file://{root}", capsys)
+    assert code == 0 and "removed materials/" in out, err
+    assert_reads_like(original, Store(f"file://{root}"), batch_ids)
 
 
 def test_an_unfinished_batch_resumes_after_the_migration(stores, capsys):
