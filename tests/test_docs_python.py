@@ -74,6 +74,7 @@ def test_every_example_runs_in_order(server, tmp_path, monkeypatch):
     assert namespace["checked"].n_isotherms == 3
     assert any(i["code"] == "not_a_number" for i in namespace["checked"].rejected)
     assert "criterion" in printed
+    assert namespace["declared_gas"].rejected == [] and namespace["declared_gas"].n_isotherms == 1
     assert "no sorbrank service answers at http://127.0.0.1:9" in printed
     assert (tmp_path / "TG31-0001-CO2-298K.svg").stat().st_size > 0
     assert namespace["batch"].status()["state"] == "done"

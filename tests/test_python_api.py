@@ -326,3 +326,18 @@ def test_workers_split_a_large_batch_with_the_same_results():
     parallel = sorbrank.fit(df, models=["langmuir"], workers=2).to_arrow()
     assert serial.num_rows == 2100  # more than one 2,000-isotherm chunk
     assert parallel.equals(serial)
+
+
+def test_a_declared_gas_converts_mass_loadings_by_its_molar_mass():
+    # an invented probe gas: mg/g divided by its molar mass is mmol/g = mol/kg
+    df = frame([("TG31-0003", "TG-probe-7", 298.15, 2.0, 0.2)])
+    df["loading_mg_per_g"] = df.pop("loading_mmol_per_g") * 120.0
+    unknown = sorbrank.fit(df, models=["langmuir"])
+    assert unknown.n_isotherms == 0
+    assert [i["code"] for i in unknown.rejected] == ["unknown_adsorbate"]
+    declared = sorbrank.fit(df, models=["langmuir"],
+                            gases=[{"name": "TG-probe-7", "molar_mass_g_per_mol": 120.0}])
+    assert declared.rejected == []
+    assert declared.summary["q_sat_mol_per_kg"].tolist() == pytest.approx([2.0], rel=1e-6)
+    with pytest.raises(ValueError, match="molar_mass_g_per_mol"):
+        sorbrank.fit(df, gases=[{"name": "TG-probe-7"}])
