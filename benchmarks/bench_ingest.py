@@ -72,10 +72,8 @@ def batch_parquet(n: int, seed: int = 7, tag: str = "ING") -> bytes:
         "sorbent_id": pa.array(rep(np.array([f"{tag}-M{m:06d}" for m in sorbent])), pa.string()),
         "adsorbate": pa.array(rep(adsorbate), pa.string()),
         "temperature_k": pa.array(rep(temperature), pa.float64()),
-        "pressure": pa.array(pressure.ravel(), pa.float64()),
-        "loading": pa.array(loading.ravel(), pa.float64()),
-        "pressure_unit": pa.array(["Pa"] * (n * N_POINTS), pa.string()).dictionary_encode(),
-        "loading_unit": pa.array(["mol/kg"] * (n * N_POINTS), pa.string()).dictionary_encode(),
+        "pressure_pa": pa.array(pressure.ravel(), pa.float64()),
+        "loading_mol_per_kg": pa.array(loading.ravel(), pa.float64()),
     })
     sink = io.BytesIO()
     pq.write_table(table, sink)

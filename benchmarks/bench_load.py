@@ -49,12 +49,12 @@ PRESSURES_KPA = (1, 2, 5, 10, 20, 40, 60, 80, 100)
 
 
 def batch_csv(tag: str, n: int) -> bytes:
-    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
     for k in range(n):
         seed = zlib.crc32(f"{tag}-{k}".encode())
         q_sat, b = 1.0 + (seed % 50) / 10, 0.02 + (seed // 50 % 9) / 100
         for p in PRESSURES_KPA:
-            lines.append(f"{tag}-{k},CO2,298.15,{p},{q_sat * b * p / (1 + b * p):.6f},kPa,mol/kg")
+            lines.append(f"{tag}-{k},CO2,298.15,{p},{q_sat * b * p / (1 + b * p):.6f}")
     return ("\n".join(lines) + "\n").encode()
 
 

@@ -71,10 +71,10 @@ def real_summary_schema() -> pa.Schema:
     from sorbrank.worker.pipeline import FitOptions, process_batch
 
     pressures = (1, 2, 5, 10, 20, 40, 60, 80, 100)
-    lines = ["sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
     for k, t in enumerate((273.15, 298.15)):
         for p in pressures:
-            lines.append(f"S{k},CO2,{t},{p},{(2 + k) * 0.1 * p / (1 + 0.1 * p):.6f},kPa,mol/kg")
+            lines.append(f"S{k},CO2,{t},{p},{(2 + k) * 0.1 * p / (1 + 0.1 * p):.6f}")
     batch = read_batch("\n".join(lines) + "\n", "csv", batch_label="schema")
     table = process_batch(batch, FitOptions(models=["langmuir", "sips"])).summary_table()
     return table.schema.append(pa.field("accepted_at", pa.timestamp("us", tz="UTC")))

@@ -144,10 +144,8 @@ def chunk_table(index: int, size: int, start: int, seed: int):
         "sorbent_id": pa.array(rep(mat_ids), pa.string()),
         "adsorbate": pa.array(rep(ads), pa.string()),
         "temperature_k": pa.array(rep(t), pa.float64()),
-        "pressure": pa.array(pressure.ravel(), pa.float64()),
-        "loading": pa.array(loading.ravel(), pa.float64()),
-        "pressure_unit": pa.array(["Pa"] * (size * N_POINTS), pa.string()).dictionary_encode(),
-        "loading_unit": pa.array(["mol/kg"] * (size * N_POINTS), pa.string()).dictionary_encode(),
+        "pressure_pa": pa.array(pressure.ravel(), pa.float64()),
+        "loading_mol_per_kg": pa.array(loading.ravel(), pa.float64()),
     })
 
 

@@ -2,6 +2,7 @@
 ingest benchmarks keep running (tiny sizes, no time or rate asserted)."""
 from __future__ import annotations
 
+import json
 import math
 import random
 import shutil
@@ -208,13 +209,21 @@ def test_inputs_table_built_by_columns_equals_the_row_by_row_table():
     from sorbrank.worker.intake import read_batch
     from sorbrank.worker.store import _isotherms_to_table_by_rows, isotherms_to_table
 
-    csv = "\n".join(["sorbent_id,adsorbate,temperature_k,pressure,loading,sigma,"
-                     "pressure_unit,loading_unit"]
-                    + [f"M1,CO2,298.15,{p},{0.1 * p / (1 + 0.01 * p):.6f},0.01,kPa,mmol/g"
-                       for p in (1, 3, 7, 15, 40, 90)]
-                    + [f"M2,N2,77.3,{p},{p},,kPa,mol/kg" for p in (1, 2, 4, 8)]
-                    + [f"M3,CH4,273.15,{p},{p / 3},,bar,mol/kg" for p in (1, 2, 2, 4, 8)])
-    isotherms = read_batch(csv, "csv", batch_label="columns").isotherms
+    # three isotherms in three unit pairs, one with per-point sigma, one with a repeated pressure
+    doc = {"isotherms": [
+        {"sorbent_id": "M1", "adsorbate": "CO2", "temperature_k": 298.15,
+         "units": {"pressure": "kPa", "loading": "mmol/g"},
+         "pressure": [1, 3, 7, 15, 40, 90],
+         "loading": [round(0.1 * p / (1 + 0.01 * p), 6) for p in (1, 3, 7, 15, 40, 90)],
+         "loading_sigma": [0.01] * 6},
+        {"sorbent_id": "M2", "adsorbate": "N2", "temperature_k": 77.3,
+         "units": {"pressure": "kPa", "loading": "mol/kg"},
+         "pressure": [1, 2, 4, 8], "loading": [1, 2, 4, 8]},
+        {"sorbent_id": "M3", "adsorbate": "CH4", "temperature_k": 273.15,
+         "units": {"pressure": "bar", "loading": "mol/kg"},
+         "pressure": [1, 2, 2, 4, 8], "loading": [p / 3 for p in (1, 2, 2, 4, 8)]},
+    ]}
+    isotherms = read_batch(json.dumps(doc), "json", batch_label="columns").isotherms
     assert len(isotherms) == 3
     for subset in (isotherms, isotherms[:1], isotherms[1:], []):
         by_columns, by_rows = isotherms_to_table(subset), _isotherms_to_table_by_rows(subset)

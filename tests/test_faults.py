@@ -34,15 +34,14 @@ SETTLED = ("done", "failed")
 
 def batch_csv(prefix: str, n: int) -> tuple[bytes, list[str]]:
     """``n`` one-isotherm sorbents with explicit isotherm ids (known by construction)."""
-    lines = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading,"
-             "pressure_unit,loading_unit"]
+    lines = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
     ids = []
     for i in range(n):
         iso = isotherm(f"{prefix}-M{i:03d}", 1.0 + 0.25 * i, 0.02 + 0.01 * (i % 7))
         iso_id = f"{prefix}-I{i:03d}"
         ids.append(iso_id)
         for p, q in zip(iso["pressure"], iso["loading"]):
-            lines.append(f"{iso_id},{iso['sorbent_id']},CO2,298.15,{p},{q},kPa,mol/kg")
+            lines.append(f"{iso_id},{iso['sorbent_id']},CO2,298.15,{p},{q}")
     return ("\n".join(lines) + "\n").encode(), ids
 
 

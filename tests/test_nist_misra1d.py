@@ -78,11 +78,10 @@ def test_misra1d_through_the_command_line(tmp_path):
     with path.open("w", newline="") as fh:
         w = csv.writer(fh)
         w.writerow(["isotherm_id", "sorbent_id", "adsorbate", "temperature_k",
-                    "pressure", "loading", "pressure_unit", "loading_unit"])
+                    "pressure_pa", "loading_mol_per_kg"])
         for x, y in zip(X, Y):
             # float repr round-trips: the file holds exactly the NIST values
-            w.writerow(["misra1d", "dental", "N2", "298.15", repr(float(x)), repr(float(y)), "Pa",
-                        "mol/kg"])
+            w.writerow(["misra1d", "dental", "N2", "298.15", repr(float(x)), repr(float(y))])
     run = subprocess.run(
         [sys.executable, "-m", "sorbrank.service.cli", "fit", str(path), "--models", "langmuir",
          "--format", "json"],

@@ -474,12 +474,14 @@ def input_file(monkeypatch, tmp_path, dsl_case):
     p_pa, q, _ = dsl_case
     monkeypatch.chdir(tmp_path)
     x = np.linspace(0.02, 0.3, 8)
-    lines = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading,pressure_unit,loading_unit"]
-    lines += [f"iso-1,MAT-A,CH4,298.15,{float(p)!r},{float(v)!r},Pa,mol/kg" for p, v in zip(p_pa, q)]
-    lines += [f"iso-2,MAT-B,N2,77.35,{float(v)!r},{float(bet_eq(v, 8.0, 120.0))!r},relative,mol/kg"
-              for v in x]
-    lines += [f"iso-bad,MAT-C,CO2,298.15,{p},{v},Pa,mol/kg" for p, v in ((-5, 0.1), (10, 0.2), (20, 0.3))]
+    # the relative-pressure isotherm goes in its own file: a file has one pressure column
+    lines = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure_pa,loading_mol_per_kg"]
+    lines += [f"iso-1,MAT-A,CH4,298.15,{float(p)!r},{float(v)!r}" for p, v in zip(p_pa, q)]
+    lines += [f"iso-bad,MAT-C,CO2,298.15,{p},{v}" for p, v in ((-5, 0.1), (10, 0.2), (20, 0.3))]
     (tmp_path / "in.csv").write_text("\n".join(lines) + "\n")
+    relative = ["isotherm_id,sorbent_id,adsorbate,temperature_k,pressure_relative,loading_mol_per_kg"]
+    relative += [f"iso-2,MAT-B,N2,77.35,{float(v)!r},{float(bet_eq(v, 8.0, 120.0))!r}" for v in x]
+    (tmp_path / "in_relative.csv").write_text("\n".join(relative) + "\n")
     return tmp_path
 
 
@@ -497,13 +499,13 @@ def test_plot_command_writes_requested_plot(tmp_path, input_file, capsys):
 
 
 def test_plot_command_default_name_and_bet(tmp_path, input_file):
-    args = _parser().parse_args(["plot", "in.csv", "--isotherm", "iso-2", "--kind", "bet"])
+    args = _parser().parse_args(["plot", "in_relative.csv", "--isotherm", "iso-2", "--kind", "bet"])
     assert args.func(args) == 0
     assert {"bet-data-in-range", "bet-range", "bet-fit"} <= set(svg_ids((tmp_path / "iso-2_bet.svg").read_bytes()))
 
 
 @pytest.mark.parametrize("argv, message", [
-    (["in.csv", "--isotherm", "nope"], "isotherms present: iso-1, iso-2"),
+    (["in.csv", "--isotherm", "nope"], "isotherms present: iso-1"),
     (["in.csv", "--isotherm", "iso-bad"], "rejected at intake"),
     (["in.csv", "--isotherm", "iso-1", "--kind", "bet"], "no saturation pressure"),
     (["missing.csv", "--isotherm", "iso-1"], "no such file: missing.csv"),
@@ -528,7 +530,7 @@ def test_plot_help_teaches(capsys):
 def test_plot_command_end_to_end_with_real_intake_and_pipeline(tmp_path):
     p_pa = np.geomspace(500.0, 2.0e5, 14)
     q = langmuir_eq(p_pa, 4.0, 2e-5)
-    lines = ["# pressure_unit: Pa", "# loading_unit: mol/kg",
+    lines = ["# units: pressure:Pa,loading:mol/kg",
              "isotherm_id,sorbent_id,adsorbate,temperature_k,pressure,loading"]
     lines += [f"L1,MAT-L,CO2,298.15,{float(p)!r},{float(v)!r}" for p, v in zip(p_pa, q)]
     source = tmp_path / "one.csv"
