@@ -25,6 +25,33 @@ MOLAR_VOLUME_STP_CM3_PER_MOL = constants.R * STP_TEMPERATURE_K / STP_PRESSURE_PA
 SAME_TEMPERATURE_TOLERANCE_K = 0.5
 
 
+def t_quantile_975(dof) -> np.ndarray:
+    """Two-sided 95 % Student-t quantile for ``dof`` degrees of freedom; nan where dof < 1."""
+    from scipy.special import stdtrit  # what stats.t.ppf calls, without importing scipy.stats
+    dof = np.asarray(dof, dtype=float)
+    with np.errstate(invalid="ignore"):
+        return np.where(dof >= 1, stdtrit(np.maximum(dof, 1.0), 0.975), np.nan)
+
+
+def positive_interval_95(value, stderr, dof) -> tuple[np.ndarray, np.ndarray]:
+    """95 % interval (low, high) of a quantity that is positive by nature.
+
+    The Wald interval is built for ln(value), whose standard error is
+    stderr / value by the delta method, with the Student-t quantile for
+    ``dof``, and mapped back: value * exp(-/+ t * stderr / value). It never
+    goes below zero, is asymmetric as the likelihood of a positive parameter
+    usually is, and agrees with the plain Wald interval when stderr << value.
+    nan where value <= 0 or is not finite, or stderr or dof are missing.
+    """
+    value, stderr = np.asarray(value, dtype=float), np.asarray(stderr, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        ok = np.isfinite(value) & (value > 0) & np.isfinite(stderr) & (stderr >= 0)
+        spread = np.exp(t_quantile_975(dof) * np.where(ok, stderr / value, np.nan))
+        low = np.where(ok, value / spread, np.nan)
+        high = np.where(ok, value * spread, np.nan)
+    return low, high
+
+
 def rows_by(keys: Sequence[Hashable], rows: Iterable[int]) -> dict[Hashable, list[int]]:
     """The given row indices grouped by ``keys[row]``, each group in batch order.
 
