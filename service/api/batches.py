@@ -217,7 +217,7 @@ def _store_and_queue(runtime, batch, body: bytes, fmt: str, options: dict, batch
     for chunk in manifest["chunks"]:
         try:
             runtime.enqueue(manifest["batch_id"], chunk["index"])
-        except Exception:  # noqa: BLE001 - the batch is on disk; reconcile will queue it
+        except Exception:  # logged below: the batch is on disk and reconcile will queue it
             log.exception("batch %s accepted but chunk %s could not be queued; it will be "
                           "queued when a worker starts", manifest["batch_id"], chunk["index"])
     return _accepted_response(manifest)
