@@ -16,6 +16,7 @@ import numpy as np
 from ..isotherm import Batch
 from ..packing import Packed
 from ..results import ModelFits, Selection
+from .averaging import model_averaged_columns
 from .bet import bet_columns
 from .capacity import capacity_columns, gas_volume_cm3stp_per_g, site_density_columns
 from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags, rows_by
@@ -35,6 +36,7 @@ def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
     columns.update(henry_columns(packed, fits, selection, flags))
     columns.update(loading_columns(packed, fits, selection, batch, flags))
     columns.update(bet_columns(packed, flags))
+    columns.update(model_averaged_columns(packed, fits, selection, batch, flags))
     # The BET monolayer (raw data, N2/Ar/Kr) is the monolayer where one was
     # measured; otherwise the selected model's saturation capacity stands in.
     bet_monolayer = columns["bet_monolayer_mol_per_kg"]
