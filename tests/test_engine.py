@@ -125,9 +125,11 @@ def test_statistics_follow_their_definitions():
     np.testing.assert_allclose(fits.sse[1], sse, rtol=1e-12)
     np.testing.assert_allclose(fits.covariance[1], cov, rtol=1e-8)
     np.testing.assert_allclose(fits.stderr[1], np.sqrt(np.diag(cov)), rtol=1e-8)
-    half = stats.t.ppf(0.975, n - k) * np.sqrt(np.diag(cov))
-    np.testing.assert_allclose(fits.ci95_high[1] - fits.params[1], half, rtol=1e-8)
-    np.testing.assert_allclose(fits.params[1] - fits.ci95_low[1], half, rtol=1e-8)
+    # both parameters are positive: the Wald interval of ln(param), whose
+    # standard error is stderr / param by the delta method (docs/results.md)
+    spread = np.exp(stats.t.ppf(0.975, n - k) * np.sqrt(np.diag(cov)) / fits.params[1])
+    np.testing.assert_allclose(fits.ci95_high[1], fits.params[1] * spread, rtol=1e-8)
+    np.testing.assert_allclose(fits.ci95_low[1], fits.params[1] / spread, rtol=1e-8)
     np.testing.assert_allclose(fits.rmse[1], np.sqrt(sse / n), rtol=1e-12)
     np.testing.assert_allclose(fits.r2[1], 1 - sse / np.sum((q - q.mean()) ** 2), rtol=1e-12)
     big_k = k + 1

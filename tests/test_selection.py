@@ -125,9 +125,12 @@ def test_henry_criteria_against_statsmodels_ols():
     np.testing.assert_allclose(fits.aic[0], ols.aic - constant + 2, rtol=1e-10)
     np.testing.assert_allclose(fits.bic[0], ols.bic - constant + np.log(n), rtol=1e-10)
     np.testing.assert_allclose(fits.aicc[0], eval_measures.aicc(ols.llf, n, 2) - constant, rtol=1e-10)
-    # ci95 against statsmodels' t-based interval
-    np.testing.assert_allclose([fits.ci95_low[0, 0], fits.ci95_high[0, 0]], ols.conf_int(0.05)[0],
-                               rtol=1e-8)
+    # ci95: k_h is positive, so the interval is the Wald interval of ln k_h
+    # built from statsmodels' t-based half-width (docs/results.md)
+    wald_low, wald_high = ols.conf_int(0.05)[0]
+    spread = np.exp((wald_high - ols.params[0]) / ols.params[0])
+    np.testing.assert_allclose([fits.ci95_low[0, 0], fits.ci95_high[0, 0]],
+                               [ols.params[0] / spread, ols.params[0] * spread], rtol=1e-8)
 
 
 def _synthetic(truth_model, params, p, rel_noise, count, seed):

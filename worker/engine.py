@@ -48,7 +48,7 @@ import logging
 import numpy as np
 # scipy.special, not scipy.stats: the same quantile functions (stats.t.ppf and
 # stats.norm.ppf call them) without the 0.5 s import of scipy.stats at every start
-from scipy.special import stdtrit
+from scipy.special import chdtrc, stdtrit
 
 from .models import CATALOGUE, IsothermModel
 from .packing import Packed
@@ -120,23 +120,33 @@ _STATUS_REASON = np.array([
 # --------------------------------------------------------------------------
 # public API
 
-def fit_models(packed: Packed, models="all", weighting: str = "uniform") -> dict[str, ModelFits]:
+def fit_models(packed: Packed, models="all", weighting: str = "uniform",
+               absolute_sigma: bool = False) -> dict[str, ModelFits]:
     """Fit each model to every isotherm of ``packed``; return {model id: ModelFits}.
 
-    ``models`` is "all" (the whole catalogue) or a list of model ids or classes.
+    ``models`` is "all" (the whole catalogue) or a list of model ids or classes;
+    ``weighting`` and ``absolute_sigma`` as in ``fit_model``.
     """
-    if weighting not in WEIGHTINGS:
-        raise ValueError(f"weighting must be one of {', '.join(WEIGHTINGS)}; got {weighting!r}")
+    check_weighting(weighting, absolute_sigma)
     out = {}
     for model in resolve_models(models):
         try:
-            out[model.id] = fit_model(model, packed, weighting)
+            out[model.id] = fit_model(model, packed, weighting, absolute_sigma=absolute_sigma)
         except Exception as exc:  # one broken model must not sink the others
             log.exception("model %s failed on the whole batch", model.id)
             fits = _empty_fits(model, packed.n, packed.n_points, np.ones(packed.n, dtype=bool))
             fits.reason[:] = f"internal error: {type(exc).__name__}: {exc}"
             out[model.id] = fits
     return out
+
+
+def check_weighting(weighting: str, absolute_sigma: bool = False) -> None:
+    """Raise ValueError for an unknown weighting, or absolute sigma without sigma weights."""
+    if weighting not in WEIGHTINGS:
+        raise ValueError(f"weighting must be one of {', '.join(WEIGHTINGS)}; got {weighting!r}")
+    if absolute_sigma and weighting != "sigma":
+        raise ValueError("absolute sigma needs weighting 'sigma' (the calibrated sigma of each "
+                         f"loading); got weighting {weighting!r}")
 
 
 def resolve_models(models="all") -> list[type[IsothermModel]]:
@@ -156,7 +166,7 @@ def resolve_models(models="all") -> list[type[IsothermModel]]:
 
 
 def fit_model(model: type[IsothermModel], packed: Packed, weighting: str = "uniform",
-              *, max_iter: int = MAX_ITER) -> ModelFits:
+              *, absolute_sigma: bool = False, max_iter: int = MAX_ITER) -> ModelFits:
     """Fit one model to every isotherm in ``packed``; return its ModelFits.
 
     weighting:
@@ -180,13 +190,22 @@ def fit_model(model: type[IsothermModel], packed: Packed, weighting: str = "unif
     omitted; it is the same for every model of one isotherm.
 
     Covariance = (J^T W J)^-1 * SSE/(n-k) in the model's own parameters, k =
-    n_params; ci95 uses Student's t with n-k degrees of freedom. Every row
+    n_params (n counts every point, replicates included); ci95 uses Student's
+    t with n-k degrees of freedom. A parameter positive by nature
+    (``Param.positive``) gets the log-scale interval of
+    metrics.common.positive_interval_95, which never goes below zero.
+
+    ``absolute_sigma`` (only with weighting "sigma"): the sigma an isotherm
+    came with is calibrated, so the covariance is (J^T W J)^-1, not rescaled
+    by SSE/(n-k); intervals use the normal quantile (the variance is known);
+    ``chi_square`` = SSE with ``chi_square_dof`` = n-k and its upper-tail
+    ``chi_square_p_value`` are reported. Isotherms without sigma keep the
+    uniform, rescaled treatment and nan chi-square. Every row
     gets a reason; rows never fitted (not applicable, too few points) have nan
     statistics, rows whose fit did not converge keep their last parameters
     and statistics for inspection, with converged False.
     """
-    if weighting not in WEIGHTINGS:
-        raise ValueError(f"weighting must be one of {', '.join(WEIGHTINGS)}; got {weighting!r}")
+    check_weighting(weighting, absolute_sigma)
     n = packed.n
     k = len(model.params)
     mask = packed.mask
@@ -197,6 +216,9 @@ def fit_model(model: type[IsothermModel], packed: Packed, weighting: str = "unif
     else:
         x = packed.pressure_pa
     sigma = _sigma_mol_per_kg(packed, weighting)
+    calibrated = np.zeros(n, dtype=bool)
+    if absolute_sigma and packed.sigma_mol_per_kg is not None:
+        calibrated = ~_without_sigma(packed)
 
     reason = np.full(n, "", dtype=object)
     applicable = np.ones(n, dtype=bool)
@@ -231,7 +253,8 @@ def fit_model(model: type[IsothermModel], packed: Packed, weighting: str = "unif
 
     params, status, _, drift = _fit_rows(model, xs, qs, ws, ms, ts, max_iter)
     params, drift = _canonical_with_flags(model, params, drift)
-    _fill_statistics(out, model, rows, params, status, xs, qs, ws, ms, ts, drift)
+    _fill_statistics(out, model, rows, params, status, xs, qs, ws, ms, ts, drift,
+                     calibrated=calibrated[rows])
     return out
 
 
@@ -267,11 +290,13 @@ def _sigma_mol_per_kg(packed: Packed, weighting: str) -> np.ndarray:
         floor = np.where(floor > 0, floor, 1.0)
         return np.maximum(q_abs, floor)
     if weighting == "sigma" and packed.sigma_mol_per_kg is not None:
-        s = packed.sigma_mol_per_kg
-        # pack() marks isotherms without sigma by a whole nan row
-        no_sigma = np.all(np.isnan(s) | ~packed.mask, axis=1)
-        return np.where(no_sigma[:, None], 1.0, s)
+        return np.where(_without_sigma(packed)[:, None], 1.0, packed.sigma_mol_per_kg)
     return np.ones_like(q)
+
+
+def _without_sigma(packed: Packed) -> np.ndarray:
+    """(n,) bool: the isotherm came without sigma (pack() marks it by a whole nan row)."""
+    return np.all(np.isnan(packed.sigma_mol_per_kg) | ~packed.mask, axis=1)
 
 
 # Row sums (einsum, np.sum) add a row's tail in a different order when the
@@ -988,11 +1013,17 @@ def _empty_fits(model, n, n_points, applicable) -> ModelFits:
     )
 
 
-def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=None):
+def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=None,
+                     calibrated=None):
     """Write SSE, covariance, intervals and criteria for ``rows`` into ``out``.
 
     ``drift`` (n, k): -1 / +1 where a drifting row's parameter runs to its
-    lower / upper bound (see _drift_proof)."""
+    lower / upper bound (see _drift_proof). ``calibrated`` (n,) bool: the
+    row's weights are absolute 1/sigma^2 (covariance not rescaled)."""
+    # imported here: the metrics package loads the catalogue-wide metric modules
+    from .metrics.common import positive_interval_95
+
+    calibrated = np.zeros(params.shape[0], dtype=bool) if calibrated is None else calibrated
     k = params.shape[1]
     cols = [params[:, j:j + 1] for j in range(k)]
     with np.errstate(all="ignore"):
@@ -1025,9 +1056,22 @@ def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=N
             col, ok_j = _cholesky_solve(a_s, e)
             inv_s[:, :, j] = col
             ok &= ok_j
-        cov = inv_s / (scale[:, :, None] * scale[:, None, :]) * (sse / dof)[:, None, None]
+        variance_factor = np.where(calibrated, 1.0, sse / dof)
+        cov = inv_s / (scale[:, :, None] * scale[:, None, :]) * variance_factor[:, None, None]
         stderr = np.sqrt(np.diagonal(cov, axis1=1, axis2=2))
-        half = stdtrit(dof, 0.975)[:, None] * stderr
+        # a known variance makes the pivot normal: Student t with infinite dof
+        quantile_dof = np.where(calibrated, np.inf, dof)
+        half = stdtrit(quantile_dof, 0.975)[:, None] * stderr
+        ci_low, ci_high = params - half, params + half
+        positive = np.array([p.positive for p in model.params])
+        log_low, log_high = positive_interval_95(params, stderr, quantile_dof[:, None])
+        # a positive parameter on its bound 0 has no log interval: plain Wald, clipped at 0
+        inside = positive & (params > 0)
+        ci_low = np.where(inside, log_low, np.where(positive, np.maximum(ci_low, 0.0), ci_low))
+        ci_high = np.where(inside, log_high, ci_high)
+        chi_square = np.where(calibrated, sse, np.nan)
+        chi_square_dof = np.where(calibrated, dof, np.nan)
+        chi_square_p = np.where(calibrated, chdtrc(dof, sse), np.nan)
 
         big_k = k + 1  # the error variance counts as a parameter
         log_l = n_pts * np.log(sse / n_pts)
@@ -1064,8 +1108,11 @@ def _fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=N
     good_cov = ok[:, None, None]
     out.covariance[rows] = np.where(good_cov, cov, np.nan)
     out.stderr[rows] = np.where(ok[:, None], stderr, np.nan)
-    out.ci95_low[rows] = np.where(ok[:, None], params - half, np.nan)
-    out.ci95_high[rows] = np.where(ok[:, None], params + half, np.nan)
+    out.ci95_low[rows] = np.where(ok[:, None], ci_low, np.nan)
+    out.ci95_high[rows] = np.where(ok[:, None], ci_high, np.nan)
+    out.chi_square[rows] = chi_square
+    out.chi_square_dof[rows] = chi_square_dof
+    out.chi_square_p_value[rows] = chi_square_p
     reason = _STATUS_REASON[status]
     if drift is not None:
         drifting = status == _DRIFTING

@@ -17,13 +17,16 @@ from typing import Callable
 import numpy as np
 import pyarrow as pa
 
-from .engine import WEIGHTINGS, fit_models, resolve_models
+from .engine import check_weighting, fit_models, resolve_models
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch
 from .packing import Packed, pack
 from .results import ModelFits, Selection
 from .selection import CRITERIA, linearized_langmuir, select
 
 Progress = Callable[[int, int], None]  # (isotherms done, isotherms total)
+
+# per-fit goodness of fit against absolute sigma (ModelFits fields and columns)
+CHI_SQUARE_FIELDS = ("chi_square", "chi_square_dof", "chi_square_p_value")
 
 
 @dataclass
@@ -33,12 +36,14 @@ class FitOptions:
     models: str | list[str] = "all"     # "all", "a,b", or a list of model ids
     criterion: str = "aicc"             # "aicc" | "aic" | "bic"
     weighting: str = "uniform"          # "uniform" | "relative" | "sigma"
+    # with weighting "sigma": the sigma is calibrated, so the covariance is not
+    # rescaled by the residual variance and a chi-square test is reported
+    absolute_sigma: bool = False
 
     def __post_init__(self):
         if self.criterion not in CRITERIA:
             raise ValueError(f"criterion must be one of {', '.join(CRITERIA)}; got {self.criterion!r}")
-        if self.weighting not in WEIGHTINGS:
-            raise ValueError(f"weighting must be one of {', '.join(WEIGHTINGS)}; got {self.weighting!r}")
+        check_weighting(self.weighting, self.absolute_sigma)
         try:
             chosen = resolve_models(self.models)
         except KeyError as exc:
@@ -118,7 +123,8 @@ class BatchResult:
         return {
             "batch": self.batch.label,
             "options": {"models": self.options.model_ids, "criterion": self.options.criterion,
-                        "weighting": self.options.weighting},
+                        "weighting": self.options.weighting,
+                        "absolute_sigma": self.options.absolute_sigma},
             "isotherms": self.isotherm_records(),
             "rejected": [issue.as_dict() for issue in self.batch.rejected],
             "sorbents": _json_clean(self.sorbent_rows),
@@ -130,7 +136,9 @@ class BatchResult:
 
         Columns: isotherm_id, sorbent_id, adsorbate, branch, temperature_k,
         n_points, model, n_params, applicable, converged, reason, selected,
-        excluded_reason, sse, rmse, r2, aic, aicc, bic, akaike_weight, then
+        excluded_reason, sse, rmse, r2, aic, aicc, bic, chi_square,
+        chi_square_dof, chi_square_p_value (nan unless absolute sigma),
+        akaike_weight, then
         for every parameter name of the fitted models (units: the model
         catalogue) param_<name>, stderr_<name>, ci95_low_<name>,
         ci95_high_<name>, at_bound_<name> -- null where the row's model has no
@@ -162,7 +170,7 @@ class BatchResult:
             "selected": pa.array(stacked(lambda m, f: sel.best == m).astype(bool)),
             "excluded_reason": pa.array(stacked(lambda m, f: sel.excluded[m]).astype(object), pa.string()),
         }
-        for stat in ("sse", "rmse", "r2", "aic", "aicc", "bic"):
+        for stat in ("sse", "rmse", "r2", "aic", "aicc", "bic") + CHI_SQUARE_FIELDS:
             columns[stat] = _float_array(stacked(lambda m, f: getattr(f, stat)).astype(float))
         columns["akaike_weight"] = _float_array(
             stacked(lambda m, f: sel.weights[:, weight_col[m]]).astype(float))
@@ -253,8 +261,8 @@ def process_isotherms_parallel(batch: Batch, options: FitOptions | None = None, 
 
 def fit_and_select(packed: Packed, options: FitOptions) -> tuple[dict[str, ModelFits], Selection]:
     """Fit the chosen models to ``packed`` and select per isotherm."""
-    fits = fit_models(packed, options.model_ids, options.weighting)
-    return fits, select(fits, options.criterion)
+    fits = fit_models(packed, options.model_ids, options.weighting, options.absolute_sigma)
+    return fits, select(fits, options.criterion, packed)
 
 
 def _fit_and_select_chunks(packed, options, workers, chunk_size, progress):
@@ -288,7 +296,7 @@ def _concat_fits(parts: list[dict[str, ModelFits]]) -> dict[str, ModelFits]:
         arrays = {name: np.concatenate([getattr(f, name) for f in pieces], axis=0)
                   for name in ("params", "stderr", "ci95_low", "ci95_high", "covariance", "sse",
                                "rmse", "r2", "aic", "aicc", "bic", "converged", "reason",
-                               "at_bound", "applicable", "n_points")}
+                               "at_bound", "applicable", "n_points") + CHI_SQUARE_FIELDS}
         out[mid] = ModelFits(model_id=mid, param_names=first.param_names,
                              n_params=first.n_params, **arrays)
     return out
@@ -353,7 +361,8 @@ def _fit_lists(f: ModelFits, weight: np.ndarray) -> dict:
         "ci_low": _json_list(f.ci95_low), "ci_high": _json_list(f.ci95_high),
         "at_bound": f.at_bound.tolist(), "converged": f.converged.tolist(),
         "reason": f.reason.tolist(), "n_params": f.n_params,
-        **{s: _json_list(getattr(f, s)) for s in ("sse", "rmse", "r2", "aic", "aicc", "bic")},
+        **{s: _json_list(getattr(f, s)) for s in ("sse", "rmse", "r2", "aic", "aicc", "bic")
+           + CHI_SQUARE_FIELDS},
         "weight": _json_list(weight),
     }
 
@@ -369,6 +378,7 @@ def _fit_record(model_id: str, lists: dict, i: int) -> dict:
         "ci95": {nm: [lo, hi] for nm, lo, hi in zip(names, lists["ci_low"][i], lists["ci_high"][i])},
         "sse": lists["sse"][i], "rmse": lists["rmse"][i], "r2": lists["r2"][i],
         "aic": lists["aic"][i], "aicc": lists["aicc"][i], "bic": lists["bic"][i],
+        **{s: lists[s][i] for s in CHI_SQUARE_FIELDS},
         "akaike_weight": lists["weight"][i],
         "n_params": lists["n_params"],
         "at_bound": {nm: bool(b) for nm, b in zip(names, lists["at_bound"][i])},

@@ -34,6 +34,13 @@ class Param:
     # the engine; this only declares the fact, it does not change the result
     log_scale: bool = False
 
+    @property
+    def positive(self) -> bool:
+        """Positive by nature: the model bounds it at or above zero (capacities,
+        affinities, Henry constants, bounded exponents). Its 95 % interval is
+        built on the log scale and never goes below zero (docs/results.md)."""
+        return self.lower >= 0
+
 
 class IsothermModel:
     """Base class; subclasses declare class attributes and implement statics."""
@@ -47,6 +54,9 @@ class IsothermModel:
     # True for multilayer models (BET, GAB): loading grows without a plateau
     # towards p0, so no saturation capacity exists for the isotherm at all
     multilayer: ClassVar[bool] = False
+    # True for pore-filling models (Dubinin family): the capacity is the filled
+    # micropore volume at p0, not a monolayer, so it gives no site count
+    pore_filling: ClassVar[bool] = False
 
     @staticmethod
     def evaluate(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> np.ndarray:
@@ -125,6 +135,7 @@ class IsothermModel:
             "reference": cls.reference,
             "relative_pressure": cls.relative_pressure,
             "multilayer": cls.multilayer,
+            "pore_filling": cls.pore_filling,
             "parameters": [
                 {
                     "name": p.name,
