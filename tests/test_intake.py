@@ -191,7 +191,7 @@ def test_csv_json_parquet_give_identical_isotherms(tmp_path):
                read_batch(parquet_path.read_bytes())]
     reference = batches[0]
     assert [i.isotherm_id for i in reference.isotherms] == ["iso-a", "iso-b"]
-    assert reference.isotherms[0].flags == ["duplicate_pressures_merged"]
+    assert reference.isotherms[0].n_points == 4 and reference.isotherms[0].flags == []  # replicate kept
     for batch in batches[1:]:
         assert batch.label == "same" and batch.rejected == []
         for a, b in zip(reference.isotherms, batch.isotherms, strict=True):
@@ -313,26 +313,33 @@ def test_absolute_loading_without_sample_mass():
     assert (issue.code, issue.field, issue.row) == ("missing_sample_mass", "sample_mass_g", None)
 
 
-def test_too_few_distinct_pressures_after_merging():
+def test_too_few_distinct_pressures_counts_replicates_once():
     rows = ["m1,CO2,298.15,10,0.5", "m1,CO2,298.15,10,0.6", "m1,CO2,298.15,20,0.9"]
     issue = only_issue(read_batch(csv_of(*rows)))
     assert (issue.code, issue.row, issue.field) == ("too_few_points", None, None)
     assert issue.message.endswith("2 distinct pressure(s); at least 3 are needed")
 
 
-def test_duplicate_pressures_are_merged_by_mean():
-    rows = ["m1,CO2,298.15,10,0.5", "m1,CO2,298.15,10,0.7", "m1,CO2,298.15,20,0.9", "m1,CO2,298.15,30,1.1"]
+def test_replicate_pressures_are_all_kept_in_input_order():
+    rows = ["m1,CO2,298.15,20,0.9", "m1,CO2,298.15,10,0.7", "m1,CO2,298.15,30,1.1", "m1,CO2,298.15,10,0.5"]
     (iso,) = read_batch(csv_of(*rows)).isotherms
-    np.testing.assert_allclose(iso.loading_mol_per_kg, [0.6, 0.9, 1.1], rtol=1e-15)
-    assert iso.flags == ["duplicate_pressures_merged"]
-    assert iso.original["loading"].tolist() == [0.5, 0.7, 0.9, 1.1]
+    np.testing.assert_array_equal(iso.pressure_pa, [1e4, 1e4, 2e4, 3e4])
+    np.testing.assert_array_equal(iso.loading_mol_per_kg, [0.7, 0.5, 0.9, 1.1])
+    assert iso.flags == []   # a replicate 0.2 below its sibling is no fall in loading
+    assert iso.original["loading"].tolist() == [0.9, 0.7, 1.1, 0.5]
 
 
-def test_duplicate_pressures_merge_sigma_as_standard_error():
+def test_replicate_pressures_keep_their_own_sigma():
     rows = ["m1,CO2,298.15,10,0.5,0.03", "m1,CO2,298.15,10,0.7,0.04", "m1,CO2,298.15,20,0.9,0.05",
             "m1,CO2,298.15,30,1.1,0.05"]
     (iso,) = read_batch(csv_of(*rows, header=HEADER + ",loading_sigma")).isotherms
-    np.testing.assert_allclose(iso.sigma_mol_per_kg, [0.025, 0.05, 0.05], rtol=1e-12)  # sqrt(.03^2+.04^2)/2
+    np.testing.assert_allclose(iso.sigma_mol_per_kg, [0.03, 0.04, 0.05, 0.05], rtol=1e-12)
+
+
+def test_a_fall_below_a_replicate_at_lower_pressure_is_still_flagged():
+    rows = ["m1,CO2,298.15,10,0.5", "m1,CO2,298.15,10,1.0", "m1,CO2,298.15,20,0.8", "m1,CO2,298.15,30,1.1"]
+    (iso,) = read_batch(csv_of(*rows)).isotherms
+    assert iso.flags == ["non_monotonic_loading"]
 
 
 def test_sigma_column_with_its_own_unit():

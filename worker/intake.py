@@ -76,11 +76,19 @@ pressure.
 
 Rules that change data (stated so nobody is surprised)
 ------------------------------------------------------
-* Points are sorted by pressure.
-* Duplicate pressures: points of one isotherm whose pressures are exactly
-  equal after conversion to Pa are MERGED into one point whose loading is the
-  mean of theirs (sigma: the standard error of that mean,
-  sqrt(sum sigma_i^2)/k); the isotherm is flagged ``duplicate_pressures_merged``.
+* Points are sorted by pressure (stable: replicates keep their input order).
+* Replicates (points of one isotherm at exactly the same pressure after
+  conversion to Pa) are all kept: every measured point is data for the fit,
+  and the replicates give the pure error (docs/results.md). At least 3
+  distinct pressures are needed.
+* Branches from the pressure sequence: CSV/Parquet/Table rows that group into
+  one isotherm without a branch (no branch value on any row, no isotherm_id)
+  and come in measurement order with a clear up-then-down pressure sequence
+  (non-decreasing through at least 3 distinct pressures to the highest, then
+  non-increasing through at least 3 distinct lower ones) are split at the
+  turning point: the rows up to the highest pressure are the adsorption
+  branch, the rows after it the desorption branch. Any other order stays one
+  isotherm. JSON isotherms are one branch each (their ``branch`` field).
 * Non-monotonic loading is accepted but flagged ``non_monotonic_loading`` when
   some point lies below the highest loading at lower pressure by more than
   the noise allowance max(2 % of the isotherm's largest loading,
@@ -1193,6 +1201,60 @@ def _grouping(rows: _Rows, branch_key: np.ndarray) -> tuple[np.ndarray, int]:
     return _codes_by_appearance(key)
 
 
+def _branch_codes(column: _Text) -> tuple[np.ndarray, np.ndarray]:
+    """Per row: index into BRANCHES (blank means adsorption, -1 unknown) and the
+    grouping key (unknown values keep a key of their own)."""
+    branch_of_value = np.array([BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
+                                for v in column.values] + [0, 0, 0], dtype=np.int64)
+    branch = branch_of_value[column.codes]
+    return branch, np.where(branch >= 0, branch, 2 + column.codes)
+
+
+# a clear up-then-down sequence: this many distinct pressures on each side of the turn
+MIN_BRANCH_PRESSURES = 3
+
+
+def _split_at_turning_point(rows: _Rows, text: dict, gid: np.ndarray) -> _Text:
+    """The branch column with "desorption" on the rows after the pressure turning point
+    of every isotherm that qualifies (module docstring: branches from the pressure
+    sequence); the column as it was where none does."""
+    column = text["branch"]
+    pressure = rows.numbers["pressure"]
+    n = gid.size
+    if n < 2 * MIN_BRANCH_PRESSURES:
+        return column
+    n_groups = int(gid.max()) + 1
+    iso = text["isotherm_id"].codes
+    # only isotherms that say nothing about their branch or identity, with every pressure usable
+    eligible = np.bincount(gid, weights=(column.codes != _BLANK) | (iso >= 0)
+                           | (pressure.problem != _OK), minlength=n_groups) == 0
+    order = np.argsort(gid, kind="stable")        # input order inside each isotherm
+    g, p = gid[order], pressure.value[order]
+    same = g[1:] == g[:-1]
+    rise, fall = same & (p[1:] > p[:-1]), same & (p[1:] < p[:-1])
+    # a rise after a fall: not one turn
+    falls_so_far = np.cumsum(fall)
+    start_of_group = np.concatenate([[0], np.flatnonzero(~same) + 1])
+    falls_before_group = np.concatenate([[0], falls_so_far])[start_of_group]
+    falls_before = falls_so_far - falls_before_group[g[1:]]
+    rise_after_fall = np.bincount(g[1:], weights=rise & (falls_before - fall > 0), minlength=n_groups)
+    n_rise = np.bincount(g[1:], weights=rise, minlength=n_groups)
+    n_fall = np.bincount(g[1:], weights=fall, minlength=n_groups)
+    # distinct pressures: 1 + rises up to the top; one per fall after it
+    split = eligible & (rise_after_fall == 0) & (n_rise + 1 >= MIN_BRANCH_PRESSURES) \
+        & (n_fall >= MIN_BRANCH_PRESSURES)
+    if not split.any():
+        return column
+    after_turn = np.zeros(n, dtype=bool)
+    after_turn[1:] = split[g[1:]] & (falls_before > 0)
+    values = list(column.values)
+    if "desorption" not in values:
+        values.append("desorption")
+    codes = column.codes.copy()
+    codes[order[after_turn]] = values.index("desorption")
+    return _Text(codes, values)
+
+
 def _resolved_text(rows: _Rows, name: str, default: str | None) -> _Text:
     """The text column ``name`` with blanks filled by the batch-wide ``default``."""
     column = rows.text.get(name) or _Text(np.full(rows.n_rows, _BLANK, dtype=np.int64), [])
@@ -1241,11 +1303,10 @@ def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: L
     for quantity, fld in UNIT_FIELD.items():
         text[fld] = _resolved_text(rows, fld, declared_units.get(quantity))
 
-    # branch: blank means adsorption
-    branch_of_value = np.array([BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
-                                for v in text["branch"].values] + [0, 0, 0], dtype=np.int64)
-    branch = branch_of_value[text["branch"].codes]
-    branch_key = np.where(branch >= 0, branch, 2 + text["branch"].codes)
+    branch, branch_key = _branch_codes(text["branch"])
+    if rows.group is None:
+        text["branch"] = _split_at_turning_point(rows, text, _grouping(rows, branch_key)[0])
+        branch, branch_key = _branch_codes(text["branch"])
 
     gid, n_groups = _grouping(rows, branch_key)
     if n_groups > limits.max_isotherms:
@@ -1352,7 +1413,7 @@ def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: L
         sigma = number["loading_sigma"].value * _loading_factor(sigma_unit, l_table, molar_mass,
                                                                 mass_g[gid])
 
-    points = _merged_points(gid, n_groups, pressure_pa, loading, sigma)
+    points = _sorted_points(gid, n_groups, pressure_pa, loading, sigma)
     found.groups_where(~found.bad_groups() & (points.n_distinct < 3), None, "too_few_points",
                        lambda g: f"{points.n_distinct[g]} distinct pressure(s); at least 3 "
                                  "are needed")
@@ -1571,37 +1632,30 @@ def _issues(found: _Findings, names: _GroupNames, label: str) -> list[Issue]:
 
 @dataclass
 class _Points:
-    """All points sorted by (isotherm, pressure), exactly equal pressures merged."""
+    """All points sorted by (isotherm, pressure); replicates kept, in input order."""
 
     group: np.ndarray          # isotherm index per point
     pressure_pa: np.ndarray
     loading_mol_per_kg: np.ndarray
     sigma_mol_per_kg: np.ndarray
     start: np.ndarray          # isotherm g owns points start[g]:start[g + 1]
-    n_distinct: np.ndarray     # per isotherm
-    merged: np.ndarray         # per isotherm: some pressures were merged
+    n_distinct: np.ndarray     # distinct pressures per isotherm
+    block_start: np.ndarray    # per point: index of the first point at its pressure
 
 
-def _merged_points(gid, n_groups, pressure_pa, loading, sigma) -> _Points:
-    """Return the points sorted per isotherm, equal pressures merged into their mean
-    loading with the standard error of the mean as sigma (module docstring)."""
+def _sorted_points(gid, n_groups, pressure_pa, loading, sigma) -> _Points:
+    """Return every point sorted per isotherm by pressure, replicates kept (module
+    docstring)."""
     order = np.lexsort((pressure_pa, gid))
     g, p = gid[order], pressure_pa[order]
-    new_point = np.ones(g.size, dtype=bool)
-    new_point[1:] = (g[1:] != g[:-1]) | (p[1:] != p[:-1])
-    first = np.flatnonzero(new_point)
-    size = np.diff(np.append(first, g.size))
-    if first.size:
-        with np.errstate(all="ignore"):
-            q = np.add.reduceat(loading[order], first) / size
-            s = np.sqrt(np.add.reduceat(sigma[order] ** 2, first)) / size
-    else:
-        q = s = np.empty(0)
-    group = g[first]
-    n_distinct = np.bincount(group, minlength=n_groups)
-    merged = np.bincount(group, weights=size > 1, minlength=n_groups) > 0
-    return _Points(group, p[first], q, s, np.concatenate([[0], np.cumsum(n_distinct)]),
-                   n_distinct, merged)
+    new_pressure = np.ones(g.size, dtype=bool)
+    new_pressure[1:] = (g[1:] != g[:-1]) | (p[1:] != p[:-1])
+    block_start = np.maximum.accumulate(np.where(new_pressure, np.arange(g.size), 0)) \
+        if g.size else np.zeros(0, dtype=np.int64)
+    n_distinct = np.bincount(g[new_pressure], minlength=n_groups)
+    counts = np.bincount(g, minlength=n_groups)
+    return _Points(g, p, loading[order], sigma[order], np.concatenate([[0], np.cumsum(counts)]),
+                   n_distinct, block_start)
 
 
 def _non_monotonic_groups(points: _Points, n_groups: int) -> np.ndarray:
@@ -1619,9 +1673,11 @@ def _non_monotonic_groups(points: _Points, n_groups: int) -> np.ndarray:
     # earlier isotherm's maximum (at most 2g - 1) never reaches into the next one
     lift = 2.0 * points.group
     best_so_far = np.maximum.accumulate(q_norm + lift) - lift
-    same = points.group[1:] == points.group[:-1]
-    falls = same & (best_so_far[:-1] - q_norm[1:] > allowance[1:])
-    return np.bincount(points.group[1:][falls], minlength=n_groups) > 0
+    # compared with the points at strictly lower pressure: replicates are not a fall
+    before = points.block_start - 1
+    has_lower = (before >= 0) & (points.group[np.maximum(before, 0)] == points.group)
+    falls = has_lower & (best_so_far[np.maximum(before, 0)] - q_norm > allowance)
+    return np.bincount(points.group[falls], minlength=n_groups) > 0
 
 
 @dataclass
@@ -1650,7 +1706,6 @@ class _Accepted:
         sigma = pts.sigma_mol_per_kg[span].copy() if self.has_sigma[g] else None
         p0 = None if np.isnan(self.p0_pa[g]) else float(self.p0_pa[g])
         flags = [name for name, on in (
-            ("duplicate_pressures_merged", pts.merged[g]),
             ("non_monotonic_loading", self.non_monotonic[g]),
             ("pressure_above_saturation",
              p0 is not None and not self.relative_input[g] and p[-1] > p0)) if on]
