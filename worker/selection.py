@@ -3,7 +3,10 @@
 Rules (per isotherm):
 
 * eligible models are those that converged, apply, have a finite criterion
-  and no parameter on a bound; every other model gets its exclusion reason;
+  and no parameter on a bound, and whose form is identifiable where the data
+  lie relative to p0 (``data_range_exclusions``: a multilayer model only when
+  the data reach p/p0 >= ``MULTILAYER_MIN_RELATIVE_PRESSURE``); every other
+  model gets its exclusion reason;
 * the eligible model with the smallest criterion is the candidate; Akaike
   weights w_i = exp(-delta_i / 2) / sum_j exp(-delta_j / 2) over eligible
   models (Burnham & Anderson 2002); with ``criterion="bic"`` the same formula
@@ -19,12 +22,21 @@ from __future__ import annotations
 
 import numpy as np
 
+from .models import CATALOGUE
 from .models.linear import masked_linear_fit
 from .packing import Packed
 from .results import ModelFits, Selection
 
 CRITERIA = ("aicc", "aic", "bic")
 AMBIGUITY_DELTA = 2.0
+# Far below p0 the BET form q = n_m c x / ((1 - x)(1 - x + c x)) is the Langmuir
+# form n_m' K x / (1 + K x) (K = c - 1, n_m' = n_m c / K) times 1/(1 - x): the
+# multilayer term changes the loading by about x, so with data below p/p0 =
+# 0.05 it is a 5 %-at-most wiggle that a 1 % noise absorbs and BET (or GAB)
+# wins on noise alone with the same two parameters as Langmuir. 0.05 is the
+# lower end of the classical BET range 0.05-0.30 (Brunauer, Emmett & Teller
+# 1938; ISO 9277, from memory), where the multilayer term is measured.
+MULTILAYER_MIN_RELATIVE_PRESSURE = 0.05
 
 
 def exclusion_reasons(fits: ModelFits, criterion: str = "aicc") -> np.ndarray:
@@ -42,8 +54,36 @@ def exclusion_reasons(fits: ModelFits, criterion: str = "aicc") -> np.ndarray:
     return reason
 
 
-def select(fits: dict[str, ModelFits], criterion: str = "aicc") -> Selection:
-    """Choose a model per isotherm by ``criterion`` ("aicc", "aic" or "bic")."""
+def data_range_exclusions(model, packed: Packed) -> np.ndarray:
+    """Why ``model`` cannot compete on each isotherm given where its data lie
+    relative to p0; "" where it can. (n,) object.
+
+    Multilayer models (BET, GAB) need a saturation pressure and data reaching
+    p/p0 >= MULTILAYER_MIN_RELATIVE_PRESSURE. Pore-filling models (Dubinin
+    family) need a saturation pressure with every point below it, which the
+    engine already requires of every p/p0 model; their home is low p/p0 (the
+    micropore-filling range), so no lower bound applies to them.
+    """
+    reason = np.full(packed.n, "", dtype=object)
+    if not model.multilayer:
+        return reason
+    with np.errstate(divide="ignore", invalid="ignore"):
+        top = np.max(np.where(packed.mask, packed.relative_pressure, -np.inf), axis=1)
+    has_p0 = np.isfinite(packed.saturation_pressure_pa) & (packed.saturation_pressure_pa > 0)
+    short = has_p0 & ~(top >= MULTILAYER_MIN_RELATIVE_PRESSURE)
+    reason[short] = (f"data below p/p0 = {MULTILAYER_MIN_RELATIVE_PRESSURE:g}: "
+                     "multilayer term not identifiable (reduces to Langmuir)")
+    return reason
+
+
+def select(fits: dict[str, ModelFits], criterion: str = "aicc",
+           packed: Packed | None = None) -> Selection:
+    """Choose a model per isotherm by ``criterion`` ("aicc", "aic" or "bic").
+
+    With ``packed`` (the data the fits came from) the data-range rule of
+    ``data_range_exclusions`` applies too; without it only the fits decide.
+    """
+
     if criterion not in CRITERIA:
         raise ValueError(f"criterion must be one of {', '.join(CRITERIA)}; got {criterion!r}")
     if not fits:
@@ -52,6 +92,11 @@ def select(fits: dict[str, ModelFits], criterion: str = "aicc") -> Selection:
     n = fits[model_ids[0]].n
     rows = np.arange(n)
     excluded = {mid: exclusion_reasons(fits[mid], criterion) for mid in model_ids}
+    if packed is not None:
+        for mid in model_ids:
+            if mid in CATALOGUE:
+                by_range = data_range_exclusions(CATALOGUE[mid], packed)
+                excluded[mid] = np.where(excluded[mid] == "", by_range, excluded[mid])
     eligible = np.stack([excluded[mid] == "" for mid in model_ids], axis=1)
     value = np.stack([getattr(fits[mid], criterion) for mid in model_ids], axis=1)
     value = np.where(eligible, value, np.inf)
