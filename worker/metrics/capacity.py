@@ -1,20 +1,18 @@
-"""Saturation capacity with its delta-method interval, monolayer volume, site density."""
+"""Saturation capacity with its interval, its kind, monolayer volume, site density."""
 from __future__ import annotations
 
 import numpy as np
-# scipy.special, not scipy.stats: the same quantile functions (stats.t.ppf and
-# stats.norm.ppf call them) without the 0.5 s import of scipy.stats at every start
 from scipy import constants
-from scipy.special import ndtri
 
 from ..packing import Packed
 from ..results import ModelFits, Selection
-from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading)
+from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading,
+                     positive_interval_95)
 
 # A capacity is an extrapolation when the data never reach half of it.
 CAPACITY_EXTRAPOLATION_FRACTION = 0.5
-# Two-sided 95 % normal quantile: the delta method is an asymptotic argument.
-Z_95 = ndtri(0.975)
+# q_sat_kind values: a plateau of sites, or the filled micropore volume at p0
+MONOLAYER, PORE_FILLING = "monolayer", "pore_filling"
 
 
 def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
@@ -49,8 +47,9 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
     eligible model with the highest Akaike weight among those that do: a
     screening team ranks on capacity even when an unbounded model (e.g.
     Redlich-Peterson, which defines no plateau) wins the selection on noise.
-    Not when a multilayer model (BET, GAB) is selected: that isotherm has no
-    plateau, and its figure is the BET monolayer instead.
+    Not when a multilayer model (BET, GAB) is selected: it competes only where
+    the data reach into the multilayer range (selection.data_range_exclusions),
+    so that isotherm has no plateau, and its figure is the BET monolayer.
     """
     from ..models import CATALOGUE
 
@@ -84,12 +83,19 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
 
 def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
                      flags: list[list[str]]) -> dict[str, np.ndarray]:
-    """q_sat (mol/kg) with 95 % delta-method interval, monolayer volume and sites per gram."""
+    """q_sat (mol/kg) with its 95 % interval, its kind and model; monolayer volume
+    and sites per gram for monolayer-type capacities only.
+
+    The interval is ``positive_interval_95`` (log scale, Student t with the
+    capacity model's n - p degrees of freedom): never below zero.
+    """
     from ..models import CATALOGUE
 
     n = packed.n
     q_sat = np.full(n, np.nan)
     q_sat_se = np.full(n, np.nan)
+    dof = np.full(n, np.nan)
+    kind = np.full(n, None, dtype=object)
     source = capacity_models(selection, fits)
     for model_id in sorted({m for m in source if m is not None}):
         rows = np.flatnonzero(source == model_id)
@@ -102,6 +108,9 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
         if value is None:
             continue
         q_sat[rows] = value
+        kind[rows] = PORE_FILLING if model.pore_filling else MONOLAYER
+        if model_fits.n_points.shape[0] == model_fits.n:
+            dof[rows] = model_fits.n_points[rows] - model_fits.n_params
         grad = saturation_capacity_gradient(model, params)
         cov = model_fits.covariance[rows]
         variance = np.einsum("gi,gij,gj->g", grad, cov, grad)
@@ -111,22 +120,28 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
     with np.errstate(invalid="ignore"):
         has_q_sat = np.isfinite(q_sat) & (q_sat > 0)
     q_sat = np.where(has_q_sat, q_sat, np.nan)
+    q_sat_se = np.where(has_q_sat, q_sat_se, np.nan)
+    low, high = positive_interval_95(q_sat, q_sat_se, dof)
     add_flag(flags, ~has_q_sat, "no_saturation_capacity")
     add_flag(flags, has_q_sat & (source != selection.best), "q_sat_from_other_model")
-    add_flag(flags, has_q_sat & ~np.isfinite(q_sat_se), "q_sat_interval_unavailable")
+    add_flag(flags, has_q_sat & ~np.isfinite(low), "q_sat_interval_unavailable")
     with np.errstate(invalid="ignore"):
         extrapolated = has_q_sat & (max_measured_loading(packed)
                                     < CAPACITY_EXTRAPOLATION_FRACTION * q_sat)
     add_flag(flags, extrapolated, "capacity_extrapolated")
+    # sites and a monolayer volume mean one molecule per site of a monolayer:
+    # a filled pore volume is no such count
+    monolayer = np.where(has_q_sat & (kind == MONOLAYER), q_sat, np.nan)
 
     return {
         "q_sat_mol_per_kg": q_sat,
         "q_sat_model": np.where(has_q_sat, source, None),
-        "q_sat_stderr_mol_per_kg": np.where(has_q_sat, q_sat_se, np.nan),
-        "q_sat_ci95_low_mol_per_kg": q_sat - Z_95 * q_sat_se,
-        "q_sat_ci95_high_mol_per_kg": q_sat + Z_95 * q_sat_se,
-        "monolayer_volume_cm3stp_per_g": gas_volume_cm3stp_per_g(q_sat),
-        "sites_per_g": sites_per_g(q_sat),
+        "q_sat_kind": np.where(has_q_sat, kind, None),
+        "q_sat_stderr_mol_per_kg": q_sat_se,
+        "q_sat_ci95_low_mol_per_kg": low,
+        "q_sat_ci95_high_mol_per_kg": high,
+        "monolayer_volume_cm3stp_per_g": gas_volume_cm3stp_per_g(monolayer),
+        "sites_per_g": sites_per_g(monolayer),
     }
 
 

@@ -49,6 +49,7 @@ class DubininRadushkevich(IsothermModel):
     reference = ("M. M. Dubinin, L. V. Radushkevich, Proc. Acad. Sci. USSR, Phys. Chem. Sect. "
                  "55 (1947) 331 (from memory)")
     relative_pressure = True
+    pore_filling = True
     params = (
         Param("q_m", "mol/kg", 0.0, np.inf, "micropore capacity (loading at x = 1)"),
         Param("e", "J/mol", _E_LOWER, _E_UPPER, "characteristic energy", log_scale=True),
@@ -93,6 +94,7 @@ class DubininAstakhov(IsothermModel):
     reference = ("M. M. Dubinin, V. A. Astakhov, Adv. Chem. Ser. 102 (1971) 69-85 "
                  "(from memory)")
     relative_pressure = True
+    pore_filling = True
     params = (
         Param("q_m", "mol/kg", 0.0, np.inf, "micropore capacity (loading at x = 1)"),
         Param("e", "J/mol", _E_LOWER, _E_UPPER, "characteristic energy", log_scale=True),
