@@ -23,7 +23,7 @@ from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags
 from .henry import henry_columns
 from .iast import iast_rows
 from .isosteric import isosteric_heat_rows
-from .working import loading_columns, temperature_swing_rows
+from .working import coverage_columns, loading_columns, temperature_swing_rows
 
 
 def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
@@ -35,6 +35,8 @@ def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
     columns.update(capacity_columns(packed, fits, selection, flags))
     columns.update(henry_columns(packed, fits, selection, flags))
     columns.update(loading_columns(packed, fits, selection, batch, flags))
+    columns.update(coverage_columns(packed, fits, selection, batch, columns["q_sat_mol_per_kg"],
+                                    columns["q_sat_model"], flags))
     columns.update(bet_columns(packed, flags))
     columns.update(model_averaged_columns(packed, fits, selection, batch, flags))
     # The BET monolayer (raw data, N2/Ar/Kr) is the monolayer where one was

@@ -135,12 +135,17 @@ def evaluate_model(model, params: np.ndarray, temperature_k: np.ndarray,
     return q
 
 
-def selected_loading(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
-                     pressure_pa: np.ndarray,
-                     temperature_k: np.ndarray | None = None) -> np.ndarray:
-    """Loading (n, k) in mol/kg from each isotherm's selected model at ``pressure_pa`` (n, k).
+def selected_loading_and_negative(packed: Packed, fits: dict[str, ModelFits],
+                                  selection: Selection, pressure_pa: np.ndarray,
+                                  temperature_k: np.ndarray | None = None
+                                  ) -> tuple[np.ndarray, np.ndarray]:
+    """(loading, negative), each (n, k): the selected model's loading in mol/kg at
+    ``pressure_pa`` (n, k), nan where it would be below zero, and where it was.
 
-    nan where an isotherm has no selected model.
+    A loading below zero is no amount adsorbed (Temkin's logarithm, or any
+    model extrapolated far below its data): it is reported as nan with the
+    ``negative_predicted_loading`` flag, never as a number. nan where an
+    isotherm has no selected model.
     """
     pressure_pa = np.asarray(pressure_pa, dtype=float)
     temperature_k = packed.temperature_k if temperature_k is None else temperature_k
@@ -148,7 +153,16 @@ def selected_loading(packed: Packed, fits: dict[str, ModelFits], selection: Sele
     for model, model_fits, rows in selected_groups(selection, fits):
         out[rows] = evaluate_model(model, model_fits.params[rows], temperature_k[rows],
                                    packed.saturation_pressure_pa[rows], pressure_pa[rows])
-    return out
+    negative = out < 0
+    return np.where(negative, np.nan, out), negative
+
+
+def selected_loading(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                     pressure_pa: np.ndarray,
+                     temperature_k: np.ndarray | None = None) -> np.ndarray:
+    """Loading (n, k) in mol/kg from each isotherm's selected model at ``pressure_pa`` (n, k);
+    nan where there is no selected model or the model predicts below zero."""
+    return selected_loading_and_negative(packed, fits, selection, pressure_pa, temperature_k)[0]
 
 
 def measured_pressure_range(packed: Packed) -> tuple[np.ndarray, np.ndarray]:

@@ -1,13 +1,15 @@
 """Loadings at process pressures, pressure-swing and temperature-swing working capacity."""
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 
 from ..isotherm import Batch
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (SAME_TEMPERATURE_TOLERANCE_K, add_flag, measured_pressure_range,
-                     pressure_label, rows_by, selected_loading)
+                     pressure_label, rows_by, selected_loading_and_negative)
 
 
 def outside_measured_range(packed: Packed, pressure_pa: np.ndarray) -> np.ndarray:
@@ -19,12 +21,19 @@ def outside_measured_range(packed: Packed, pressure_pa: np.ndarray) -> np.ndarra
 def loading_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
                     batch: Batch, flags: list[list[str]]) -> dict[str, np.ndarray]:
     """Loadings (mol/kg) at the adsorption, desorption and reference pressures, and
-    the pressure-swing working capacity q(p_ads) - q(p_des) at the isotherm's temperature."""
+    the pressure-swing working capacity q(p_ads) - q(p_des) at the isotherm's temperature.
+
+    A loading the model predicts below zero is nan (flag
+    ``negative_predicted_loading``), and so is a working capacity built on
+    one: with both loadings >= 0 the working capacity never exceeds the
+    adsorbed loading.
+    """
     cond = batch.conditions
     named = [cond.adsorption_pressure_pa, cond.desorption_pressure_pa,
              *cond.reference_pressures_pa]
     pressure = np.broadcast_to(np.asarray(named, dtype=float), (packed.n, len(named)))
-    loading = selected_loading(packed, fits, selection, pressure)
+    loading, negative = selected_loading_and_negative(packed, fits, selection, pressure)
+    add_flag(flags, negative.any(axis=1), "negative_predicted_loading")
     outside = outside_measured_range(packed, pressure)
     with np.errstate(invalid="ignore"):
         columns = {
@@ -41,6 +50,31 @@ def loading_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selec
     return columns
 
 
+def coverage_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                     batch: Batch, q_sat_mol_per_kg: np.ndarray, q_sat_model: np.ndarray,
+                     flags: list[list[str]]) -> dict[str, np.ndarray]:
+    """Fractional coverage theta = q(p_ads) / q_sat at the adsorption pressure of
+    the working-capacity conditions, and that pressure in Pa.
+
+    q(p_ads) comes from the model q_sat was read from (``q_sat_model``), so
+    theta is a fraction of that model's own plateau (bp/(1 + bp) for
+    Langmuir) even when the capacity was borrowed from another model than
+    the selected one. nan where there is no q_sat.
+    """
+    p_ads = float(batch.conditions.adsorption_pressure_pa)
+    pressure = np.full((packed.n, 1), p_ads)
+    own = replace(selection, best=np.asarray(q_sat_model, dtype=object))
+    loading, negative = selected_loading_and_negative(packed, fits, own, pressure)
+    add_flag(flags, negative[:, 0], "negative_predicted_loading")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        has = np.isfinite(q_sat_mol_per_kg) & (q_sat_mol_per_kg > 0)
+        theta = np.where(has, loading[:, 0] / np.where(has, q_sat_mol_per_kg, 1.0), np.nan)
+    return {
+        "coverage_at_adsorption": theta,
+        "coverage_pressure_pa": np.where(np.isfinite(theta), p_ads, np.nan),
+    }
+
+
 def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
                            batch: Batch, usable: np.ndarray) -> list[dict]:
     """Per sorbent and gas: q(p_ads, T_ads) - q(p_des, T_des) when both temperatures were fitted."""
@@ -52,7 +86,8 @@ def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection
     at_des = usable & (np.abs(packed.temperature_k - t_des) <= SAME_TEMPERATURE_TOLERANCE_K)
     # each isotherm at its own temperature; the swing pressure applies at that end
     pressure = np.where(at_ads, cond.adsorption_pressure_pa, cond.desorption_pressure_pa)[:, None]
-    loading = selected_loading(packed, fits, selection, pressure)[:, 0]
+    loading, negative = selected_loading_and_negative(packed, fits, selection, pressure)
+    loading, negative = loading[:, 0], negative[:, 0]
     outside = outside_measured_range(packed, pressure)[:, 0]
 
     keys = list(zip(packed.sorbent_ids, packed.adsorbates))
@@ -67,6 +102,8 @@ def temperature_swing_rows(packed: Packed, fits: dict[str, ModelFits], selection
             flags.append("extrapolated_adsorption_pressure")
         if outside[k]:
             flags.append("extrapolated_desorption_pressure")
+        if negative[i] or negative[k]:
+            flags.append("negative_predicted_loading")
         rows.append({
             "sorbent_id": sorbent_id,
             "adsorbate": adsorbate,
