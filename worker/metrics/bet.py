@@ -38,7 +38,7 @@ from scipy.special import stdtrit
 
 from ..adsorbates import ADSORBATES, lookup
 from ..packing import Packed
-from .common import add_flag
+from .common import add_flag, positive_interval_95
 
 # Cross-sectional areas (nm2) come from the adsorbate table, which cites
 # them: N2 at 77 K 0.162 (IUPAC 2015, Thommes et al., Pure Appl. Chem. 87
@@ -52,6 +52,8 @@ BET_MIN_POINTS = 3
 BET_MIN_R2 = 0.9995
 BET_MONOLAYER_PRESSURE_TOLERANCE = 0.10
 BET_BEND_CONFIDENCE = 0.99
+# criterion 1 tolerates a fall of n(1 - x) up to this many sigma of the point noise
+BET_RISE_NOISE_SIGMAS = 2.0
 # below this relative size a deviation is rounding, not curvature
 BET_BEND_RELATIVE_FLOOR = 1e-9
 # window arrays hold m^2 entries per isotherm; blocks keep each near this size
@@ -59,7 +61,9 @@ BET_BLOCK_ENTRIES = 500_000
 
 CRITERIA_LABELS = ("1", "2", "3", "4")
 
-BET_COLUMNS = ("bet_area_m2_per_g", "bet_c", "bet_monolayer_mol_per_kg",
+BET_COLUMNS = ("bet_area_m2_per_g", "bet_area_stderr_m2_per_g", "bet_area_ci95_low_m2_per_g",
+               "bet_area_ci95_high_m2_per_g", "bet_c", "bet_monolayer_mol_per_kg",
+               "bet_monolayer_stderr_mol_per_kg",
                "bet_range_relative_pressure_low", "bet_range_relative_pressure_high",
                "bet_r2", "bet_n_points")
 
@@ -108,8 +112,13 @@ def bet_columns(packed: Packed, flags: list[list[str]]) -> dict[str, np.ndarray]
             if name in found:
                 out[name][rows] = found[name]
         out["bet_criteria"][rows] = found["bet_criteria"]
-        out["bet_area_m2_per_g"][rows] = bet_area_m2_per_g(found["bet_monolayer_mol_per_kg"],
-                                                           cross_section[rows])
+        area = bet_area_m2_per_g(found["bet_monolayer_mol_per_kg"], cross_section[rows])
+        area_se = bet_area_m2_per_g(found["bet_monolayer_stderr_mol_per_kg"], cross_section[rows])
+        low, high = positive_interval_95(area, area_se, found["bet_n_points"] - 2.0)
+        out["bet_area_m2_per_g"][rows] = area
+        out["bet_area_stderr_m2_per_g"][rows] = area_se
+        out["bet_area_ci95_low_m2_per_g"][rows] = low
+        out["bet_area_ci95_high_m2_per_g"][rows] = high
         no_range = np.zeros(n, dtype=bool)
         no_range[rows[~found["valid"]]] = True
         add_flag(flags, no_range, "bet_no_valid_range")
@@ -121,6 +130,7 @@ def best_bet_ranges(relative_pressure: np.ndarray, loading_mol_per_kg: np.ndarra
     """The chosen BET range and its fit for each row (g isotherms, m points).
 
     Returns arrays of length g: valid, bet_c, bet_monolayer_mol_per_kg,
+    bet_monolayer_stderr_mol_per_kg (delta method, from the BET line),
     bet_range_relative_pressure_low/high, bet_r2, bet_n_points and
     bet_criteria (for a valid range "1,2,3,4"; otherwise the criteria held by
     the best linear window, for diagnosis, with every number left nan).
@@ -141,18 +151,22 @@ def best_bet_ranges(relative_pressure: np.ndarray, loading_mol_per_kg: np.ndarra
         fit = _window_fits(x, y, valid, a, b)
         fit_below = {k: _shift_end(v) for k, v in fit.items()}  # window [a, b-1]
 
-        # (1) n(1 - x) increases inside the window, and the window ends at or
-        # below the first maximum of n(1 - x)
-        not_rising = np.concatenate([~(rouquerol[:, 1:] > rouquerol[:, :-1]),
-                                     np.zeros((g, 1), bool)], axis=1)
-        falls = np.concatenate([np.zeros((g, 1)), np.cumsum(not_rising, axis=1)], axis=1)
-        knee = np.argmax(rouquerol, axis=1)
-        crit1 = (falls[:, b] - falls[:, a]) == 0
-        below_knee = b <= knee[:, None, None]
+        # (1) n(1 - x) increases across the window as a trend within the point
+        # noise; guarded, the window also ends at or below the first maximum
+        # of n(1 - x) within that noise (see _rising_within_noise)
+        crit1 = _rising_within_noise(x, rouquerol, valid, fit, a, b,
+                                     from_first_point=guard_multilayer)
 
         slope, intercept = fit["slope"], fit["intercept"]
         c = slope / intercept + 1.0
         monolayer = 1.0 / (slope + intercept)
+        # n_m = 1 / (slope + intercept): by the delta method its variance is
+        # n_m^4 var(slope + intercept), and var(slope + intercept) is the
+        # variance of the fitted line at x = 1: s^2 (1/k + (1 - mean x)^2 / Sxx)
+        k = fit["n"]
+        s_line = np.sqrt(fit["sse"] / np.where(k > 2, k - 2, np.nan))
+        monolayer_se = monolayer ** 2 * s_line * np.sqrt(1.0 / k + (1.0 - fit["mean_x"]) ** 2
+                                                          / fit["sxx"])
         crit2 = (intercept > 0) & (monolayer > 0) & np.isfinite(c)
         x_mono = 1.0 / (np.sqrt(np.where(crit2, c, np.nan)) + 1.0)
         crit3 = (x[:, a] <= x_mono) & (x_mono <= x[:, b])
@@ -161,7 +175,6 @@ def best_bet_ranges(relative_pressure: np.ndarray, loading_mol_per_kg: np.ndarra
 
         linear = fit["r2"] >= BET_MIN_R2
         if guard_multilayer:
-            crit1 &= below_knee
             linear &= _no_bend_on_the_way_up(fit_below, x, y, a, b)
     linear &= inside
     crit1 &= inside
@@ -193,6 +206,7 @@ def best_bet_ranges(relative_pressure: np.ndarray, loading_mol_per_kg: np.ndarra
         "valid": valid_row,
         "bet_c": at_pick(c),
         "bet_monolayer_mol_per_kg": at_pick(monolayer),
+        "bet_monolayer_stderr_mol_per_kg": at_pick(monolayer_se),
         "bet_range_relative_pressure_low": np.where(valid_row, x[rows, pa], np.nan),
         "bet_range_relative_pressure_high": np.where(valid_row, x[rows, pb], np.nan),
         "bet_r2": at_pick(fit["r2"]),
@@ -240,7 +254,45 @@ def _window_fits(x, y, valid, a, b):
     r2 = sxy * sxy / (sxx * syy)
     sse = np.maximum(syy - slope * sxy, 0.0)
     return {"slope": slope, "intercept": intercept, "r2": r2, "sse": sse, "sxx": sxx,
-            "mean_x": mean_x, "n": np.broadcast_to(n, slope.shape)}
+            "syy": syy, "mean_x": mean_x, "mean_y": mean_y, "n": np.broadcast_to(n, slope.shape)}
+
+
+def _rising_within_noise(x, rouquerol, valid, bet_fit, a, b, from_first_point):
+    """Criterion 1 as a trend within the noise, for every window [a, b]: (g, m, m) bool.
+
+    Two conditions, both needed:
+      * the least-squares slope of n(1 - x) on x over the window is positive
+        (the trend rises);
+      * from the window's first point (``from_first_point``: from the
+        isotherm's first point, so that the window also ends at or below the
+        maximum of n(1 - x) within the noise) up to the window's end, no point
+        lies below the highest earlier point by more than
+        BET_RISE_NOISE_SIGMAS standard deviations of a difference of two
+        points, sqrt(2) s_rel n(1 - x). s_rel, the relative point noise, comes
+        from the residuals of the window's BET line: y = x / (n (1 - x)) has
+        the relative noise of n (1 - x), so s_rel^2 = SSE / (k - 2) / mean(y^2).
+    Point by point (every step up) the criterion fails on many noisy type I
+    isotherms, where n(1 - x) is flat within the noise near its maximum.
+    """
+    g, m = rouquerol.shape
+    with np.errstate(all="ignore"):
+        r = np.where(valid, rouquerol, np.nan)
+        trend = _window_fits(x, np.where(valid, r, 0.0), valid, a, b)["slope"] > 0
+        k = bet_fit["n"]
+        mean_y2 = bet_fit["syy"] / k + bet_fit["mean_y"] ** 2
+        s_rel = np.sqrt(bet_fit["sse"] / np.where(k > 2, k - 2, np.nan) / mean_y2)
+        allowed = BET_RISE_NOISE_SIGMAS * np.sqrt(2.0) * s_rel
+        if from_first_point:
+            running_max = np.maximum.accumulate(np.nan_to_num(r, nan=-np.inf), axis=1)
+            drop = np.concatenate([np.full((g, 1), -np.inf),
+                                   (running_max[:, :-1] - r[:, 1:]) / r[:, 1:]], axis=1)
+            worst = np.fmax.accumulate(drop, axis=1)[:, None, :]       # up to b, from 0
+            return trend & (worst <= allowed)
+        r_end = np.broadcast_to(r[:, None, :], (g, m, m))
+        running_max = np.maximum.accumulate(np.where(b >= a, r_end, -np.inf), axis=2)
+        drop = (_shift_end(running_max) - r_end) / r_end
+        worst = np.fmax.accumulate(np.where(b > a, drop, -np.inf), axis=2)
+        return trend & (worst <= allowed)
 
 
 def _shift_end(v):
