@@ -191,6 +191,9 @@ def document() -> dict:
                         _query("criterion", "model selection criterion",
                                {"type": "string", "enum": ["aicc", "aic", "bic"], "default": "aicc"}),
                         _query("weighting", "least-squares weighting", {"type": "string"}),
+                        _query("absolute_sigma", "with weighting=sigma: the sigma is calibrated; "
+                               "covariance not rescaled, chi-square reported (docs/results.md)",
+                               {"type": "boolean", "default": False}),
                         {"name": "Idempotency-Key", "in": "header", "required": False,
                          "description": "a retried request with the same key returns the same "
                                         "batch instead of creating another",

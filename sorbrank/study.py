@@ -29,6 +29,7 @@ TEMPERATURE_MATCH_K = 0.5
 
 
 def fit(data, *, units=None, models="all", criterion: str = "aicc", weighting: str = "uniform",
+        absolute_sigma: bool = False,
         conditions: dict | None = None, mixtures: list | None = None,
         sample_mass_g: float | None = None, gases: list | None = None,
         batch_label: str | None = None, workers: int = 1) -> Results:
@@ -45,8 +46,10 @@ def fit(data, *, units=None, models="all", criterion: str = "aicc", weighting: s
 
     ``models`` ("all", "a,b" or a list of model ids), ``criterion`` ("aicc",
     "aic", "bic") and ``weighting`` ("uniform", "relative", "sigma") are the
-    options of ``sorbrank fit``. ``conditions`` and ``mixtures`` take the
-    objects of the JSON batch format and replace those of the input.
+    options of ``sorbrank fit``; ``absolute_sigma=True`` (with weighting
+    "sigma") takes the sigma as calibrated (``--absolute-sigma``).
+    ``conditions`` and ``mixtures`` take the objects of the JSON batch format
+    and replace those of the input.
     ``gases`` declares gases the property table does not know (dicts with
     ``name``, ``molar_mass_g_per_mol`` and optionally
     ``critical_temperature_k``). ``workers`` > 1 fits chunks of 2,000
@@ -58,7 +61,8 @@ def fit(data, *, units=None, models="all", criterion: str = "aicc", weighting: s
     """
     from sorbrank.worker.pipeline import FitOptions, process_batch
 
-    options = FitOptions(models=models, criterion=criterion, weighting=weighting)
+    options = FitOptions(models=models, criterion=criterion, weighting=weighting,
+                         absolute_sigma=absolute_sigma)
     if not isinstance(workers, int) or isinstance(workers, bool) or workers < 1:
         raise ValueError(f"workers must be a whole number of at least 1; got {workers!r}")
     batch = read_data(data, units=units, sample_mass_g=sample_mass_g, gases=gases,

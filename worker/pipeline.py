@@ -43,6 +43,8 @@ class FitOptions:
     def __post_init__(self):
         if self.criterion not in CRITERIA:
             raise ValueError(f"criterion must be one of {', '.join(CRITERIA)}; got {self.criterion!r}")
+        if not isinstance(self.absolute_sigma, bool):
+            raise ValueError(f"absolute_sigma must be true or false; got {self.absolute_sigma!r}")
         check_weighting(self.weighting, self.absolute_sigma)
         try:
             chosen = resolve_models(self.models)
@@ -246,7 +248,7 @@ def process_batch(batch: Batch, options: FitOptions | None = None, *, workers: i
     if packed.n:
         from . import metrics  # imported here: metrics depend on the catalogue, not the reverse
 
-        result.summary = metrics.summarize(packed, fits, selection, batch)
+        result.summary = metrics.summarize(packed, fits, selection, batch, options.weighting)
         result.sorbent_rows = metrics.sorbent_metrics(packed, fits, selection, batch)
     return result
 

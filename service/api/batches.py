@@ -73,6 +73,9 @@ def _fit_options() -> dict:
         if raw is not None:
             options[name] = raw if name != "models" or raw == "all" else \
                 [m.strip() for m in raw.split(",") if m.strip()]
+    raw = request.args.get("absolute_sigma")
+    if raw is not None:  # any text but true/false stays text, which FitOptions refuses
+        options["absolute_sigma"] = {"true": True, "false": False}.get(raw, raw)
     try:
         FitOptions(**options)
     except (TypeError, ValueError, KeyError) as exc:

@@ -71,6 +71,9 @@ options in detail:
                 loading, so low-pressure points weigh as much as the plateau.
                 sigma: the per-point 'sigma' column of the input (mol/kg after
                 unit conversion); isotherms without it use uniform weights.
+  --absolute-sigma  with --weighting sigma: the sigma is calibrated, so the
+                covariance is not rescaled by the residual variance and each
+                fit reports a chi-square test (docs/results.md).
   --sort        a column of the summary table (see --format csv), e.g.
                 q_sat_mol_per_kg (default), henry_mol_per_kg_pa,
                 working_capacity_mol_per_kg, sorbent_id. Numbers sort
@@ -119,6 +122,8 @@ def register(subparsers) -> None:
                         help="information criterion that selects the model (default: aicc)")
     parser.add_argument("--weighting", choices=WEIGHTINGS, default="uniform",
                         help="least-squares weights (default: uniform)")
+    parser.add_argument("--absolute-sigma", action="store_true",
+                        help="with --weighting sigma: take the sigma as calibrated")
     parser.add_argument("--format", choices=FORMATS, default="table", dest="fmt",
                         help="output format (default: table)")
     parser.add_argument("--out", metavar="PATH", default=None,
@@ -233,7 +238,8 @@ def run(args) -> int:
     if args.fits and args.fmt not in ("csv", "parquet"):
         return _usage_error("--fits applies to --format csv or parquet")
     try:
-        options = FitOptions(models=args.models, criterion=args.criterion, weighting=args.weighting)
+        options = FitOptions(models=args.models, criterion=args.criterion, weighting=args.weighting,
+                             absolute_sigma=args.absolute_sigma)
     except ValueError as exc:
         return _usage_error(str(exc))
 
