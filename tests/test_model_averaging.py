@@ -180,6 +180,11 @@ def test_a_single_eligible_model_reproduces_the_selected_figures():
     low, high = positive_interval_95(s["q_sat_mol_per_kg"], s["q_sat_stderr_mol_per_kg"], dof)
     np.testing.assert_allclose(s["q_sat_averaged_ci95_low_mol_per_kg"], low, rtol=1e-12)
     np.testing.assert_allclose(s["q_sat_averaged_ci95_high_mol_per_kg"], high, rtol=1e-12)
+    # and so the selected capacity's own interval columns
+    np.testing.assert_allclose(s["q_sat_averaged_ci95_low_mol_per_kg"],
+                               s["q_sat_ci95_low_mol_per_kg"], rtol=1e-12)
+    np.testing.assert_allclose(s["q_sat_averaged_ci95_high_mol_per_kg"],
+                               s["q_sat_ci95_high_mol_per_kg"], rtol=1e-12)
 
 
 def test_other_models_excluded_leave_the_selected_figure():
