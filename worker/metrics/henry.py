@@ -33,6 +33,7 @@ import numpy as np
 from ..models.linear import masked_linear_fit
 from ..packing import Packed
 from ..results import ModelFits, Selection
+from .averaging import central_difference_gradient, delta_method_variance
 from .common import (add_flag, max_measured_loading, positive_interval_95, selected_groups,
                      selected_loading)
 
@@ -53,9 +54,6 @@ HENRY_REGION_TOLERANCE = 1.10
 # Models whose p -> 0 slope is governed by a fitted heterogeneity exponent.
 EXPONENT_SHAPED_MODELS = frozenset({"toth", "redlich_peterson", "sips", "freundlich",
                                     "dubinin_astakhov"})
-
-# Relative step of the central differences that give dK_H/dparam.
-_GRADIENT_STEP = 1e-6
 
 
 def model_henry_constant(packed: Packed, fits: dict[str, ModelFits],
@@ -99,21 +97,14 @@ def _limit(model, params, temperature_k, saturation_pressure_pa, shape):
 
 def _delta_method_stderr(model, params, covariance, temperature_k, saturation_pressure_pa,
                          value) -> np.ndarray:
-    """sqrt(g' C g) with g = dK_H/dparams by central differences; nan where
-    K_H is not finite and positive or the covariance is missing."""
-    g = np.empty(params.shape)
-    for j in range(params.shape[1]):
-        step = _GRADIENT_STEP * np.maximum(np.abs(params[:, j]), 1e-300)
-        up, down = params.copy(), params.copy()
-        up[:, j] += step
-        down[:, j] -= step
-        k_up = _limit(model, up, temperature_k, saturation_pressure_pa, value.shape)
-        k_down = _limit(model, down, temperature_k, saturation_pressure_pa, value.shape)
-        with np.errstate(invalid="ignore"):
-            g[:, j] = (k_up - k_down) / (2.0 * step)
-    with np.errstate(invalid="ignore", over="ignore"):
-        variance = np.einsum("ni,nij,nj->n", g, covariance, g)
-        ok = np.isfinite(value) & (value > 0) & np.isfinite(variance) & (variance >= 0)
+    """sqrt(g' C g) with g = dK_H/dparams; nan where K_H is not finite and
+    positive or the covariance is missing."""
+    gradient = central_difference_gradient(
+        lambda trial: _limit(model, trial, temperature_k, saturation_pressure_pa, value.shape),
+        params)
+    variance = delta_method_variance(gradient, covariance)
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(value) & (value > 0) & np.isfinite(variance)
         return np.where(ok, np.sqrt(np.where(ok, variance, 0.0)), np.nan)
 
 
