@@ -193,3 +193,23 @@ def test_supercritical_bet_gas_is_skipped_without_a_flag():
     out = summarize(packed, {}, selection_of([None], ["langmuir"]), batch)
     assert np.isnan(out["bet_area_m2_per_g"][0])
     assert not any(f.startswith("bet") for f in out["flags"][0])
+
+
+def test_krypton_77_k_in_relative_pressure_gets_a_bet_area_on_the_supercooled_liquid_p0():
+    # a Kr isotherm at 77.35 K sent in p/p0 with no p0: intake refers it to the
+    # supercooled-liquid p0 (0.350 kPa, conventional), BET gives the area with
+    # Kr's 0.202 nm2 (IUPAC 2015, from memory) and the isotherm says which p0 it used
+    from sorbrank.worker.intake import read_batch
+    from sorbrank.worker.pipeline import FitOptions, process_batch
+    rows = "\n".join(f"kr-s1,Kr,77.35,{x:.6g},{type_ii(x, 100.0):.9g}" for x in X if x < 0.6)
+    csv = ("# units: pressure:p/p0,loading:mol/kg\n"
+           "sorbent_id,adsorbate,temperature_k,pressure,loading\n" + rows + "\n")
+    result = process_batch(read_batch(csv), FitOptions())
+    (iso,) = result.batch.isotherms
+    assert iso.saturation_pressure_pa == pytest.approx(350.0, rel=1e-9)
+    summary = result.summary_table().to_pylist()[0]
+    kr_area = N_M_MOL_PER_KG / 1000 * constants.Avogadro * 0.202e-18
+    assert summary["bet_area_m2_per_g"] == pytest.approx(kr_area, rel=0.02)
+    assert "p0_supercooled_liquid" in summary["flags"]
+    low, high = summary["bet_area_ci95_low_m2_per_g"], summary["bet_area_ci95_high_m2_per_g"]
+    assert 0 < low <= summary["bet_area_m2_per_g"] <= high

@@ -1387,7 +1387,7 @@ def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: L
     ads_index_g[np.isfinite(low)] = low[np.isfinite(low)].astype(np.int64)
     p0_g = group_value["saturation_pressure"].copy()
     for g in np.flatnonzero(np.isnan(p0_g) & (ads_index_g >= 0) & np.isfinite(temperature_g)):
-        computed = adsorbates.saturation_pressure_pa(table[ads_index_g[g]], temperature_g[g])
+        computed = adsorbates.relative_pressure_p0_pa(table[ads_index_g[g]], temperature_g[g])
         p0_g[g] = np.nan if computed is None else computed
     relative_g = _group_range(is_relative.astype(float), p_unit >= 0, gid, n_groups)[1] == 1.0
     p0_sent_g = np.bincount(gid, weights=number["saturation_pressure"].problem == _OK,

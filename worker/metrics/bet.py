@@ -36,7 +36,7 @@ import numpy as np
 from scipy import constants
 from scipy.special import stdtrit
 
-from ..adsorbates import ADSORBATES, lookup
+from ..adsorbates import ADSORBATES, lookup, supercooled_liquid_saturation_pressure_pa
 from ..packing import Packed
 from .common import add_flag, positive_interval_95
 
@@ -99,6 +99,12 @@ def bet_columns(packed: Packed, flags: list[list[str]]) -> dict[str, np.ndarray]
     # temperature are ordinary screening isotherms, not BET measurements
     add_flag(flags, is_bet_gas & ~at_usual_t & has_p0, "bet_unusual_temperature")
     add_flag(flags, is_bet_gas & at_usual_t & ~has_p0, "bet_no_saturation_pressure")
+    # Kr (and Ar) at 77 K: the relative pressures refer to the supercooled liquid
+    supercooled = np.array([supercooled_liquid_saturation_pressure_pa(g, t) if g else None
+                            for g, t in zip(gas, packed.temperature_k)], dtype=float)
+    with np.errstate(invalid="ignore"):
+        add_flag(flags, has_p0 & (np.abs(packed.saturation_pressure_pa / supercooled - 1.0) <= 1e-9),
+                 "p0_supercooled_liquid")
     add_flag(flags, is_bet_gas & at_usual_t & has_p0 & ~adsorption, "bet_not_adsorption_branch")
     todo = np.flatnonzero(is_bet_gas & at_usual_t & has_p0 & adsorption)
 
