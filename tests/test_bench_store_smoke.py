@@ -35,6 +35,7 @@ def rows_for(seed: int, n: int) -> list[dict]:
             "temperature_k": rng.choice([273.15, 298.15, 297.5, 298.5, 298.0, 313.15]),
             "q_sat_mol_per_kg": q,
             "henry_mol_per_kg_pa": rng.choice([None, rng.uniform(1e-6, 1e-4)]),
+            "loading_ads_mol_per_kg": q,   # the default sort
             "flags": rng.choice(FLAGS),
         })
     return rows
@@ -189,7 +190,7 @@ def test_new_replaced_removed_and_damaged_files_are_seen_by_the_next_query(tmp_p
     # a retried job replaces its chunk: the new content is what ranks
     replaced = [{**r, "q_sat_mol_per_kg": 99.0 + k} for k, r in enumerate(extra[:3])]
     write(store, batch_id, late, replaced, 0)
-    top = rankings(store, RankingQuery(limit=3, all_results=True))[0]
+    top = rankings(store, RankingQuery(limit=3, all_results=True, sort="q_sat_mol_per_kg"))[0]
     assert top["q_sat_mol_per_kg"].to_pylist() == [101.0, 100.0, 99.0]
     # a damaged file and a dot-file are ignored; a removed batch disappears
     partition = store.table_path("summaries", batch_id, 0).parent

@@ -30,8 +30,12 @@ def summary_rows(n, *, seed, sorbents=6, adsorbates=("CO2", "N2"), temps=(273.15
             "adsorbate": rng.choice(adsorbates),
             "temperature_k": rng.choice(temps) + rng.choice([0.0, 0.1, -0.2]),
             "q_sat_mol_per_kg": rng.choice([None, float("nan")] + [rng.uniform(0, 10)] * 8),
+            "q_sat_stderr_mol_per_kg": rng.choice([None, rng.uniform(0, 1), rng.uniform(0, 5)]),
             "henry_mol_per_kg_pa": rng.uniform(1e-6, 1e-4),
-            "flags": rng.choice([[], ["at_bound"], ["ambiguous", "at_bound"], ["ambiguous"]]),
+            "loading_ads_mol_per_kg": rng.choice([None, float("nan")] + [rng.uniform(0, 5)] * 8),
+            "flags": rng.choice([[], ["at_bound"], ["ambiguous", "at_bound"], ["ambiguous"],
+                                 ["extrapolated_adsorption_pressure"],
+                                 ["capacity_extrapolated", "ambiguous"]]),
         })
     return rows
 
@@ -159,9 +163,20 @@ def brute_force_rankings(batches, query: RankingQuery):
         v = r[query.sort]
         return None if v is None or v != v else v
 
+    def demoted(r):
+        """The documented reliability rules, restated (docs/results.md, "Default ranking")."""
+        if not query.unreliable_last:
+            return False
+        if query.sort == "loading_ads_mol_per_kg":
+            return "extrapolated_adsorption_pressure" in r["flags"]
+        if query.sort == "q_sat_mol_per_kg":
+            q, se = r["q_sat_mol_per_kg"], r["q_sat_stderr_mol_per_kg"]
+            return "capacity_extrapolated" in r["flags"] or se is None or not se <= 0.25 * q
+        return False
+
     present = [r for r in rows if value(r) is not None]
     missing = [r for r in rows if value(r) is None]
-    present.sort(key=lambda r: (-value(r) if query.descending else value(r),
+    present.sort(key=lambda r: (demoted(r), -value(r) if query.descending else value(r),
                                 r["sorbent_id"], r["isotherm_id"]))
     return [(r["batch_id"], r["isotherm_id"]) for r in present], len(rows), missing
 
@@ -172,6 +187,10 @@ def brute_force_rankings(batches, query: RankingQuery):
     RankingQuery(limit=1000, adsorbate="CO2", temperature_k=298.0),
     RankingQuery(limit=1000, sort="henry_mol_per_kg_pa", descending=False),
     RankingQuery(limit=1000, flags=("ambiguous",), exclude_flags=("at_bound",)),
+    RankingQuery(limit=1000, sort="q_sat_mol_per_kg"),
+    RankingQuery(limit=1000, sort="q_sat_mol_per_kg", unreliable_last=False),
+    RankingQuery(limit=1000, unreliable_last=False, all_results=True),
+    RankingQuery(limit=1000, sort="q_sat_mol_per_kg", adsorbate="CO2", temperature_k=298.0),
 ])
 def test_rankings_match_brute_force_latest_wins(tmp_path, query):
     store = Store(tmp_path)
@@ -421,12 +440,132 @@ def test_a_page_sorted_from_its_candidates_is_the_page_of_the_full_sort(descendi
         "batch_id": pa.array([f"b{i}" for i in rng.integers(0, 5, n)]),
     })
     rows = np.sort(rng.choice(n, 1500, replace=False))
-    for offset, limit in ((0, 10), (0, 1), (37, 25), (1300, 100), (1490, 20), (1600, 5)):
+    # rows whose figure is unreliable come after the rest (the _demoted helper column)
+    demoted = table.append_column("_demoted", pa.array((rng.random(n) < 0.3).astype(np.int8)))
+    for offset, limit in ((0, 10), (0, 1), (37, 25), (1300, 100), (1490, 20), (1600, 5),
+                          (1000, 30)):
         query = RankingQuery(sort="q_sat_mol_per_kg", descending=descending, offset=offset, limit=limit)
-        for subset in (None, rows):
-            page, total = _page_of(table, subset, query)
-            whole = table if subset is None else table.take(pa.array(subset))
+        for subset, ranked in ((None, table), (rows, table), (None, demoted), (rows, demoted)):
+            page, total = _page_of(ranked, subset, query)
+            whole = ranked if subset is None else ranked.take(pa.array(subset))
             expected = _sorted_for_page(whole, query).slice(offset, limit)
             assert total == whole.num_rows
             # repr: NaN rows compare equal as text, not as floats
             assert repr(page.to_pylist()) == repr(expected.to_pylist()), (offset, limit, subset is None)
+
+
+# -- the default ranking: reliability and conditions (docs/results.md, "Default ranking")
+
+def _manifest(store, batch_id, p_ads, p_des):
+    store.write_manifest({"batch_id": batch_id, "conditions": {
+        "adsorption_pressure_pa": p_ads, "desorption_pressure_pa": p_des,
+        "reference_pressures_pa": [], "adsorption_temperature_k": None,
+        "desorption_temperature_k": None}})
+
+
+def _row(iso, sorbent, loading, q_sat, stderr, flags=(), temperature_k=298.15):
+    return {"isotherm_id": iso, "sorbent_id": sorbent, "adsorbate": "CO2",
+            "temperature_k": temperature_k, "loading_ads_mol_per_kg": loading,
+            "loading_des_mol_per_kg": loading / 2,
+            "working_capacity_mol_per_kg": loading / 2, "q_sat_mol_per_kg": q_sat,
+            "q_sat_stderr_mol_per_kg": stderr, "flags": list(flags)}
+
+
+def test_extrapolated_rows_sort_last_by_default_and_in_place_only_when_asked(tmp_path):
+    """Truth set of our own: the largest figures are the extrapolated ones
+    (a 730 mol/kg capacity flagged capacity_extrapolated, a 489.9 mol/kg one
+    with a 60 % standard error, a loading at a pressure beyond the data)."""
+    from sorbrank.worker.store import ranking
+
+    store = Store(tmp_path)
+    batch_id = new_batch_id(T0)
+    _manifest(store, batch_id, 1e5, 1e4)
+    write_summaries(store, batch_id, T0, [
+        _row("i1", "far", 9.0, 730.0, 20.0, ["capacity_extrapolated"]),
+        _row("i2", "loose", 8.0, 489.9, 294.0),
+        _row("i3", "beyond", 12.0, 5.0, 0.2, ["extrapolated_adsorption_pressure"]),
+        _row("i4", "good", 3.0, 4.0, 0.1),
+        _row("i5", "fair", 2.0, 6.0, 1.4),   # 23 % relative standard error: inside the bound
+    ])
+
+    def order(**kw):
+        return ranking(store, RankingQuery(**kw)).page["sorbent_id"].to_pylist()
+
+    # the default sort is the loading at the adsorption pressure
+    assert RankingQuery().sort == "loading_ads_mol_per_kg"
+    assert order() == ["far", "loose", "good", "fair", "beyond"]
+    assert order(unreliable_last=False) == ["beyond", "far", "loose", "good", "fair"]
+    assert order(sort="q_sat_mol_per_kg") == ["fair", "beyond", "good", "far", "loose"]
+    assert order(sort="q_sat_mol_per_kg", unreliable_last=False)[:2] == ["far", "loose"]
+    # ascending keeps the unreliable rows last too
+    assert order(sort="q_sat_mol_per_kg", descending=False) == [
+        "good", "beyond", "fair", "loose", "far"]
+    page = ranking(store, RankingQuery(sort="q_sat_mol_per_kg")).page
+    assert page["q_sat_reliable"].to_pylist() == [True, True, True, False, False]
+    assert page["loading_ads_reliable"].to_pylist() == [True, False, True, True, True]
+    # a page inside the reliable rows, and one that reaches the demoted tail
+    assert order(sort="q_sat_mol_per_kg", limit=2) == ["fair", "beyond"]
+    assert order(sort="q_sat_mol_per_kg", limit=2, offset=3) == ["far", "loose"]
+
+
+def test_old_rows_get_the_default_sort_reliability_and_condition_columns_on_read(tmp_path):
+    """Rows as an older sorbrank stored them (no reliability or condition
+    columns): the ranking reads them with both, conditions from the manifest."""
+    from sorbrank.worker.store import CONDITION_COLUMNS, ranking
+
+    store = Store(tmp_path)
+    batch_id = new_batch_id(T0)
+    _manifest(store, batch_id, 2e5, 5e3)
+    old = [_row("i1", "A", 2.0, 3.0, 0.1), _row("i2", "B", 1.0, 900.0, 10.0,
+                                                 ["capacity_extrapolated"], temperature_k=273.15)]
+    write_summaries(store, batch_id, T0, old)
+    assert "q_sat_reliable" not in store.dataset("summaries").schema.names
+    result = ranking(store, RankingQuery())
+    rows = result.page.to_pylist()
+    assert [r["sorbent_id"] for r in rows] == ["A", "B"]
+    for name in CONDITION_COLUMNS + ("q_sat_reliable", "loading_ads_reliable",
+                                     "working_capacity_reliable"):
+        assert name in result.page.column_names
+    assert [(r["adsorption_pressure_pa"], r["desorption_pressure_pa"]) for r in rows] == [
+        (2e5, 5e3), (2e5, 5e3)]
+    assert [r["adsorption_temperature_k"] for r in rows] == [298.15, 273.15]
+    assert [r["q_sat_reliable"] for r in rows] == [True, False]
+    # a store without manifests (or a batch whose manifest is unreadable): conditions unknown
+    bare = Store(tmp_path / "bare")
+    write_summaries(bare, new_batch_id(T0), T0, old)
+    page = ranking(bare, RankingQuery()).page
+    assert page["adsorption_pressure_pa"].to_pylist() == [None, None]
+
+
+def test_mixed_condition_rankings_are_marked_and_one_condition_set_is_not(tmp_path):
+    from sorbrank.worker.store import ranking
+
+    store = Store(tmp_path)
+    first, second = new_batch_id(T0), new_batch_id(T0 + timedelta(minutes=1))
+    _manifest(store, first, 1e5, 1e4)
+    _manifest(store, second, 5e5, 1e4)
+    write_summaries(store, first, T0, [_row("i1", "A", 2.0, 3.0, 0.1),
+                                       _row("i2", "B", 1.5, 3.0, 0.1, temperature_k=298.4)])
+    write_summaries(store, second, T0 + timedelta(minutes=1), [_row("i3", "C", 4.0, 5.0, 0.1)])
+
+    mixed = ranking(store, RankingQuery())
+    assert mixed.mixed_conditions
+    assert mixed.condition_sets == [
+        # one temperature over the ranking (298.15, 298.4, 298.15 K: their mean), two pressures
+        {"adsorption_pressure_pa": 1e5, "adsorption_temperature_k": 298.23, "rows": 2},
+        {"adsorption_pressure_pa": 5e5, "adsorption_temperature_k": 298.23, "rows": 1}]
+    # one batch: one pressure; 298.15 and 298.4 K are one temperature (within 0.5 K)
+    one = ranking(store, RankingQuery(batch_id=first))
+    assert not one.mixed_conditions and one.condition_sets[0]["rows"] == 2
+    # the desorption pressure is shared: a ranking by the desorption loading is not mixed
+    assert not ranking(store, RankingQuery(sort="loading_des_mol_per_kg")).mixed_conditions
+    # working capacity depends on both pressures
+    assert ranking(store, RankingQuery(sort="working_capacity_mol_per_kg")).mixed_conditions
+    # a figure with no process conditions reports none
+    assert ranking(store, RankingQuery(sort="q_sat_mol_per_kg")).condition_sets == []
+    # temperatures more than the tolerance apart are different conditions
+    write_summaries(store, first, T0, [_row("i4", "D", 2.5, 3.0, 0.1, temperature_k=273.15)],
+                    chunk=1)
+    by_temperature = ranking(store, RankingQuery(batch_id=first))
+    assert [s["adsorption_temperature_k"] for s in by_temperature.condition_sets] == pytest.approx(
+        [298.275, 273.15], abs=0.006)

@@ -248,6 +248,8 @@ class Store:
         self.root = Path(self.base) if local else os.fspath(root)
         # rankings: fragments and schema of the summaries, kept between queries
         self._summaries_index = _TableIndex("summaries")
+        # batch id -> (adsorption, desorption pressure) from its manifest, written once
+        self._batch_pressures: dict[str, tuple[float, float] | None] = {}
 
     def _join(self, *parts: str):
         return self._path_type(posixpath.join(self.base, *parts))
@@ -375,6 +377,25 @@ class Store:
     def write_chunk_status(self, batch_id: str, chunk_index: int, status: dict) -> None:
         self._write_json(self.batch_dir(batch_id) / f"chunk-{int(chunk_index):05d}.json", status)
 
+    def batch_pressures(self, batch_id: str | None) -> tuple[float, float] | None:
+        """(adsorption, desorption pressure) in Pa a batch's loadings and
+        working capacity were computed at (its manifest's conditions); None
+        when unknown. Kept: a manifest never changes once written."""
+        if batch_id is None or not is_batch_id(batch_id):
+            return None
+        if batch_id not in self._batch_pressures:
+            manifest = self.read_manifest(batch_id) or {}
+            conditions = manifest.get("conditions") or {}
+            try:
+                found = (float(conditions["adsorption_pressure_pa"]),
+                         float(conditions["desorption_pressure_pa"]))
+            except (KeyError, TypeError, ValueError):
+                found = None
+            if manifest:  # an absent manifest may yet be written: ask again next time
+                self._batch_pressures[batch_id] = found
+            return found
+        return self._batch_pressures[batch_id]
+
     def read_chunk_statuses(self, batch_id: str) -> dict[int, dict]:
         out = {}
         names = sorted(info.base_name for info in fs.list_dir(self.fs, str(self.batch_dir(batch_id)))
@@ -448,11 +469,106 @@ class RankingQuery:
     exclude_flags: tuple[str, ...] = ()  # drop rows carrying any of these
     batch_id: str | None = None
     sorbent_id: str | None = None
-    sort: str = "q_sat_mol_per_kg"
+    sort: str = "loading_ads_mol_per_kg"   # DEFAULT_RANKING_SORT
     descending: bool = True
     limit: int = 100
     offset: int = 0
     all_results: bool = False
+    # rows whose sorted figure is not supported by the data come after the rest
+    unreliable_last: bool = True
+
+
+# The default ranking leads with a figure inside the measured range: the
+# loading at the batch's adsorption pressure, at the isotherm's own
+# temperature (docs/results.md, "Default ranking").
+DEFAULT_RANKING_SORT = "loading_ads_mol_per_kg"
+# a saturation capacity whose standard error exceeds this share of it is not
+# ranked on (common practice for "poorly determined", no published source)
+Q_SAT_MAX_RELATIVE_STDERR = 0.25
+# sort column -> the boolean column that says whether a row's value is supported
+RELIABILITY_OF_SORT = {
+    "loading_ads_mol_per_kg": "loading_ads_reliable",
+    "working_capacity_mol_per_kg": "working_capacity_reliable",
+    "q_sat_mol_per_kg": "q_sat_reliable",
+    "q_sat_stderr_mol_per_kg": "q_sat_reliable",
+    "q_sat_ci95_low_mol_per_kg": "q_sat_reliable",
+    "q_sat_ci95_high_mol_per_kg": "q_sat_reliable",
+}
+# reliability column -> (value columns it is judged on, flags that make it an extrapolation)
+_RELIABILITY_RULES = {
+    "q_sat_reliable": (("q_sat_mol_per_kg", "q_sat_stderr_mol_per_kg"),
+                       ("capacity_extrapolated",)),
+    "loading_ads_reliable": (("loading_ads_mol_per_kg",), ("extrapolated_adsorption_pressure",)),
+    "working_capacity_reliable": (("working_capacity_mol_per_kg",),
+                                  ("extrapolated_adsorption_pressure",
+                                   "extrapolated_desorption_pressure")),
+}
+# the process conditions behind the per-isotherm loadings and working capacity
+# (a pressure swing at the isotherm's own temperature)
+CONDITION_COLUMNS = ("adsorption_pressure_pa", "desorption_pressure_pa",
+                     "adsorption_temperature_k", "desorption_temperature_k")
+# sort column -> the condition columns its value depends on
+CONDITIONS_OF_SORT = {
+    "loading_ads_mol_per_kg": ("adsorption_pressure_pa", "adsorption_temperature_k"),
+    "loading_des_mol_per_kg": ("desorption_pressure_pa", "desorption_temperature_k"),
+    "working_capacity_mol_per_kg": CONDITION_COLUMNS,
+}
+_REFERENCE_LOADING = re.compile(r"^loading_at_.+_pa_mol_per_kg$")
+
+
+def conditions_of_sort(sort: str) -> tuple[str, ...]:
+    """The condition columns a ranking by ``sort`` depends on (none for other figures)."""
+    if _REFERENCE_LOADING.fullmatch(sort):  # the pressure is in the column's name
+        return ("adsorption_temperature_k",)
+    return CONDITIONS_OF_SORT.get(sort, ())
+
+
+def rows_with_flag(flags, name: str) -> np.ndarray:
+    """(n,) bool: which rows of a flags column (list of strings, or "a;b" text) hold ``name``."""
+    flags = flags.combine_chunks() if isinstance(flags, pa.ChunkedArray) else flags
+    if (pa.types.is_list(flags.type) or pa.types.is_large_list(flags.type)) and (
+            pa.types.is_string(flags.type.value_type)
+            or pa.types.is_large_string(flags.type.value_type)):
+        # vectorised: nulls and null items hold none
+        values = pc.list_flatten(flags)
+        parents = pc.list_parent_indices(flags).to_numpy(zero_copy_only=False)
+        hit = pc.equal(values, name).fill_null(False).to_numpy(zero_copy_only=False)
+        has = np.zeros(len(flags), dtype=bool)
+        has[parents[hit]] = True
+        return has
+    return np.array([name in _row_flags(f) for f in flags.to_pylist()], dtype=bool)
+
+
+def _float_values(table: pa.Table, name: str) -> np.ndarray:
+    """A column as float64 (null -> NaN); all NaN when the table lacks it."""
+    if name not in table.column_names:
+        return np.full(table.num_rows, np.nan)
+    column = table[name]
+    if not (pa.types.is_floating(column.type) or pa.types.is_integer(column.type)
+            or pa.types.is_null(column.type)):
+        return np.full(table.num_rows, np.nan)
+    return np.asarray(pc.cast(column, pa.float64()).to_numpy(zero_copy_only=False),
+                      dtype=np.float64)
+
+
+def reliable_rows(table: pa.Table, reliability: str) -> np.ndarray:
+    """(n,) bool: the rows whose figure the ``reliability`` rule accepts.
+
+    A figure is reliable when it is a finite number, no flag marks it as an
+    extrapolation, and, for the saturation capacity, it is positive with a
+    standard error at most Q_SAT_MAX_RELATIVE_STDERR of it. Judged from the
+    stored values and flags, so rows written before the rule existed get it too."""
+    values, extrapolation_flags = _RELIABILITY_RULES[reliability]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        figure = _float_values(table, values[0])
+        ok = np.isfinite(figure)
+        if reliability == "q_sat_reliable":
+            stderr = _float_values(table, values[1])
+            ok &= (figure > 0) & np.isfinite(stderr) & (stderr <= Q_SAT_MAX_RELATIVE_STDERR * figure)
+    if "flags" in table.column_names:
+        for name in extrapolation_flags:
+            ok &= ~rows_with_flag(table["flags"], name)
+    return ok
 
 
 def _row_flags(value) -> set[str]:
@@ -615,9 +731,18 @@ _RANKING_KEYS = ("batch_id", "isotherm_id", "sorbent_id", "adsorbate", "temperat
 
 
 def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
+    """Filtered, de-duplicated (unless ``all_results``), sorted summaries:
+    (the requested page of stored rows, the number of rows before paging).
+    ``ranking`` adds the columns and conditions a reader needs."""
+    page, total, _ = _rank(store, query)
+    return page, total
+
+
+def _rank(store: "Store", query: RankingQuery) -> tuple[pa.Table, int, pa.Table]:
     """Filtered, de-duplicated (unless ``all_results``), sorted summaries.
 
-    Returns (the requested page, the number of rows before paging). Filters that
+    Returns (the requested page, the number of rows before paging, the batch
+    id and temperature of every ranked row). Filters that
     choose which measurements compete (batch, sorbent, adsorbate, temperature)
     apply before latest-wins; flag filters apply to the winners, so an old
     result never resurfaces because the newer one lacks a flag.
@@ -633,7 +758,7 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
     snap = index.current(store) if index is not None else None
     data = snap.dataset if snap is not None else store.dataset("summaries")
     if data is None:
-        return pa.table({}), 0
+        return pa.table({}), 0, pa.table({})
     if query.sort not in sortable_columns(data.schema):
         raise ValueError(f"cannot sort by {query.sort!r}; sortable columns: "
                          + ", ".join(sortable_columns(data.schema)))
@@ -656,7 +781,7 @@ def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
         ranked = _rank_cached(index, snap, query)
         if ranked is not None:
             return ranked
-    return _rank_whole_rows(data.to_table(filter=where), query)
+    return _ranked_whole_rows(data.to_table(filter=where), query)
 
 
 def _latest_rows(table: pa.Table) -> np.ndarray | None:
@@ -754,35 +879,37 @@ def _latest_wins_by_sorting(table: pa.Table) -> pa.Table:
 
 
 def _flag_filter(table: pa.Table, query: RankingQuery) -> pa.Table:
-    want, avoid = set(query.flags), set(query.exclude_flags)
-    flags = table["flags"]
-    if (pa.types.is_list(flags.type) or pa.types.is_large_list(flags.type)) and (
-            pa.types.is_string(flags.type.value_type)
-            or pa.types.is_large_string(flags.type.value_type)):
-        # vectorised: which rows hold each flag (nulls and null items hold none)
-        flags = flags.combine_chunks() if isinstance(flags, pa.ChunkedArray) else flags
-        values = pc.list_flatten(flags)
-        parents = pc.list_parent_indices(flags).to_numpy(zero_copy_only=False)
-        keep = np.ones(len(flags), dtype=bool)
-        for name, wanted in [(f, True) for f in want] + [(f, False) for f in avoid]:
-            hit = pc.equal(values, name).fill_null(False).to_numpy(zero_copy_only=False)
-            has = np.zeros(len(flags), dtype=bool)
-            has[parents[hit]] = True
-            keep &= has if wanted else ~has
-        return table.filter(pa.array(keep, pa.bool_()))
-    keep = [want <= f and not (avoid & f) for f in map(_row_flags, flags.to_pylist())]
+    keep = np.ones(table.num_rows, dtype=bool)
+    for name in query.flags:
+        keep &= rows_with_flag(table["flags"], name)
+    for name in query.exclude_flags:
+        keep &= ~rows_with_flag(table["flags"], name)
     return table.filter(pa.array(keep, pa.bool_()))
+
+
+# helper column: 1 where the row's sorted figure is unreliable (they rank after the rest)
+_DEMOTED = "_demoted"
 
 
 def _sorted_for_page(table: pa.Table, query: RankingQuery) -> pa.Table:
     order = "descending" if query.descending else "ascending"
-    return table.sort_by([(query.sort, order, "at_end"), ("sorbent_id", "ascending", "at_end"),
-                          ("isotherm_id", "ascending", "at_end"),
-                          ("batch_id", "descending", "at_end")])
+    first = [(_DEMOTED, "ascending")] if _DEMOTED in table.column_names else []
+    return table.sort_by(first + [(query.sort, order, "at_end"),
+                                  ("sorbent_id", "ascending", "at_end"),
+                                  ("isotherm_id", "ascending", "at_end"),
+                                  ("batch_id", "descending", "at_end")])
 
 
 def _rank_whole_rows(table: pa.Table, query: RankingQuery) -> tuple[pa.Table, int]:
     """Latest-wins, flag filter, order and page over complete rows."""
+    page, total, _ = _ranked_whole_rows(table, query)
+    return page, total
+
+
+def _ranked_whole_rows(table: pa.Table, query: RankingQuery
+                       ) -> tuple[pa.Table, int, pa.Table]:
+    """The page, the number of ranked rows, and the batch id and temperature
+    of every ranked row (what the conditions of the ranking are read from)."""
     rows = None   # the winners by index, taken only once it is known which are needed
     if not query.all_results and table.num_rows:
         rows = _latest_rows(table)
@@ -792,7 +919,19 @@ def _rank_whole_rows(table: pa.Table, query: RankingQuery) -> tuple[pa.Table, in
         if rows is not None:
             table, rows = table.take(pa.array(rows)), None
         table = _flag_filter(table, query)
-    return _page_of(table, rows, query)
+    reliability = RELIABILITY_OF_SORT.get(query.sort) if query.unreliable_last else None
+    if reliability is not None and table.num_rows:
+        if rows is not None:
+            table, rows = table.take(pa.array(rows)), None
+        table = table.append_column(_DEMOTED, pa.array(
+            (~reliable_rows(table, reliability)).astype(np.int8)))
+    ranked_keys = [n for n in ("batch_id", "temperature_k") if n in table.column_names]
+    ranked = table.select(ranked_keys) if rows is None else \
+        table.select(ranked_keys).take(pa.array(rows))
+    page, total = _page_of(table, rows, query)
+    if _DEMOTED in page.column_names:
+        page = page.drop_columns([_DEMOTED])
+    return page, total, ranked
 
 
 def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> tuple[pa.Table, int]:
@@ -810,6 +949,9 @@ def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> t
         values = (column if rows is None else column.take(pa.array(rows))).to_numpy(zero_copy_only=False)
         values = np.asarray(values, dtype=np.float64)
         finite = ~np.isnan(values)
+        if _DEMOTED in table.column_names:  # demoted rows come after every other value
+            demoted = table[_DEMOTED] if rows is None else table[_DEMOTED].take(pa.array(rows))
+            finite &= demoted.to_numpy(zero_copy_only=False) == 0
         if int(finite.sum()) > end:
             ahead = values if query.descending else -values
             last = np.partition(ahead[finite], -end)[-end]
@@ -822,7 +964,7 @@ def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> t
 
 
 def _rank_cached(index: _TableIndex, snap: _Snapshot, query: RankingQuery
-                 ) -> tuple[pa.Table, int] | None:
+                 ) -> tuple[pa.Table, int, pa.Table] | None:
     """Rank on the kept key columns, then read the page's whole rows by
     (file, row); None when the store needs the whole-row path."""
     data, fragments = snap.dataset, snap.fragments
@@ -834,6 +976,10 @@ def _rank_cached(index: _TableIndex, snap: _Snapshot, query: RankingQuery
         names.append("flags")
     if query.sort not in names and query.sort != "batch_id":
         names.append(query.sort)
+    reliability = RELIABILITY_OF_SORT.get(query.sort) if query.unreliable_last else None
+    if reliability is not None:  # what the sorted figure's reliability is judged on
+        values, _ = _RELIABILITY_RULES[reliability]
+        names += [n for n in (*values, "flags") if n in data.schema.names and n not in names]
     columns = index.key_columns(snap, names)
     lengths = snap.lengths
     file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)
@@ -869,9 +1015,9 @@ def _rank_cached(index: _TableIndex, snap: _Snapshot, query: RankingQuery
     table = table.append_column("_file", pa.array(files)).append_column(
         "_row", pa.array(chosen - starts[files])).append_column(
         "batch_id", pa.array(snap.batch_of_file, pa.string()).take(pa.array(files)))
-    page, total = _rank_whole_rows(table, query)
+    page, total, ranked = _ranked_whole_rows(table, query)
     if page.num_rows == 0:
-        return data.schema.empty_table(), total
+        return data.schema.empty_table(), total, ranked
 
     # the page's rows, read whole from the row groups that hold them
     file_no = page["_file"].to_numpy()
@@ -892,7 +1038,111 @@ def _rank_cached(index: _TableIndex, snap: _Snapshot, query: RankingQuery
     at = np.searchsorted(expected, wanted)
     if np.any(at >= len(expected)) or np.any(expected[np.minimum(at, len(expected) - 1)] != wanted):
         return None
-    return rows.take(pa.array(at)).replace_schema_metadata(data.schema.metadata), total
+    return rows.take(pa.array(at)).replace_schema_metadata(data.schema.metadata), total, ranked
+
+
+@dataclass
+class Ranking:
+    """A ranking as readers get it: the page with its reliability and
+    condition columns, and the conditions the ranked rows were computed at."""
+
+    page: pa.Table
+    total: int
+    sort: str
+    unreliable_last: bool
+    reliability_column: str | None    # the column that demotes rows for this sort
+    # distinct conditions of the sorted figure over every ranked row (not only
+    # the page), most rows first: the condition columns and "rows"
+    condition_sets: list[dict]
+
+    @property
+    def mixed_conditions(self) -> bool:
+        return len(self.condition_sets) > 1
+
+
+def ranking(store: "Store", query: RankingQuery) -> Ranking:
+    """``rankings`` plus, on every row, the conditions behind its loadings and
+    working capacity and the reliability columns; and which condition sets
+    the ranked rows span for the sorted figure."""
+    page, total, ranked = _rank(store, query)
+    pressures = [store.batch_pressures(b) for b in _column_list(page, "batch_id")]
+    page = with_ranking_columns(page, pressures)
+    sets = condition_sets(ranked, store.batch_pressures, conditions_of_sort(query.sort),
+                          abs(query.temperature_tolerance_k))
+    return Ranking(page, total, query.sort, query.unreliable_last,
+                   RELIABILITY_OF_SORT.get(query.sort), sets)
+
+
+def _column_list(table: pa.Table, name: str) -> list:
+    return table[name].to_pylist() if name in table.column_names else [None] * table.num_rows
+
+
+def with_ranking_columns(table: pa.Table, pressures: list[tuple[float, float] | None]
+                         ) -> pa.Table:
+    """``table`` with the condition columns (adsorption and desorption
+    pressure of each row's batch, ``pressures``: (p_ads, p_des) in Pa or None
+    per row; both temperatures are the isotherm's own, a pressure swing) and
+    the reliability columns. Columns the rows already carry are kept."""
+    def add(t: pa.Table, name: str, values: pa.Array) -> pa.Table:
+        return t if name in t.column_names else t.append_column(name, values)
+
+    temperature = table["temperature_k"] if "temperature_k" in table.column_names else \
+        pa.nulls(table.num_rows, pa.float64())
+    columns = {
+        "adsorption_pressure_pa": pa.array([None if p is None else p[0] for p in pressures],
+                                           pa.float64()),
+        "desorption_pressure_pa": pa.array([None if p is None else p[1] for p in pressures],
+                                           pa.float64()),
+        "adsorption_temperature_k": temperature,
+        "desorption_temperature_k": temperature,
+    }
+    for name, values in columns.items():
+        table = add(table, name, values)
+    for reliability in _RELIABILITY_RULES:
+        # judged again on every read: the rule applies to rows stored before it existed
+        if reliability in table.column_names:
+            table = table.drop_columns([reliability])
+        table = table.append_column(reliability, pa.array(reliable_rows(table, reliability)))
+    return table
+
+
+def condition_sets(ranked: pa.Table, pressures_of_batch: Callable[[str | None], tuple | None],
+                   names: tuple[str, ...], temperature_tolerance_k: float) -> list[dict]:
+    """The distinct values of the condition columns ``names`` over the ranked
+    rows (batch_id, temperature_k), with how many rows each holds, most first.
+
+    Temperatures that lie within ``temperature_tolerance_k`` of the lowest of
+    a run count as one (the ranking's own "same temperature"); a set shows
+    their mean. Pressures are the batch's, compared exactly."""
+    if not names or ranked.num_rows == 0:
+        return []
+    batches = _column_list(ranked, "batch_id")
+    pressures = {b: pressures_of_batch(b) for b in set(batches)}
+    temperature = np.asarray(_float_values(ranked, "temperature_k"))
+    cluster = np.full(len(temperature), -1, dtype=np.int64)   # -1: unknown temperature
+    known = np.flatnonzero(np.isfinite(temperature))
+    means: list[float] = []
+    if known.size:
+        order = known[np.argsort(temperature[known], kind="stable")]
+        start = None
+        for i in order:
+            if start is None or temperature[i] - start > temperature_tolerance_k:
+                start = temperature[i]
+                means.append([])
+            means[-1].append(temperature[i])
+            cluster[i] = len(means) - 1
+        means = [round(float(np.mean(m)), 2) for m in means]
+    counts: dict[tuple, int] = {}
+    for batch, c in zip(batches, cluster):
+        p = pressures.get(batch)
+        values = {"adsorption_pressure_pa": None if p is None else p[0],
+                  "desorption_pressure_pa": None if p is None else p[1],
+                  "adsorption_temperature_k": None if c < 0 else means[c],
+                  "desorption_temperature_k": None if c < 0 else means[c]}
+        key = tuple(values[n] for n in names)
+        counts[key] = counts.get(key, 0) + 1
+    ordered = sorted(counts.items(), key=lambda kv: (-kv[1], [(v is None, v or 0) for v in kv[0]]))
+    return [{**dict(zip(names, key)), "rows": n} for key, n in ordered]
 
 
 def nan_to_none(rows: list[dict]) -> list[dict]:
@@ -915,5 +1165,7 @@ __all__ = [
     "VERSION_1_ID_COLUMN", "VERSION_1_TABLE", "version_1_error",
     "atomic_write", "is_batch_id", "isotherms_to_table", "iso_utc", "nan_to_none",
     "new_batch_id", "table_to_isotherms", "utc_now", "RankingQuery", "rankings",
-    "LATEST_WINS_RULE",
+    "LATEST_WINS_RULE", "DEFAULT_RANKING_SORT", "Q_SAT_MAX_RELATIVE_STDERR", "Ranking", "ranking",
+    "CONDITION_COLUMNS", "RELIABILITY_OF_SORT", "conditions_of_sort", "condition_sets",
+    "reliable_rows", "rows_with_flag", "with_ranking_columns",
 ]
