@@ -47,8 +47,12 @@ RANKING_PARAMS = [
     _query("exclude_flag", "drop rows carrying this quality flag (repeatable)", {"type": "string"}),
     _query("batch_id", "only results of this batch", {"type": "string"}),
     _query("sorbent_id", "only results of this sorbent", {"type": "string"}),
-    _query("sort", "any summary column, e.g. q_sat_mol_per_kg, henry_mol_per_kg_pa, "
-           "bet_area_m2_per_g", {"type": "string", "default": "q_sat_mol_per_kg"}),
+    _query("sort", "any summary column, e.g. loading_ads_mol_per_kg (the loading at the "
+           "batch's adsorption pressure), working_capacity_mol_per_kg, q_sat_mol_per_kg, "
+           "henry_mol_per_kg_pa", {"type": "string", "default": "loading_ads_mol_per_kg"}),
+    _query("unreliable_last", "rows whose sorted figure is unreliable (an extrapolation, or a "
+           "q_sat with a relative standard error above 25 %; columns *_reliable) come after "
+           "the rest; false ranks them in place", {"type": "boolean", "default": True}),
     _query("order", "sort direction", {"type": "string", "enum": ["asc", "desc"], "default": "desc"}),
     _query("limit", "rows per page", {"type": "integer", "minimum": 0, "maximum": 100000,
                                       "default": 100}),
@@ -275,7 +279,12 @@ def document() -> dict:
                     "security": READ,
                     "parameters": RANKING_PARAMS,
                     "responses": {"200": {"description": "a page of ranked rows; JSON as "
-                                                         "{rows, total}, header X-Total-Count",
+                                                         "{rows, total, mixed_conditions, "
+                                                         "condition_sets}, headers "
+                                                         "X-Total-Count and X-Mixed-Conditions "
+                                                         "(true when the ranked rows' sorted "
+                                                         "figure was computed at several "
+                                                         "pressures or temperatures)",
                                           "content": TABULAR},
                                   "400": _problem("bad parameter (e.g. unknown sort column)"),
                                   **AUTH_ERRORS, "406": _problem("no acceptable format")},

@@ -262,6 +262,52 @@ def test_rankings_parameters(client):
         assert_problem(client.get(f"/api/v1/rankings?{bad}", headers=auth()), 400)
 
 
+def test_default_ranking_leads_with_supported_loadings_and_marks_mixed_conditions(client):
+    """Truth set of our own (Langmuir data measured 1-100 kPa): the default
+    sort is the loading at the adsorption pressure; a batch whose adsorption
+    pressure (5 bar) lies beyond its data ranks after the rest unless
+    unreliable_last=false; rows at two condition sets are marked in JSON, in
+    the X-Mixed-Conditions header of every format, and carry their conditions."""
+    import json as jsonlib
+
+    submit(client, csv_batch([isotherm("D1", 2.0, 0.1), isotherm("D2", 1.0, 0.1)]))
+    one = client.get("/api/v1/rankings", headers=auth())
+    doc = one.json
+    assert doc["sort"] == "loading_ads_mol_per_kg" and doc["unreliable_last"] is True
+    assert [r["sorbent_id"] for r in doc["rows"]] == ["D1", "D2"]
+    assert doc["mixed_conditions"] is False and one.headers["X-Mixed-Conditions"] == "false"
+    assert doc["condition_sets"] == [{"adsorption_pressure_pa": 1e5,
+                                      "adsorption_temperature_k": 298.15, "rows": 2}]
+    row = doc["rows"][0]
+    assert (row["adsorption_pressure_pa"], row["desorption_pressure_pa"]) == (1e5, 1e4)
+    assert row["adsorption_temperature_k"] == row["desorption_temperature_k"] == 298.15
+    assert row["loading_ads_reliable"] is True and "q_sat_reliable" in row
+    # Langmuir q = q_sat b p / (1 + b p) at 100 kPa, b = 0.1 /kPa: 10/11 of q_sat
+    assert row["loading_ads_mol_per_kg"] == pytest.approx(2.0 * 10 / 11, rel=1e-4)
+
+    body = jsonlib.dumps({"units": {"pressure": "kPa", "loading": "mol/kg"},
+                          "isotherms": [isotherm("D3", 9.0, 0.1)],
+                          "conditions": {"adsorption_pressure_bar": 5.0,
+                                         "desorption_pressure_bar": 0.1}}).encode()
+    assert submit(client, body, "application/json").status_code == 202
+    mixed = client.get("/api/v1/rankings", headers=auth())
+    assert mixed.json["mixed_conditions"] is True
+    assert mixed.headers["X-Mixed-Conditions"] == "true"
+    assert {s["adsorption_pressure_pa"] for s in mixed.json["condition_sets"]} == {1e5, 5e5}
+    # D3 has the largest loading, but at 5 bar, beyond its data: last by default
+    assert [r["sorbent_id"] for r in mixed.json["rows"]] == ["D1", "D2", "D3"]
+    assert mixed.json["rows"][2]["loading_ads_reliable"] is False
+    in_place = client.get("/api/v1/rankings?unreliable_last=false", headers=auth()).json
+    assert [r["sorbent_id"] for r in in_place["rows"]] == ["D3", "D1", "D2"]
+    csv_reply = client.get("/api/v1/rankings?format=csv", headers=auth())
+    assert csv_reply.headers["X-Mixed-Conditions"] == "true"
+    assert "adsorption_pressure_pa" in csv_reply.get_data(as_text=True).splitlines()[0]
+    # one batch: one condition set
+    assert client.get("/api/v1/rankings?sorbent_id=D3", headers=auth()).json[
+        "mixed_conditions"] is False
+    assert_problem(client.get("/api/v1/rankings?unreliable_last=maybe", headers=auth()), 400)
+
+
 def test_failed_chunk_gives_partial_batch_and_keeps_the_rest(app, client, tmp_path):
     store = app.extensions["sorbrank"].store
     from sorbrank.worker.intake import read_batch

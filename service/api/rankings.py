@@ -3,7 +3,8 @@ from __future__ import annotations
 
 from flask import Blueprint, current_app, request
 
-from sorbrank.worker.store import LATEST_WINS_RULE, RankingQuery, rankings
+from sorbrank.worker.store import (DEFAULT_RANKING_SORT, LATEST_WINS_RULE, RankingQuery,
+                                   nan_to_none, ranking)
 
 from ..auth import require
 from ..problems import Problem
@@ -21,11 +22,13 @@ def ranking_query() -> RankingQuery:
         exclude_flags=tuple(request.args.getlist("exclude_flag")),
         batch_id=request.args.get("batch_id"),
         sorbent_id=request.args.get("sorbent_id"),
-        sort=request.args.get("sort", "q_sat_mol_per_kg"),
+        sort=request.args.get("sort", DEFAULT_RANKING_SORT),
         descending=choice_arg("order", "desc", ("asc", "desc")) == "desc",
         limit=int_arg("limit", 100, 0, 100_000),
         offset=int_arg("offset", 0, 0, 10**9),
         all_results=bool_arg("all"),
+        unreliable_last=choice_arg("unreliable_last", "true", ("true", "false", "1", "0"))
+        in ("true", "1"),
     )
 
 
@@ -35,11 +38,14 @@ def get_rankings():
     query = ranking_query()
     fmt = negotiate()
     try:
-        page, total = rankings(current_app.extensions["sorbrank"].store, query)
+        ranked = ranking(current_app.extensions["sorbrank"].store, query)
     except ValueError as exc:
         raise Problem(400, "Bad Request", str(exc), slug="bad-parameter", parameter="sort")
+    page, total = ranked.page, ranked.total
     rule = "all results" if query.all_results else LATEST_WINS_RULE
-    headers = {"X-Total-Count": str(total)}
+    # the marker every format carries: the rows were computed at several condition sets
+    headers = {"X-Total-Count": str(total),
+               "X-Mixed-Conditions": "true" if ranked.mixed_conditions else "false"}
     if fmt != "json":
         return table_response(page, fmt, "rankings", headers)
     return {
@@ -49,5 +55,9 @@ def get_rankings():
         "offset": query.offset,
         "sort": query.sort,
         "order": "desc" if query.descending else "asc",
+        "unreliable_last": query.unreliable_last,
+        "reliability_column": ranked.reliability_column,
+        "mixed_conditions": ranked.mixed_conditions,
+        "condition_sets": nan_to_none(ranked.condition_sets),
         "deduplication": rule,
     }, 200, headers
