@@ -20,18 +20,23 @@ from .averaging import model_averaged_columns
 from .bet import bet_columns
 from .capacity import capacity_columns, gas_volume_cm3stp_per_g, site_density_columns
 from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags, rows_by
+from .fit_quality import fit_quality_columns
 from .henry import henry_columns
+from .hysteresis import hysteresis_columns
 from .iast import iast_rows
 from .isosteric import isosteric_heat_rows
 from .working import coverage_columns, loading_columns, temperature_swing_rows
 
 
 def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
-              batch: Batch) -> dict[str, np.ndarray]:
-    """Summary columns, each an array of length ``packed.n``, canonical units in the names."""
+              batch: Batch, weighting: str = "uniform") -> dict[str, np.ndarray]:
+    """Summary columns, each an array of length ``packed.n``, canonical units in the names.
+    ``weighting`` is the fit's (FitOptions.weighting), for the goodness-of-fit sums."""
     flags = new_flags(packed.n)
     add_flag(flags, ~has_selected_fit(selection, fits), "no_selected_model")
     columns: dict[str, np.ndarray] = {}
+    columns.update(fit_quality_columns(packed, fits, selection, flags, weighting))
+    columns.update(hysteresis_columns(packed, flags))
     columns.update(capacity_columns(packed, fits, selection, flags))
     columns.update(henry_columns(packed, fits, selection, flags))
     columns.update(loading_columns(packed, fits, selection, batch, flags))
