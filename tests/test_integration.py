@@ -56,7 +56,7 @@ def test_batches_in_three_formats_results_and_rankings(service):
     s = service.session("submitter")
     csv_body = csv_batch([isotherm("A1", 3.0, 0.10, 273.15), isotherm("A1", 2.5, 0.05),
                           isotherm("A2", 4.0, 0.02)],
-                         extra_lines=("A9,CO2,298.15,10,not-a-number,kPa,mol/kg",))
+                         extra_lines=("A9,CO2,298.15,10,not-a-number",))
     json_body = json_batch([isotherm("A1", 3.4, 0.04), isotherm("A3", 1.5, 0.3)])
     parquet_body = parquet_batch([isotherm("A2", 4.4, 0.03), isotherm("A4", 6.0, 0.01, 273.15)])
 
@@ -179,7 +179,7 @@ def test_client_errors_are_problem_documents(service):
     problem(s.get(f"{service.api}/batches/b-20000101-000000-000000-00000000"), 404)
     problem(s.get(f"{service.api}/batches/..%2F..%2Fetc"), 404)
 
-    nothing_good = csv_batch([], extra_lines=("Z1,CO2,298.15,10,oops,kPa,mol/kg",
+    nothing_good = csv_batch([], extra_lines=("Z1,CO2,298.15,10,oops",
                                               "Z2,CO2,298.15,-5,1.0,kPa,mol/kg"))
     doc = problem(post(s, service, nothing_good, "csv"), 422)
     assert {(i["row"], i["field"]) for i in doc["issues"]} >= {(1, "loading"), (2, "pressure")}

@@ -336,10 +336,11 @@ def _json_list(values) -> list:
 
 
 def _json_clean(value):
-    if isinstance(value, float):
-        return value if np.isfinite(value) else None
+    # numpy scalars first: numpy.float64 is also a float, and orjson refuses it
     if isinstance(value, np.generic):
         return _json_clean(value.item())
+    if isinstance(value, float):
+        return value if np.isfinite(value) else None
     if isinstance(value, np.ndarray):
         return _json_list(value)
     if isinstance(value, dict):
