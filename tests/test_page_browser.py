@@ -9,6 +9,7 @@ Screenshots go to test-artifacts/ at the repository root.
 """
 from __future__ import annotations
 
+import json
 import math
 import os
 import shutil
@@ -80,8 +81,15 @@ def server(tmp_path, processes):
                     temperature_k=t)
            for sorbent, q_sat, b in (("PAGE-A", 4.0, 0.05), (AWKWARD_SORBENT, 2.0, 0.2))
            for t in (273.15, 298.15, 323.15)]
+    # CH4: one sorbent at the default conditions (1 -> 0.1 bar), one in a batch
+    # whose adsorption pressure (5 bar) lies beyond its data (measured to 1 bar)
+    gas.append(isotherm("PAGE-NEAR", 1.0, 0.05, adsorbate="CH4"))
+    far = {"units": {"pressure": "kPa", "loading": "mol/kg"}, "batch_label": "page-far",
+           "isotherms": [isotherm("PAGE-FAR", 6.0, 0.05, adsorbate="CH4")],
+           "conditions": {"adsorption_pressure_bar": 5.0, "desorption_pressure_bar": 0.1}}
     bodies = [((ROOT / "sample_batches" / "b06_n2_77k_relative.csv").read_bytes(), "text/csv"),
-              (json_batch(gas, label="page-gas"), "application/json")]
+              (json_batch(gas, label="page-gas"), "application/json"),
+              (json.dumps(far).encode(), "application/json")]
     for body, content_type in bodies:
         resp = requests.post(api + "/batches", data=body, timeout=60,
                              headers={"Content-Type": content_type})
@@ -124,8 +132,8 @@ def test_overview_filter_sort_and_sorbent_page(server, browser):
     browser.get(server + "/")
     gases = column_texts(browser, "adsorbate")
     assert gases, "the rankings table has no rows"
-    # the first page (50 rows, q_sat descending) holds the 77 K N2 rows; the
-    # CO2 rows come into view only through the filter below
+    # the first page (50 rows, loading at p_ads descending) holds the 77 K N2
+    # rows; the CO2 rows come into view only through the filter below
     assert "N2" in set(gases)
     assert browser.find_elements(By.CSS_SELECTOR, "#batches tbody tr")
     assert all("done" in cell.text for cell in
@@ -172,6 +180,37 @@ def test_overview_filter_sort_and_sorbent_page(server, browser):
     assert not browser.find_elements(By.CSS_SELECTOR, "h1 b")
     plot = browser.find_element(By.CSS_SELECTOR, "img.isotherm-plot")
     wait.until(lambda d: image_loaded(d, plot))
+
+
+def test_default_ranking_shows_conditions_marks_unreliable_and_mixed_rows(server, browser):
+    """The default sort is the loading at p_ads; PAGE-FAR's larger loading is
+    an extrapolation (5 bar, data to 1 bar): marked, ranked last, first only
+    when asked; the two batches' conditions are shown and the mix is announced."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import WebDriverWait
+
+    wait = WebDriverWait(browser, WAIT_S)
+    ARTIFACTS.mkdir(exist_ok=True)
+    browser.get(server + "/?adsorbate=CH4")
+    assert browser.find_element(By.CSS_SELECTOR, "#rankings th.col-loading_ads_mol_per_kg") \
+        .get_attribute("aria-sort") == "descending"
+    assert column_texts(browser, "sorbent_id") == ["PAGE-NEAR", "PAGE-FAR"]
+    loading = column_texts(browser, "loading_ads_mol_per_kg")
+    assert "unreliable" not in loading[0] and "unreliable" in loading[1]
+    assert column_texts(browser, "conditions") == ["1→0.1 bar, 298.15 K", "5→0.1 bar, 298.15 K"]
+    notice = browser.find_element(By.ID, "mixed-conditions")
+    assert notice.is_displayed() and "2 different sets of conditions" in notice.text
+    assert "p_ads 1 bar, 298.15 K: 1 row" in notice.text and "p_ads 5 bar" in notice.text
+    assert "come after the rest" in browser.find_element(By.ID, "unreliable-rule").text
+    browser.save_screenshot(str(ARTIFACTS / "page-default-ranking.png"))
+
+    load_fresh(browser, browser.find_element(By.LINK_TEXT, "Rank them in place").click, wait)
+    assert "unreliable_last=false" in browser.current_url
+    assert column_texts(browser, "sorbent_id") == ["PAGE-FAR", "PAGE-NEAR"]
+    # one sorbent, one batch: one set of conditions, no notice
+    browser.get(server + "/?adsorbate=CH4&temperature_k=298.15&flag=extrapolated_adsorption_pressure")
+    assert column_texts(browser, "sorbent_id") == ["PAGE-FAR"]
+    assert not browser.find_elements(By.ID, "mixed-conditions")
 
 
 def test_bad_filter_gives_an_html_error_page(server, browser):

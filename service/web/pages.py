@@ -17,10 +17,13 @@ from werkzeug.exceptions import HTTPException
 
 from sorbrank.worker import jobs
 from sorbrank.worker.models import CATALOGUE
-from sorbrank.worker.store import LATEST_WINS_RULE, RankingQuery, Store, nan_to_none, rankings
+from sorbrank.worker.store import (DEFAULT_RANKING_SORT, LATEST_WINS_RULE, Q_SAT_MAX_RELATIVE_STDERR,
+                                   RELIABILITY_OF_SORT, RankingQuery, Store, nan_to_none, ranking,
+                                   rankings)
 
 from ..api.plots import StoredIsotherm, fit_entry, qst_rows
 from ..auth import require
+from ..commands.fit import pressure_swing
 from ..problems import Problem
 
 log = logging.getLogger(__name__)
@@ -36,13 +39,14 @@ COLUMNS = (
     ("adsorbate", "Gas"),
     ("temperature_k", "T (K)"),
     ("best_model", "Best model"),
+    ("loading_ads_mol_per_kg", "Loading at p_ads (mol/kg)"),
     ("q_sat_mol_per_kg", "q_sat (mol/kg)"),
     ("henry_mol_per_kg_pa", "Henry (mol/(kg·Pa))"),
     ("bet_area_m2_per_g", "BET area (m²/g)"),
     ("working_capacity_mol_per_kg", "Working capacity (mol/kg)"),
 )
 TEXT_COLUMNS = {"sorbent_id", "adsorbate", "best_model"}
-DEFAULT_SORT = "q_sat_mol_per_kg"
+DEFAULT_SORT = DEFAULT_RANKING_SORT
 # scripts are never needed; images come from our own API
 CONTENT_SECURITY_POLICY = ("default-src 'none'; img-src 'self'; style-src 'self'; "
                            "form-action 'self'; frame-ancestors 'none'; base-uri 'none'")
@@ -93,6 +97,22 @@ def significant(value, digits: int = 4) -> str:
     except (TypeError, ValueError):
         return str(value)
     return f"{number:.{digits}g}" if math.isfinite(number) else "–"
+
+
+@bp.app_template_filter("swing")
+def swing(row: dict) -> str:
+    """'1→0.1 bar, 298.15 K': the pressure swing and temperature a row's
+    loadings and working capacity were computed at; a dash when unknown."""
+    p_ads, p_des = row.get("adsorption_pressure_pa"), row.get("desorption_pressure_pa")
+    if p_ads is None or p_des is None:
+        return "–"
+    return f"{pressure_swing(p_ads, p_des)}, {significant(row.get('adsorption_temperature_k'), 5)} K"
+
+
+@bp.app_template_filter("bar")
+def bar(pressure_pa) -> str:
+    """A pressure in Pa shown in bar (process pressures are a few bar or less)."""
+    return "–" if pressure_pa is None else f"{significant(pressure_pa / 1e5)} bar"
 
 
 @bp.app_template_filter("model_title")
@@ -183,18 +203,25 @@ def overview():
     if order not in ("asc", "desc"):
         raise _bad("order", f"order {order!r}: choose asc or desc")
     offset = _offset()
+    in_place = _text("unreliable_last") == "false"
+    if in_place:
+        filters["unreliable_last"] = "false"
 
     query = RankingQuery(adsorbate=filters.get("adsorbate"),
                          temperature_k=filters.get("temperature_k"),
                          flags=tuple(filter(None, [filters.get("flag")])),
                          exclude_flags=tuple(filter(None, [filters.get("exclude_flag")])),
                          sort=sort, descending=order == "desc", limit=ROWS_PER_PAGE,
-                         offset=offset)
+                         offset=offset, unreliable_last=not in_place)
     try:
-        page, total = rankings(store, query)
+        ranked = ranking(store, query)
     except ValueError as exc:  # a sort column absent from every stored summary
         raise _bad("sort", str(exc)) from None
-    rows = nan_to_none(page.to_pylist())
+    total = ranked.total
+    rows = nan_to_none(ranked.page.to_pylist())
+    here_order = {k: v for k, v in filters.items() if k != "unreliable_last"}
+    toggle_url = url_for("web.overview", **here_order, sort=sort, order=order,
+                         **({} if in_place else {"unreliable_last": "false"}))
 
     here = {**filters, "sort": sort, "order": order}
     previous_url = (url_for("web.overview", **here, offset=max(offset - ROWS_PER_PAGE, 0))
@@ -207,7 +234,11 @@ def overview():
         filters=filters, sort=sort, descending=order == "desc",
         sort_links=_sort_links(filters, sort, order == "desc"), choices=_choices(store),
         previous_url=previous_url, next_url=next_url, batches=batches,
-        batch_total=batch_total, rule=LATEST_WINS_RULE)
+        batch_total=batch_total, rule=LATEST_WINS_RULE,
+        reliability=RELIABILITY_OF_SORT.get(sort), unreliable_last=not in_place,
+        toggle_url=toggle_url, condition_sets=nan_to_none(ranked.condition_sets),
+        mixed_conditions=ranked.mixed_conditions,
+        max_relative_stderr_percent=round(Q_SAT_MAX_RELATIVE_STDERR * 100))
 
 
 # -- one sorbent -----------------------------------------------------------
