@@ -194,3 +194,46 @@ def test_ruff_flags_a_noqa_that_suppresses_nothing():
                            "tests/lint_probe.py", "-"], input="x = 1  # noqa: BLE001\n",
                           cwd=ROOT, capture_output=True, text=True, timeout=60)
     assert done.returncode == 1 and "RUF100" in done.stdout, done.stdout + done.stderr
+
+
+FIT_A_DATAFRAME = """
+import json
+import pandas as pd
+import sorbrank
+
+# invented sorbents; Langmuir points q = 3 b p / (1 + b p), b = 0.05 /kPa (truth-known)
+pressures_kpa = [1, 2, 5, 10, 20, 50, 100]
+rows = [(sid, "CO2", 298.15, p, 3.0 * 0.05 * p / (1 + 0.05 * p) * scale)
+        for sid, scale in (("TG31-W001", 1.0), ("TG31-W002", 1.5)) for p in pressures_kpa]
+named = pd.DataFrame(rows, columns=["sorbent_id", "adsorbate", "temperature_k",
+                                    "pressure_kpa", "loading_mmol_per_g"])
+plain = named.rename(columns={"pressure_kpa": "pressure", "loading_mmol_per_g": "loading"})
+out = {}
+for key, frame, units in (("named", named, None),
+                          ("plain", plain, {"pressure": "kPa", "loading": "mmol/g"})):
+    summary = sorbrank.fit(frame, units=units, models=["langmuir"]).summary
+    out[key] = {"type": type(summary).__name__, "rows": len(summary),
+                "q_sat": summary["q_sat_mol_per_kg"].tolist()}
+print(json.dumps(out))
+"""
+
+
+def test_the_installed_wheel_fits_a_dataframe(fresh_venv, tmp_path):
+    """The acceptance line: from a fresh venv with pandas, ``sorbrank.fit(<DataFrame>).summary``
+    is a DataFrame, one row per isotherm with q_sat, for unit-carrying and for plain columns
+    with ``units=``; the shipped adsorbate table is found in the installed package."""
+    import json
+
+    for name, text in HOSTILE.items():
+        (tmp_path / name).write_text(text)
+    env = clean_env()
+    env.pop("PYTHONPATH", None)
+    done = subprocess.run([str(fresh_venv / "bin" / "python"), "-c", FIT_A_DATAFRAME],
+                          cwd=tmp_path, env=env, capture_output=True, text=True, timeout=300)
+    assert done.returncode == 0, done.stderr[-3000:]
+    out = json.loads(done.stdout.strip().splitlines()[-1])
+    for key in ("named", "plain"):
+        assert out[key]["type"] == "DataFrame" and out[key]["rows"] == 2
+        # exact Langmuir data: the fitted capacity is the truth
+        assert out[key]["q_sat"] == pytest.approx([3.0, 4.5], rel=1e-6)
+    assert out["named"]["q_sat"] == out["plain"]["q_sat"]
