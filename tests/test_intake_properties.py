@@ -6,7 +6,6 @@ output contract: canonical arrays, sorted, finite, non-negative.
 """
 import io
 import json
-import math
 
 import numpy as np
 import pyarrow as pa
