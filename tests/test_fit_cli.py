@@ -487,3 +487,39 @@ def test_fit_imports_no_service_plotting_or_property_library(tmp_path):
     roots = {name.split(".")[0] for name in imported}
     assert not roots & {"flask", "celery", "matplotlib", "CoolProp", "redis", "gunicorn"}
     assert "scipy.stats" not in imported
+
+
+def test_fit_ranks_like_rank_unreliable_last_and_warns_on_mixed_temperatures(capsys, tmp_path):
+    """Truth set of our own (Langmuir, measured 1-100 kPa): with the adsorption
+    pressure at 5 bar every loading is an extrapolation; at the default 1 bar
+    none is. Two temperatures in one ranking of loadings draw a warning."""
+    from sorbrank.service.commands.fit import DEFAULT_SORT
+    from sorbrank.worker.store import DEFAULT_RANKING_SORT
+
+    assert DEFAULT_SORT == DEFAULT_RANKING_SORT
+    lines = ["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
+    for sorbent, q_sat, b, t in (("W-1", 2.0, 0.1, 298.15), ("W-2", 5.0, 0.01, 298.15),
+                                 ("W-3", 3.0, 0.1, 273.15)):
+        lines += [f"{sorbent},CO2,{t},{p},{q_sat * b * p / (1 + b * p):.6f}"
+                  for p in (1, 2, 5, 10, 20, 40, 60, 80, 100)]
+    # W-4 was measured only to 40 kPa: its loading at 1 bar is an extrapolation
+    lines += [f"W-4,CO2,298.15,{p},{9.0 * 0.1 * p / (1 + 0.1 * p):.6f}"
+              for p in (1, 2, 5, 10, 20, 30, 40)]
+    path = tmp_path / "w.csv"
+    path.write_text("\n".join(lines) + "\n")
+    code, out, err = run_cli(capsys, str(path), "--format", "csv", "--models", "langmuir")
+    assert code == 0
+    rows = list(csv.DictReader(io.StringIO(out)))
+    # q(100 kPa): W-4 8.18 (extrapolated), W-3 2.727, W-2 2.5, W-1 1.818 mol/kg
+    assert [r["sorbent_id"] for r in rows] == ["W-3", "W-2", "W-1", "W-4"]
+    assert [r["loading_ads_reliable"] for r in rows] == ["true", "true", "true", "false"]
+    assert {r["adsorption_pressure_pa"] for r in rows} == {"100000"}
+    assert [r["adsorption_temperature_k"] for r in rows] == ["273.15", "298.15", "298.15", "298.15"]
+    _, out, _ = run_cli(capsys, str(path), "--format", "csv", "--models", "langmuir",
+                        "--unreliable-in-place")
+    assert [r["sorbent_id"] for r in csv.DictReader(io.StringIO(out))] == ["W-4", "W-3", "W-2", "W-1"]
+    assert "2 different sets of conditions" in err and "adsorption_temperature_k 273.15" in err
+    # one temperature: no warning
+    _, _, err = run_cli(capsys, str(path), "--format", "csv", "--models", "langmuir",
+                        "--sort", "q_sat_mol_per_kg")
+    assert "different sets of conditions" not in err

@@ -10,7 +10,9 @@ from pathlib import Path
 FORMATS = ("table", "json", "csv", "parquet")
 CRITERIA = ("aicc", "bic", "aic")
 WEIGHTINGS = ("uniform", "relative", "sigma")
-DEFAULT_SORT = "q_sat_mol_per_kg"
+# the store's DEFAULT_RANKING_SORT (fit and rank rank alike), spelled here so
+# that --help imports no pyarrow
+DEFAULT_SORT = "loading_ads_mol_per_kg"
 DELIMITERS = {"auto": None, "comma": ",", "semicolon": ";", "tab": "\t"}
 DECIMALS = {"auto": None, "point": ".", "comma": ","}
 
@@ -132,6 +134,8 @@ def register(subparsers) -> None:
                         help=f"summary column to rank by (default: {DEFAULT_SORT})")
     parser.add_argument("--ascending", action="store_true",
                         help="smallest numbers first")
+    parser.add_argument("--unreliable-in-place", action="store_true",
+                        help="rank isotherms whose sorted figure is unreliable in place, not last")
     parser.add_argument("--top", metavar="N", type=_positive_int, default=None,
                         help="keep only the first N isotherms after sorting")
     parser.add_argument("--fits", action="store_true",
@@ -281,7 +285,15 @@ def run(args) -> int:
     if bar:
         bar.finish()
 
+    import pyarrow as pa
+
+    from sorbrank.worker.store import (RELIABILITY_OF_SORT, RankingQuery, condition_sets,
+                                       conditions_of_sort, reliable_rows, with_ranking_columns)
+
+    cond = result.batch.conditions
+    swing = (cond.adsorption_pressure_pa, cond.desorption_pressure_pa)
     summary = result.summary_table()
+    summary = with_ranking_columns(summary, [swing] * summary.num_rows)
     sort = args.sort or DEFAULT_SORT
     if sort not in summary.column_names or _is_nested(summary.schema.field(sort).type):
         if args.sort is not None:
@@ -291,7 +303,18 @@ def run(args) -> int:
     numeric = _is_numeric(summary.schema.field(sort).type)
     order = "ascending" if (args.ascending or not numeric) else "descending"
     keys = [(sort, order, "at_end"), ("isotherm_id", "ascending", "at_end")]
-    index = pc.sort_indices(summary, sort_keys=keys).to_numpy().astype("int64")
+    reliability = None if args.unreliable_in_place else RELIABILITY_OF_SORT.get(sort)
+    ranked = summary
+    if reliability is not None:  # the same order as 'sorbrank rank': unreliable rows last
+        ranked = summary.append_column("_demoted", pa.array(~reliable_rows(summary, reliability)))
+        keys.insert(0, ("_demoted", "ascending"))
+    index = pc.sort_indices(ranked, sort_keys=keys).to_numpy().astype("int64")
+    mixed = condition_sets(summary, lambda _batch: swing, conditions_of_sort(sort),
+                           RankingQuery().temperature_tolerance_k)
+    if len(mixed) > 1:
+        from .rank import mixed_conditions_warning
+
+        print(f"sorbrank fit: {mixed_conditions_warning(sort, mixed)}", file=sys.stderr)
     if args.top:
         index = index[: args.top]
 
