@@ -77,10 +77,14 @@ options in detail:
                 covariance is not rescaled by the residual variance and each
                 fit reports a chi-square test (docs/results.md).
   --sort        a column of the summary table (see --format csv), e.g.
-                q_sat_mol_per_kg (default), henry_mol_per_kg_pa,
+                loading_ads_mol_per_kg (default: the loading at the
+                adsorption pressure), q_sat_mol_per_kg, henry_mol_per_kg_pa,
                 working_capacity_mol_per_kg, sorbent_id. Numbers sort
                 largest first, text A-Z; --ascending reverses numbers.
-                Isotherms without a value go last.
+                Isotherms without a value go last, and so do those whose
+                figure is unreliable (an extrapolation; q_sat: also a standard
+                error above 25 %) unless --unreliable-in-place; a warning
+                says when the rows were computed at different temperatures.
   --format      table: a ranked text table, one row per isotherm: sorbent, gas,
                 T in K, best model, q_sat in mol/kg with its 95 % interval
                 [low, high], BET area in m2/g, working capacity in mol/kg with
