@@ -88,13 +88,7 @@ def read_data(data, *, units=None, sample_mass_g=None, gases=None, batch_label=N
         batches = [_read_one(item, units, sample_mass_g, gases,
                              None if batch_label is None else f"{batch_label}-{i + 1}")
                    for i, item in enumerate(data)]
-        if len(batches) == 1:
-            return batches[0]
-        return Batch(label=batch_label or "+".join(b.label for b in batches),
-                     isotherms=[iso for b in batches for iso in b.isotherms],
-                     rejected=[issue for b in batches for issue in b.rejected],
-                     conditions=batches[0].conditions,
-                     mixtures=[m for b in batches for m in b.mixtures])
+        return batches[0] if len(batches) == 1 else Batch.combined(batches, batch_label)
     return _read_one(data, units, sample_mass_g, gases, batch_label)
 
 

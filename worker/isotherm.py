@@ -137,6 +137,19 @@ class Batch:
     conditions: Conditions = field(default_factory=Conditions)
     mixtures: list[MixtureRequest] = field(default_factory=list)
 
+    @classmethod
+    def combined(cls, batches: list["Batch"], label: str | None = None) -> "Batch":
+        """One batch of several inputs (files of one ``sorbrank fit`` run, a list given to
+        ``sorbrank.fit``): isotherms, rejections and mixtures of all, the first one's
+        conditions, labels joined with "+" unless ``label`` is given."""
+        if len(batches) == 1 and label is None:
+            return batches[0]
+        return cls(label=label or "+".join(b.label for b in batches),
+                   isotherms=[iso for b in batches for iso in b.isotherms],
+                   rejected=[issue for b in batches for issue in b.rejected],
+                   conditions=batches[0].conditions,
+                   mixtures=[m for b in batches for m in b.mixtures])
+
     @property
     def rejected_isotherms(self) -> list[str | None]:
         return sorted({i.isotherm for i in self.rejected}, key=lambda s: (s is None, s or ""))

@@ -268,13 +268,7 @@ def run(args) -> int:
             for issue in exc.issues:
                 print(f"{name}: {issue}", file=sys.stderr)
             return 2
-    batch = batches[0] if len(batches) == 1 else Batch(
-        label="+".join(b.label for b in batches),
-        isotherms=[iso for b in batches for iso in b.isotherms],
-        rejected=[issue for b in batches for issue in b.rejected],
-        conditions=batches[0].conditions,
-        mixtures=[m for b in batches for m in b.mixtures],
-    )
+    batch = Batch.combined(batches)
     for issue in batch.rejected:
         print(f"rejected: {issue}", file=sys.stderr)
     if not batch.isotherms:
