@@ -140,9 +140,10 @@ def start_redis_on(port: int, log_dir, registry: list[Proc], name: str) -> Proc:
 
 
 def base_env(tmp_path, **extra) -> dict[str, str]:
-    return clean_env(SORBRANK_DATA_DIR=str(tmp_path / "data"), SORBRANK_CHUNK_SIZE="1",
-                     SORBRANK_EMBEDDED_WORKERS="1", SORBRANK_TOKENS=tokens_json(),
-                     PYTHONPATH=str(ROOT), **extra)
+    settings = {"SORBRANK_DATA_DIR": str(tmp_path / "data"), "SORBRANK_CHUNK_SIZE": "1",
+                "SORBRANK_EMBEDDED_WORKERS": "1", "SORBRANK_TOKENS": tokens_json(),
+                "PYTHONPATH": str(ROOT)}
+    return clean_env(**{**settings, **extra})
 
 
 # -- the faults ----------------------------------------------------------------------
@@ -279,3 +280,50 @@ def test_redis_restart_with_surviving_worker_is_reconciled_by_the_watch(tmp_path
     assert_exactly_once(s, api, batch_id, ids)
     assert worker.alive()  # recovered without a restart
     assert "re-enqueueing them" in worker.log_text()
+
+
+# -- processes as /proc shows them (psutil is not a dependency) ---------------------
+
+def _stat_fields(pid: int) -> list[str] | None:
+    """/proc/<pid>/stat after the command name: [state, ppid, ...]; None if gone."""
+    try:
+        text = open(f"/proc/{pid}/stat").read()
+    except (FileNotFoundError, ProcessLookupError):
+        return None
+    return text[text.rindex(")") + 2:].split()  # the name may hold spaces and parentheses
+
+
+def descendant_pids(root_pid: int) -> set[int]:
+    """Every living process below ``root_pid`` (children, grandchildren...)."""
+    parent_of = {}
+    for entry in os.listdir("/proc"):
+        if entry.isdigit() and (fields := _stat_fields(int(entry))) and fields[0] != "Z":
+            parent_of[int(entry)] = int(fields[1])
+    found, frontier = set(), {root_pid}
+    while frontier:
+        frontier = {pid for pid, ppid in parent_of.items() if ppid in frontier} - found
+        found |= frontier
+    return found
+
+
+def living(pids: set[int]) -> set[int]:
+    """The ``pids`` still running: a zombie has exited (an orphan's reaper may be slow)."""
+    return {pid for pid in pids if (fields := _stat_fields(pid)) and fields[0] != "Z"}
+
+
+def test_embedded_pool_exits_when_the_server_is_sigkilled(tmp_path, processes):
+    """SIGKILL only the embedded server process (not its group, as an OOM killer or a
+    `kill -9 <pid>` does) while its pool fits: every pool process exits within seconds
+    instead of living on, orphaned, with its memory."""
+    logs = tmp_path / "logs"
+    env = base_env(tmp_path, SORBRANK_EMBEDDED_WORKERS="2")
+    server, url = start_server(env, logs, processes, name="embedded")
+    body, _ = batch_csv("PD", 40)
+    batch_id = submit(session(), url + "/api/v1", body)
+    wait_mid_way(env["SORBRANK_DATA_DIR"], batch_id, [server])
+    pool = wait_until(lambda: (d := descendant_pids(server.popen.pid)) and len(d) >= 2 and d,
+                      "the pool processes to be running", [server])
+    os.kill(server.popen.pid, signal.SIGKILL)
+    server.popen.wait(timeout=30)
+    wait_until(lambda: not living(pool), f"pool processes {sorted(living(pool))} to exit",
+               timeout_s=10, interval_s=0.1)

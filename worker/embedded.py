@@ -10,6 +10,7 @@ import logging
 import multiprocessing
 import os
 import threading
+import time
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
@@ -18,6 +19,28 @@ from . import jobs, logs
 from .store import Store
 
 log = logging.getLogger(__name__)
+
+# How often a pool process checks that the server that started it still lives
+PARENT_POLL_S = 0.5
+
+
+def _init_child(parent_pid: int) -> None:
+    logs.configure_from_env()  # spawned children start without logging
+    threading.Thread(target=_exit_when_orphaned, args=(parent_pid,), daemon=True,
+                     name="sorbrank-parent-watch").start()
+
+
+def _exit_when_orphaned(parent_pid: int) -> None:
+    # A SIGKILLed server runs no shutdown, and a pool process blocked on its
+    # task queue never sees EOF (it holds that pipe's write end itself), so it
+    # would live on with its memory. Polling the parent pid, rather than
+    # prctl(PR_SET_PDEATHSIG): the pool spawns processes on demand from
+    # whichever request thread submits, and PDEATHSIG fires when that *thread*
+    # ends, which would kill healthy workers after every request. A chunk cut
+    # short here is still "running" on disk and resumes at the next start.
+    while os.getppid() == parent_pid:
+        time.sleep(PARENT_POLL_S)
+    os._exit(1)
 
 
 def _run(data_dir: str, batch_id: str, chunk_index: int) -> None:
@@ -34,10 +57,9 @@ class EmbeddedExecutor:
 
     def _new_pool(self) -> ProcessPoolExecutor:
         # spawn, not fork: the parent runs server threads whose locks a fork would copy
-        # spawned children start without logging: give them the JSON lines too
         return ProcessPoolExecutor(max_workers=self.workers,
                                    mp_context=multiprocessing.get_context("spawn"),
-                                   initializer=logs.configure_from_env)
+                                   initializer=_init_child, initargs=(os.getpid(),))
 
     def pending_chunks(self) -> int:
         with self._lock:
