@@ -261,16 +261,21 @@ def read_batch(source, fmt: str | None = None, *, batch_label: str | None = None
     detects them. Raises only IntakeError.
     """
     limits = limits or Limits()
-    fallback_label = batch_label or "(unlabelled)"
+    # a label that is not usable is never echoed whole: errors name the batch by its digest
+    usable_label = batch_label if batch_label and _label_problem(batch_label) is None else None
+    fallback_label = usable_label or "(unlabelled)"
     try:
         if isinstance(source, pa.Table):
             data = None
-            fallback_label = batch_label or f"batch-{_table_digest(source, fallback_label, limits)}"
-            fmt = _table_format(fmt, fallback_label)
+            digest_label = f"batch-{_table_digest(source, fallback_label, limits)}"
         else:
-            data = _source_bytes(source, batch_label, limits)
-            fallback_label = batch_label or f"batch-{hashlib.sha256(data).hexdigest()[:12]}"
-            fmt = _format_of(source, data, fmt, fallback_label)
+            data = _source_bytes(source, usable_label, limits)
+            digest_label = f"batch-{hashlib.sha256(data).hexdigest()[:12]}"
+        if batch_label:
+            _check_batch_label(batch_label, digest_label)
+        fallback_label = batch_label or digest_label
+        fmt = _table_format(fmt, fallback_label) if data is None else \
+            _format_of(source, data, fmt, fallback_label)
         arg_settings = _checked_settings(
             {"units": units, "sample_mass_g": sample_mass_g, "gases": gases},
             "argument", fallback_label)
@@ -313,13 +318,24 @@ def read_batch(source, fmt: str | None = None, *, batch_label: str | None = None
 # source, format, settings
 
 def _batch_error(label: str, code: str, message: str, fld: str | None = None) -> IntakeError:
+    label, fld = _printable(label), None if fld is None else _printable(fld)
     where = f"batch {label!r}" + (f", field {fld!r}" if fld else "")
-    return IntakeError(Issue(label, None, None, fld, code, f"{where}: {message}"))
+    return IntakeError(Issue(label, None, None, fld, code, _printable(f"{where}: {message}")))
 
 
 def _short(value: Any, limit: int = 60) -> str:
     text = str(value)
     return text if len(text) <= limit else text[:limit] + "..."
+
+
+def _printable(text: str) -> str:
+    """``text`` with every character that is not printable (lone surrogates, controls,
+    bidi and zero-width format characters) written as its escape: issue texts go into
+    JSON, Parquet and logs, which need valid UTF-8, and must never reorder or hide what
+    a reader sees."""
+    if text.isprintable():
+        return text
+    return "".join(ch if ch.isprintable() else ascii(ch)[1:-1] for ch in text)
 
 
 def _source_bytes(source, batch_label: str | None, limits: Limits) -> bytes:
@@ -520,6 +536,28 @@ def _nearest(name: str, choices) -> str | None:
     return match[0] if match else None
 
 
+def _character_problem(value: str, format_characters: bool) -> str | None:
+    """Why the characters of ``value`` make it unusable text, or None: a lone surrogate
+    (not Unicode text at all; JSON's \\ud800 escapes must come in high-low pairs), a control
+    character and, where ``format_characters``, an invisible format character (category
+    Cf: bidi controls such as U+202E, zero-width characters such as U+200B), with which
+    two ids that look the same are not."""
+    if value.isprintable():  # fast path: every refused character is non-printable
+        return None
+    for ch in value:
+        category = unicodedata.category(ch)
+        if category == "Cs":
+            return (f"contains a lone surrogate (U+{ord(ch):04X}), which is not Unicode text "
+                    "(a JSON \\uD800-\\uDFFF escape must be one of a high-low pair)")
+        if category in ("Cc", "Zl", "Zp"):
+            return "contains a control character"
+        if category == "Cf" and format_characters:
+            return (f"contains the invisible format character U+{ord(ch):04X} "
+                    f"{unicodedata.name(ch, '(unnamed)')} (bidi controls and zero-width "
+                    "characters make different ids look the same)")
+    return None
+
+
 def _id_problem(value: str) -> str | None:
     """Why ``value`` cannot be an id (it may become a file name), or None."""
     if len(value) > MAX_ID_CHARS:
@@ -528,15 +566,24 @@ def _id_problem(value: str) -> str | None:
         return "contains a path separator"
     if value in (".", ".."):
         return "is a relative path name"
-    if not value.isprintable() and any(unicodedata.category(ch) in ("Cc", "Zl", "Zp") for ch in value):
-        return "contains a control character"
-    return None
+    return _character_problem(value, format_characters=True)
+
+
+def _label_problem(label: str) -> str | None:
+    return _id_problem(label) if label.strip() else "is empty"
+
+
+def _echo(value: str, limit: int = 80) -> str:
+    """``value`` for a message: its repr, cut to ``limit`` characters with its length."""
+    if len(value) <= limit:
+        return repr(value)
+    return f"{value[:limit]!r}... ({len(value)} characters)"
 
 
 def _check_batch_label(label: str, fallback: str) -> None:
-    problem = _id_problem(label) if label.strip() else "is empty"
+    problem = _label_problem(label)
     if problem:
-        raise _batch_error(fallback, "invalid_batch_label", f"batch label {_short(label)!r} {problem}")
+        raise _batch_error(fallback, "invalid_batch_label", f"batch label {_echo(label)} {problem}")
 
 
 # ---------------------------------------------------------------------------
@@ -1516,10 +1563,18 @@ def _row_checks(found: _Findings, rows: _Rows, text, number, branch, ads, is_rel
         found.rows_where(bad_value[column.codes], name, "invalid_id",
                          lambda i, c=column, p=problems, n=name:
                          f"{n} {_short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+    bad_text = {}
+    for name in ("adsorbate", "branch"):
+        column = text[name]
+        problems = [_character_problem(v, format_characters=False) for v in column.values]
+        bad_text[name] = np.array([p is not None for p in problems] + [False] * 3)[column.codes]
+        found.rows_where(bad_text[name], name, "invalid_text",
+                         lambda i, c=column, p=problems, n=name:
+                         f"{n} {_short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
     adsorbate = text["adsorbate"]
-    found.rows_where(ads == -1, "adsorbate", "unknown_adsorbate",
+    found.rows_where((ads == -1) & ~bad_text["adsorbate"], "adsorbate", "unknown_adsorbate",
                      lambda i: _unknown_adsorbate(adsorbate.values[adsorbate.codes[i]]), once=True)
-    found.rows_where(branch == -1, "branch", "unknown_branch",
+    found.rows_where((branch == -1) & ~bad_text["branch"], "branch", "unknown_branch",
                      lambda i: f"branch {_short(text['branch'].values[text['branch'].codes[i]])!r} "
                                f"is not one of {', '.join(BRANCHES)}", once=True)
 
@@ -1579,13 +1634,14 @@ class _GroupNames:
 
 
 def _issue(label: str, isotherm: str, row, fld, code: str, detail: str) -> Issue:
+    isotherm, fld = _printable(isotherm), None if fld is None else _printable(fld)
     where = [f"batch {label!r}", f"isotherm {isotherm!r}"]
     if row is not None:
         where.append(f"row {row}")
     if fld is not None:
         where.append(f"field {fld!r}")
     return Issue(label, isotherm, None if row is None else int(row), fld, code,
-                 f"{', '.join(where)}: {detail}")
+                 _printable(f"{', '.join(where)}: {detail}"))
 
 
 def _issues(found: _Findings, names: _GroupNames, label: str) -> list[Issue]:
@@ -1859,9 +1915,12 @@ def _mixtures(raw: Any, settings: dict, declared: list, label: str) -> list[Mixt
         pressures = _pressure_keys(item, ("total_pressure",), fields, settings, where, label,
                                    "invalid_mixture")
         sorbent_id = item.get("sorbent_id")
-        if sorbent_id is not None and (not isinstance(sorbent_id, str) or _id_problem(sorbent_id)):
-            raise _batch_error(label, "invalid_mixture", "sorbent_id must be a valid id or null",
-                               fld=f"{where}.sorbent_id")
+        if sorbent_id is not None:
+            problem = _id_problem(sorbent_id) if isinstance(sorbent_id, str) else "is not text"
+            if problem:
+                raise _batch_error(label, "invalid_mixture", f"sorbent_id {_echo(str(sorbent_id))} "
+                                   f"{problem} (give a valid id, or null for every sorbent)",
+                                   fld=f"{where}.sorbent_id")
         components = item.get("components")
         fractions = item.get("mole_fractions")
         if not isinstance(components, list) or len(components) < 2:
