@@ -151,12 +151,20 @@ class Limits:
     max_columns: int = 64
     max_bytes: int = 256 * 1024 * 1024
     max_json_depth: int = 32
+    # points (rows) of one batch: intake holds ~350 bytes per row at its peak, so 2 M rows
+    # keep one intake under ~0.7 GB (a 20 M-row Parquet file peaked at 6.9 GB)
+    max_points: int = 2_000_000
 
     @classmethod
     def for_local_files(cls) -> "Limits":
         """Limits for files read on one's own machine (``sorbrank fit``/``plot``):
         far above what the HTTP service accepts from a client."""
-        return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3)
+        return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3, max_points=1_000_000_000)
+
+    @property
+    def max_rows(self) -> int:
+        """Most rows (points) a batch may have."""
+        return min(self.max_points, self.max_isotherms * self.max_points_per_isotherm)
 
 
 IDENTITY_COLUMNS = ("sorbent_id", "adsorbate", "temperature_k")
@@ -755,6 +763,9 @@ def _rows_from_csv(data: bytes, text: str, label: str, limits: Limits,
         raise _batch_error(label, "unparseable", f"CSV cannot be parsed: {_short(exc, 200)}")
     if table.num_rows == 0:
         raise _batch_error(label, "no_data", "the file has a header but no data rows")
+    if table.num_rows > limits.max_rows:
+        raise _batch_error(label, "input_too_large", f"the file holds {table.num_rows} rows, "
+                           f"limit {limits.max_rows}")
     rows = _rows_from_table(table, columns, column_units, "csv", label,
                             _csv_decimal(table, columns, chosen, decimal))
     rows.settings = settings
@@ -876,7 +887,9 @@ def _numbers_from_strings(strings: pa.Array, decimal: str = ".") -> _Numbers:
 
 
 def _numbers_from_arrow_numeric(column: pa.Array) -> _Numbers:
-    value = pc.cast(column, pa.float64()).to_numpy(zero_copy_only=False).astype(float)
+    # unsafe: integers past 2**53 (up to 2**64) become the nearest float, which the range
+    # checks then report by row, rather than the cast failing for the whole file
+    value = pc.cast(column, pa.float64(), safe=False).to_numpy(zero_copy_only=False).astype(float)
     problem = np.zeros(len(value), dtype=np.int8)
     problem[~np.isfinite(value)] = _NOT_FINITE
     problem[column.is_null().to_numpy(zero_copy_only=False)] = _MISSING
@@ -888,11 +901,32 @@ def _numbers_from_arrow_numeric(column: pa.Array) -> _Numbers:
 # Parquet
 
 def _rows_from_parquet(data: bytes, label: str, limits: Limits) -> _Rows:
+    """Rows of a Parquet file; its footer is checked against the limits first, since a
+    few hundred KB of run-length-encoded data can hold tens of millions of rows."""
     try:
-        table = pq.read_table(pa.BufferReader(data))
+        parquet = pq.ParquetFile(pa.BufferReader(data))
+        metadata, names = parquet.metadata, parquet.schema_arrow.names
     except Exception as exc:  # noqa: BLE001 - any reader failure means "not readable"
-        raise _batch_error(label, "unparseable", f"Parquet cannot be read: {_short(exc, 200)}")
+        raise _batch_error(label, "unparseable", f"Parquet cannot be read: {_arrow_message(exc)}")
+    if metadata.num_rows > limits.max_rows:
+        raise _batch_error(label, "input_too_large", f"the file holds {metadata.num_rows} rows, "
+                           f"limit {limits.max_rows}")
+    uncompressed = sum(metadata.row_group(i).total_byte_size for i in range(metadata.num_row_groups))
+    if uncompressed > limits.max_bytes:
+        raise _batch_error(label, "input_too_large", f"the file's data are {uncompressed} bytes "
+                           f"uncompressed, limit {limits.max_bytes}")
+    columns, _ = _known_columns(names, label, limits)   # duplicates, missing columns
+    try:
+        # only the known columns: the others may be of any type or size
+        table = parquet.read(columns=list(columns.values()), use_threads=False)
+    except Exception as exc:  # noqa: BLE001 - any reader failure means "not readable"
+        raise _batch_error(label, "unparseable", f"Parquet cannot be read: {_arrow_message(exc)}")
     return _rows_from_arrow_table(table, "parquet", label, limits)
+
+
+def _arrow_message(exc: Exception) -> str:
+    """The first line of a reader's error: later lines dump the reader's internal schema."""
+    return _short(str(exc).strip().split("\n", 1)[0], 200)
 
 
 def _rows_from_arrow_table(table: pa.Table, source: str, label: str, limits: Limits) -> _Rows:
@@ -905,6 +939,9 @@ def _rows_from_arrow_table(table: pa.Table, source: str, label: str, limits: Lim
                                f"column {name!r} has type {kind}, expected text or numbers", fld=name)
     if table.num_rows == 0:
         raise _batch_error(label, "no_data", "the table has no rows")
+    if table.num_rows > limits.max_rows:
+        raise _batch_error(label, "input_too_large", f"the table holds {table.num_rows} rows, "
+                           f"limit {limits.max_rows}")
     rows = _rows_from_table(table, columns, column_units, source, label)
     metadata = table.schema.metadata or {}
     for key, value in metadata.items():
@@ -970,7 +1007,7 @@ def _rows_from_json(doc: dict, label: str, limits: Limits) -> _Rows:
                            f"{len(items)} isotherms, limit {limits.max_isotherms}")
     if not items:
         raise _batch_error(label, "no_data", "'isotherms' is empty")
-    builder = _JsonRows(limits)
+    builder = _JsonRows(limits, label)
     for index, item in enumerate(items):
         builder.add(index, item)
     rows = builder.rows()
@@ -1015,8 +1052,10 @@ class _JsonRows:
     ARRAYS = ("pressure", "loading", "loading_sigma")
     UNIT_TEXT = tuple(UNIT_FIELD.values())
 
-    def __init__(self, limits: Limits):
+    def __init__(self, limits: Limits, label: str):
         self.limits = limits
+        self.label = label
+        self.total_points = 0
         self.text_fields = TEXT_FIELDS + self.UNIT_TEXT
         self.text_code: dict[str, list[int]] = {f: [] for f in self.text_fields}
         self.text_values: dict[str, dict[str, int]] = {f: {} for f in self.text_fields}
@@ -1096,6 +1135,10 @@ class _JsonRows:
                                 f"{n} points, limit {self.limits.max_points_per_isotherm}"))
             n = 0
         self.n_points.append(n)
+        self.total_points += n
+        if self.total_points > self.limits.max_rows:
+            raise _batch_error(self.label, "input_too_large", f"the isotherms hold more than "
+                               f"{self.limits.max_rows} points, limit {self.limits.max_rows}")
         for key in TEXT_FIELDS:
             self.text_code[key].append(self._text_code(index, key, item.get(key)))
         for quantity, fld in UNIT_FIELD.items():
