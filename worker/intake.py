@@ -111,7 +111,9 @@ Per isotherm: missing_value, not_a_number, not_finite, negative_value,
 non_positive_value, wrong_type, length_mismatch, unknown_unit, missing_unit,
 conflicting_columns, old_spelling, inconsistent_value,
 unknown_adsorbate, unknown_branch, invalid_id, relative_pressure_above_one,
-missing_saturation_pressure, missing_sample_mass, too_few_points,
+missing_saturation_pressure, missing_sample_mass, out_of_range (above the
+physical bounds of ``sorbrank.worker.units``, after conversion), invalid_text,
+too_few_points,
 too_many_points, duplicate_isotherm_id, more_issues (the list was cut at 25
 issues), internal_error.
 Whole input (IntakeError): internal_error (a defect in intake, never bad
@@ -1433,7 +1435,8 @@ def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: L
     pa_per_unit_of = np.array([np.nan if f is None else f for f in units.PRESSURE_PA_PER_UNIT.values()]
                               + [np.nan])
     pa_per_unit = pa_per_unit_of[p_unit]
-    p0_row = number["saturation_pressure"].value * pa_per_unit_of[p0_unit]
+    with np.errstate(over="ignore"):  # an overflow is reported by _range_checks
+        p0_row = number["saturation_pressure"].value * pa_per_unit_of[p0_unit]
     group_value = {}
     for fld, values, given, code in [
         ("sorbent_id", text["sorbent_id"].codes, text["sorbent_id"].codes >= 0, "inconsistent_value"),
@@ -1502,6 +1505,18 @@ def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: L
         loading = number["loading"].value * _loading_factor(l_unit, l_table, molar_mass, mass_g[gid])
         sigma = number["loading_sigma"].value * _loading_factor(sigma_unit, l_table, molar_mass,
                                                                 mass_g[gid])
+    unit_names = {"pressure": (np.array(p_table + [""]), p_unit),
+                  "saturation_pressure": (np.array(p_table + [""]), p0_unit),
+                  "loading": (np.array(l_table + [""]), l_unit),
+                  "loading_sigma": (np.array(l_table + [""]), sigma_unit)}
+    _range_checks(found, number, unit_names, {
+        "temperature_k": (number["temperature_k"].value, "K", units.MAX_TEMPERATURE_K),
+        "pressure": (pressure_pa, "Pa", units.MAX_PRESSURE_PA),
+        "saturation_pressure": (p0_row, "Pa", units.MAX_PRESSURE_PA),
+        "loading": (loading, "mol/kg", units.MAX_LOADING_MOL_PER_KG),
+        "loading_sigma": (sigma, "mol/kg", units.MAX_LOADING_MOL_PER_KG),
+        "surface_area_m2_per_g": (number["surface_area_m2_per_g"].value, "m2/g",
+                                  units.MAX_SURFACE_AREA_M2_PER_G)})
 
     points = _sorted_points(gid, n_groups, pressure_pa, loading, sigma)
     found.groups_where(~found.bad_groups() & (points.n_distinct < 3), None, "too_few_points",
@@ -1538,6 +1553,28 @@ def _assemble(rows: _Rows, settings: dict, declared: list, label: str, limits: L
         seen_ids.add(iso.isotherm_id)
         batch.isotherms.append(iso)
     return batch
+
+
+def _range_checks(found: _Findings, number: dict, unit_names: dict, canonical: dict) -> None:
+    """Record ``out_of_range`` for every usable value whose canonical form is above its
+    physical bound (``sorbrank.worker.units``), infinite after an overflowing conversion
+    included: the message gives the value as sent with its unit and what it became."""
+    for name, (converted, canon, bound) in canonical.items():
+        sent = number[name]
+        with np.errstate(invalid="ignore"):
+            mask = (sent.problem == _OK) & (converted > bound)
+        table, unit_index = unit_names.get(name, (None, None))
+
+        def detail(i, sent=sent, converted=converted, canon=canon, bound=bound, table=table,
+                   unit_index=unit_index):
+            unit = canon if table is None else str(table[unit_index[i]])
+            given = f"{sent.value[i]:g} {unit}"
+            if unit == canon:
+                return f"{given} is above the limit {bound:g} {canon}"
+            if np.isinf(converted[i]):
+                return f"{given} overflows when converted to {canon} (limit {bound:g} {canon})"
+            return f"{given} is {converted[i]:.3g} {canon}, above the limit {bound:g} {canon}"
+        found.rows_where(mask, name, "out_of_range", detail)
 
 
 def _missing_unit(quantity: str, sent_as: str) -> str:
@@ -1869,6 +1906,8 @@ class _Accepted:
 # conditions and mixtures (JSON only)
 
 CONDITION_PRESSURES = ("adsorption_pressure", "desorption_pressure", "reference_pressures")
+# each reference pressure becomes columns of every later ranking row (the shared summaries)
+MAX_REFERENCE_PRESSURES = 32
 CONDITION_TEMPERATURES = ("adsorption_temperature_k", "desorption_temperature_k")
 
 
@@ -1925,19 +1964,23 @@ def _conditions(raw: Any, settings: dict, label: str) -> Conditions:
     for key, minimum in (("adsorption_pressure", "positive"), ("desorption_pressure", "non_negative")):
         if key in pressures:
             value, pa_per_unit = pressures[key]
-            out[key + "_pa"] = _checked_number(value, minimum, f"{where}.{key}", label,
-                                               "invalid_conditions") * pa_per_unit
+            out[key + "_pa"] = _checked_pressure_pa(value, pa_per_unit, minimum, f"{where}.{key}",
+                                                    label, "invalid_conditions")
     if "reference_pressures" in pressures:
         values, pa_per_unit = pressures["reference_pressures"]
         if not isinstance(values, list) or not values:
             raise _batch_error(label, "invalid_conditions", "must be a non-empty list of numbers",
                                fld=f"{where}.reference_pressures")
+        if len(values) > MAX_REFERENCE_PRESSURES:
+            raise _batch_error(label, "invalid_conditions", f"{len(values)} values, at most "
+                               f"{MAX_REFERENCE_PRESSURES} (each becomes result columns)",
+                               fld=f"{where}.reference_pressures")
         out["reference_pressures_pa"] = tuple(
-            _checked_number(v, "non_negative", f"{where}.reference_pressures[{i}]", label,
-                            "invalid_conditions") * pa_per_unit for i, v in enumerate(values))
+            _checked_pressure_pa(v, pa_per_unit, "non_negative", f"{where}.reference_pressures[{i}]",
+                                 label, "invalid_conditions") for i, v in enumerate(values))
     for key in CONDITION_TEMPERATURES:
         if raw.get(key) is not None:
-            out[key] = _checked_number(raw[key], "positive", f"{where}.{key}", label, "invalid_conditions")
+            out[key] = _checked_temperature_k(raw[key], f"{where}.{key}", label, "invalid_conditions")
     conditions = Conditions(**{**Conditions().__dict__, **out})
     if conditions.desorption_pressure_pa > conditions.adsorption_pressure_pa:
         raise _batch_error(label, "invalid_conditions",
@@ -1993,10 +2036,10 @@ def _mixtures(raw: Any, settings: dict, declared: list, label: str) -> list[Mixt
         value, pa_per_unit = pressures["total_pressure"]
         out.append(MixtureRequest(
             sorbent_id=sorbent_id, components=ids, mole_fractions=y,
-            total_pressure_pa=_checked_number(value, "positive", f"{where}.total_pressure", label,
-                                              "invalid_mixture") * pa_per_unit,
-            temperature_k=_checked_number(item.get("temperature_k"), "positive",
-                                          f"{where}.temperature_k", label, "invalid_mixture")))
+            total_pressure_pa=_checked_pressure_pa(value, pa_per_unit, "positive",
+                                                   f"{where}.total_pressure", label, "invalid_mixture"),
+            temperature_k=_checked_temperature_k(item.get("temperature_k"), f"{where}.temperature_k",
+                                                 label, "invalid_mixture")))
     return out
 
 
@@ -2008,3 +2051,24 @@ def _checked_number(value: Any, minimum: str, fld: str, label: str, code: str) -
         raise _batch_error(label, code, f"{number:g} must be "
                            + ("greater than zero" if minimum == "positive" else "zero or more"), fld=fld)
     return number
+
+
+def _checked_pressure_pa(value: Any, pa_per_unit: float, minimum: str, fld: str, label: str,
+                         code: str) -> float:
+    """``value`` (in the unit of ``pa_per_unit``) in Pa, checked against the physical bound."""
+    number = _checked_number(value, minimum, fld, label, code)
+    pressure_pa = number * pa_per_unit
+    if not pressure_pa <= units.MAX_PRESSURE_PA:  # inf after an overflow fails too
+        became = "overflows when converted to Pa" if math.isinf(pressure_pa) else \
+            f"is {pressure_pa:.3g} Pa"
+        raise _batch_error(label, code, f"{number:g} {became}, above the limit "
+                           f"{units.MAX_PRESSURE_PA:g} Pa", fld=fld)
+    return pressure_pa
+
+
+def _checked_temperature_k(value: Any, fld: str, label: str, code: str) -> float:
+    temperature_k = _checked_number(value, "positive", fld, label, code)
+    if temperature_k > units.MAX_TEMPERATURE_K:
+        raise _batch_error(label, code, f"{temperature_k:g} K is above the limit "
+                           f"{units.MAX_TEMPERATURE_K:g} K", fld=fld)
+    return temperature_k

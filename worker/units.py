@@ -47,6 +47,16 @@ MOLAR_VOLUME_STP_CM3_PER_MOL = constants.R * STP_TEMPERATURE_K / STP_PRESSURE_PA
 
 RELATIVE = "p/p0"
 
+# The largest values intake takes as measured, in canonical units. Beyond them a number
+# is a typo or an overflow of the unit conversion, never a measurement. Common practice,
+# no source: each bound is far outside what adsorption rigs measure (high-pressure rigs
+# stop near 100 MPa; 1e4 mol/kg is 10 mol/g, five times hydrogen at 2 g/g; the largest
+# BET areas reported are near 7,000-8,000 m2/g, from memory).
+MAX_TEMPERATURE_K = 2000.0
+MAX_PRESSURE_PA = 1e9
+MAX_LOADING_MOL_PER_KG = 1e4
+MAX_SURFACE_AREA_M2_PER_G = 1e5
+
 
 class UnitError(ValueError):
     """A conversion cannot be done; intake turns it into an Issue."""
