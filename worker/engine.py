@@ -50,6 +50,7 @@ import numpy as np
 # stats.norm.ppf call them) without the 0.5 s import of scipy.stats at every start
 from scipy.special import chdtrc, stdtrit
 
+from .interrupts import ends_job
 from .models import CATALOGUE, IsothermModel
 from .packing import Packed
 from .results import ModelFits
@@ -133,6 +134,8 @@ def fit_models(packed: Packed, models="all", weighting: str = "uniform",
         try:
             out[model.id] = fit_model(model, packed, weighting, absolute_sigma=absolute_sigma)
         except Exception as exc:  # one broken model must not sink the others
+            if ends_job(exc):
+                raise
             log.exception("model %s failed on the whole batch", model.id)
             fits = _empty_fits(model, packed.n, packed.n_points, np.ones(packed.n, dtype=bool))
             fits.reason[:] = f"internal error: {type(exc).__name__}: {exc}"

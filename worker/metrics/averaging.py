@@ -40,6 +40,7 @@ from typing import Callable
 
 import numpy as np
 
+from ..interrupts import ends_job
 from ..isotherm import Batch
 from ..models import CATALOGUE
 from ..packing import Packed
@@ -176,7 +177,9 @@ def _averaged_figure(selection: Selection, fits: dict[str, ModelFits], shape: tu
     for j, model, model_fits, rows in _eligible_weights(selection, fits, model_filter):
         try:
             value, variance = per_model(model, model_fits, rows)
-        except Exception:  # noqa: BLE001 - a model bug leaves that model out, not the batch
+        except Exception as exc:  # a model bug leaves that model out, not the batch
+            if ends_job(exc):
+                raise
             continue
         weights[rows, ..., j] = selection.weights[rows, j].reshape(-1, *extra)
         values[rows, ..., j] = value

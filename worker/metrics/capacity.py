@@ -4,6 +4,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import constants
 
+from ..interrupts import ends_job
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading,
@@ -103,7 +104,9 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
         params = model_fits.params[rows]
         try:
             value = model.saturation_capacity(params)
-        except Exception:  # noqa: BLE001 - a model bug gives nan, not a failed batch
+        except Exception as exc:  # a model bug gives nan, not a failed batch
+            if ends_job(exc):
+                raise
             value = None
         if value is None:
             continue

@@ -11,6 +11,7 @@ from typing import Hashable, Iterable, Iterator, Sequence
 import numpy as np
 from scipy import constants
 
+from ..interrupts import ends_job
 from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
@@ -127,7 +128,9 @@ def evaluate_model(model, params: np.ndarray, temperature_k: np.ndarray,
     with np.errstate(all="ignore"):
         try:
             q = model.evaluate(x, temperature_k[:, None], *columns)
-        except Exception:  # noqa: BLE001 - a model bug must not take the batch down
+        except Exception as exc:  # a model bug must not take the batch down
+            if ends_job(exc):
+                raise
             return np.full(pressure_pa.shape, np.nan)
     q = np.broadcast_to(np.asarray(q, dtype=float), pressure_pa.shape).copy()
     if model.relative_pressure:

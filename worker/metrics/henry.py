@@ -30,6 +30,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..interrupts import ends_job
 from ..models.linear import masked_linear_fit
 from ..packing import Packed
 from ..results import ModelFits, Selection
@@ -88,7 +89,9 @@ def _limit(model, params, temperature_k, saturation_pressure_pa, shape):
     try:
         with np.errstate(all="ignore"):
             value = model.henry_constant(params, temperature_k, saturation_pressure_pa)
-    except Exception:  # noqa: BLE001 - a model bug gives nan, not a failed batch
+    except Exception as exc:  # a model bug gives nan, not a failed batch
+        if ends_job(exc):
+            raise
         return np.full(shape, np.nan)
     if value is None:
         return None

@@ -28,6 +28,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import constants
 
+from ..interrupts import ends_job
 from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
@@ -150,7 +151,9 @@ def ln_pressure_variance(model, params: np.ndarray, covariance: np.ndarray,
                            axis=-1)
             up = model.evaluate(x * np.exp(LN_PRESSURE_STEP), t, *columns)
             down = model.evaluate(x * np.exp(-LN_PRESSURE_STEP), t, *columns)
-        except Exception:  # noqa: BLE001 - a model bug must not take the batch down
+        except Exception as exc:  # a model bug must not take the batch down
+            if ends_job(exc):
+                raise
             return np.full(pressure_pa.shape, np.nan)
         slope = (up - down) / (2.0 * LN_PRESSURE_STEP)
         gradient = -jac / slope[..., None]
