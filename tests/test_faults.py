@@ -279,7 +279,7 @@ def test_redis_restart_with_surviving_worker_is_reconciled_by_the_watch(tmp_path
     wait_final(s, api, batch_id, [worker, server])
     assert_exactly_once(s, api, batch_id, ids)
     assert worker.alive()  # recovered without a restart
-    assert "re-enqueueing them" in worker.log_text()
+    assert "re-enqueueing" in worker.log_text()
 
 
 # -- processes as /proc shows them (psutil is not a dependency) ---------------------

@@ -321,6 +321,20 @@ def pending_chunks(store: Store, batch_id: str) -> list[int]:
             if statuses.get(c["index"], {}).get("state") not in SETTLED]
 
 
+def unsettled_chunks(store: Store) -> dict[tuple[str, int], str]:
+    """{(batch id, chunk index): "queued" or "running"} over every unfinished batch."""
+    unsettled = {}
+    for batch_id in store.batch_ids():
+        if store.read_final(batch_id) is not None:
+            continue
+        statuses = store.read_chunk_statuses(batch_id)
+        for chunk in _manifest(store, batch_id)["chunks"]:
+            state = statuses.get(chunk["index"], {}).get("state", "queued")
+            if state not in SETTLED:
+                unsettled[(batch_id, chunk["index"])] = state
+    return unsettled
+
+
 def reconcile(store: Store, enqueue: Callable[[str, int], object]) -> list[tuple[str, int]]:
     """Re-enqueue every unsettled chunk of every unfinished batch; finalize the rest."""
     queued = []

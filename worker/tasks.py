@@ -1,16 +1,23 @@
 """Celery tasks: thin wrappers around sorbrank.worker.jobs, idempotent by construction."""
 from __future__ import annotations
 
+import base64
+import json
 import logging
 import threading
 
+from celery.exceptions import SoftTimeLimitExceeded
 from celery.signals import worker_ready, worker_shutdown
 
 from . import jobs
-from .celery_app import MAX_RETRIES, QUEUE, SETTINGS, app, data_dir
+from .celery_app import MAX_RETRIES, QUEUE, SETTINGS, SOFT_LIMIT_S, app, data_dir
+from .interrupts import register_job_ending
 from .store import Store
 
-# How often a worker checks for a broker that forgot its queue (seconds; 0 = never)
+# the soft time limit ends the chunk; the fit path's broad handlers must not take it for a fit error
+register_job_ending(SoftTimeLimitExceeded)
+
+# How often a worker checks the broker for lost chunks (seconds; 0 = never)
 RECONCILE_INTERVAL_S = SETTINGS.reconcile_interval_s
 # kombu's Redis transport keeps in-flight (unacknowledged) messages in this hash
 _UNACKED_KEY = "unacked"
@@ -32,8 +39,18 @@ def fit_chunk(self, batch_id: str, chunk_index: int) -> None:
         if self.request.retries < self.max_retries and not isinstance(exc, jobs.AttemptsExhausted):
             raise self.retry(exc=exc, countdown=2 ** self.request.retries)
         log.exception("chunk %s of batch %s failed for good", chunk_index, batch_id)
-        jobs.record_chunk_failure(store, batch_id, chunk_index, f"{type(exc).__name__}: {exc}")
+        jobs.record_chunk_failure(store, batch_id, chunk_index,
+                                  failure_message(exc, self.request.retries + 1))
     jobs.finalize_batch(store, batch_id)
+
+
+def failure_message(exc: Exception, tries: int) -> str:
+    """What a failed chunk's status says about the error that ended its last try."""
+    if isinstance(exc, SoftTimeLimitExceeded):
+        return (f"time limit: the chunk was still being fitted after "
+                f"SORBRANK_TASK_SOFT_LIMIT_S={SOFT_LIMIT_S} s on each of {tries} tries; "
+                f"raise the limit or lower SORBRANK_CHUNK_SIZE")
+    return f"{type(exc).__name__}: {exc}"
 
 
 def enqueue(batch_id: str, chunk_index: int) -> None:
@@ -50,36 +67,58 @@ def reconcile_on_start(**_):
         log.exception("reconcile on start failed; unfinished batches wait for the next start")
 
 
-def broker_holds_no_chunk() -> bool:
-    """True when the broker has no queued and no in-flight chunk message.
-
-    With pending chunks in the store that means the broker lost them (Redis
-    restarted without persistence, or was flushed) while the workers lived on.
-    """
+def chunks_in_broker() -> set[tuple[str, int]]:
+    """(batch id, chunk index) of every chunk message the broker holds, queued or in flight."""
     with app.connection_for_read() as conn:
-        client = conn.default_channel.client
-        return client.llen(QUEUE) == 0 and client.hlen(_UNACKED_KEY) == 0
+        pipe = conn.default_channel.client.pipeline()  # MULTI/EXEC: one snapshot of both
+        pipe.lrange(QUEUE, 0, -1)
+        pipe.hvals(_UNACKED_KEY)
+        queued, in_flight = pipe.execute()
+    messages = [json.loads(raw) for raw in queued]
+    messages += [json.loads(raw)[0] for raw in in_flight]  # [message, exchange, routing key]
+    held = set()
+    for message in messages:
+        if (message.get("headers") or {}).get("task") != fit_chunk.name:
+            continue
+        body = message["body"]
+        if (message.get("properties") or {}).get("body_encoding") == "base64":
+            body = base64.b64decode(body)
+        batch_id, chunk_index = json.loads(body)[0]  # protocol 2 body: [args, kwargs, embed]
+        held.add((batch_id, int(chunk_index)))
+    return held
 
 
-def reconcile_if_broker_forgot() -> list[tuple[str, int]]:
-    """Re-enqueue unfinished chunks when the broker holds none of them.
+def reconcile_lost_chunks(suspects: frozenset = frozenset()) -> frozenset:
+    """Re-enqueue each unfinished chunk the broker holds no message for; return the
+    chunks to check again next round.
 
-    Several workers may do this at the same moment: a chunk then runs twice,
-    which only rewrites the same files (jobs are idempotent).
+    Messages are acknowledged only after a chunk's files are written, and a retry
+    publishes its new message before the old one is acknowledged, so a *running*
+    chunk without a message is lost: a hard time limit killed its process (Celery
+    acknowledges such a task), or Redis forgot it. It is queued again at once,
+    whether or not other chunks wait in the queue. A *queued* chunk without a
+    message may belong to a batch the API is enqueueing this very moment, so it
+    is queued again only when it is still missing at the next check (``suspects``).
+    A chunk caught in a race runs twice, which only rewrites the same files.
     """
-    store = Store(data_dir())
-    has_pending = any(jobs.pending_chunks(store, b) for b in store.batch_ids()
-                      if store.read_final(b) is None)
-    if has_pending and broker_holds_no_chunk():
-        log.warning("the broker holds no chunk of the unfinished batches: re-enqueueing them")
-        return jobs.reconcile(store, enqueue)
-    return []
+    unsettled = jobs.unsettled_chunks(Store(data_dir()))  # the store first, then the broker:
+    if not unsettled:                                     # a chunk settling in between is
+        return frozenset()                                # then re-run at worst, never lost
+    missing = set(unsettled) - chunks_in_broker()
+    lost = sorted(c for c in missing if unsettled[c] == "running" or c in suspects)
+    for batch_id, chunk_index in lost:
+        enqueue(batch_id, chunk_index)
+    if lost:
+        log.warning("re-enqueueing %d unfinished chunk(s) the broker holds no message for: %s",
+                    len(lost), ", ".join(f"{b} chunk {c}" for b, c in lost[:20]))
+    return frozenset(missing.difference(lost))
 
 
 def _watch_broker() -> None:
+    suspects = frozenset()
     while not _stop_watch.wait(RECONCILE_INTERVAL_S):
         try:
-            reconcile_if_broker_forgot()
+            suspects = reconcile_lost_chunks(suspects)
         except Exception:  # broker down right now: try again next round
             log.debug("broker check failed; next try in %s s", RECONCILE_INTERVAL_S, exc_info=True)
 
