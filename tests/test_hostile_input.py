@@ -565,3 +565,131 @@ def requests_get_total(url: str) -> int:
     import requests
 
     return requests.get(f"{url}/api/v1/batches", headers=auth("reader"), timeout=30).json()["total"]
+
+
+# -- text, numbers and Parquet that intake must refuse, over a real socket (issue 17) -------
+
+def post_live(url: str, body: bytes, media: str, **query):
+    import requests
+
+    TRIED["intake-refusal"] += 1
+    return requests.post(f"{url}/api/v1/batches", data=body, params=query, timeout=60,
+                         headers={"Content-Type": media, **auth("submitter")})
+
+
+def co2_n2_isotherms(sorbent_id: str = "TG31-S1") -> list[dict]:
+    return [isotherm(sorbent_id, 2.0, 0.1), isotherm(sorbent_id, 1.0, 0.01, adsorbate="N2")]
+
+
+def refused(resp, code: str, fld: str | None = None) -> dict:
+    """A 4xx problem document with an issue of ``code`` (on ``fld``)."""
+    assert 400 <= resp.status_code < 500, (resp.status_code, resp.text[:1500])
+    assert resp.headers["Content-Type"].startswith(PROBLEM)
+    doc = resp.json()
+    matching = [i for i in doc.get("issues", []) if i["code"] == code
+                and (fld is None or i["field"] == fld)]
+    assert matching, doc
+    assert matching[0]["batch"] and matching[0]["message"]
+    return matching[0]
+
+
+def json_with(isotherms: list[dict], **top) -> bytes:
+    # json.dumps escapes a lone surrogate as \udXXX: valid JSON text that decodes to one
+    return json.dumps({"units": {"pressure": "kPa", "loading": "mol/kg"},
+                       "isotherms": isotherms, **top}).encode()
+
+
+def wait_settled(url: str, batch_id: str) -> dict:
+    import requests
+
+    from conftest import wait_until
+
+    def settled():
+        status = requests.get(f"{url}/api/v1/batches/{batch_id}", headers=auth("reader"),
+                              timeout=30).json()
+        return status if status["state"] in ("done", "partial", "failed") else None
+
+    return wait_until(settled, f"batch {batch_id} to settle", timeout_s=180)
+
+
+def test_lone_surrogates_in_text_fields_are_4xx_never_accepted_then_failed(live):
+    """Item 5 and 11: the mixture's sorbent id was accepted (202) and failed the chunk,
+    good isotherms included; batch_label and isotherm_id answered 500."""
+    url, _ = live
+    before = requests_get_total(url)
+    mixture = {"sorbent_id": "TG31\ud800", "components": ["CO2", "N2"],
+               "mole_fractions": [0.15, 0.85], "total_pressure_bar": 1.0, "temperature_k": 298.15}
+    issue = refused(post_live(url, json_with(co2_n2_isotherms(), mixtures=[mixture]),
+                              "application/json"), "invalid_mixture", "mixtures[0].sorbent_id")
+    assert "surrogate" in issue["message"]
+    issue = refused(post_live(url, json_with(co2_n2_isotherms(), batch_label="run\udc00-7"),
+                              "application/json"), "invalid_batch_label")
+    assert "surrogate" in issue["message"]
+    for fld, code in (("isotherm_id", "invalid_id"), ("sorbent_id", "invalid_id"),
+                      ("adsorbate", "invalid_text"), ("branch", "invalid_text")):
+        bad = {**isotherm("TG31-S1", 2.0, 0.1), fld: "TG31\udbff"}
+        issue = refused(post_live(url, json_with([bad]), "application/json"), code, fld)
+        assert "surrogate" in issue["message"], issue
+    assert requests_get_total(url) == before  # nothing refused was stored
+
+    # one bad isotherm among good ones: 202 for the good, the bad listed, the batch done
+    bad = {**isotherm("TG31-S9", 2.0, 0.1), "isotherm_id": "TG31\ud800"}
+    resp = post_live(url, json_with([isotherm("TG31-S1", 2.0, 0.1), bad]), "application/json")
+    assert resp.status_code == 202, resp.text[:1500]
+    doc = resp.json()
+    assert doc["accepted"] == 1
+    assert [(i["code"], i["field"]) for i in doc["rejected"]] == [("invalid_id", "isotherm_id")]
+    status = wait_settled(url, doc["batch_id"])
+    assert status["state"] == "done", status
+
+
+def test_invisible_characters_long_labels_and_bad_numbers_are_4xx(live):
+    """Items 8, 11, 12, 13 over HTTP: each answer a 4xx naming the field, never a 5xx."""
+    url, _ = live
+    issue = refused(post_live(url, json_with([isotherm("TG31\u202e1S", 2.0, 0.1)]),
+                              "application/json"), "invalid_id", "sorbent_id")
+    assert "U+202E" in issue["message"] and "\u202e" not in issue["message"]
+    refused(post_live(url, json_with([isotherm("TG31\u200b-S1", 2.0, 0.1)]),
+                      "application/json"), "invalid_id", "sorbent_id")
+
+    resp = post_live(url, csv_batch([isotherm("TG31-S1", 2.0, 0.1)]), "text/csv",
+                     batch_label="L" * 10_000)
+    issue = refused(resp, "invalid_batch_label")
+    assert "10000 characters" in issue["message"]
+    assert "L" * 81 not in resp.text and len(resp.content) < 3000
+
+    overflow = {**isotherm("TG31-S1", 2.0, 0.1), "loading": [1e306] * 9}
+    body = json.dumps({"units": {"pressure": "kPa", "loading": "mol/g"},
+                       "isotherms": [overflow]}).encode()
+    issue = refused(post_live(url, body, "application/json"), "out_of_range", "loading")
+    assert issue["row"] == 0 and "overflows" in issue["message"]
+    hot = {**isotherm("TG31-S1", 2.0, 0.1), "temperature_k": 1e300}
+    refused(post_live(url, json_with([hot]), "application/json"), "out_of_range", "temperature_k")
+
+    refs = {"reference_pressures_kpa": list(range(1, 5046))}
+    refused(post_live(url, json_with(co2_n2_isotherms(), conditions=refs), "application/json"),
+            "invalid_conditions", "conditions.reference_pressures")
+
+
+def test_hostile_parquet_over_http_is_4xx(live):
+    """Item 11 and 13: int64 at 2**63-1 and uint64 near 2**64 answered 500; duplicate
+    column names dumped the reader's internal schema."""
+    url, _ = live
+    n = 5
+    base = {"sorbent_id": ["TG31-S1"] * n, "adsorbate": ["CO2"] * n, "temperature_k": [298.15] * n,
+            "pressure_kpa": [1.0, 2.0, 5.0, 10.0, 20.0], "loading_mol_per_kg": [0.1, 0.2, 0.4, 0.6, 0.8]}
+    for kind, value in ((pa.int64(), 2**63 - 1), (pa.uint64(), 2**64 - 5)):
+        table = pa.table({**base, "pressure_kpa": pa.array([1, 2, 3, 4, value], kind)})
+        sink = io.BytesIO()
+        pq.write_table(table, sink)
+        issue = refused(post_live(url, sink.getvalue(), MEDIA["parquet"]), "out_of_range",
+                        "pressure_kpa")
+        assert issue["row"] == 5
+    table = pa.table(base)
+    table = pa.Table.from_arrays([table.column(0)] + table.columns,
+                                 names=["sorbent_id"] + table.column_names)
+    sink = io.BytesIO()
+    pq.write_table(table, sink)
+    resp = post_live(url, sink.getvalue(), MEDIA["parquet"])
+    refused(resp, "duplicate_column", "sorbent_id")
+    assert "FieldRef" not in resp.text and "__fragment_index" not in resp.text
