@@ -105,6 +105,15 @@ Rules that change data (stated so nobody is surprised)
   ``sorbrank.worker.adsorbates`` (None when the temperature is supercritical or out of
   the property library's range, and for declared gases).
 
+Limits and refused text
+-----------------------
+``Limits`` bounds a batch (isotherms, points per isotherm, points in all, columns,
+bytes, JSON depth); a Parquet file is checked from its footer (rows, uncompressed
+size) before its data are read. Ids and labels refuse lone surrogates, controls and
+invisible format characters (category Cf); values above the physical bounds of
+``sorbrank.worker.units`` after conversion are ``out_of_range``. docs/formats.md,
+"Limits and refused input", states them.
+
 Issue codes
 -----------
 Per isotherm: missing_value, not_a_number, not_finite, negative_value,
