@@ -14,7 +14,6 @@ import subprocess
 import sys
 import textwrap
 
-import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
