@@ -68,7 +68,8 @@ def data_range_exclusions(model, packed: Packed) -> np.ndarray:
     if not model.multilayer:
         return reason
     with np.errstate(divide="ignore", invalid="ignore"):
-        top = np.max(np.where(packed.mask, packed.relative_pressure, -np.inf), axis=1)
+        top = np.max(np.where(packed.mask, packed.relative_pressure, -np.inf), axis=1,
+                     initial=-np.inf)  # an empty batch has zero-width rows
     has_p0 = np.isfinite(packed.saturation_pressure_pa) & (packed.saturation_pressure_pa > 0)
     short = has_p0 & ~(top >= MULTILAYER_MIN_RELATIVE_PRESSURE)
     reason[short] = (f"data below p/p0 = {MULTILAYER_MIN_RELATIVE_PRESSURE:g}: "
