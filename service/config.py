@@ -18,7 +18,7 @@ from typing import Mapping
 from sorbrank.worker.isotherm import DEFAULT_CHUNK_SIZE
 # the rules the Celery app applies too: one parser for both
 from sorbrank.worker.settings import (
-    DEFAULT_DATA_DIR, DEFAULT_RECONCILE_INTERVAL_S, DEFAULT_TASK_HARD_LIMIT_S,
+    DEFAULT_DATA_DIR, DEFAULT_FILE_MODE, DEFAULT_RECONCILE_INTERVAL_S, DEFAULT_TASK_HARD_LIMIT_S,
     DEFAULT_TASK_MAX_RETRIES, DEFAULT_TASK_SOFT_LIMIT_S, ConfigError, broker_url_problem,
     data_dir_problem, env_int, read_shared, redact_url,
 )
@@ -26,6 +26,16 @@ from sorbrank.worker.settings import (
 from .auth import Token, load_tokens
 
 DEFAULT_MAX_UPLOAD_BYTES = 64 * 1024 * 1024
+# Parsing JSON costs ~44x the body in memory (measured: Python objects per
+# number, then arrays), Parquet and CSV far less: 8 MiB of JSON (~700,000
+# points) peaks near 400 MB, so two at once stay well under 1.5 GB
+DEFAULT_MAX_JSON_BYTES = 8 * 1024 * 1024
+# intakes parsing at once per API process; more wait as 503 + Retry-After
+DEFAULT_MAX_CONCURRENT_INTAKES = 2
+# the embedded server (waitress): an idle or stalled connection is closed
+# after this many seconds; requests are handed to a thread only once complete
+DEFAULT_HTTP_TIMEOUT_S = 30
+DEFAULT_HTTP_THREADS = 8
 
 __all__ = ["ConfigError", "Settings", "broker_url_problem", "data_dir_problem", "load_settings",
            "open_access_verdict", "redact_url", "start_problems", "store_problem"]
@@ -53,6 +63,11 @@ class Settings:
     task_hard_limit_s: int = DEFAULT_TASK_HARD_LIMIT_S
     task_max_retries: int = DEFAULT_TASK_MAX_RETRIES
     reconcile_interval_s: int = DEFAULT_RECONCILE_INTERVAL_S
+    file_mode: int = DEFAULT_FILE_MODE
+    max_json_bytes: int = DEFAULT_MAX_JSON_BYTES
+    max_concurrent_intakes: int = DEFAULT_MAX_CONCURRENT_INTAKES
+    http_timeout_s: int = DEFAULT_HTTP_TIMEOUT_S
+    http_threads: int = DEFAULT_HTTP_THREADS
 
     @property
     def mode(self) -> str:
@@ -100,6 +115,12 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
         task_hard_limit_s=shared.task_hard_limit_s,
         task_max_retries=shared.task_max_retries,
         reconcile_interval_s=shared.reconcile_interval_s,
+        file_mode=shared.file_mode,
+        max_json_bytes=env_int(env, "SORBRANK_MAX_JSON_BYTES", DEFAULT_MAX_JSON_BYTES, problems),
+        max_concurrent_intakes=env_int(env, "SORBRANK_MAX_CONCURRENT_INTAKES",
+                                       DEFAULT_MAX_CONCURRENT_INTAKES, problems),
+        http_timeout_s=env_int(env, "SORBRANK_HTTP_TIMEOUT_S", DEFAULT_HTTP_TIMEOUT_S, problems),
+        http_threads=env_int(env, "SORBRANK_HTTP_THREADS", DEFAULT_HTTP_THREADS, problems),
     )
     if problems:
         raise ConfigError(problems)

@@ -19,6 +19,11 @@ How a write is made atomic depends on the filesystem:
   handlers): a dot-named temp file, then ``move`` (a rename where the
   filesystem has one). pyarrow exposes no fsync for these.
 
+On a local filesystem files get the permission bits of SORBRANK_FILE_MODE
+(default 0640) and the directories this module creates the same bits plus
+search wherever read is given, whatever the process umask: an API and
+workers running as different users of one group can then share a store.
+
 Create-if-absent (the Idempotency-Key claim) is exact on a local filesystem
 (a hard link never replaces a name). Elsewhere it is check-then-put: two
 processes racing with one key within a few milliseconds can both win.
@@ -34,6 +39,8 @@ from typing import Any, Callable
 
 import pyarrow as pa
 import pyarrow.fs as pafs
+
+from .settings import store_file_mode
 
 OBJECT_STORES = frozenset({"s3", "gcs", "abfs"})
 
@@ -68,12 +75,41 @@ def fsync_dir(path: str | os.PathLike) -> None:
         os.close(fd)
 
 
+def directory_mode(file_mode: int) -> int:
+    """``file_mode`` plus search (x) for each of owner, group, others that may read."""
+    return file_mode | ((file_mode & 0o444) >> 2)
+
+
+def make_dirs(path: str) -> None:
+    """``os.makedirs(path, exist_ok=True)``, each directory it creates given the
+    store's directory mode (makedirs alone would leave them to the umask)."""
+    missing = []
+    folder = path
+    while folder and not os.path.isdir(folder):
+        missing.append(folder)
+        folder = os.path.dirname(folder)
+    os.makedirs(path, exist_ok=True)
+    mode = directory_mode(store_file_mode())
+    for folder in reversed(missing):
+        # another process (perhaps another user) may have made it first: its mode stands
+        with contextlib.suppress(PermissionError):
+            os.chmod(folder, mode)
+
+
+def _temp_file(parent: str, name: str) -> tuple[int, str]:
+    """A dot-named temp file beside ``name``, already carrying the store's file mode
+    (mkstemp makes it 0600)."""
+    make_dirs(parent)
+    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=parent)
+    os.fchmod(fd, store_file_mode())
+    return fd, tmp
+
+
 def local_atomic_write(path: str | os.PathLike, write: Callable[[Any], None]) -> None:
     """Write via ``write(fileobj)`` to a dot-temp file, fsync, rename to ``path``."""
     path = os.fspath(path)
     parent, name = os.path.split(path)
-    os.makedirs(parent, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=parent)
+    fd, tmp = _temp_file(parent, name)
     try:
         with os.fdopen(fd, "wb") as fh:
             write(fh)
@@ -120,8 +156,7 @@ def create_if_absent(filesystem: pafs.FileSystem, path: str, data: bytes) -> boo
         atomic_write(filesystem, path, lambda fh: fh.write(data))
         return True
     parent, name = os.path.split(path)
-    os.makedirs(parent, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=parent)
+    fd, tmp = _temp_file(parent, name)
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)

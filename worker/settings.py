@@ -17,10 +17,15 @@ SORBRANK_TASK_HARD_LIMIT_S     hard time limit per chunk, seconds (default 1800)
 SORBRANK_TASK_MAX_RETRIES      retries after a failed chunk (default 2)
 SORBRANK_RECONCILE_INTERVAL_S  how often a Celery worker checks for a broker that lost
                                queued chunks, seconds; 0 = only at start (default 60)
+SORBRANK_FILE_MODE             permission bits of the files written into a local store, in
+                               octal (default 0640); directories get the same bits plus
+                               search (x) wherever read is given: 0660 lets an API and workers
+                               running as different users of one group share a store
 """
 from __future__ import annotations
 
 import os
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Mapping
@@ -33,6 +38,9 @@ DEFAULT_TASK_SOFT_LIMIT_S = 1500
 DEFAULT_TASK_HARD_LIMIT_S = 1800
 DEFAULT_TASK_MAX_RETRIES = 2
 DEFAULT_RECONCILE_INTERVAL_S = 60
+# owner read-write, group read, nothing for others: a store holds a lab's
+# unpublished measurements, and a reader in the group needs no write bit
+DEFAULT_FILE_MODE = 0o640
 
 
 class ConfigError(ValueError):
@@ -123,6 +131,29 @@ class SharedSettings:
     task_hard_limit_s: int = DEFAULT_TASK_HARD_LIMIT_S
     task_max_retries: int = DEFAULT_TASK_MAX_RETRIES
     reconcile_interval_s: int = DEFAULT_RECONCILE_INTERVAL_S
+    file_mode: int = DEFAULT_FILE_MODE
+
+
+def file_mode_problem(raw: str) -> str | None:
+    """Why ``raw`` is not a usable SORBRANK_FILE_MODE (None = fine)."""
+    expected = "expected octal permission bits such as 0640 or 0660"
+    if not re.fullmatch(r"0?[0-7]{3}", raw):
+        return f"SORBRANK_FILE_MODE={raw!r}: {expected}"
+    mode = int(raw, 8)
+    if mode & 0o600 != 0o600:
+        return f"SORBRANK_FILE_MODE={raw}: the owner must keep read and write (0600)"
+    if mode & 0o111:
+        return f"SORBRANK_FILE_MODE={raw}: store files are data, never executable; {expected}"
+    if mode & 0o002:
+        return f"SORBRANK_FILE_MODE={raw}: world-writable store files are refused; {expected}"
+    return None
+
+
+def store_file_mode(env: Mapping[str, str] | None = None) -> int:
+    """The permission bits for store files from SORBRANK_FILE_MODE (the default
+    when unset or invalid: an invalid value already stopped the process at start)."""
+    raw = (os.environ if env is None else env).get("SORBRANK_FILE_MODE", "").strip()
+    return int(raw, 8) if raw and file_mode_problem(raw) is None else DEFAULT_FILE_MODE
 
 
 def read_shared(env: Mapping[str, str], problems: list[str]) -> SharedSettings:
@@ -143,6 +174,9 @@ def read_shared(env: Mapping[str, str], problems: list[str]) -> SharedSettings:
         # job never gets its chance to record the timeout itself
         problems.append(f"SORBRANK_TASK_HARD_LIMIT_S={hard_s} must be greater than "
                         f"SORBRANK_TASK_SOFT_LIMIT_S={soft_s}")
+    file_mode_raw = env.get("SORBRANK_FILE_MODE", "").strip()
+    if file_mode_raw and (problem := file_mode_problem(file_mode_raw)):
+        problems.append(problem)
     return SharedSettings(
         data_dir=data_dir_raw if "://" in data_dir_raw else Path(data_dir_raw),
         broker_url=broker,
@@ -153,6 +187,7 @@ def read_shared(env: Mapping[str, str], problems: list[str]) -> SharedSettings:
                                  problems, minimum=0),
         reconcile_interval_s=env_int(env, "SORBRANK_RECONCILE_INTERVAL_S",
                                      DEFAULT_RECONCILE_INTERVAL_S, problems, minimum=0),
+        file_mode=store_file_mode(env),
     )
 
 
