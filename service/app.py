@@ -7,8 +7,9 @@ distributed mode, the local process pool in embedded mode).
 from __future__ import annotations
 
 import logging
+import threading
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 from flask import Flask, Response, g, request
@@ -31,12 +32,19 @@ class Runtime:
     store: Store
     auth: Authenticator
     enqueue: Callable[[str, int], None]
+    # one slot per intake allowed to parse at once (SORBRANK_MAX_CONCURRENT_INTAKES)
+    intake_slots: threading.BoundedSemaphore = field(init=False)
+
+    def __post_init__(self):
+        self.intake_slots = threading.BoundedSemaphore(self.settings.max_concurrent_intakes)
 
     def not_ready(self) -> list[str]:
         """Reasons the service cannot take work right now (empty = ready)."""
         reasons = []
         if not self.store.writable():
-            reasons.append(f"store {self.store.root} is not writable")
+            # /readyz is unauthenticated: the path goes to the log, not to the caller
+            log.warning("readiness: store %s is not writable", self.store.root)
+            reasons.append("the store is not writable")
         if self.settings.broker_url:
             import redis  # only distributed mode needs it
 
@@ -110,6 +118,12 @@ def create_app(settings: Settings | None = None,
                         headers={"Content-Type": metrics.CONTENT_TYPE})
 
     _log_requests(app)
+
+    @app.after_request
+    def no_sniffing(response):
+        # a browser must never run a JSON or SVG answer as something else
+        response.headers.setdefault("X-Content-Type-Options", "nosniff")
+        return response
     return app
 
 

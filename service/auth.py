@@ -3,6 +3,10 @@
 Configuration: SORBRANK_TOKENS_FILE (path to JSON) or SORBRANK_TOKENS (the JSON
 itself), a list of {"name": ..., "sha256": <hex of the token>, "scopes": [...]}.
 Scopes: submit (POST batches), read (GET results), admin (everything).
+A batch's own status and results are readable by the token that submitted it
+(by name, so names are unique), with or without the read scope: a rig that
+may only submit can follow its own batches (``sorbrank submit --wait``), and
+reading other batches or rankings still takes the read scope.
 """
 from __future__ import annotations
 
@@ -41,6 +45,7 @@ def parse_tokens(text: str, origin: str) -> list[Token]:
     if not isinstance(entries, list):
         raise ValueError(f"{origin}: expected a JSON list of tokens")
     tokens = []
+    seen: set[str] = set()
     for i, entry in enumerate(entries):
         where = f"{origin}[{i}]"
         if not isinstance(entry, dict):
@@ -53,6 +58,9 @@ def parse_tokens(text: str, origin: str) -> list[Token]:
             raise ValueError(f"{where}.sha256: 64 hex digits (the SHA-256 of the token) required")
         if not isinstance(scopes, list) or not scopes or any(s not in SCOPES for s in scopes):
             raise ValueError(f"{where}.scopes: a non-empty list drawn from {', '.join(SCOPES)}")
+        if name in seen:  # a name identifies a client: its batches, its idempotency keys
+            raise ValueError(f"{where}.name: {name!r} is already the name of another token")
+        seen.add(name)
         tokens.append(Token(name, digest.lower(), frozenset(scopes)))
     return tokens
 
@@ -91,8 +99,11 @@ class Authenticator:
         return found
 
 
-def require(scope: str) -> Callable:
-    """View decorator: 401 without a valid bearer token, 403 without ``scope``."""
+def require(scope: str, owner: Callable[..., str | None] | None = None) -> Callable:
+    """View decorator: 401 without a valid bearer token, 403 without ``scope``.
+
+    ``owner(**view_kwargs)``, when given, names the client that owns the
+    resource (None if unknown): that client needs no ``scope``."""
     def decorate(view):
         @wraps(view)
         def guarded(*args, **kwargs):
@@ -105,9 +116,13 @@ def require(scope: str) -> Callable:
                 raise Problem(401, "Unauthorized", "a valid bearer token is required "
                               "(header 'Authorization: Bearer <token>')", slug="unauthorized",
                               headers={"WWW-Authenticate": 'Bearer realm="sorbrank"'})
-            if scope not in token.scopes and "admin" not in token.scopes:
-                raise Problem(403, "Forbidden", f"token {token.name!r} lacks the {scope!r} scope",
-                              slug="missing-scope", required_scope=scope)
+            if scope not in token.scopes and "admin" not in token.scopes and (
+                    owner is None or owner(**kwargs) != token.name):
+                detail = f"token {token.name!r} lacks the {scope!r} scope"
+                if owner is not None:
+                    detail += " (without it, only the token that submitted a batch may read it)"
+                raise Problem(403, "Forbidden", detail, slug="missing-scope",
+                              required_scope=scope)
             g.client = token.name
             return view(*args, **kwargs)
         return guarded

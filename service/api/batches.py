@@ -124,6 +124,28 @@ def _check_size() -> None:
                       slug="too-large", max_bytes=limit)
 
 
+def _check_json_size(fmt: str, size: int | None) -> None:
+    """413 for a JSON body over SORBRANK_MAX_JSON_BYTES: parsing JSON costs about
+    44 times the body in memory, Parquet a small fraction of that."""
+    limit = _runtime().settings.max_json_bytes
+    if fmt == "json" and size is not None and size > limit:
+        raise Problem(413, "Content Too Large", f"the JSON body is {size} bytes; this service "
+                      f"parses at most {limit} bytes of JSON per batch: send the batch as "
+                      "Parquet or CSV, or split it", slug="too-large", max_bytes=limit)
+
+
+# seconds a client is asked to wait when every intake slot is taken
+BUSY_RETRY_AFTER_S = 2
+
+
+def _intake_slot(runtime) -> None:
+    """Take one of the intake slots (released by the caller), or answer 503."""
+    if not runtime.intake_slots.acquire(blocking=False):
+        raise Problem(503, "Service Unavailable", "the service is reading as many batches as it "
+                      "takes at once; retry after the time in Retry-After", slug="busy",
+                      headers={"Retry-After": str(BUSY_RETRY_AFTER_S)})
+
+
 def _check_unsized_body_end(read: int) -> None:
     """413 for a body of unannounced length (chunked) that goes on past the limit.
 
@@ -157,8 +179,20 @@ def submit_batch():
     if key is not None and not (0 < len(key) <= 200 and key.isprintable()):
         raise Problem(400, "Bad Request", "Idempotency-Key must be 1 to 200 printable characters",
                       slug="bad-idempotency-key")
+    _check_json_size(fmt, request.content_length)
+    # the body and everything parsed from it live only while a slot is held,
+    # so memory is bounded by the slots times the largest body
+    _intake_slot(runtime)
+    try:
+        return _submit(runtime, fmt, options, defaults, label, key)
+    finally:
+        runtime.intake_slots.release()
+
+
+def _submit(runtime, fmt: str, options: dict, defaults: dict, label, key):
     body = request.get_data(cache=False)
     _check_unsized_body_end(len(body))
+    _check_json_size(fmt, len(body))
     if key is None:
         return _store_and_queue(runtime, _parse(runtime, body, fmt, label, defaults), body, fmt,
                                 options, new_batch_id())
@@ -254,14 +288,20 @@ def list_batches():
     return {"batches": page, "total": total, "limit": limit, "offset": offset}
 
 
+def _submitted_by(batch_id: str) -> str | None:
+    """The client (token name) that submitted the batch, from its manifest."""
+    manifest = _runtime().store.read_manifest(batch_id) if is_batch_id(batch_id) else None
+    return ((manifest or {}).get("source") or {}).get("client")
+
+
 @bp.get("/batches/<batch_id>")
-@require("read")
+@require("read", owner=_submitted_by)
 def get_batch(batch_id: str):
     return _status_or_404(batch_id)
 
 
 @bp.get("/batches/<batch_id>/results")
-@require("read")
+@require("read", owner=_submitted_by)
 def get_results(batch_id: str):
     status = _status_or_404(batch_id)
     fmt = negotiate()
