@@ -306,3 +306,25 @@ def test_json_log_lines_carry_the_given_fields_and_exceptions():
         ("b-1", 4, 1.5, "done")
     assert first["logger"] == "test_ops.json" and first["time"].endswith("Z")
     assert second["batch_id"] == "b-2" and "ValueError: bad chunk" in second["exception"]
+
+
+def test_file_mode_and_server_settings_are_checked_at_start():
+    assert load_settings({}).file_mode == 0o640
+    assert load_settings({"SORBRANK_FILE_MODE": "660"}).file_mode == 0o660
+    for bad in ("0777", "0400", "0662", "rw-r-----", "06400"):
+        with pytest.raises(ConfigError) as err:
+            load_settings({"SORBRANK_FILE_MODE": bad})
+        assert "SORBRANK_FILE_MODE" in str(err.value)
+    with pytest.raises(ConfigError) as err:
+        load_settings({"SORBRANK_MAX_CONCURRENT_INTAKES": "0", "SORBRANK_HTTP_TIMEOUT_S": "x"})
+    assert "SORBRANK_MAX_CONCURRENT_INTAKES" in str(err.value)
+    assert "SORBRANK_HTTP_TIMEOUT_S" in str(err.value)
+
+
+def test_two_tokens_may_not_share_a_name():
+    # a name identifies the client that owns a batch and its Idempotency-Keys
+    twice = json.dumps([{"name": "rig", "sha256": "a" * 64, "scopes": ["submit"]},
+                        {"name": "rig", "sha256": "b" * 64, "scopes": ["read"]}])
+    with pytest.raises(ConfigError) as err:
+        load_settings({"SORBRANK_TOKENS": twice})
+    assert "'rig' is already the name of another token" in str(err.value)
