@@ -430,6 +430,33 @@ def test_table_marks_a_missing_interval_and_ends_long_lines_at_the_terminal(caps
     assert narrow.splitlines()[2].endswith("…")
 
 
+def test_table_stars_figures_the_ranking_holds_unreliable():
+    import pyarrow as pa
+
+    from sorbrank.service.commands.fit import render_table
+    from sorbrank.worker.isotherm import Conditions
+    from sorbrank.worker.store import with_ranking_columns
+
+    # invented rows: A's capacity is an extrapolation (flag), B's has a 40 % standard error,
+    # C's is sound; the working capacity of A is also an extrapolation
+    table = pa.table({
+        "sorbent_id": ["TG31-A", "TG31-B", "TG31-C"], "adsorbate": ["CO2"] * 3,
+        "temperature_k": [298.15] * 3, "best_model": ["langmuir"] * 3,
+        "q_sat_mol_per_kg": [9.0, 4.0, 3.0], "q_sat_stderr_mol_per_kg": [0.1, 1.6, 0.05],
+        "q_sat_ci95_low_mol_per_kg": [8.8, 1.8, 2.9], "q_sat_ci95_high_mol_per_kg": [9.2, 8.9, 3.1],
+        "bet_area_m2_per_g": [None] * 3, "loading_ads_mol_per_kg": [2.0, 1.5, 1.0],
+        "working_capacity_mol_per_kg": [1.5, 1.0, 0.8], "n_points": [8, 8, 8],
+        "flags": [["capacity_extrapolated", "extrapolated_adsorption_pressure"], [], []],
+    })
+    table = with_ranking_columns(table, [(1e5, 1e4)] * 3)
+    lines = render_table(table, "q_sat_mol_per_kg", Conditions(), width=None).splitlines()
+    a, b, c = lines[2:5]
+    assert "9.00 [8.80, 9.20] *" in a and "1.5 (1→0.1 bar) *" in a
+    assert "4.00 [1.80, 8.90] *" in b and "1 (1→0.1 bar) *" not in b
+    assert "*" not in c
+    assert lines[-1].startswith("* unreliable") and "25%" in lines[-1]
+
+
 # ---------------------------------------------------------------------------
 # JSON through orjson: the same document the json module wrote
 

@@ -359,21 +359,33 @@ def render_table(table, sort: str, conditions=None, width: int | None = None) ->
     q_sat with its 95 % interval, BET area, working capacity with the pressure
     swing of ``conditions`` (a worker.isotherm.Conditions), points and flags.
     Lines longer than ``width`` characters end in an ellipsis."""
+    from sorbrank.worker.store import Q_SAT_MAX_RELATIVE_STDERR, RELIABILITY_OF_SORT
+
     names = set(table.column_names)
     columns = [c for c in _table_columns(conditions) if c[0] in names]
     shown = {source for c in columns for source in _TABLE_SOURCES[c[0]]}
-    data = {name: table[name].to_pylist() for name in shown if name in names}
     if sort not in shown and sort != "isotherm_id":
-        data[sort] = table[sort].to_pylist()
+        shown.add(sort)
         numeric = _is_numeric(table.schema.field(sort).type)
         columns.insert(-1, (sort, sort, (lambda row, s=sort: _number(row[s], ".4g")) if numeric
                             else (lambda row, s=sort: _text(row[s])), numeric))
+    # a figure the ranking holds unreliable (an extrapolation, or q_sat with a
+    # large standard error) is starred, so the table never shows it as fact
+    judged = {c[0]: RELIABILITY_OF_SORT[c[0]] for c in columns
+              if RELIABILITY_OF_SORT.get(c[0]) in names}
+    data = {name: table[name].to_pylist() for name in shown | set(judged.values()) if name in names}
     headers = ["#"] + [header for _, header, _, _ in columns]
     right = [True] + [r for _, _, _, r in columns]
-    rows = []
+    rows, starred = [], False
     for i in range(table.num_rows):
         row = {name: values[i] for name, values in data.items()}
-        rows.append([str(i + 1)] + [render(row) for _, _, render, _ in columns])
+        cells = [str(i + 1)]
+        for name, _, render, _ in columns:
+            cell = render(row)
+            if name in judged and row[judged[name]] is False and cell != MISSING:
+                cell, starred = cell + " *", True
+            cells.append(cell)
+        rows.append(cells)
     widths = [max(len(r[j]) for r in rows + [headers]) for j in range(len(headers))]
 
     def line(cells):
@@ -383,7 +395,10 @@ def render_table(table, sort: str, conditions=None, width: int | None = None) ->
 
     # the last column is ragged (flags): its rule spans the header only
     rule = ["-" * w for w in widths[:-1]] + ["-" * len(headers[-1])]
-    return "\n".join([line(headers), line(rule)] + [line(r) for r in rows]) + "\n"
+    notes = [f"* unreliable: an extrapolation beyond the measured data (q_sat: also a standard "
+             f"error above {Q_SAT_MAX_RELATIVE_STDERR:.0%}); see docs/results.md, 'Default "
+             "ranking'"] if starred else []
+    return "\n".join([line(headers), line(rule)] + [line(r) for r in rows] + notes) + "\n"
 
 
 # summary columns each table column is drawn from (the first names it)
