@@ -92,16 +92,18 @@ def test_hard_limited_chunk_is_requeued_while_the_queue_stays_busy(tmp_path, pro
     again within the 1 s reconcile interval and finish while the queue is still busy,
     instead of staying "running" until the queue is empty."""
     env, worker, server, api, broker_url = distributed(
-        tmp_path, processes, SORBRANK_TASK_SOFT_LIMIT_S="3", SORBRANK_TASK_HARD_LIMIT_S="6",
-        SORBRANK_RECONCILE_INTERVAL_S="1")
+        tmp_path, processes, SORBRANK_CHUNK_SIZE="200", SORBRANK_TASK_SOFT_LIMIT_S="3",
+        SORBRANK_TASK_HARD_LIMIT_S="6", SORBRANK_RECONCILE_INTERVAL_S="1")
     s = session()
     data_dir = env["SORBRANK_DATA_DIR"]
-    body, _ = batch_csv("HT", 1)
+    body, _ = batch_csv("HT", 200)  # one chunk of a few tenths of a second
     target = submit(s, api, body)
     wait_until(lambda: chunk_states(data_dir, target) == ["running"], "the chunk to start",
                [worker, server], interval_s=0.01)
     [pool_process] = descendant_pids(worker.popen.pid)  # --concurrency 1: one child
     os.kill(pool_process, signal.SIGSTOP)
+    if chunk_states(data_dir, target) != ["running"]:
+        pytest.fail("the chunk finished before its process could be frozen")
 
     broker = redis.Redis.from_url(broker_url, socket_timeout=5)
     stop_feeding = threading.Event()
