@@ -96,6 +96,7 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
                      ("SORBRANK_MAX_POINTS_PER_ISOTHERM", "max_points_per_isotherm")):
         if env.get(var, "").strip():
             limits.append((key, env_int(env, var, 0, problems)))
+    max_json_bytes = env_int(env, "SORBRANK_MAX_JSON_BYTES", DEFAULT_MAX_JSON_BYTES, problems)
     settings = Settings(
         data_dir=shared.data_dir,
         broker_url=shared.broker_url,
@@ -105,7 +106,8 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
         embedded_workers=env_int(env, "SORBRANK_EMBEDDED_WORKERS", os.cpu_count() or 1, problems),
         tokens=tokens,
         allow_open=allow_open_raw == "1",
-        intake_limits=tuple(limits),
+        # intake refuses an over-long JSON text itself too (sorbrank fit, the Python API)
+        intake_limits=tuple(limits) + (("max_json_bytes", max_json_bytes),),
         worker_concurrency=env_int(env, "SORBRANK_WORKER_CONCURRENCY", os.cpu_count() or 1,
                                    problems),
         worker_metrics_port=metrics_port,
@@ -116,7 +118,7 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
         task_max_retries=shared.task_max_retries,
         reconcile_interval_s=shared.reconcile_interval_s,
         file_mode=shared.file_mode,
-        max_json_bytes=env_int(env, "SORBRANK_MAX_JSON_BYTES", DEFAULT_MAX_JSON_BYTES, problems),
+        max_json_bytes=max_json_bytes,
         max_concurrent_intakes=env_int(env, "SORBRANK_MAX_CONCURRENT_INTAKES",
                                        DEFAULT_MAX_CONCURRENT_INTAKES, problems),
         http_timeout_s=env_int(env, "SORBRANK_HTTP_TIMEOUT_S", DEFAULT_HTTP_TIMEOUT_S, problems),

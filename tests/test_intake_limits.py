@@ -360,3 +360,19 @@ def test_reference_pressures_are_capped():
 
 def test_limits_for_local_files_are_wider():
     assert Limits.for_local_files().max_points > Limits().max_points
+
+
+def test_a_json_text_over_its_limit_is_refused_before_parsing():
+    """JSON costs ~44x its size while parsed (measured on this service), so intake refuses
+    an over-long text before json.loads; the limit is a documented Limits field."""
+    from sorbrank.worker.intake import IntakeError, Limits, read_batch
+
+    doc = {"units": "pressure:kPa,loading:mmol/g", "isotherms": [
+        {"sorbent_id": "TG31-J001", "adsorbate": "CO2", "temperature_k": 298.15,
+         "pressure": [1, 2, 5, 10], "loading": [0.1, 0.2, 0.4, 0.6]}]}
+    text = json.dumps(doc)
+    assert read_batch(text, "json", limits=Limits(max_json_bytes=len(text))).isotherms
+    with pytest.raises(IntakeError) as err:
+        read_batch(text, "json", limits=Limits(max_json_bytes=len(text) - 1))
+    assert err.value.issues[0].code == "input_too_large"
+    assert "Parquet or CSV" in str(err.value)

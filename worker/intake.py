@@ -165,12 +165,16 @@ class Limits:
     # points (rows) of one batch: intake holds ~350 bytes per row at its peak, so 2 M rows
     # keep one intake under ~0.7 GB (a 20 M-row Parquet file peaked at 6.9 GB)
     max_points: int = 2_000_000
+    # JSON costs ~44x its size in memory while parsed (Python objects per number), so its
+    # bodies are held far below max_bytes; CSV and Parquet are read column-wise by Arrow
+    max_json_bytes: int = 8 * 1024 * 1024
 
     @classmethod
     def for_local_files(cls) -> "Limits":
         """Limits for files read on one's own machine (``sorbrank fit``/``plot``):
         far above what the HTTP service accepts from a client."""
-        return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3, max_points=1_000_000_000)
+        return cls(max_isotherms=10_000_000, max_bytes=16 * 1024**3, max_points=1_000_000_000,
+                   max_json_bytes=16 * 1024**3)
 
     @property
     def max_rows(self) -> int:
@@ -975,6 +979,11 @@ def _rows_from_arrow_table(table: pa.Table, source: str, label: str, limits: Lim
 # JSON
 
 def _parsed_json(text: str, label: str, limits: Limits) -> dict:
+    if len(text) > limits.max_json_bytes:  # characters >= bytes / 4: a cheap, safe bound first
+        raise _batch_error(label, "input_too_large",
+                           f"a JSON batch may hold at most {limits.max_json_bytes} bytes "
+                           f"(this one holds at least {len(text)} characters); send large "
+                           "batches as Parquet or CSV, which are read column-wise")
     _check_depth(text, label, limits.max_json_depth)
     try:
         doc = json.loads(text)
