@@ -124,6 +124,7 @@ def main(argv=None) -> int:
         get_ms: list[float] = []
         accepted: dict[str, int] = {}
         refused: collections.Counter = collections.Counter()
+        busy = [0]  # 503 answers waited out (intake slots full): back-pressure, not loss
         lock = threading.Lock()
 
         def client(c: int) -> None:
@@ -132,18 +133,26 @@ def main(argv=None) -> int:
             for i in range(args.submissions):
                 tag = f"L{c:03d}-{i:04d}"
                 body, key = batch_csv(tag, args.isotherms), f"load-{tag}-{uuid.uuid4().hex}"
-                resp = None
-                for _attempt in range(3):  # a retry with the same key cannot add a batch
+                resp, network_tries = None, 0
+                # a retry with the same key cannot add a batch; 503 (all intake slots busy)
+                # is waited out as its Retry-After says, as sorbrank.Client does
+                while network_tries < 3:
                     t0 = time.perf_counter()
                     try:
                         resp = s.post(f"{api}/batches", data=body, params=params, timeout=120,
                                       headers={"Idempotency-Key": key})
                     except requests.RequestException as exc:
+                        network_tries += 1
                         with lock:
                             refused[f"network error ({type(exc).__name__}), retried"] += 1
                         continue
                     with lock:
                         post_ms.append((time.perf_counter() - t0) * 1000)
+                    if resp.status_code == 503 and "Retry-After" in resp.headers:
+                        with lock:
+                            busy[0] += 1
+                        time.sleep(float(resp.headers["Retry-After"]))
+                        continue
                     break
                 if resp is None or resp.status_code != 202:
                     with lock:
@@ -215,6 +224,7 @@ def main(argv=None) -> int:
 
         print(f"submissions     : {len(accepted)} accepted of {total}; refused/errors "
               f"{dict(refused) or 0}")
+        print(f"busy (503)      : {busy[0]} answers waited out as Retry-After said")
         print(f"submission rate : {len(accepted) / submit_s:.1f} submissions/s "
               f"({submit_s:.1f} s for all)")
         print(f"POST /batches   : p50 {percentile(post_ms, 50):.1f} ms  p99 "

@@ -71,7 +71,7 @@ def test_batches_in_three_formats_results_and_rankings(service):
         accepted.append(reply)
     # the bad CSV row is named precisely and did not stop the good isotherms
     (issue,) = accepted[0]["rejected"]
-    assert issue["row"] == 28 and issue["field"] == "loading" and issue["code"] == "not_a_number"
+    assert issue["row"] == 28 and issue["field"] == "loading_mol_per_kg" and issue["code"] == "not_a_number"
     assert issue["isotherm"].startswith("A9")
 
     for reply in accepted:
@@ -132,13 +132,16 @@ def check_rankings_against_brute_force(s, service):
                     key=lambda r: (-r["q_sat_mol_per_kg"], r["sorbent_id"], r["isotherm_id"]))
     expected = [(r["batch_id"], r["isotherm_id"]) for r in ranked]
 
-    doc = s.get(f"{service.api}/rankings", params={"limit": 1000}).json()
+    # by q_sat, every row in place: the latest-wins rule is what this checks (the default
+    # sort and its unreliable-last order are tested in test_store.py and test_api.py)
+    by_q_sat = {"sort": "q_sat_mol_per_kg", "unreliable_last": "false"}
+    doc = s.get(f"{service.api}/rankings", params={"limit": 1000, **by_q_sat}).json()
     assert doc["total"] == len(winners)
     got = [(r["batch_id"], r["isotherm_id"]) for r in doc["rows"]]
     assert got[:len(expected)] == expected
     assert "accepted last wins" in doc["deduplication"]
     for fmt in ("csv", "parquet", "arrow"):
-        resp = s.get(f"{service.api}/rankings", params={"limit": 1000, "format": fmt})
+        resp = s.get(f"{service.api}/rankings", params={"limit": 1000, "format": fmt, **by_q_sat})
         table = read_table(resp, fmt)
         assert list(zip(table["batch_id"].to_pylist(), table["isotherm_id"].to_pylist())) == got
         assert resp.headers["X-Total-Count"] == str(len(winners))
@@ -180,9 +183,9 @@ def test_client_errors_are_problem_documents(service):
     problem(s.get(f"{service.api}/batches/..%2F..%2Fetc"), 404)
 
     nothing_good = csv_batch([], extra_lines=("Z1,CO2,298.15,10,oops",
-                                              "Z2,CO2,298.15,-5,1.0,kPa,mol/kg"))
+                                              "Z2,CO2,298.15,-5,1.0"))
     doc = problem(post(s, service, nothing_good, "csv"), 422)
-    assert {(i["row"], i["field"]) for i in doc["issues"]} >= {(1, "loading"), (2, "pressure")}
+    assert {(i["row"], i["field"]) for i in doc["issues"]} >= {(1, "loading_mol_per_kg"), (2, "pressure_kpa")}
 
     too_big = csv_batch([isotherm("Big", 1.0, 0.1)]) + b"#" * MAX_UPLOAD_BYTES
     problem(post(s, service, too_big, "csv"), 413)
