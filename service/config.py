@@ -18,7 +18,8 @@ from typing import Mapping
 from sorbrank.worker.isotherm import DEFAULT_CHUNK_SIZE
 # the rules the Celery app applies too: one parser for both
 from sorbrank.worker.settings import (
-    DEFAULT_DATA_DIR, DEFAULT_FILE_MODE, DEFAULT_RECONCILE_INTERVAL_S, DEFAULT_TASK_HARD_LIMIT_S,
+    DEFAULT_DATA_DIR, DEFAULT_FILE_MODE, DEFAULT_MIN_FREE_BYTES, DEFAULT_RECONCILE_INTERVAL_S,
+    DEFAULT_TASK_HARD_LIMIT_S,
     DEFAULT_TASK_MAX_RETRIES, DEFAULT_TASK_SOFT_LIMIT_S, ConfigError, broker_url_problem,
     data_dir_problem, env_int, read_shared, redact_url,
 )
@@ -64,6 +65,7 @@ class Settings:
     task_max_retries: int = DEFAULT_TASK_MAX_RETRIES
     reconcile_interval_s: int = DEFAULT_RECONCILE_INTERVAL_S
     file_mode: int = DEFAULT_FILE_MODE
+    min_free_bytes: int = DEFAULT_MIN_FREE_BYTES
     max_json_bytes: int = DEFAULT_MAX_JSON_BYTES
     max_concurrent_intakes: int = DEFAULT_MAX_CONCURRENT_INTAKES
     http_timeout_s: int = DEFAULT_HTTP_TIMEOUT_S
@@ -118,6 +120,7 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
         task_max_retries=shared.task_max_retries,
         reconcile_interval_s=shared.reconcile_interval_s,
         file_mode=shared.file_mode,
+        min_free_bytes=shared.min_free_bytes,
         max_json_bytes=max_json_bytes,
         max_concurrent_intakes=env_int(env, "SORBRANK_MAX_CONCURRENT_INTAKES",
                                        DEFAULT_MAX_CONCURRENT_INTAKES, problems),

@@ -41,6 +41,30 @@ class Problem(Exception):
         return resp
 
 
+# seconds a client is asked to wait before retrying against a read-only store
+STORE_RETRY_AFTER_S = 30
+
+
+def insufficient_storage(detail: str, **extra) -> Problem:
+    """507: the store has no room for this request; nothing of it was kept."""
+    return Problem(507, "Insufficient Storage", detail, slug="insufficient-storage", **extra)
+
+
+def storage_problem(exc: BaseException) -> Problem | None:
+    """The problem a failed store write answers with: 507 for a full disk or
+    quota, 503 for a read-only store; None for any other error."""
+    from sorbrank.worker import fs
+
+    if fs.out_of_space(exc):
+        return insufficient_storage("the store is full: nothing of this request was kept; "
+                                    "retry once space is freed")
+    if fs.read_only(exc):
+        return Problem(503, "Service Unavailable", "the store cannot be written (read-only or "
+                       "not permitted): nothing of this request was kept", slug="store-read-only",
+                       headers={"Retry-After": str(STORE_RETRY_AFTER_S)})
+    return None
+
+
 def register(app: Flask) -> None:
     @app.errorhandler(Problem)
     def _problem(exc: Problem):
@@ -57,6 +81,10 @@ def register(app: Flask) -> None:
 
     @app.errorhandler(Exception)
     def _unexpected(exc: Exception):
+        storage = storage_problem(exc)
+        if storage is not None:  # the store's state, not a defect: the log says which
+            log.warning("store write failed: %s", exc)
+            return storage.response()
         # never leak a traceback to the client; the log has it
         log.exception("unhandled error")
         return Problem(500, "Internal Server Error",

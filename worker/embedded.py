@@ -2,10 +2,14 @@
 
 The same ``jobs.execute_chunk`` the Celery task wraps runs here in child
 processes (one per core by default). State lives in the store, so stopping
-the server loses nothing: ``resume`` re-enqueues unfinished chunks on start.
+the server loses nothing: ``resume`` re-enqueues unfinished chunks on start,
+then a watch thread re-enqueues, every SORBRANK_RECONCILE_INTERVAL_S, each
+unfinished chunk the pool does not hold (one that found the store full, one
+whose process died before it could settle it), without a restart.
 """
 from __future__ import annotations
 
+import collections
 import logging
 import multiprocessing
 import os
@@ -16,6 +20,7 @@ from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
 
 from . import jobs, logs
+from .settings import read_shared
 from .store import Store
 
 log = logging.getLogger(__name__)
@@ -48,12 +53,18 @@ def _run(data_dir: str, batch_id: str, chunk_index: int) -> None:
 
 
 class EmbeddedExecutor:
-    def __init__(self, data_dir: str | Path, workers: int | None = None):
+    def __init__(self, data_dir: str | Path, workers: int | None = None,
+                 watch_interval_s: float | None = None):
         self.store = Store(data_dir)
         self.workers = workers or os.cpu_count() or 1
         self._lock = threading.Lock()
-        self._pending = 0  # chunks submitted and not yet finished (the queue depth)
+        # chunks submitted and not yet finished; their count is the queue depth
+        self._held: collections.Counter = collections.Counter()
         self._pool = self._new_pool()
+        # the setting the Celery workers' broker watch reads (0 = only at start)
+        self.watch_interval_s = (read_shared(os.environ, []).reconcile_interval_s
+                                 if watch_interval_s is None else watch_interval_s)
+        self._stop_watch = threading.Event()
 
     def _new_pool(self) -> ProcessPoolExecutor:
         # spawn, not fork: the parent runs server threads whose locks a fork would copy
@@ -63,7 +74,7 @@ class EmbeddedExecutor:
 
     def pending_chunks(self) -> int:
         with self._lock:
-            return self._pending
+            return sum(self._held.values())
 
     def enqueue(self, batch_id: str, chunk_index: int) -> None:
         with self._lock:
@@ -72,12 +83,14 @@ class EmbeddedExecutor:
             except BrokenProcessPool:
                 self._pool = self._new_pool()
                 future = self._pool.submit(_run, str(self.store.root), batch_id, chunk_index)
-            self._pending += 1
+            self._held[(batch_id, chunk_index)] += 1
         future.add_done_callback(lambda f: self._settle(f, batch_id, chunk_index))
 
     def _settle(self, future: Future, batch_id: str, chunk_index: int) -> None:
         with self._lock:
-            self._pending -= 1
+            self._held[(batch_id, chunk_index)] -= 1
+            if self._held[(batch_id, chunk_index)] <= 0:
+                del self._held[(batch_id, chunk_index)]
         if future.cancelled():
             return  # shutting down: the chunk stays unsettled and resumes next start
         exc = future.exception()
@@ -93,7 +106,45 @@ class EmbeddedExecutor:
             log.exception("could not record failure of chunk %s of batch %s", chunk_index, batch_id)
 
     def resume(self) -> list[tuple[str, int]]:
-        return jobs.reconcile(self.store, self.enqueue)
+        """Queue every unfinished chunk, then start the watch (at most once)."""
+        queued = jobs.reconcile(self.store, self.enqueue)
+        if self.watch_interval_s > 0 and not getattr(self, "_watch", None):
+            self._watch = threading.Thread(target=self._watch_store, daemon=True,
+                                           name="sorbrank-embedded-watch")
+            self._watch.start()
+        return queued
+
+    def requeue_lost(self, suspects: frozenset = frozenset()) -> frozenset:
+        """Queue again each unfinished chunk the pool does not hold; the chunks
+        to check again next round (see ``jobs.lost_chunks``)."""
+        unsettled = jobs.unsettled_chunks(self.store)
+        with self._lock:
+            held = set(self._held)
+        lost, suspects = jobs.lost_chunks(unsettled, held, suspects)
+        for batch_id, chunk_index in lost:
+            self.enqueue(batch_id, chunk_index)
+        if lost:
+            log.warning("re-enqueueing %d unfinished chunk(s) the pool does not hold: %s",
+                        len(lost), ", ".join(f"{b} chunk {c}" for b, c in lost[:20]))
+        return suspects
+
+    def _watch_store(self) -> None:
+        suspects = frozenset()
+        while not self._stop_watch.wait(self.watch_interval_s):
+            try:
+                suspects = self.requeue_lost(suspects)
+                self._finalize_settled()
+            except Exception:  # a store briefly unreadable: try again next round
+                log.warning("embedded watch: store check failed; next try in %s s",
+                            self.watch_interval_s, exc_info=True)
+
+    def _finalize_settled(self) -> None:
+        # a batch whose last chunk settled while the store was full has no final.json yet
+        for batch_id in self.store.batch_ids():
+            if self.store.read_final(batch_id) is None and not jobs.pending_chunks(self.store,
+                                                                                   batch_id):
+                jobs.finalize_batch(self.store, batch_id)
 
     def shutdown(self) -> None:
+        self._stop_watch.set()
         self._pool.shutdown(wait=False, cancel_futures=True)

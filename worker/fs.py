@@ -31,7 +31,9 @@ processes racing with one key within a few milliseconds can both win.
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
+import shutil
 import posixpath
 import secrets
 import tempfile
@@ -185,3 +187,47 @@ def list_dir(filesystem: pafs.FileSystem, path: str, recursive: bool = False) ->
     """Entries under ``path``; empty when it does not exist."""
     return filesystem.get_file_info(pafs.FileSelector(path, allow_not_found=True,
                                                       recursive=recursive))
+
+
+# a full disk, or a quota reached: the write may succeed once space is freed
+NO_SPACE_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT})
+# a store mounted read-only, or files this user may not write
+READ_ONLY_ERRNOS = frozenset({errno.EROFS, errno.EACCES, errno.EPERM})
+
+
+def _os_errnos(exc: BaseException | None) -> set[int]:
+    # pyarrow re-raises a Python file object's OSError inside its own, so the
+    # errno may sit anywhere in the chain of causes
+    found, seen = set(), set()
+    while exc is not None and id(exc) not in seen:
+        seen.add(id(exc))
+        if isinstance(exc, OSError) and exc.errno is not None:
+            found.add(exc.errno)
+        elif "No space left on device" in str(exc):
+            found.add(errno.ENOSPC)
+        exc = exc.__cause__ or exc.__context__
+    return found
+
+
+def out_of_space(exc: BaseException) -> bool:
+    """True when ``exc`` (or what caused it) is a full disk or an exhausted quota."""
+    return bool(_os_errnos(exc) & NO_SPACE_ERRNOS)
+
+
+def read_only(exc: BaseException) -> bool:
+    """True when ``exc`` (or what caused it) says the store may not be written."""
+    return bool(_os_errnos(exc) & READ_ONLY_ERRNOS)
+
+
+def free_bytes(filesystem: pafs.FileSystem, path: str) -> int | None:
+    """Bytes free for writing under ``path`` on a local filesystem; None elsewhere
+    (object stores have no such figure) or when the path cannot be examined."""
+    if not is_local(filesystem):
+        return None
+    folder = path
+    while folder and not os.path.isdir(folder):  # the store root may not exist yet
+        folder = os.path.dirname(folder)
+    try:
+        return shutil.disk_usage(folder or "/").free
+    except OSError:
+        return None

@@ -17,6 +17,7 @@ from typing import Callable
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from . import fs
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, MixtureRequest
 from .pipeline import FitOptions, process_batch
 from .store import Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
@@ -35,6 +36,11 @@ class UnknownBatch(LookupError):
 
 class AttemptsExhausted(RuntimeError):
     pass
+
+
+class StoreFull(OSError):
+    """The store ran out of space (or quota) while a chunk was written: the chunk
+    is left unsettled, its attempt not counted, to run again once space returns."""
 
 
 def plan_chunks(sorbent_ids: list[str], chunk_size: int) -> list[list[int]]:
@@ -138,15 +144,20 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
         raise AttemptsExhausted(f"chunk {chunk_index} of batch {batch_id!r} was started "
                                 f"{attempts - 1} times without finishing")
     started_at = iso_utc(utc_now())
-    store.write_chunk_status(batch_id, chunk_index,
-                             {"state": "running", "attempts": attempts, "started_at": started_at})
     fields = {"batch_id": batch_id, "chunk": chunk_index,
               "isotherm_count": manifest["chunks"][chunk_index]["isotherms"], "attempt": attempts}
-    log.info("chunk started", extra=fields)
     started_s = time.monotonic()
     try:
+        store.write_chunk_status(batch_id, chunk_index,
+                                 {"state": "running", "attempts": attempts, "started_at": started_at})
+        log.info("chunk started", extra=fields)
         status = _fit_and_write(store, manifest, batch_id, chunk_index)
     except Exception as exc:
+        if fs.out_of_space(exc):
+            _give_back_attempt(store, batch_id, chunk_index, previous)
+            log.warning("chunk waits: store full (%s); it runs again once space is freed", exc,
+                        extra={**fields, "outcome": "store_full"})
+            raise StoreFull(f"chunk {chunk_index} of batch {batch_id!r}: store full: {exc}") from exc
         log.warning("chunk stopped by %s: %s", type(exc).__name__, exc, extra={
             **fields, "duration_s": round(time.monotonic() - started_s, 3), "outcome": "error"})
         raise
@@ -155,6 +166,19 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
     log.info("chunk finished", extra={**fields, "duration_s": status["fit_duration_s"],
                                       "outcome": "done"})
     return status
+
+
+def _give_back_attempt(store: Store, batch_id: str, chunk_index: int, previous: dict) -> None:
+    # A full disk is not the chunk's fault: its attempt must not count towards
+    # MAX_ATTEMPTS. Rewriting the earlier status may itself fail for want of
+    # space; deleting it always works (the chunk then reads as queued).
+    try:
+        if previous:
+            store.write_chunk_status(batch_id, chunk_index, previous)
+        else:
+            store.remove_chunk_status(batch_id, chunk_index)
+    except OSError:
+        store.remove_chunk_status(batch_id, chunk_index)
 
 
 def sorbent_rows_table(rows: list[dict]) -> pa.Table:
@@ -216,11 +240,13 @@ def record_chunk_failure(store: Store, batch_id: str, chunk_index: int, error: s
         "isotherm_count": manifest["chunks"][chunk_index]["isotherms"]})
 
 
-def execute_chunk(store: Store, batch_id: str, chunk_index: int, *, attempts: int = 2) -> dict:
+def execute_chunk(store: Store, batch_id: str, chunk_index: int, *,
+                  attempts: int = 2) -> dict | None:
     """Run a chunk with a bounded number of tries, then settle and finalize.
 
     The embedded executor's whole task; the Celery task does the same with
-    Celery's retry machinery instead of this loop.
+    Celery's retry machinery instead of this loop. None when the store is full:
+    the chunk is left unsettled, for the executor to queue again.
     """
     error = None
     for _ in range(max(attempts, 1)):
@@ -230,14 +256,24 @@ def execute_chunk(store: Store, batch_id: str, chunk_index: int, *, attempts: in
             break
         except UnknownBatch:
             raise
+        except StoreFull:
+            return None  # unsettled on disk: the executor's watch queues it again
         except Exception as exc:  # any failure is recorded, never lost
             log.exception("chunk %s of batch %s failed", chunk_index, batch_id)
             error = f"{type(exc).__name__}: {exc}"
             if isinstance(exc, AttemptsExhausted):
                 break
-    if error is not None:
-        record_chunk_failure(store, batch_id, chunk_index, error)
-    finalize_batch(store, batch_id)
+    try:
+        if error is not None:
+            record_chunk_failure(store, batch_id, chunk_index, error)
+        finalize_batch(store, batch_id)
+    except OSError as exc:
+        if not fs.out_of_space(exc):
+            raise
+        # the chunk stays unsettled (or its batch unfinalized): reconcile completes it
+        log.warning("chunk %s of batch %s: store full while settling it; it is settled once "
+                    "space is freed", chunk_index, batch_id)
+        return None
     return batch_status(store, batch_id)
 
 
@@ -333,6 +369,20 @@ def unsettled_chunks(store: Store) -> dict[tuple[str, int], str]:
             if state not in SETTLED:
                 unsettled[(batch_id, chunk["index"])] = state
     return unsettled
+
+
+def lost_chunks(unsettled: dict[tuple[str, int], str], held: set[tuple[str, int]],
+                suspects: frozenset) -> tuple[list[tuple[str, int]], frozenset]:
+    """(chunks to queue again, chunks to check again next round) given the
+    store's ``unsettled`` chunks and the chunks a queue ``held``.
+
+    A *running* chunk nobody holds is lost at once. A *queued* one may belong to
+    a batch being enqueued this very moment, so it counts as lost only when it
+    was already missing at the previous check (``suspects``).
+    """
+    missing = set(unsettled) - held
+    lost = sorted(c for c in missing if unsettled[c] == "running" or c in suspects)
+    return lost, frozenset(missing.difference(lost))
 
 
 def reconcile(store: Store, enqueue: Callable[[str, int], object]) -> list[tuple[str, int]]:

@@ -21,6 +21,10 @@ SORBRANK_FILE_MODE             permission bits of the files written into a local
                                octal (default 0640); directories get the same bits plus
                                search (x) wherever read is given: 0660 lets an API and workers
                                running as different users of one group share a store
+SORBRANK_MIN_FREE_BYTES        free space a local store must keep, bytes (default 67108864,
+                               64 MiB; 0 = no check): below it /readyz answers 503 and
+                               POST /batches 507, so a nearly full disk refuses new batches
+                               before it fails the ones already accepted
 """
 from __future__ import annotations
 
@@ -41,6 +45,9 @@ DEFAULT_RECONCILE_INTERVAL_S = 60
 # owner read-write, group read, nothing for others: a store holds a lab's
 # unpublished measurements, and a reader in the group needs no write bit
 DEFAULT_FILE_MODE = 0o640
+# room for the result files of the chunks already accepted (a chunk of 2,000
+# isotherms writes a few MB) before new batches are refused
+DEFAULT_MIN_FREE_BYTES = 64 * 1024 * 1024
 
 
 class ConfigError(ValueError):
@@ -132,6 +139,7 @@ class SharedSettings:
     task_max_retries: int = DEFAULT_TASK_MAX_RETRIES
     reconcile_interval_s: int = DEFAULT_RECONCILE_INTERVAL_S
     file_mode: int = DEFAULT_FILE_MODE
+    min_free_bytes: int = DEFAULT_MIN_FREE_BYTES
 
 
 def file_mode_problem(raw: str) -> str | None:
@@ -188,6 +196,8 @@ def read_shared(env: Mapping[str, str], problems: list[str]) -> SharedSettings:
         reconcile_interval_s=env_int(env, "SORBRANK_RECONCILE_INTERVAL_S",
                                      DEFAULT_RECONCILE_INTERVAL_S, problems, minimum=0),
         file_mode=store_file_mode(env),
+        min_free_bytes=env_int(env, "SORBRANK_MIN_FREE_BYTES", DEFAULT_MIN_FREE_BYTES, problems,
+                               minimum=0),
     )
 
 

@@ -377,6 +377,25 @@ class Store:
     def write_chunk_status(self, batch_id: str, chunk_index: int, status: dict) -> None:
         self._write_json(self.batch_dir(batch_id) / f"chunk-{int(chunk_index):05d}.json", status)
 
+    def remove_chunk_status(self, batch_id: str, chunk_index: int) -> None:
+        """Forget a chunk's status (it reads as queued again); freeing space always works."""
+        path = str(self.batch_dir(batch_id) / f"chunk-{int(chunk_index):05d}.json")
+        try:
+            self.fs.delete_file(path)
+        except FileNotFoundError:
+            pass
+
+    def remove_unaccepted(self, batch_id: str) -> bool:
+        """Delete what an acceptance that failed before its manifest wrote (its input
+        files); False, and nothing deleted, when the batch has a manifest after all."""
+        if self.read_manifest(batch_id) is not None:
+            return False
+        part = f"batch_id={_check_batch_id(batch_id)}"
+        for folder in [self._join(table, part) for table in TABLES] + [self.batch_dir(batch_id)]:
+            if self.fs.get_file_info(str(folder)).type == pafs.FileType.Directory:
+                self.fs.delete_dir(str(folder))
+        return True
+
     def batch_pressures(self, batch_id: str | None) -> tuple[float, float] | None:
         """(adsorption, desorption pressure) in Pa a batch's loadings and
         working capacity were computed at (its manifest's conditions); None

@@ -9,7 +9,7 @@ import threading
 from celery.exceptions import SoftTimeLimitExceeded
 from celery.signals import worker_ready, worker_shutdown
 
-from . import jobs
+from . import fs, jobs
 from .celery_app import MAX_RETRIES, QUEUE, SETTINGS, SOFT_LIMIT_S, app, data_dir
 from .interrupts import register_job_ending
 from .store import Store
@@ -22,6 +22,8 @@ RECONCILE_INTERVAL_S = SETTINGS.reconcile_interval_s
 # kombu's Redis transport keeps in-flight (unacknowledged) messages in this hash
 _UNACKED_KEY = "unacked"
 _stop_watch = threading.Event()
+# longest wait between two tries of a chunk that found the store full (seconds)
+SPACE_RETRY_MAX_S = 30
 
 log = logging.getLogger(__name__)
 
@@ -35,13 +37,24 @@ def fit_chunk(self, batch_id: str, chunk_index: int) -> None:
         log.error("chunk %s of batch %s: not in the store %s; dropped", chunk_index, batch_id,
                   store.root)
         return
+    except jobs.StoreFull as exc:
+        # not the chunk's failure: it waits for space however long that takes,
+        # its retries and attempts untouched
+        raise self.retry(exc=exc, countdown=min(2 ** self.request.retries, SPACE_RETRY_MAX_S),
+                         max_retries=None)
     except Exception as exc:  # recorded below once retries run out
         if self.request.retries < self.max_retries and not isinstance(exc, jobs.AttemptsExhausted):
             raise self.retry(exc=exc, countdown=2 ** self.request.retries)
         log.exception("chunk %s of batch %s failed for good", chunk_index, batch_id)
         jobs.record_chunk_failure(store, batch_id, chunk_index,
                                   failure_message(exc, self.request.retries + 1))
-    jobs.finalize_batch(store, batch_id)
+    try:
+        jobs.finalize_batch(store, batch_id)
+    except OSError as exc:
+        if not fs.out_of_space(exc):
+            raise
+        # the broker watch's reconcile finalizes the batch once space is freed
+        log.warning("batch %s: store full while finalizing it", batch_id)
 
 
 def failure_message(exc: Exception, tries: int) -> str:
@@ -104,14 +117,13 @@ def reconcile_lost_chunks(suspects: frozenset = frozenset()) -> frozenset:
     unsettled = jobs.unsettled_chunks(Store(data_dir()))  # the store first, then the broker:
     if not unsettled:                                     # a chunk settling in between is
         return frozenset()                                # then re-run at worst, never lost
-    missing = set(unsettled) - chunks_in_broker()
-    lost = sorted(c for c in missing if unsettled[c] == "running" or c in suspects)
+    lost, suspects = jobs.lost_chunks(unsettled, chunks_in_broker(), suspects)
     for batch_id, chunk_index in lost:
         enqueue(batch_id, chunk_index)
     if lost:
         log.warning("re-enqueueing %d unfinished chunk(s) the broker holds no message for: %s",
                     len(lost), ", ".join(f"{b} chunk {c}" for b, c in lost[:20]))
-    return frozenset(missing.difference(lost))
+    return suspects
 
 
 def _watch_broker() -> None:

@@ -8,7 +8,7 @@ import threading
 import pyarrow as pa
 from flask import Blueprint, current_app, g, request, url_for
 
-from sorbrank.worker import jobs
+from sorbrank.worker import fs, jobs
 from sorbrank.worker.intake import Limits, read_batch
 from sorbrank.worker.isotherm import IntakeError
 from sorbrank.worker.pipeline import FitOptions
@@ -16,7 +16,7 @@ from sorbrank.worker.units import parse_units_declaration
 from sorbrank.worker.store import iso_utc, is_batch_id, new_batch_id, utc_now
 
 from ..auth import require
-from ..problems import Problem
+from ..problems import Problem, insufficient_storage, storage_problem
 from .formats import choice_arg, int_arg, json_rows, negotiate, table_response
 
 bp = Blueprint("batches", __name__)
@@ -245,12 +245,38 @@ def _parse(runtime, body: bytes, fmt: str, label, defaults):
     return batch
 
 
+def check_free_space(runtime) -> None:
+    """507 while the store has less free space than SORBRANK_MIN_FREE_BYTES: the
+    room left is for the results of batches already accepted."""
+    store, minimum = runtime.store, runtime.settings.min_free_bytes
+    free = fs.free_bytes(store.fs, store.base) if minimum else None
+    if free is not None and free < minimum:
+        raise insufficient_storage(f"the store has {free} bytes free, below the "
+                                   f"{minimum} bytes (SORBRANK_MIN_FREE_BYTES) kept for batches "
+                                   "already accepted; retry once space is freed",
+                                   free_bytes=free, min_free_bytes=minimum)
+
+
 def _store_and_queue(runtime, batch, body: bytes, fmt: str, options: dict, batch_id: str):
     source = {"format": fmt, "bytes": len(body), "sha256": hashlib.sha256(body).hexdigest(),
               "client": g.client}
-    manifest = jobs.accept_batch(runtime.store, batch, options=options,
-                                 chunk_size=runtime.settings.chunk_size, batch_id=batch_id,
-                                 source=source)
+    check_free_space(runtime)
+    try:
+        manifest = jobs.accept_batch(runtime.store, batch, options=options,
+                                     chunk_size=runtime.settings.chunk_size, batch_id=batch_id,
+                                     source=source)
+    except Exception as exc:
+        # no manifest, no batch: its input files would only be listed as sorbents
+        try:
+            runtime.store.remove_unaccepted(batch_id)
+        except OSError:
+            log.exception("batch %s: could not remove the input files of a failed acceptance",
+                          batch_id)
+        problem = storage_problem(exc)
+        if problem is None:
+            raise
+        log.warning("batch %s refused: store write failed: %s", batch_id, exc)
+        raise problem from None
     for chunk in manifest["chunks"]:
         try:
             runtime.enqueue(manifest["batch_id"], chunk["index"])
