@@ -45,7 +45,7 @@ from ..isotherm import Batch
 from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
-from .capacity import defines_saturation_capacity, saturation_capacity_gradient
+from .capacity import saturation_capacity_gradient
 from .common import (add_flag, evaluate_model, positive_interval_95, pressure_label,
                      t_quantile_975)
 
@@ -198,7 +198,8 @@ def averaged_q_sat(packed: Packed, fits: dict[str, ModelFits],
         gradient = saturation_capacity_gradient(model, params)
         return value, delta_method_variance(gradient, model_fits.covariance[rows])
 
-    return _averaged_figure(selection, fits, (), per_model, defines_saturation_capacity)
+    return _averaged_figure(selection, fits, (), per_model,
+                            lambda model: model.defines_saturation_capacity())
 
 
 def averaged_henry(packed: Packed, fits: dict[str, ModelFits],

@@ -33,14 +33,6 @@ def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
     return grad
 
 
-def defines_saturation_capacity(model) -> bool:
-    """True when the model has a finite plateau (Langmuir-like), False for
-    models that rise without bound (Henry, Freundlich, Temkin, and
-    Redlich-Peterson, whose plateau exists only at the edge beta = 1 and which
-    therefore declares none) or whose monolayer is no saturation (BET, GAB)."""
-    return model.saturation_capacity(np.ones((1, len(model.params)))) is not None
-
-
 def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndarray:
     """Per isotherm, the model q_sat is read from (object array; None = none).
 
@@ -57,7 +49,7 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
     n = selection.best.shape[0]
     chosen = np.full(n, None, dtype=object)
     capable = [j for j, m in enumerate(selection.model_ids)
-               if m in CATALOGUE and m in fits and defines_saturation_capacity(CATALOGUE[m])]
+               if m in CATALOGUE and m in fits and CATALOGUE[m].defines_saturation_capacity()]
     if not capable:
         return chosen
     weights = selection.weights[:, capable]
@@ -73,7 +65,7 @@ def capacity_models(selection: Selection, fits: dict[str, ModelFits]) -> np.ndar
     for model_id in set(selection.best) - {None}:
         rows = selection.best == model_id
         model = CATALOGUE.get(model_id)
-        if model is not None and defines_saturation_capacity(model):
+        if model is not None and model.defines_saturation_capacity():
             chosen[rows] = model_id
         elif model is None or not model.multilayer:
             # a multilayer isotherm has no plateau to borrow from elsewhere

@@ -12,7 +12,7 @@ The rules (stated once in docs/results.md, "Henry constant"):
   measured q1, is used: at the lowest loadings the noise is largest.
 * The selected model's limit is supported when it is finite and positive and,
   for a model whose p -> 0 shape is set by a fitted exponent
-  (EXPONENT_SHAPED_MODELS), passes the test: a rise of the slope below the
+  (``henry_slope_from_exponent`` on the model class), passes the test: a rise of the slope below the
   lowest point would come from an exponent the data never constrained there.
   Langmuir-shaped limits (Langmuir, dual-site Langmuir, BET, GAB, Henry) keep
   their extrapolation (the curvature is the one the data were fitted with)
@@ -31,6 +31,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..interrupts import ends_job
+from ..models import CATALOGUE
 from ..models.linear import masked_linear_fit
 from ..packing import Packed
 from ..results import ModelFits, Selection
@@ -51,11 +52,6 @@ VIRIAL_MIN_POINTS = 3
 # leave to the curve's form (the Henry region has no single numeric bound in
 # the literature; this value is our choice).
 HENRY_REGION_TOLERANCE = 1.10
-
-# Models whose p -> 0 slope is governed by a fitted heterogeneity exponent.
-EXPONENT_SHAPED_MODELS = frozenset({"toth", "redlich_peterson", "sips", "freundlich",
-                                    "dubinin_astakhov"})
-
 
 def model_henry_constant(packed: Packed, fits: dict[str, ModelFits],
                          selection: Selection) -> np.ndarray:
@@ -183,7 +179,8 @@ def henry_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selecti
         virial_bend = np.where(np.isfinite(virial), np.exp(virial_slope * q1), np.nan)
         diverges = from_model == np.inf
         exponent_shaped = np.isin(np.asarray(selection.best, dtype=object),
-                                  list(EXPONENT_SHAPED_MODELS))
+                                  [m for m, model in CATALOGUE.items()
+                                   if model.henry_slope_from_exponent])
         model_ok = np.isfinite(from_model) & (from_model > 0) & (
             in_henry_region(model_bend) | ~exponent_shaped)
         virial_ok = np.isfinite(virial) & (virial > 0)

@@ -12,8 +12,9 @@ which is increasing in psi; both it and the inner inversions (d psi_i / d ln p
 over every (request, sorbent) pair at once. Total loading follows from
 1/q_T = sum_i x_i / q_i(p_i^0), component loadings from q_i = x_i q_T.
 
-psi_i is analytic for henry, langmuir, dual_site_langmuir, sips and
-freundlich; every other model is integrated numerically in ln p by a fixed
+psi_i is in closed form where the model class declares one
+(``reduced_spreading_pressure``: henry, langmuir, dual_site_langmuir, sips,
+freundlich); every other model is integrated numerically in ln p by a fixed
 composite Gauss-Legendre rule (IAST_PANELS panels of IAST_NODES_PER_PANEL
 nodes) over IAST_LOG_SPAN e-folds below p, plus the Henry-law tail q(p_low)
 for the rest down to zero (exact for a model linear in p there).
@@ -38,37 +39,6 @@ IAST_RELATIVE_TOLERANCE = 1e-14
 IAST_PRESSURE_SPAN_E_FOLDS = 60.0
 
 
-def _psi_langmuir(p, q_sat, affinity):
-    return q_sat * np.log1p(affinity * p)
-
-
-def _psi_dual_site_langmuir(p, q_sat_1, affinity_1, q_sat_2, affinity_2):
-    return q_sat_1 * np.log1p(affinity_1 * p) + q_sat_2 * np.log1p(affinity_2 * p)
-
-
-def _psi_sips(p, q_sat, affinity, heterogeneity):
-    return q_sat / heterogeneity * np.log1p((affinity * p) ** heterogeneity)
-
-
-def _psi_freundlich(p, k_f, n):
-    return n * k_f * p ** (1.0 / n)
-
-
-def _psi_henry(p, k_h):
-    return k_h * p
-
-
-# model id -> (parameter names the formula assumes, reduced spreading pressure)
-ANALYTIC_SPREADING_PRESSURE = {
-    "henry": (("k_h",), _psi_henry),
-    "langmuir": (("q_sat", "affinity"), _psi_langmuir),
-    "dual_site_langmuir": (("q_sat_1", "affinity_1", "q_sat_2", "affinity_2"),
-                           _psi_dual_site_langmuir),
-    "sips": (("q_sat", "affinity", "heterogeneity"), _psi_sips),
-    "freundlich": (("k_f", "n"), _psi_freundlich),
-}
-
-
 def _gauss_legendre_unit_nodes() -> tuple[np.ndarray, np.ndarray]:
     """Composite Gauss-Legendre nodes and weights on [0, 1]."""
     t, w = np.polynomial.legendre.leggauss(IAST_NODES_PER_PANEL)
@@ -82,21 +52,16 @@ def _gauss_legendre_unit_nodes() -> tuple[np.ndarray, np.ndarray]:
 _UNIT_NODES, _UNIT_WEIGHTS = _gauss_legendre_unit_nodes()
 
 
-def has_analytic_spreading_pressure(model) -> bool:
-    entry = ANALYTIC_SPREADING_PRESSURE.get(model.id)
-    return entry is not None and tuple(model.param_names()) == entry[0]
-
-
 def spreading_pressure(model, params, temperature_k, saturation_pressure_pa, pressure_pa,
                        analytic: bool = True) -> np.ndarray:
     """Reduced spreading pressure psi (g,) in mol/kg at pressure_pa (g,).
 
     ``analytic=False`` forces the numerical rule (used to test it).
     """
-    if analytic and has_analytic_spreading_pressure(model):
-        fn = ANALYTIC_SPREADING_PRESSURE[model.id][1]
+    if analytic and model.has_closed_form_spreading_pressure():
         with np.errstate(all="ignore"):
-            return fn(pressure_pa, *[params[:, j] for j in range(params.shape[1])])
+            return model.reduced_spreading_pressure(
+                pressure_pa, *[params[:, j] for j in range(params.shape[1])])
     ln_p = np.log(pressure_pa)[:, None]
     nodes = np.exp(ln_p - IAST_LOG_SPAN * (1.0 - _UNIT_NODES[None, :]))
     q_nodes = evaluate_model(model, params, temperature_k, saturation_pressure_pa, nodes)

@@ -2,8 +2,15 @@
 
 A model is a small declarative class: its parameters (name, canonical unit,
 bounds, meaning), a static ``evaluate`` and an analytic ``jacobian`` that
-broadcast over a leading batch axis, a batch initial-guess rule, and, where
-the model defines them, its saturation capacity and Henry limit.
+broadcast over a leading batch axis, a batch initial-guess rule, its Henry
+limit where defined, and its capabilities as class attributes that the
+metrics read instead of lists of model ids:
+
+* ``capacity_params``: the parameters whose sum is the saturation capacity
+  (empty: no finite plateau, so no capacity of its own);
+* ``multilayer`` / ``pore_filling``: what the high-pressure end means;
+* ``henry_slope_from_exponent``: the p -> 0 slope is set by a fitted exponent;
+* ``reduced_spreading_pressure``: the closed-form IAST integral, where one exists.
 
 Shapes used throughout (n = isotherms in the batch, m = padded points):
 
@@ -18,7 +25,7 @@ real point) so models never see zeros or NaN they did not ask for.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import ClassVar
+from typing import Callable, ClassVar
 
 import numpy as np
 
@@ -57,6 +64,19 @@ class IsothermModel:
     # True for pore-filling models (Dubinin family): the capacity is the filled
     # micropore volume at p0, not a monolayer, so it gives no site count
     pore_filling: ClassVar[bool] = False
+    # names of the parameters whose sum is the saturation capacity in mol/kg
+    # (the sites of a multi-site model add up); empty when the model has no
+    # finite plateau (Henry, Freundlich, Temkin, Redlich-Peterson, whose
+    # plateau exists only at the edge beta = 1) or whose monolayer is no
+    # saturation (BET, GAB). It decides q_sat_from_other_model.
+    capacity_params: ClassVar[tuple[str, ...]] = ()
+    # True when the p -> 0 slope is governed by a fitted heterogeneity
+    # exponent: the Henry limit then counts only where the data reach the
+    # Henry region (metrics/henry.py)
+    henry_slope_from_exponent: ClassVar[bool] = False
+    # psi(p, *params) = integral_0^p q(t)/t dt in mol/kg, in closed form, as a
+    # staticmethod; None: IAST integrates the model numerically
+    reduced_spreading_pressure: ClassVar[Callable[..., np.ndarray] | None] = None
 
     @staticmethod
     def evaluate(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> np.ndarray:
@@ -74,9 +94,25 @@ class IsothermModel:
         raise NotImplementedError
 
     @classmethod
+    def defines_saturation_capacity(cls) -> bool:
+        """True when the model has a finite plateau of its own (``capacity_params``)."""
+        return bool(cls.capacity_params)
+
+    @classmethod
+    def has_closed_form_spreading_pressure(cls) -> bool:
+        return cls.reduced_spreading_pressure is not None
+
+    @classmethod
     def saturation_capacity(cls, params: np.ndarray) -> np.ndarray | None:
-        """Saturation capacity in mol/kg from params (n, k); None if undefined."""
-        return None
+        """Saturation capacity (n,) in mol/kg from params (n, k): the sum of the
+        ``capacity_params``; None when the model declares none."""
+        if not cls.capacity_params:
+            return None
+        names = cls.param_names()
+        capacity = params[:, names.index(cls.capacity_params[0])].copy()
+        for name in cls.capacity_params[1:]:
+            capacity += params[:, names.index(name)]
+        return capacity
 
     @classmethod
     def henry_constant(cls, params: np.ndarray, temperature_k: np.ndarray,
@@ -146,7 +182,7 @@ class IsothermModel:
                 }
                 for p in cls.params
             ],
-            "has_saturation_capacity": cls.saturation_capacity.__func__ is not IsothermModel.saturation_capacity.__func__,
+            "has_saturation_capacity": cls.defines_saturation_capacity(),
             "has_henry_limit": cls.henry_constant.__func__ is not IsothermModel.henry_constant.__func__,
         }
 

@@ -26,6 +26,11 @@ class DualSiteLangmuir(IsothermModel):
         Param("q_sat_2", "mol/kg", 0.0, np.inf, "capacity of site 2 (the weaker site)"),
         Param("affinity_2", "1/Pa", 0.0, np.inf, "affinity of site 2", log_scale=True),
     )
+    capacity_params = ("q_sat_1", "q_sat_2")
+
+    @staticmethod
+    def reduced_spreading_pressure(p, q_sat_1, affinity_1, q_sat_2, affinity_2):
+        return q_sat_1 * np.log1p(affinity_1 * p) + q_sat_2 * np.log1p(affinity_2 * p)
 
     @staticmethod
     def evaluate(x, temperature_k, q_sat_1, affinity_1, q_sat_2, affinity_2):
@@ -62,10 +67,6 @@ class DualSiteLangmuir(IsothermModel):
         out = params.copy()
         out[swap] = params[swap][:, [2, 3, 0, 1]]
         return out
-
-    @classmethod
-    def saturation_capacity(cls, params):
-        return params[:, 0] + params[:, 2]
 
     @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):

@@ -54,6 +54,7 @@ class DubininRadushkevich(IsothermModel):
         Param("q_m", "mol/kg", 0.0, np.inf, "micropore capacity (loading at x = 1)"),
         Param("e", "J/mol", _E_LOWER, _E_UPPER, "characteristic energy", log_scale=True),
     )
+    capacity_params = ("q_m",)
 
     @staticmethod
     def evaluate(x, temperature_k, q_m, e):
@@ -78,10 +79,6 @@ class DubininRadushkevich(IsothermModel):
         return keep_best(cls, candidates, x, q, mask, temperature_k)
 
     @classmethod
-    def saturation_capacity(cls, params):
-        return params[:, 0].copy()
-
-    @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):
         # exp(-k ln(x)^2) vanishes faster than any power of x: zero slope
         return np.zeros(params.shape[0])
@@ -101,6 +98,8 @@ class DubininAstakhov(IsothermModel):
         # n = 2 is DR; published fits use ~1..6; 0.5..8 keeps exp(-(A/e)^n) tame
         Param("n", "-", 0.5, 8.0, "heterogeneity exponent (2 = Dubinin-Radushkevich)"),
     )
+    capacity_params = ("q_m",)
+    henry_slope_from_exponent = True
 
     @staticmethod
     def evaluate(x, temperature_k, q_m, e, n):
@@ -126,10 +125,6 @@ class DubininAstakhov(IsothermModel):
             q_m, e = _line_seed(x, q, mask, temperature_k, n, q_hi)
             candidates.append(row(q_m, e, np.full_like(q_m, n)))
         return keep_best(cls, candidates, x, q, mask, temperature_k)
-
-    @classmethod
-    def saturation_capacity(cls, params):
-        return params[:, 0].copy()
 
     @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):

@@ -21,6 +21,11 @@ class Freundlich(IsothermModel):
         # while keeping p^(1/n) representable over 1e-3..1e8 Pa
         Param("n", "-", 0.2, 20.0, "Freundlich exponent (favourable when n > 1)"),
     )
+    henry_slope_from_exponent = True
+
+    @staticmethod
+    def reduced_spreading_pressure(p, k_f, n):
+        return n * k_f * p ** (1.0 / n)
 
     @staticmethod
     def evaluate(x, temperature_k, k_f, n):

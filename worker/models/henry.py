@@ -19,6 +19,10 @@ class Henry(IsothermModel):
     )
 
     @staticmethod
+    def reduced_spreading_pressure(p, k_h):
+        return k_h * p
+
+    @staticmethod
     def evaluate(x, temperature_k, k_h):
         return k_h * x
 

@@ -21,6 +21,11 @@ class Langmuir(IsothermModel):
         Param("q_sat", "mol/kg", 0.0, np.inf, "saturation capacity (monolayer)"),
         Param("affinity", "1/Pa", 0.0, np.inf, "affinity constant b", log_scale=True),
     )
+    capacity_params = ("q_sat",)
+
+    @staticmethod
+    def reduced_spreading_pressure(p, q_sat, affinity):
+        return q_sat * np.log1p(affinity * p)
 
     @staticmethod
     def evaluate(x, temperature_k, q_sat, affinity):
@@ -61,10 +66,6 @@ class Langmuir(IsothermModel):
             shape = cls.evaluate(x, None, 1.0, b)
             candidates.append(row(best_scale(q, shape, mask, q_hi), b))
         return candidates
-
-    @classmethod
-    def saturation_capacity(cls, params):
-        return params[:, 0].copy()
 
     @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):

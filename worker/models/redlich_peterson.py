@@ -29,6 +29,7 @@ class RedlichPeterson(IsothermModel):
         # with slope k_rp / (1 + a_rp); 0.05..1 keeps the loading increasing
         Param("beta", "-", 0.05, 1.0, "Redlich-Peterson exponent (1 = Langmuir)"),
     )
+    henry_slope_from_exponent = True
 
     @staticmethod
     def evaluate(x, temperature_k, k_rp, a_rp, beta):

@@ -25,6 +25,12 @@ class Sips(IsothermModel):
         # exponent can neither flatten the isotherm to a constant nor make it a step
         Param("heterogeneity", "-", 0.1, 5.0, "heterogeneity exponent s (1 = Langmuir)"),
     )
+    capacity_params = ("q_sat",)
+    henry_slope_from_exponent = True
+
+    @staticmethod
+    def reduced_spreading_pressure(p, q_sat, affinity, heterogeneity):
+        return q_sat / heterogeneity * np.log1p((affinity * p) ** heterogeneity)
 
     # the logistic form 1 / (1 + e^-(s ln(bp))) avoids overflow of (bp)^s at large bp
     @staticmethod
@@ -63,10 +69,6 @@ class Sips(IsothermModel):
         candidates += exponent_affinity_grid(cls, x, q, mask, _HETEROGENEITY_GRID,
                                              x_lo, x_hi, q_hi, _AFFINITY_GRID_POINTS)
         return keep_best(cls, candidates, x, q, mask, temperature_k)
-
-    @classmethod
-    def saturation_capacity(cls, params):
-        return params[:, 0].copy()
 
     @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):

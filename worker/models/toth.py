@@ -24,6 +24,8 @@ class Toth(IsothermModel):
         # 1 is Langmuir, < 1 heterogeneous; 0.1..5 keeps (1 + (bp)^t)^(1/t) tame
         Param("t", "-", 0.1, 5.0, "heterogeneity exponent (1 = Langmuir)"),
     )
+    capacity_params = ("q_sat",)
+    henry_slope_from_exponent = True
 
     # written as exp(ln(bp) - ln(1 + (bp)^t) / t) so large bp cannot overflow
     @staticmethod
@@ -52,10 +54,6 @@ class Toth(IsothermModel):
         candidates += exponent_affinity_grid(cls, x, q, mask, _T_GRID,
                                              x_lo, x_hi, q_hi, _AFFINITY_GRID_POINTS)
         return keep_best(cls, candidates, x, q, mask, temperature_k)
-
-    @classmethod
-    def saturation_capacity(cls, params):
-        return params[:, 0].copy()
 
     @classmethod
     def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):
