@@ -161,15 +161,15 @@ def _missing(value) -> bool:
 def _apply_conditions(batch, conditions, mixtures, settings: dict) -> None:
     """Conditions and mixtures given as keywords, read by intake's rules for the
     JSON batch format, with the units and gases declared beside them."""
-    from sorbrank.worker import intake
+    from sorbrank.worker.intake import checked_settings, declared_gases, read_conditions, read_mixtures
 
     # intake's own settings check and gas declarations, exactly as read_batch runs them
-    checked = intake._checked_settings(settings, "argument", batch.label)
-    declared = intake._declared_gases(checked.get("gases", []), batch.label)
+    checked = checked_settings(settings, "argument", batch.label)
+    declared = declared_gases(checked.get("gases", []), batch.label)
     if conditions is not None:
-        batch.conditions = intake._conditions(conditions, checked, batch.label)
+        batch.conditions = read_conditions(conditions, checked, batch.label)
     if mixtures is not None:
-        batch.mixtures = intake._mixtures(mixtures, checked, declared, batch.label)
+        batch.mixtures = read_mixtures(mixtures, checked, declared, batch.label)
 
 
 def pandas_module():

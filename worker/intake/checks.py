@@ -1,0 +1,136 @@
+"""Per-row checks (missing, not a number, negative, bad ids, unknown adsorbate or
+branch) and the physical-range checks after conversion.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .. import adsorbates
+from .issues import Findings, short
+from .rows import (
+    BLANK,
+    BRANCHES,
+    MISSING,
+    NOT_FINITE,
+    NOT_NUMBER,
+    NUMBER_FIELDS,
+    OK,
+    UNITS_HINT,
+    Rows,
+)
+from .source import character_problem, id_problem
+
+
+def range_checks(found: Findings, number: dict, unit_names: dict, canonical: dict) -> None:
+    """Record ``out_of_range`` for every usable value whose canonical form is above its
+    physical bound (``sorbrank.worker.units``), infinite after an overflowing conversion
+    included: the message gives the value as sent with its unit and what it became."""
+    for name, (converted, canon, bound) in canonical.items():
+        sent = number[name]
+        with np.errstate(invalid="ignore"):
+            mask = (sent.problem == OK) & (converted > bound)
+        table, unit_index = unit_names.get(name, (None, None))
+
+        def detail(i, sent=sent, converted=converted, canon=canon, bound=bound, table=table,
+                   unit_index=unit_index):
+            unit = canon if table is None else str(table[unit_index[i]])
+            given = f"{sent.value[i]:g} {unit}"
+            if unit == canon:
+                return f"{given} is above the limit {bound:g} {canon}"
+            if np.isinf(converted[i]):
+                return f"{given} overflows when converted to {canon} (limit {bound:g} {canon})"
+            return f"{given} is {converted[i]:.3g} {canon}, above the limit {bound:g} {canon}"
+        found.rows_where(mask, name, "out_of_range", detail)
+
+
+def missing_unit(quantity: str, sent_as: str) -> str:
+    if quantity == "saturation_pressure":
+        return (f"no unit for {sent_as!r}: the pressures are relative, so name its unit "
+                "(e.g. saturation_pressure_kpa) or declare it (units saturation_pressure:kPa)")
+    return f"no unit for {sent_as!r}: {UNITS_HINT}"
+
+
+def missing_p0(gas, temperature_k: float, is_declared: bool) -> str:
+    if is_declared:
+        why = f"{gas.id} is a declared gas, which has no saturation-pressure table"
+    else:
+        why = (f"none is defined for {gas.id} at {temperature_k:g} K (supercritical or outside "
+               "the property table's range)")
+    return (f"pressures are relative but no saturation pressure is given and {why}; give it "
+            "in a saturation_pressure column (e.g. saturation_pressure_kpa)")
+
+
+def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relative) -> None:
+    """Record every per-row problem (vectorised; messages built lazily)."""
+    def raw(name):
+        return lambda i: f"value {short(number[name].raw(i))!r}"
+
+    def not_a_number(name):
+        def detail(i):
+            value = str(number[name].raw(i))
+            if rows.decimal == ",":
+                note = " (this file's numbers use decimal commas)"
+            elif rows.source == "csv" and "," in value:
+                note = " (this file's numbers use decimal points)"
+            else:
+                note = ""
+            return f"value {short(value)!r} is not a number{note}"
+        return detail
+
+    for name in ("sorbent_id", "adsorbate"):
+        found.rows_where(text[name].codes == BLANK, name, "missing_value",
+                         lambda i, n=name: f"{n!r} is missing")
+    for name in NUMBER_FIELDS:
+        problem = number[name].problem
+        required = name in ("temperature_k", "pressure", "loading")
+        sent = rows.column_names.get(name, name)
+        if required:
+            found.rows_where(problem == MISSING, name, "missing_value",
+                             lambda i, n=sent: f"{n!r} is missing")
+        found.rows_where(problem == NOT_NUMBER, name, "not_a_number", not_a_number(name))
+        found.rows_where(problem == NOT_FINITE, name, "not_finite",
+                         lambda i, r=raw(name): f"{r(i)} is not finite (NaN or infinity)")
+    for name in ("pressure", "loading"):
+        found.rows_where(number[name].value < 0, name, "negative_value",
+                         lambda i, r=raw(name): f"{r(i)} is negative")
+    for name in ("temperature_k", "saturation_pressure", "sample_mass_g", "loading_sigma",
+                 "surface_area_m2_per_g"):
+        found.rows_where(number[name].value <= 0, name, "non_positive_value",
+                         lambda i, r=raw(name): f"{r(i)} must be greater than zero")
+    found.rows_where(is_relative & (number["pressure"].value > 1.0), "pressure",
+                     "relative_pressure_above_one",
+                     lambda i: f"relative pressure p/p0 = {short(number['pressure'].raw(i))} "
+                               "is above 1")
+
+    for name in ("sorbent_id", "isotherm_id"):
+        column = text[name]
+        problems = [id_problem(v) for v in column.values]
+        bad_value = np.array([p is not None for p in problems] + [False] * 3)
+        found.rows_where(bad_value[column.codes], name, "invalid_id",
+                         lambda i, c=column, p=problems, n=name:
+                         f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+    bad_text = {}
+    for name in ("adsorbate", "branch"):
+        column = text[name]
+        problems = [character_problem(v, format_characters=False) for v in column.values]
+        bad_text[name] = np.array([p is not None for p in problems] + [False] * 3)[column.codes]
+        found.rows_where(bad_text[name], name, "invalid_text",
+                         lambda i, c=column, p=problems, n=name:
+                         f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+    adsorbate = text["adsorbate"]
+    found.rows_where((ads == -1) & ~bad_text["adsorbate"], "adsorbate", "unknown_adsorbate",
+                     lambda i: unknown_adsorbate(adsorbate.values[adsorbate.codes[i]]), once=True)
+    found.rows_where((branch == -1) & ~bad_text["branch"], "branch", "unknown_branch",
+                     lambda i: f"branch {short(text['branch'].values[text['branch'].codes[i]])!r} "
+                               f"is not one of {', '.join(BRANCHES)}", once=True)
+
+
+def lookup_adsorbate(name: str, declared: list):
+    """The Adsorbate called ``name``: a gas declared for this batch or one of the table."""
+    return adsorbates.lookup(name, declared=declared) if declared else adsorbates.lookup(name)
+
+
+def unknown_adsorbate(name: str) -> str:
+    near = adsorbates.suggest(name)
+    return f"unknown adsorbate {short(name)!r}" + (f"; did you mean {near!r}?" if near else "")
+
