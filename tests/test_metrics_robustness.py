@@ -3,20 +3,17 @@ nan + flags, never raise (invented inputs; no reference value is involved)."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
+from model_cases import CASES
 from test_metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Conditions, Isotherm, MixtureRequest
 from sorbrank.worker.metrics import sorbent_metrics, summarize
 from sorbrank.worker.models import CATALOGUE
 
 P0_PA = 1e6
-PARAMS = {
-    "henry": [3.0e-5], "langmuir": [5.0, 2.0e-5], "dual_site_langmuir": [2.0, 1.0e-3, 4.0, 1.0e-5],
-    "freundlich": [0.02, 2.5], "sips": [6.0, 1.0e-5, 0.7], "toth": [6.0, 1.0e-4, 0.6],
-    "redlich_peterson": [2.0e-4, 1.0e-3, 0.8], "temkin": [1.0e-2, 2.0e3], "bet": [3.0, 100.0],
-    "gab": [3.0, 50.0, 0.8], "dubinin_radushkevich": [5.0, 1.5e4],
-    "dubinin_astakhov": [5.0, 1.5e4, 2.5],
-}
+# the engine's truth parameters of every row of the model case table
+PARAMS = {case.model_id: list(case.engine[0]) for case in CASES}
 
 
 def test_every_model_and_bad_parameters_flow_through_without_raising():
@@ -43,7 +40,7 @@ def test_every_model_and_bad_parameters_flow_through_without_raising():
     out = summarize(packed, fits, selection, batch)
     rows = sorbent_metrics(packed, fits, selection, batch)
 
-    assert set(PARAMS) <= set(CATALOGUE)
+    assert set(PARAMS) == set(CATALOGUE)
     for name, column in out.items():
         assert len(column) == packed.n, name
     assert "no_selected_model" in out["flags"][-1]
@@ -62,3 +59,61 @@ def test_every_model_and_bad_parameters_flow_through_without_raising():
         for value in r.values():
             if isinstance(value, float) and not np.isfinite(value):
                 assert r["flags"], r   # a missing figure always comes with a reason
+
+
+def test_a_model_that_raises_is_logged_once_and_its_rows_flagged_internal_error(
+        monkeypatch, caplog):
+    # a Langmuir whose capacity and Henry limit raise, as a bug in a new model would
+    from sorbrank.worker.models.langmuir import Langmuir
+
+    class BrokenLangmuir(Langmuir):
+        @classmethod
+        def saturation_capacity(cls, params):
+            raise ZeroDivisionError("bug in a model")
+
+        @classmethod
+        def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):
+            raise ZeroDivisionError("bug in a model")
+
+    monkeypatch.setitem(CATALOGUE, "langmuir", BrokenLangmuir)
+    p = np.geomspace(1e3, 9e5, 12)
+    isos = [Isotherm(f"l{i}", "s1", "CO2", t, p, np.linspace(0.1, 3.0, p.size))
+            for i, t in enumerate((298.0, 318.0))]
+    isos.append(Isotherm("s", "s2", "CO2", 298.0, p, np.linspace(0.1, 3.0, p.size)))
+    batch, packed = batch_of(isos)
+    fits, selection = stack_fits([("langmuir", PARAMS["langmuir"])] * 2
+                                 + [("sips", PARAMS["sips"])])
+    # the third isotherm never meets the broken model: not eligible there, so
+    # neither borrowed for its capacity nor in its averages
+    selection.excluded["langmuir"] = np.array(["", "", "not eligible here"], dtype=object)
+    with caplog.at_level("ERROR", logger="sorbrank.worker.metrics.common"):
+        out = summarize(packed, fits, selection, batch)
+    flags = [list(f) for f in out["flags"]]
+    assert ["internal_error" in f for f in flags] == [True, True, False]
+    assert np.all(np.isnan(out["q_sat_mol_per_kg"][:2]))
+    assert np.isfinite(out["q_sat_mol_per_kg"][2]) and out["q_sat_model"][2] == "sips"
+    logged = [r for r in caplog.records if "internal_error" in r.getMessage()]
+    assert len(logged) == 1 and "langmuir" in logged[0].getMessage()
+    assert logged[0].exc_info is not None
+
+
+def test_an_error_that_ends_the_job_is_not_swallowed_by_the_metrics(monkeypatch):
+    from sorbrank.worker.interrupts import register_job_ending
+    from sorbrank.worker.models.langmuir import Langmuir
+
+    class Stop(Exception):
+        pass
+
+    register_job_ending(Stop)
+
+    class Interrupted(Langmuir):
+        @classmethod
+        def henry_constant(cls, params, temperature_k, saturation_pressure_pa=None):
+            raise Stop()
+
+    monkeypatch.setitem(CATALOGUE, "langmuir", Interrupted)
+    p = np.geomspace(1e3, 9e5, 12)
+    batch, packed = batch_of([Isotherm("l", "s1", "CO2", 298.0, p, np.linspace(0.1, 3, p.size))])
+    fits, selection = stack_fits([("langmuir", PARAMS["langmuir"])])
+    with pytest.raises(Stop):
+        summarize(packed, fits, selection, batch)

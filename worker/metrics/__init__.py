@@ -19,7 +19,8 @@ from ..results import ModelFits, Selection
 from .averaging import model_averaged_columns
 from .bet import bet_columns
 from .capacity import capacity_columns, gas_volume_cm3stp_per_g, site_density_columns
-from .common import add_flag, flags_as_object_array, has_selected_fit, new_flags, rows_by
+from .common import (INTERNAL_ERROR, add_flag, flags_as_object_array, has_selected_fit,
+                     internal_error_rows, internal_errors_recorded, new_flags, rows_by)
 from .fit_quality import fit_quality_columns
 from .henry import henry_columns
 from .hysteresis import hysteresis_columns
@@ -32,6 +33,16 @@ def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
               batch: Batch, weighting: str = "uniform") -> dict[str, np.ndarray]:
     """Summary columns, each an array of length ``packed.n``, canonical units in the names.
     ``weighting`` is the fit's (FitOptions.weighting), for the goodness-of-fit sums."""
+    with internal_errors_recorded() as internal_errors:
+        columns, flags = _summary_columns(packed, fits, selection, batch, weighting)
+    add_flag(flags, internal_error_rows(internal_errors, selection), INTERNAL_ERROR)
+    columns["flags"] = flags_as_object_array(flags)
+    return columns
+
+
+def _summary_columns(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                     batch: Batch, weighting: str
+                     ) -> tuple[dict[str, np.ndarray], list[list[str]]]:
     flags = new_flags(packed.n)
     add_flag(flags, ~has_selected_fit(selection, fits), "no_selected_model")
     columns: dict[str, np.ndarray] = {}
@@ -57,8 +68,7 @@ def summarize(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
     columns["surface_area_used_m2_per_g"] = area
     columns["surface_area_source"] = source
     columns.update(site_density_columns(columns["sites_per_g"], area))
-    columns["flags"] = flags_as_object_array(flags)
-    return columns
+    return columns, flags
 
 
 def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
@@ -87,9 +97,16 @@ def sorbent_metrics(packed: Packed, fits: dict[str, ModelFits], selection: Selec
                      batch: Batch) -> list[dict]:
     """Flat rows per sorbent and gas, and per mixture request."""
     usable = has_selected_fit(selection, fits)
-    rows = isosteric_heat_rows(packed, fits, selection, usable)
-    rows += temperature_swing_rows(packed, fits, selection, batch, usable)
-    rows += iast_rows(packed, fits, selection, batch.mixtures, usable)
+    with internal_errors_recorded() as internal_errors:
+        rows = isosteric_heat_rows(packed, fits, selection, usable)
+        rows += temperature_swing_rows(packed, fits, selection, batch, usable)
+        rows += iast_rows(packed, fits, selection, batch.mixtures, usable)
+    if internal_errors:
+        hit = internal_error_rows(internal_errors, selection)
+        index = {iso_id: i for i, iso_id in enumerate(packed.isotherm_ids)}
+        for row in rows:
+            if any(hit[index[iso_id]] for iso_id in row.get("isotherm_ids") or ()):
+                row["flags"].append(INTERNAL_ERROR)
     return rows
 
 

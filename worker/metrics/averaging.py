@@ -46,8 +46,8 @@ from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .capacity import saturation_capacity_gradient
-from .common import (add_flag, evaluate_model, positive_interval_95, pressure_label,
-                     t_quantile_975)
+from .common import (add_flag, evaluate_model, note_internal_error, positive_interval_95,
+                     pressure_label, t_quantile_975)
 
 # An averaged figure that had to leave out models holding more than this share
 # of the Akaike weight (their figure not finite) is flagged: the average then
@@ -180,6 +180,7 @@ def _averaged_figure(selection: Selection, fits: dict[str, ModelFits], shape: tu
         except Exception as exc:  # a model bug leaves that model out, not the batch
             if ends_job(exc):
                 raise
+            note_internal_error(model, exc, "model averaging", rows)
             continue
         weights[rows, ..., j] = selection.weights[rows, j].reshape(-1, *extra)
         values[rows, ..., j] = value

@@ -8,7 +8,7 @@ from ..interrupts import ends_job
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading,
-                     positive_interval_95)
+                     note_internal_error, positive_interval_95)
 
 # A capacity is an extrapolation when the data never reach half of it.
 CAPACITY_EXTRAPOLATION_FRACTION = 0.5
@@ -99,6 +99,7 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
         except Exception as exc:  # a model bug gives nan, not a failed batch
             if ends_job(exc):
                 raise
+            note_internal_error(model, exc, "saturation_capacity", rows)
             value = None
         if value is None:
             continue

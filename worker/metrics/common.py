@@ -6,6 +6,9 @@ once over all the isotherms that selected it.
 """
 from __future__ import annotations
 
+import logging
+from contextlib import contextmanager
+from contextvars import ContextVar
 from typing import Hashable, Iterable, Iterator, Sequence
 
 import numpy as np
@@ -15,6 +18,17 @@ from ..interrupts import ends_job
 from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
+
+log = logging.getLogger(__name__)
+
+# Flag on every row a model's internal error touched: its figure there is nan
+# because the model raised, not because the data cannot support it.
+INTERNAL_ERROR = "internal_error"
+
+# model id -> packed rows it raised on (empty: rows unknown, so the rows that
+# selected it), for the metrics call in progress; None outside one
+_internal_errors: ContextVar[dict[str, set[int]] | None] = ContextVar(
+    "sorbrank_metric_internal_errors", default=None)
 
 # Gas volumes are quoted at 273.15 K and 101.325 kPa (volumetric adsorption
 # convention; common practice, no single source).
@@ -63,6 +77,50 @@ def rows_by(keys: Sequence[Hashable], rows: Iterable[int]) -> dict[Hashable, lis
     for i in rows:
         groups.setdefault(keys[i], []).append(int(i))
     return groups
+
+
+@contextmanager
+def internal_errors_recorded() -> Iterator[dict[str, set[int]]]:
+    """Collect the models that raise inside metrics within the block (model id ->
+    rows), so each is logged once and its rows flagged ``internal_error``."""
+    record: dict[str, set[int]] = {}
+    token = _internal_errors.set(record)
+    try:
+        yield record
+    finally:
+        _internal_errors.reset(token)
+
+
+def note_internal_error(model, exc: BaseException, where: str,
+                        rows: np.ndarray | None = None) -> None:
+    """A model raised ``exc`` inside metric ``where``; its figure there becomes nan.
+
+    A broad handler calls this after re-raising job-ending errors
+    (``interrupts.ends_job``). Logged with its traceback once per model per
+    recorded metrics call (a bug repeats on every group it meets, and one
+    traceback is what a maintainer needs); outside a recording, every time.
+    """
+    record = _internal_errors.get()
+    if record is None or model.id not in record:
+        log.error("model %s raised in %s: figures nan, rows flagged %s", model.id, where,
+                  INTERNAL_ERROR, exc_info=exc)
+    if record is not None:
+        hit = record.setdefault(model.id, set())
+        if rows is not None:
+            hit.update(int(i) for i in np.asarray(rows).ravel())
+
+
+def internal_error_rows(record: dict[str, set[int]], selection: Selection) -> np.ndarray:
+    """(n,) bool: rows a recorded internal error touched (named rows, else the
+    rows that selected the model)."""
+    best = np.asarray(selection.best, dtype=object)
+    hit = np.zeros(best.shape[0], dtype=bool)
+    for model_id, rows in record.items():
+        if rows:
+            hit[np.fromiter(rows, dtype=int)] = True
+        else:
+            hit |= best == model_id
+    return hit
 
 
 def new_flags(n: int) -> list[list[str]]:
@@ -131,6 +189,7 @@ def evaluate_model(model, params: np.ndarray, temperature_k: np.ndarray,
         except Exception as exc:  # a model bug must not take the batch down
             if ends_job(exc):
                 raise
+            note_internal_error(model, exc, "evaluate")
             return np.full(pressure_pa.shape, np.nan)
     q = np.broadcast_to(np.asarray(q, dtype=float), pressure_pa.shape).copy()
     if model.relative_pressure:

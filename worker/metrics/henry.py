@@ -36,8 +36,8 @@ from ..models.linear import masked_linear_fit
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .averaging import central_difference_gradient, delta_method_variance
-from .common import (add_flag, max_measured_loading, positive_interval_95, selected_groups,
-                     selected_loading)
+from .common import (add_flag, max_measured_loading, note_internal_error, positive_interval_95,
+                     selected_groups, selected_loading)
 
 # Virial fall-back: ln(p/q) = -ln K_H + A1 q + ...; the line is fitted to the
 # points whose loading is at most this fraction of the highest measured
@@ -70,24 +70,27 @@ def _model_henry_and_stderr(packed: Packed, fits: dict[str, ModelFits], selectio
         params = model_fits.params[rows]
         temperature_k = packed.temperature_k[rows]
         p0 = packed.saturation_pressure_pa[rows]
-        value = _limit(model, params, temperature_k, p0, rows.shape)
+        value = _limit(model, params, temperature_k, p0, rows)
         if value is None:
             continue
         k_h[rows] = value
         stderr[rows] = _delta_method_stderr(model, params, model_fits.covariance[rows],
-                                            temperature_k, p0, value)
+                                            temperature_k, p0, value, rows)
         if model_fits.n_points.size == model_fits.n:
             dof[rows] = model_fits.n_points[rows] - model_fits.n_params
     return k_h, stderr, dof
 
 
-def _limit(model, params, temperature_k, saturation_pressure_pa, shape):
+def _limit(model, params, temperature_k, saturation_pressure_pa, rows):
+    """K_H (len(rows),) of ``model`` for the packed ``rows``; None if undefined."""
+    shape = rows.shape
     try:
         with np.errstate(all="ignore"):
             value = model.henry_constant(params, temperature_k, saturation_pressure_pa)
     except Exception as exc:  # a model bug gives nan, not a failed batch
         if ends_job(exc):
             raise
+        note_internal_error(model, exc, "henry_constant", rows)
         return np.full(shape, np.nan)
     if value is None:
         return None
@@ -95,11 +98,11 @@ def _limit(model, params, temperature_k, saturation_pressure_pa, shape):
 
 
 def _delta_method_stderr(model, params, covariance, temperature_k, saturation_pressure_pa,
-                         value) -> np.ndarray:
+                         value, rows) -> np.ndarray:
     """sqrt(g' C g) with g = dK_H/dparams; nan where K_H is not finite and
     positive or the covariance is missing."""
     gradient = central_difference_gradient(
-        lambda trial: _limit(model, trial, temperature_k, saturation_pressure_pa, value.shape),
+        lambda trial: _limit(model, trial, temperature_k, saturation_pressure_pa, rows),
         params)
     variance = delta_method_variance(gradient, covariance)
     with np.errstate(invalid="ignore"):

@@ -33,7 +33,8 @@ from ..models import CATALOGUE
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (SAME_TEMPERATURE_TOLERANCE_K, evaluate_model, invert_model,
-                     max_measured_loading, measured_pressure_range, model_x, rows_by)
+                     max_measured_loading, measured_pressure_range, model_x,
+                     note_internal_error, rows_by)
 
 # The grid: QST_GRID_POINTS evenly over the loading range common to every
 # temperature, ends included; the odd count puts the middle of the range (the
@@ -154,6 +155,7 @@ def ln_pressure_variance(model, params: np.ndarray, covariance: np.ndarray,
         except Exception as exc:  # a model bug must not take the batch down
             if ends_job(exc):
                 raise
+            note_internal_error(model, exc, "isosteric heat")
             return np.full(pressure_pa.shape, np.nan)
         slope = (up - down) / (2.0 * LN_PRESSURE_STEP)
         gradient = -jac / slope[..., None]
