@@ -5,12 +5,22 @@ saturation pressures, canonical values and range checks, then the accepted isoth
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from .. import adsorbates, units
 from ..isotherm import Batch
-from .accepted import Accepted, non_monotonic_groups, sorted_points
-from .checks import lookup_adsorbate, missing_p0, missing_unit, range_checks, row_checks
+from .accepted import Accepted, Points, non_monotonic_groups, sorted_points
+from .checks import (
+    NO_ADSORBATE,
+    UNKNOWN_ADSORBATE,
+    lookup_adsorbate,
+    missing_p0,
+    missing_unit,
+    range_checks,
+    row_checks,
+)
 from .grouping import (
     branch_codes,
     duplicate_ids,
@@ -30,6 +40,7 @@ from .rows import (
     Numbers,
     Rows,
     Text,
+    per_row,
 )
 from .source import id_problem
 
@@ -50,8 +61,7 @@ def resolved_text(rows: Rows, name: str, default: str | None) -> Text:
 def unit_index_per_row(column: Text, table: list[str]) -> np.ndarray:
     """Per-row index into ``table`` of canonical unit names (the column holds only
     checked canonical names), -1 where blank."""
-    per_value = np.array([table.index(v) for v in column.values] + [-1, -1, -1], dtype=np.int64)
-    return per_value[column.codes]
+    return per_row(column.codes, [table.index(v) for v in column.values], -1, np.int64)
 
 
 def loading_factor(unit: np.ndarray, table: list[str], molar_mass, mass_g) -> np.ndarray:
@@ -94,11 +104,55 @@ class GroupNames:
 
 
 def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limits: Limits) -> Batch:
+    """The checked, converted Batch of ``rows``: the steps below, in this order, since
+    the order findings are recorded in is the order of the issues."""
+    number, text = _filled_columns(rows, settings)
+    branch, branch_key = _branches(rows, text)
+    gid, n_groups = grouping(rows, branch_key)
+    if n_groups > limits.max_isotherms:
+        raise batch_error(label, "too_many_isotherms",
+                          f"{n_groups} isotherms, limit {limits.max_isotherms}")
+    found = Findings(rows, gid, n_groups)
+    table, ads, molar_mass = _adsorbates(text, declared)
+    unit = _RowUnits.of(text, number)
+    row_checks(found, rows, text, number, branch, ads, unit.is_relative)
+    group_value = _isotherm_values(found, rows, text, number, branch_key, unit.p0_row, gid, n_groups)
+    counts, n_sigma = _unit_and_count_checks(found, rows, number, unit, gid, n_groups, limits)
+    p0_g, relative_g, ads_index_g = _saturation_pressures(found, number, group_value, table, ads,
+                                                          unit, gid, n_groups)
+    _sample_mass_check(found, number, group_value, unit, gid, n_groups)
+    points = _canonical_points(found, number, unit, p0_g, molar_mass, group_value, gid, n_groups)
+    found.groups_where(~found.bad_groups() & (points.n_distinct < 3), None, "too_few_points",
+                       lambda g: f"{points.n_distinct[g]} distinct pressure(s); at least 3 "
+                                 "are needed")
+    found.groups_where(duplicate_ids(text, gid, n_groups, rows.group is not None), "isotherm_id",
+                       "duplicate_isotherm_id", lambda g: "an earlier isotherm has the same isotherm_id")
+
+    names = GroupNames(rows, text, gid)
+    batch = Batch(label=label)
+    batch.rejected = issue_list(found, names, label)
+    accepted = np.flatnonzero(~found.bad_groups())
+    if accepted.size == 0:
+        return batch
+    build = Accepted(
+        rows=rows, text=text, number=number, label=label, points=points,
+        input_order=np.argsort(gid, kind="stable"),
+        input_start=np.concatenate([[0], np.cumsum(counts)]),
+        has_sigma=n_sigma > 0, adsorbate=[table[i] if i >= 0 else None for i in ads_index_g],
+        group_value=group_value, p0_pa=p0_g, relative_input=relative_g,
+        non_monotonic=non_monotonic_groups(points, n_groups))
+    _add_accepted(batch, build, accepted, names, label)
+    return batch
+
+
+def _filled_columns(rows: Rows, settings: dict) -> tuple[dict[str, Numbers], dict[str, Text]]:
+    """Every number and text column, absent ones as all-missing, with the batch-wide
+    sample mass and units filled in where a row gives none."""
     n = rows.n_rows
     number = rows.numbers
     for name in NUMBER_FIELDS:  # absent optional columns: every cell missing
         number.setdefault(name, Numbers(np.full(n, np.nan), np.full(n, MISSING, np.int8),
-                                         lambda i: None))
+                                        lambda i: None))
     if "sample_mass_g" in settings:
         mass = number["sample_mass_g"]
         fill = mass.problem == MISSING
@@ -109,49 +163,71 @@ def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limi
     declared_units = settings.get("units", {})
     for quantity, fld in UNIT_FIELD.items():
         text[fld] = resolved_text(rows, fld, declared_units.get(quantity))
+    return number, text
 
+
+def _branches(rows: Rows, text: dict[str, Text]) -> tuple[np.ndarray, np.ndarray]:
+    """Per row: branch index and grouping key, after splitting CSV/Parquet/Table
+    isotherms at their pressure turning point (``text["branch"]`` is updated)."""
     branch, branch_key = branch_codes(text["branch"])
     if rows.group is None:
         text["branch"] = split_at_turning_point(rows, text, grouping(rows, branch_key)[0])
         branch, branch_key = branch_codes(text["branch"])
+    return branch, branch_key
 
-    gid, n_groups = grouping(rows, branch_key)
-    if n_groups > limits.max_isotherms:
-        raise batch_error(label, "too_many_isotherms",
-                           f"{n_groups} isotherms, limit {limits.max_isotherms}")
-    found = Findings(rows, gid, n_groups)
-    names = GroupNames(rows, text, gid)
 
-    # adsorbate per row
+def _adsorbates(text: dict[str, Text], declared: list) -> tuple[list, np.ndarray, np.ndarray]:
+    """The distinct known adsorbates, each row's index into them (UNKNOWN_ADSORBATE,
+    NO_ADSORBATE) and each row's molar mass (nan where not known)."""
     known = [lookup_adsorbate(v, declared) for v in text["adsorbate"].values]
     table = [a for a in dict.fromkeys(a for a in known if a is not None)]
-    ads_of_value = np.array([table.index(a) if a is not None else -1 for a in known] + [-2, -2, -2],
-                            dtype=np.int64)
-    ads = ads_of_value[text["adsorbate"].codes]
-    molar_mass = np.array([a.molar_mass_g_per_mol for a in table] + [np.nan])[
-        np.where(ads >= 0, ads, len(table))]
+    ads = per_row(text["adsorbate"].codes,
+                  [table.index(a) if a is not None else UNKNOWN_ADSORBATE for a in known],
+                  NO_ADSORBATE, np.int64)
+    molar_mass = per_row(ads, [a.molar_mass_g_per_mol for a in table], np.nan, float)
+    return table, ads, molar_mass
 
-    p_table = list(units.PRESSURE_PA_PER_UNIT)
-    l_table = list(units.LOADING_UNIT_TABLE)
-    relative_unit = p_table.index(units.RELATIVE)
-    p_unit = unit_index_per_row(text[UNIT_FIELD["pressure"]], p_table)
-    l_unit = unit_index_per_row(text[UNIT_FIELD["loading"]], l_table)
-    is_relative = p_unit == relative_unit
-    # a plain saturation pressure is in the pressure unit, if that is absolute;
-    # a plain loading_sigma in the loading unit
-    p0_unit = unit_index_per_row(text[UNIT_FIELD["saturation_pressure"]], p_table)
-    p0_unit = np.where((p0_unit < 0) & ~is_relative, p_unit, p0_unit)
-    sigma_unit = unit_index_per_row(text[UNIT_FIELD["loading_sigma"]], l_table)
-    sigma_unit = np.where(sigma_unit < 0, l_unit, sigma_unit)
 
-    row_checks(found, rows, text, number, branch, ads, is_relative)
+@dataclass
+class _RowUnits:
+    """Per row: the index of each quantity's unit in ``pressure_units`` or
+    ``loading_units`` (-1: none), and what follows from them."""
 
-    # isotherm-level values: each must be the same on every row that gives it
-    pa_per_unit_of = np.array([np.nan if f is None else f for f in units.PRESSURE_PA_PER_UNIT.values()]
-                              + [np.nan])
-    pa_per_unit = pa_per_unit_of[p_unit]
-    with np.errstate(over="ignore"):  # an overflow is reported by range_checks
-        p0_row = number["saturation_pressure"].value * pa_per_unit_of[p0_unit]
+    pressure_units: list[str]
+    loading_units: list[str]
+    pressure: np.ndarray
+    loading: np.ndarray
+    saturation_pressure: np.ndarray
+    loading_sigma: np.ndarray
+    is_relative: np.ndarray
+    pa_per_unit: np.ndarray    # of the pressure (nan: relative or none)
+    p0_row: np.ndarray         # saturation pressure in Pa as each row gives it
+
+    @classmethod
+    def of(cls, text: dict[str, Text], number: dict[str, Numbers]) -> _RowUnits:
+        p_table = list(units.PRESSURE_PA_PER_UNIT)
+        l_table = list(units.LOADING_UNIT_TABLE)
+        p_unit = unit_index_per_row(text[UNIT_FIELD["pressure"]], p_table)
+        l_unit = unit_index_per_row(text[UNIT_FIELD["loading"]], l_table)
+        is_relative = p_unit == p_table.index(units.RELATIVE)
+        # a plain saturation pressure is in the pressure unit, if that is absolute;
+        # a plain loading_sigma in the loading unit
+        p0_unit = unit_index_per_row(text[UNIT_FIELD["saturation_pressure"]], p_table)
+        p0_unit = np.where((p0_unit < 0) & ~is_relative, p_unit, p0_unit)
+        sigma_unit = unit_index_per_row(text[UNIT_FIELD["loading_sigma"]], l_table)
+        sigma_unit = np.where(sigma_unit < 0, l_unit, sigma_unit)
+        factors = [np.nan if f is None else f for f in units.PRESSURE_PA_PER_UNIT.values()]
+        with np.errstate(over="ignore"):  # an overflow is reported by range_checks
+            p0_row = number["saturation_pressure"].value * per_row(p0_unit, factors, np.nan, float)
+        return cls(p_table, l_table, p_unit, l_unit, p0_unit, sigma_unit, is_relative,
+                   per_row(p_unit, factors, np.nan, float), p0_row)
+
+
+def _isotherm_values(found: Findings, rows: Rows, text, number, branch_key, p0_row, gid,
+                     n_groups: int) -> dict[str, np.ndarray]:
+    """Per isotherm: each isotherm-level value, which must be the same on every row that
+    gives it (``inconsistent_value`` otherwise); nan where no row does."""
+    n = rows.n_rows
     group_value = {}
     for fld, values, given, code in [
         ("sorbent_id", text["sorbent_id"].codes, text["sorbent_id"].codes >= 0, "inconsistent_value"),
@@ -170,13 +246,21 @@ def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limi
                            lambda g, f=fld: f"rows of this isotherm give different values for "
                                             f"{rows.field_name(f, g)!r}")
         group_value[fld] = np.where(np.isfinite(low), low, np.nan)
+    return group_value
 
-    # units: one per quantity and isotherm (a JSON isotherm's own, else the batch's)
-    for quantity, unit, needed in (
-            ("pressure", p_unit, np.ones(n, dtype=bool)),
-            ("loading", l_unit, np.ones(n, dtype=bool)),
-            ("saturation_pressure", p0_unit, number["saturation_pressure"].problem == OK)):
-        missing = np.bincount(gid, weights=needed & (unit < 0), minlength=n_groups) > 0
+
+def _unit_and_count_checks(found: Findings, rows: Rows, number, unit: _RowUnits, gid,
+                           n_groups: int, limits: Limits) -> tuple[np.ndarray, np.ndarray]:
+    """Record missing units (one per quantity and isotherm: a JSON isotherm's own, else
+    the batch's), a partial loading_sigma and too many points; return the points and
+    the points with a sigma per isotherm."""
+    n = rows.n_rows
+    for quantity, index, needed in (
+            ("pressure", unit.pressure, np.ones(n, dtype=bool)),
+            ("loading", unit.loading, np.ones(n, dtype=bool)),
+            ("saturation_pressure", unit.saturation_pressure,
+             number["saturation_pressure"].problem == OK)):
+        missing = np.bincount(gid, weights=needed & (index < 0), minlength=n_groups) > 0
         found.groups_where(missing, quantity, "missing_unit",
                            lambda g, q=quantity: missing_unit(q, rows.field_name(q, g)))
 
@@ -187,8 +271,14 @@ def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limi
                        lambda g: "loading_sigma is given for some points but not all")
     found.groups_where(counts > limits.max_points_per_isotherm, None, "too_many_points",
                        lambda g: f"{counts[g]} points, limit {limits.max_points_per_isotherm}")
+    return counts, n_sigma
 
-    # saturation pressure: given, else from the property table
+
+def _saturation_pressures(found: Findings, number, group_value, table: list, ads, unit: _RowUnits,
+                          gid, n_groups: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per isotherm: the saturation pressure in Pa (given, else from the property table;
+    nan if neither), whether its pressures are relative, and its adsorbate's index
+    (-1: none); a relative isotherm without one is ``missing_saturation_pressure``."""
     temperature_g = group_value["temperature_k"]
     ads_index_g = np.full(n_groups, -1, dtype=np.int64)
     low, _ = group_range(ads.astype(float), ads >= 0, gid, n_groups)
@@ -197,75 +287,77 @@ def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limi
     for g in np.flatnonzero(np.isnan(p0_g) & (ads_index_g >= 0) & np.isfinite(temperature_g)):
         computed = adsorbates.relative_pressure_p0_pa(table[ads_index_g[g]], temperature_g[g])
         p0_g[g] = np.nan if computed is None else computed
-    relative_g = group_range(is_relative.astype(float), p_unit >= 0, gid, n_groups)[1] == 1.0
+    relative_g = group_range(unit.is_relative.astype(float), unit.pressure >= 0, gid,
+                             n_groups)[1] == 1.0
     p0_sent_g = np.bincount(gid, weights=number["saturation_pressure"].problem == OK,
                             minlength=n_groups) > 0   # sent without a usable unit: reported above
     found.groups_where(relative_g & np.isnan(p0_g) & ~p0_sent_g & (ads_index_g >= 0)
                        & np.isfinite(temperature_g),
                        "saturation_pressure", "missing_saturation_pressure",
                        lambda g: missing_p0(table[ads_index_g[g]], temperature_g[g],
-                                             adsorbates.lookup(table[ads_index_g[g]].id) is None))
+                                            adsorbates.lookup(table[ads_index_g[g]].id) is None))
+    return p0_g, relative_g, ads_index_g
+
+
+def _sample_mass_check(found: Findings, number, group_value, unit: _RowUnits, gid,
+                       n_groups: int) -> None:
+    """An isotherm whose loading (or sigma) is an absolute amount needs a sample mass."""
+    sigma_given = number["loading_sigma"].problem == OK
     absolute_g = np.zeros(n_groups, dtype=bool)
-    for index, unit_name in enumerate(l_table):
+    for index, unit_name in enumerate(unit.loading_units):
         if not units.LOADING_UNIT_TABLE[unit_name].per_kg_sorbent:
-            absolute_g[np.unique(gid[(l_unit == index) | (sigma_given & (sigma_unit == index))])] = True
-    mass_g = group_value["sample_mass_g"]
-    found.groups_where(absolute_g & np.isnan(mass_g), "sample_mass_g", "missing_sample_mass",
+            absolute_g[np.unique(gid[(unit.loading == index)
+                                     | (sigma_given & (unit.loading_sigma == index))])] = True
+    found.groups_where(absolute_g & np.isnan(group_value["sample_mass_g"]), "sample_mass_g",
+                       "missing_sample_mass",
                        lambda g: "the loading unit is an absolute amount; 'sample_mass_g' is needed "
                                  "to express it per mass of sorbent")
 
-    # canonical values per row
+
+def _canonical_points(found: Findings, number, unit: _RowUnits, p0_g, molar_mass, group_value,
+                      gid, n_groups: int) -> Points:
+    """Every point in Pa and mol/kg, sorted per isotherm by pressure, after recording
+    the values above their physical bounds (``out_of_range``)."""
+    mass_g = group_value["sample_mass_g"]
+    l_table = unit.loading_units
     with np.errstate(all="ignore"):
-        pressure_pa = number["pressure"].value * np.where(is_relative, p0_g[gid], pa_per_unit)
-        loading = number["loading"].value * loading_factor(l_unit, l_table, molar_mass, mass_g[gid])
-        sigma = number["loading_sigma"].value * loading_factor(sigma_unit, l_table, molar_mass,
-                                                                mass_g[gid])
-    unit_names = {"pressure": (np.array(p_table + [""]), p_unit),
-                  "saturation_pressure": (np.array(p_table + [""]), p0_unit),
-                  "loading": (np.array(l_table + [""]), l_unit),
-                  "loading_sigma": (np.array(l_table + [""]), sigma_unit)}
+        pressure_pa = number["pressure"].value * np.where(unit.is_relative, p0_g[gid],
+                                                          unit.pa_per_unit)
+        loading = number["loading"].value * loading_factor(unit.loading, l_table, molar_mass,
+                                                           mass_g[gid])
+        sigma = number["loading_sigma"].value * loading_factor(unit.loading_sigma, l_table,
+                                                               molar_mass, mass_g[gid])
+    unit_names = {"pressure": (unit.pressure_units, unit.pressure),
+                  "saturation_pressure": (unit.pressure_units, unit.saturation_pressure),
+                  "loading": (l_table, unit.loading),
+                  "loading_sigma": (l_table, unit.loading_sigma)}
     range_checks(found, number, unit_names, {
         "temperature_k": (number["temperature_k"].value, "K", units.MAX_TEMPERATURE_K),
         "pressure": (pressure_pa, "Pa", units.MAX_PRESSURE_PA),
-        "saturation_pressure": (p0_row, "Pa", units.MAX_PRESSURE_PA),
+        "saturation_pressure": (unit.p0_row, "Pa", units.MAX_PRESSURE_PA),
         "loading": (loading, "mol/kg", units.MAX_LOADING_MOL_PER_KG),
         "loading_sigma": (sigma, "mol/kg", units.MAX_LOADING_MOL_PER_KG),
         "surface_area_m2_per_g": (number["surface_area_m2_per_g"].value, "m2/g",
                                   units.MAX_SURFACE_AREA_M2_PER_G)})
+    return sorted_points(gid, n_groups, pressure_pa, loading, sigma)
 
-    points = sorted_points(gid, n_groups, pressure_pa, loading, sigma)
-    found.groups_where(~found.bad_groups() & (points.n_distinct < 3), None, "too_few_points",
-                       lambda g: f"{points.n_distinct[g]} distinct pressure(s); at least 3 "
-                                 "are needed")
-    found.groups_where(duplicate_ids(text, gid, n_groups, rows.group is not None), "isotherm_id",
-                       "duplicate_isotherm_id", lambda g: "an earlier isotherm has the same isotherm_id")
 
-    batch = Batch(label=label)
-    batch.rejected = issue_list(found, names, label)
-    accepted = np.flatnonzero(~found.bad_groups())
-    if accepted.size == 0:
-        return batch
-    build = Accepted(
-        rows=rows, text=text, number=number, label=label, points=points,
-        input_order=np.argsort(gid, kind="stable"),
-        input_start=np.concatenate([[0], np.cumsum(counts)]),
-        has_sigma=n_sigma > 0, adsorbate=[table[i] if i >= 0 else None for i in ads_index_g],
-        group_value=group_value, p0_pa=p0_g, relative_input=relative_g,
-        non_monotonic=non_monotonic_groups(points, n_groups))
+def _add_accepted(batch: Batch, build: Accepted, accepted: np.ndarray, names: GroupNames,
+                  label: str) -> None:
+    """Append one Isotherm per accepted group; one that cannot be built, or whose derived
+    id repeats an earlier one, is rejected instead."""
     seen_ids: set[str] = set()
     for g in accepted:
         try:
             iso = build.isotherm(int(g))
         except Exception as exc:  # noqa: BLE001 - one isotherm's bug must not sink the batch
             batch.rejected.append(issue(label, names[g], None, None, "internal_error",
-                                         f"could not be built ({type(exc).__name__}: {short(exc)})"))
+                                        f"could not be built ({type(exc).__name__}: {short(exc)})"))
             continue
         if iso.isotherm_id in seen_ids:
             batch.rejected.append(issue(label, iso.isotherm_id, None, "isotherm_id",
-                                         "duplicate_isotherm_id",
-                                         "an earlier isotherm has the same content and derived id"))
+                                        "duplicate_isotherm_id",
+                                        "an earlier isotherm has the same content and derived id"))
             continue
         seen_ids.add(iso.isotherm_id)
         batch.isotherms.append(iso)
-    return batch
-

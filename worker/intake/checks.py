@@ -17,6 +17,7 @@ from .rows import (
     OK,
     UNITS_HINT,
     Rows,
+    per_row,
 )
 from .source import character_problem, id_problem
 
@@ -33,7 +34,7 @@ def range_checks(found: Findings, number: dict, unit_names: dict, canonical: dic
 
         def detail(i, sent=sent, converted=converted, canon=canon, bound=bound, table=table,
                    unit_index=unit_index):
-            unit = canon if table is None else str(table[unit_index[i]])
+            unit = canon if table is None else (table[unit_index[i]] if unit_index[i] >= 0 else "")
             given = f"{sent.value[i]:g} {unit}"
             if unit == canon:
                 return f"{given} is above the limit {bound:g} {canon}"
@@ -105,24 +106,28 @@ def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relati
     for name in ("sorbent_id", "isotherm_id"):
         column = text[name]
         problems = [id_problem(v) for v in column.values]
-        bad_value = np.array([p is not None for p in problems] + [False] * 3)
-        found.rows_where(bad_value[column.codes], name, "invalid_id",
+        bad_value = per_row(column.codes, [p is not None for p in problems], False, bool)
+        found.rows_where(bad_value, name, "invalid_id",
                          lambda i, c=column, p=problems, n=name:
                          f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
     bad_text = {}
     for name in ("adsorbate", "branch"):
         column = text[name]
         problems = [character_problem(v, format_characters=False) for v in column.values]
-        bad_text[name] = np.array([p is not None for p in problems] + [False] * 3)[column.codes]
+        bad_text[name] = per_row(column.codes, [p is not None for p in problems], False, bool)
         found.rows_where(bad_text[name], name, "invalid_text",
                          lambda i, c=column, p=problems, n=name:
                          f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
     adsorbate = text["adsorbate"]
-    found.rows_where((ads == -1) & ~bad_text["adsorbate"], "adsorbate", "unknown_adsorbate",
+    found.rows_where((ads == UNKNOWN_ADSORBATE) & ~bad_text["adsorbate"], "adsorbate", "unknown_adsorbate",
                      lambda i: unknown_adsorbate(adsorbate.values[adsorbate.codes[i]]), once=True)
     found.rows_where((branch == -1) & ~bad_text["branch"], "branch", "unknown_branch",
                      lambda i: f"branch {short(text['branch'].values[text['branch'].codes[i]])!r} "
                                f"is not one of {', '.join(BRANCHES)}", once=True)
+
+
+# per-row adsorbate index: a name that is not a known gas; no name at all
+UNKNOWN_ADSORBATE, NO_ADSORBATE = -1, -2
 
 
 def lookup_adsorbate(name: str, declared: list):

@@ -7,7 +7,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from .rows import BLANK, BRANCHES, OK, Rows, Text
+from .rows import BLANK, BRANCHES, OK, Rows, Text, per_row
 
 
 def group_range(values: np.ndarray, given: np.ndarray, gid: np.ndarray, n_groups: int):
@@ -46,9 +46,8 @@ def grouping(rows: Rows, branch_key: np.ndarray) -> tuple[np.ndarray, int]:
 def branch_codes(column: Text) -> tuple[np.ndarray, np.ndarray]:
     """Per row: index into BRANCHES (blank means adsorption, -1 unknown) and the
     grouping key (unknown values keep a key of their own)."""
-    branch_of_value = np.array([BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
-                                for v in column.values] + [0, 0, 0], dtype=np.int64)
-    branch = branch_of_value[column.codes]
+    branch = per_row(column.codes, [BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
+                                    for v in column.values], 0, np.int64)
     return branch, np.where(branch >= 0, branch, 2 + column.codes)
 
 

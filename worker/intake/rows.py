@@ -113,8 +113,15 @@ NON_MONOTONIC_SIGMAS = 3.0
 OK, MISSING, NOT_NUMBER, NOT_FINITE = 0, 1, 2, 3
 
 
-# text codes below zero
+# text codes below zero: the row has no usable value (module docstring)
 BLANK, WRONG_TYPE = -1, -3
+
+
+def per_row(codes: np.ndarray, per_value, missing, dtype) -> np.ndarray:
+    """Per row: ``per_value[code]``, and ``missing`` where the code is negative (no value:
+    ``BLANK``, ``WRONG_TYPE``, or -1 for "none" in an index array)."""
+    table = np.append(np.asarray(per_value, dtype=dtype), np.asarray(missing, dtype=dtype))
+    return table[np.where(codes >= 0, codes, table.size - 1)]
 
 
 @dataclass
