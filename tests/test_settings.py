@@ -71,7 +71,7 @@ def test_good_settings_are_equal_in_the_api_and_the_celery_app(env, tmp_path):
 
 
 def test_documented_defaults():
-    # README "Configuration" table: 1500, 1800, 2; reconcile every 60 s
+    # docs/operations.md "Configuration": 1500, 1800, 2; reconcile every 60 s
     settings = load_settings({})
     assert (settings.task_soft_limit_s, settings.task_hard_limit_s, settings.task_max_retries,
             settings.reconcile_interval_s) == (1500, 1800, 2, 60)

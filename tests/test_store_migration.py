@@ -180,7 +180,7 @@ def test_migration_rewrites_a_version_1_store_and_a_second_run_does_nothing(stor
 
 def test_a_store_named_by_a_uri_migrates_through_pyarrow_fs(stores, capsys):
     # every file operation of the migration goes through the store's
-    # pyarrow.fs filesystem, as the store's own do (README "Storage URIs")
+    # pyarrow.fs filesystem, as the store's own do (docs/operations.md, "Storage URIs")
     original, root, batch_ids = stores
     code, out, err = migrate(f"file://{root}", capsys)
     assert code == 0 and "removed materials/" in out, err

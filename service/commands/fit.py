@@ -28,7 +28,7 @@ the model with the lowest information criterion. When another model is within
 wins. Screening figures (saturation capacity, Henry constant, loadings,
 working capacity, BET area, ...) come from the selected model.
 
-Input: CSV, JSON or Parquet files as described in the README (one row per
+Input: CSV, JSON or Parquet files as described in docs/formats.md (one row per
 point: sorbent_id, adsorbate, temperature_k and pressure, loading columns
 whose names carry their units, e.g. pressure_kpa, loading_mmol_per_g; or
 plain pressure, loading columns with the units declared by --units, by
