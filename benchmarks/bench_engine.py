@@ -13,8 +13,8 @@ plus 0.5 % multiplicative). What is fitted:
 Sides, all in this one process (one core each):
 
 * engine:    sorbrank.worker.engine.fit_model on all isotherms of a model at once;
-* reference: optional (--reference-engine), another engine.py -- e.g. the
-             last commit's, ``--reference-engine HEAD`` -- timed interleaved
+* reference: optional (--reference-engine), another engine (an engine.py, an
+             engine package folder, or a git revision's) -- e.g. the last commit's, ``--reference-engine HEAD`` -- timed interleaved
              with the current one on the same data (before/after);
 * baseline:  scipy.optimize.curve_fit (trf, same bounds, same analytic
              Jacobian) per isotherm, started from the same seeds
@@ -32,6 +32,7 @@ isotherms where engine SSE <= baseline SSE * (1 + 1e-6). Medians over
 from __future__ import annotations
 
 import argparse
+import functools
 import importlib.util
 import statistics
 import subprocess
@@ -93,21 +94,64 @@ def make_isotherms(n: int, seed: int) -> dict[str, list[Isotherm]]:
 
 
 def load_reference_engine(spec: str):
-    """Another engine.py as module ``sorbrank.worker._reference_engine`` (it then uses
-    the current models). ``spec`` is a file path or a git revision."""
+    """Another engine as module ``sorbrank.worker._reference_engine`` (it then uses
+    the current models). ``spec`` is a path -- an engine.py file or an engine
+    package folder -- or a git revision (its worker/engine.py if it has one,
+    else its worker/engine/ package)."""
     path = Path(spec)
-    if not path.is_file():
-        text = subprocess.run(["git", "show", f"{spec}:worker/engine.py"], cwd=ROOT, check=True,
-                              capture_output=True, text=True).stdout
-        tmp = tempfile.NamedTemporaryFile("w", suffix="_engine.py", delete=False)
-        tmp.write(text)
-        tmp.close()
-        path = Path(tmp.name)
-    module_spec = importlib.util.spec_from_file_location("sorbrank.worker._reference_engine", path)
+    if not path.exists():
+        path = _engine_at_revision(spec)
+    name = "sorbrank.worker._reference_engine"
+    if path.is_dir():
+        module_spec = importlib.util.spec_from_file_location(name, path / "__init__.py",
+                                                             submodule_search_locations=[str(path)])
+    else:
+        module_spec = importlib.util.spec_from_file_location(name, path)
     module = importlib.util.module_from_spec(module_spec)
     sys.modules[module_spec.name] = module
     module_spec.loader.exec_module(module)
+    if not hasattr(module, "SolverOptions"):
+        _adapt_pre_options(module)
     return module
+
+
+def _engine_at_revision(rev: str) -> Path:
+    """The engine of git revision ``rev`` written to a temporary file or folder."""
+    git = lambda *a: subprocess.run(["git", *a], cwd=ROOT, check=True, capture_output=True,  # noqa: E731
+                                    text=True).stdout
+    listed = git("ls-tree", "-r", "--name-only", rev, "worker/engine.py", "worker/engine/").split()
+    if "worker/engine.py" in listed:
+        tmp = tempfile.NamedTemporaryFile("w", suffix="_engine.py", delete=False)
+        tmp.write(git("show", f"{rev}:worker/engine.py"))
+        tmp.close()
+        return Path(tmp.name)
+    folder = Path(tempfile.mkdtemp(suffix="_engine"))
+    for name in listed:
+        if name.endswith(".py"):
+            (folder / Path(name).name).write_text(git("show", f"{rev}:{name}"))
+    if not (folder / "__init__.py").exists():
+        raise SystemExit(f"revision {rev} has neither worker/engine.py nor worker/engine/")
+    return folder
+
+
+def _adapt_pre_options(module) -> None:
+    """An engine from before SolverOptions keeps its tolerances as module
+    constants; give it the interface the pipeline calls (options accepted,
+    the defaults only), so ``bench_scale.py --engine`` can run it."""
+    from sorbrank.worker.engine import SolverOptions
+
+    fit_models = module.fit_models
+
+    def fit_models_with_options(packed, models="all", weighting="uniform", absolute_sigma=False,
+                                options=None):
+        if options not in (None, SolverOptions()):
+            raise ValueError("this reference engine takes no SolverOptions")
+        return fit_models(packed, models, weighting, absolute_sigma)
+
+    module.SolverOptions = SolverOptions
+    module.fit_models = fit_models_with_options
+    if not hasattr(module, "sigma_mol_per_kg"):
+        module.sigma_mol_per_kg = module._sigma_mol_per_kg
 
 
 def jobs_for(groups, which: str) -> list[tuple[str, list[Isotherm]]]:
@@ -207,16 +251,16 @@ def main(argv=None) -> int:
     ap.add_argument("--models", choices=("generating", "all"), default="generating",
                     help="fit each isotherm with its generating model, or with every model")
     ap.add_argument("--reference-engine", metavar="FILE|REV", default=None,
-                    help="also time this engine.py (a path, or a git revision such as HEAD)")
+                    help="also time this engine (an engine.py or engine/ folder, or a git revision such as HEAD)")
     ap.add_argument("--block", type=int, default=None,
-                    help=f"engine working-set rows (default {engine.ROW_BLOCK})")
+                    help=f"engine working-set rows (default {engine.SolverOptions().row_block})")
     ap.add_argument("--clock", choices=tuple(CLOCKS), default="wall",
                     help="wall time, or this process's CPU time (steadier on a shared, loaded machine)")
     args = ap.parse_args(argv)
     global clock
     clock = CLOCKS[args.clock]
-    if args.block:
-        engine.ROW_BLOCK = args.block
+    solver = engine.SolverOptions(row_block=args.block) if args.block else engine.SolverOptions()
+    fit_current = functools.partial(engine.fit_model, options=solver)
 
     groups = make_isotherms(args.n, args.seed)
     jobs = jobs_for(groups, args.models)
@@ -231,7 +275,7 @@ def main(argv=None) -> int:
 
     cur_runs, ref_runs = [], []
     for _ in range(max(args.repeats, 1)):  # interleaved, so drift in machine load hits both
-        times, sse, conv, cur_fits = time_engine(engine.fit_model, jobs, packed)
+        times, sse, conv, cur_fits = time_engine(fit_current, jobs, packed)
         cur_runs.append(times)
         if reference is not None:
             ref_times, ref_sse, ref_conv, ref_fits = time_engine(reference.fit_model, jobs, packed)
@@ -256,7 +300,7 @@ def main(argv=None) -> int:
     print(f"clock    : {args.clock} time")
     print(f"engine   : median {statistics.median(totals):.3f} s over {len(totals)} run(s) "
           f"[{', '.join(f'{t:.3f}' for t in totals)}] -> {engine_rate:,.0f} fits/s, "
-          f"converged {converged.mean():.2%} (row block {engine.ROW_BLOCK})")
+          f"converged {converged.mean():.2%} (row block {solver.row_block})")
     if reference is not None:
         ref_totals = [sum(r) for r in ref_runs]
         print(f"reference: {args.reference_engine}: median {statistics.median(ref_totals):.3f} s "

@@ -21,7 +21,7 @@
 3. Resumable: a chunk whose input file exists is not generated again, a
    chunk whose summary file exists is not fitted again (--fresh starts over).
 
-``--engine FILE|REV`` fits with another engine.py (e.g. ``HEAD``, the last
+``--engine FILE|REV`` fits with another engine (e.g. ``HEAD``, the last
 commit's) for a before/after on the same machine; use a separate --dir (or
 --fresh) for each engine, since finished chunks are not fitted again.
 
@@ -208,7 +208,7 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=20260512)
     ap.add_argument("--fresh", action="store_true", help="delete the working directory first")
     ap.add_argument("--engine", metavar="FILE|REV", default=None,
-                    help="fit with this engine.py instead (a path, or a git revision such as HEAD)")
+                    help="fit with this engine instead (an engine.py or engine/ folder, or a git revision such as HEAD)")
     args = ap.parse_args(argv)
     if args.engine:
         # installed before the worker processes fork, so their pipeline imports it
@@ -241,7 +241,7 @@ def main(argv=None) -> int:
     n_iso = sum(s["isotherms"] for s in done)
     n_fits = sum(s["fits"] for s in done)
     print(f"scale run: {args.n} isotherms x {N_POINTS} points in {len(jobs)} chunk(s) of <= {chunk}, "
-          f"{args.workers} worker process(es), directory {work}, engine {args.engine or 'worker/engine.py'}")
+          f"{args.workers} worker process(es), directory {work}, engine {args.engine or 'worker/engine/'}")
     print(f"generate : {t_gen:.2f} s ({generated} isotherms written, {args.n - generated} reused)")
     print(f"fit      : {t_fit:.2f} s for {n_iso} isotherms in {len(done)} chunk(s) "
           f"({len(stats) - len(done)} chunk(s) already done); rejected at intake "

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from sorbrank.worker.engine import fit_model, fit_models
+from sorbrank.worker.engine import SolverOptions, fit_model, fit_models
 from sorbrank.worker.isotherm import Isotherm
 from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.packing import pack
@@ -274,13 +274,13 @@ def test_a_model_that_crashes_is_reported_not_raised():
 def _solver_rows(model, packed):
     """The engine's per-isotherm solver outcome, including iterations used
     (not part of ModelFits): (params, status, iterations, drift)."""
-    import sorbrank.worker.engine as engine
+    from sorbrank.worker.engine.lm import fit_rows
+    from sorbrank.worker.engine.weights import canonical_width, last_real
 
     x = packed.relative_pressure if model.relative_pressure else packed.pressure_pa
-    xs, qs, ws, ms = engine._canonical_width(x, packed.loading_mol_per_kg,
-                                             packed.mask.astype(float), packed.mask)
-    xs = np.where(ms, xs, engine._last_real(xs, ms))
-    return engine._fit_rows(model, xs, qs, ws, ms, packed.temperature_k[:, None], engine.MAX_ITER)
+    xs, qs, ws, ms = canonical_width(x, packed.loading_mol_per_kg, packed.mask.astype(float), packed.mask)
+    xs = np.where(ms, xs, last_real(xs, ms))
+    return fit_rows(model, xs, qs, ws, ms, packed.temperature_k[:, None], SolverOptions())
 
 
 @pytest.mark.parametrize("model_id, truth_id, limit", [
@@ -293,7 +293,7 @@ def test_a_fit_running_off_to_its_limit_model_stops_early_as_drift(model_id, tru
     """Truth-known: exact data of the limit model (noise-free, invented) have no
     best fit at finite parameters; the solver must say so, early, and name the
     parameters and the bounds they run to."""
-    import sorbrank.worker.engine as engine
+    from sorbrank.worker.engine.status import DRIFTING
 
     truth, p = TRUTH[truth_id]
     q = true_loading(CATALOGUE[truth_id], truth, p)
@@ -309,10 +309,10 @@ def test_a_fit_running_off_to_its_limit_model_stops_early_as_drift(model_id, tru
     from sorbrank.worker.selection import exclusion_reasons
     assert exclusion_reasons(fits)[0] == "not converged: " + reason
     _, status, iterations, _ = _solver_rows(model, packed)
-    assert status[0] == engine._DRIFTING
+    assert status[0] == DRIFTING
     # stopped by the proof, not by the cap: without drift detection this row
-    # iterates until MAX_ITER
-    assert iterations[0] < engine.MAX_ITER, iterations
+    # iterates until max_iter
+    assert iterations[0] < SolverOptions().max_iter, iterations
 
 
 def test_drift_detection_leaves_fits_with_an_interior_minimum_alone():
@@ -323,13 +323,11 @@ def test_drift_detection_leaves_fits_with_an_interior_minimum_alone():
         assert not any(r.startswith("parameter drifting") for r in fits.reason), (model_id, fits.reason)
 
 
-def test_a_rows_result_does_not_depend_on_its_company(monkeypatch):
+def test_a_rows_result_does_not_depend_on_its_company():
     """Same row, different company: a drifting row and a converging row give
     the same bits alone and inside a batch of strangers (other lengths, other
     drifting rows), also when a small working set makes them enter the solver
     at different times."""
-    import sorbrank.worker.engine as engine
-
     f_truth, p = TRUTH["freundlich"]
     freundlich_q = true_loading(CATALOGUE["freundlich"], f_truth, p)
     s_truth, ps = TRUTH["sips"]
@@ -349,10 +347,9 @@ def test_a_rows_result_does_not_depend_on_its_company(monkeypatch):
     assert alone["drift"]["reason"].startswith("parameter drifting to bound")
     assert alone["normal"]["converged"]
     for block in (None, 5):
-        if block:
-            monkeypatch.setattr(engine, "ROW_BLOCK", block)
+        options = SolverOptions(row_block=block) if block else None
         batch = strangers[:3] + [drifting] + strangers[3:6] + [normal] + strangers[6:]
-        fits = fit_model(model, pack(batch))
+        fits = fit_model(model, pack(batch), options=options)
         for iso_id, idx in (("drift", 3), ("normal", 7)):
             got = rows_of(fits, idx)
             for f in fields:
@@ -364,6 +361,22 @@ def test_a_rows_result_does_not_depend_on_its_company(monkeypatch):
                     assert np.array_equal(a, b), (iso_id, f, block, a, b)
 
 
+def _count_solver_iterations(monkeypatch) -> list[int]:
+    """A list that gets, per solver run, the iterations of every seed row (the
+    solver wrapped to count them; it computes as before)."""
+    from sorbrank.worker.engine import lm
+
+    solver, spent = lm.levenberg_marquardt, []
+
+    def counting_solver(*args, **kwargs):
+        out = solver(*args, **kwargs)
+        spent.append(int(out[3].sum()))
+        return out
+
+    monkeypatch.setattr(lm, "levenberg_marquardt", counting_solver)
+    return spent
+
+
 def _misfit_batch():
     """Noisy data of four generating models (invented, truth-known), to be
     fitted by models that mostly did not generate them: the workload where an
@@ -373,22 +386,11 @@ def _misfit_batch():
 
 @pytest.mark.parametrize("model_id", ["langmuir", "dual_site_langmuir", "sips", "toth", "redlich_peterson"])
 def test_merging_seeds_changes_no_fit_and_saves_iterations(monkeypatch, model_id):
-    import sorbrank.worker.engine as engine
-
     model, packed = CATALOGUE[model_id], pack(_misfit_batch())
-    solver = engine._levenberg_marquardt
-    spent = []
-
-    def counting_solver(*args, **kwargs):
-        out = solver(*args, **kwargs)
-        spent.append(int(out[3].sum()))   # iterations of every seed row
-        return out
-
-    monkeypatch.setattr(engine, "_levenberg_marquardt", counting_solver)
+    spent = _count_solver_iterations(monkeypatch)
     runs = {}
     for merge in (False, True):
-        monkeypatch.setattr(engine, "MERGE_SEEDS", merge)
-        fits = fit_model(model, packed)
+        fits = fit_model(model, packed, options=SolverOptions(merge_seeds=merge))
         runs[merge] = fits, spent[-1]
     (plain, plain_iter), (merged, merged_iter) = runs[False], runs[True]
     assert np.array_equal(plain.converged, merged.converged)
@@ -405,7 +407,8 @@ def test_merged_seeds_stops_only_the_worse_of_two_seeds_at_one_minimum():
     """Hand-built working set: two seeds of one isotherm in the quadratic regime
     near the same minimum (the lower SSE survives), and a third row of another
     isotherm that is just as close but is no sibling (never merged)."""
-    import sorbrank.worker.engine as engine
+    from sorbrank.worker.engine.seeds import merged_seeds
+    from sorbrank.worker.engine.status import RUNNING
 
     k = 2
     a_one = np.eye(k)[:, :, None] * np.ones(3)           # normal matrix: identity
@@ -415,16 +418,16 @@ def test_merged_seeds_stops_only_the_worse_of_two_seeds_at_one_minimum():
     src = np.array([0, 0, 1])
     rid = np.arange(3)
     pos = np.arange(3)
-    st = np.full(3, engine._RUNNING)
+    st = np.full(3, RUNNING)
     near = np.ones(3, dtype=bool)
-    kill = engine._merged_seeds(rid, src, 2, pos, st, near, theta, sse, a_one, pred,
-                                theta.T.copy(), sse.copy(), st.copy())
+    kill = merged_seeds(rid, src, 2, pos, st, near, theta, sse, a_one, pred,
+                        theta.T.copy(), sse.copy(), st.copy())
     assert kill.tolist() == [False, True, False]
     # far apart in the A-norm (a different minimum): nobody stops
     theta_far = theta.copy()
     theta_far[0, 1] += 1.0
-    kill = engine._merged_seeds(rid, src, 2, pos, st, near, theta_far, sse, a_one, pred,
-                                theta_far.T.copy(), sse.copy(), st.copy())
+    kill = merged_seeds(rid, src, 2, pos, st, near, theta_far, sse, a_one, pred,
+                        theta_far.T.copy(), sse.copy(), st.copy())
     assert not kill.any()
 
 
@@ -440,8 +443,6 @@ def test_best_scale_projection_finds_fits_at_least_as_good_in_fewer_iterations(m
     the same minima: on truth-known misfit data (invented) every fit that
     converged without it converges with it, to an SSE as low, and the solver
     spends fewer iterations in all."""
-    import sorbrank.worker.engine as engine
-
     model = CATALOGUE[model_id]
     batch = _misfit_batch()
     if model.relative_pressure:
@@ -449,19 +450,10 @@ def test_best_scale_projection_finds_fits_at_least_as_good_in_fewer_iterations(m
                           i.loading_mol_per_kg, saturation_pressure_pa=1.5 * float(np.max(i.pressure_pa)))
                  for i in batch]
     packed = pack(batch)
-    solver = engine._levenberg_marquardt
-    spent = []
-
-    def counting_solver(*args, **kwargs):
-        out = solver(*args, **kwargs)
-        spent.append(int(out[3].sum()))
-        return out
-
-    monkeypatch.setattr(engine, "_levenberg_marquardt", counting_solver)
+    spent = _count_solver_iterations(monkeypatch)
     runs = {}
     for project in (False, True):
-        monkeypatch.setattr(engine, "PROJECT_SCALE", project)
-        runs[project] = fit_model(model, packed), spent[-1]
+        runs[project] = fit_model(model, packed, options=SolverOptions(project_scale=project)), spent[-1]
     (plain, plain_iter), (proj, proj_iter) = runs[False], runs[True]
     assert proj.converged[plain.converged].all(), [r for r in proj.reason[plain.converged & ~proj.converged]]
     both = plain.converged & proj.converged

@@ -19,7 +19,6 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import pytest
 
 from sorbrank.worker.engine import fit_model
 from sorbrank.worker.isotherm import Isotherm
@@ -72,7 +71,6 @@ def test_misra1d_in_a_batch_of_strangers_is_unchanged():
     check_against_certified(fits.params[2], fits.stderr[2], fits.sse[2])
 
 
-@pytest.mark.skipif(not (REPO / "worker" / "intake.py").exists(), reason="intake not landed yet")
 def test_misra1d_through_the_command_line(tmp_path):
     path = tmp_path / "misra1d.csv"
     with path.open("w", newline="") as fh:

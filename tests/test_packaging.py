@@ -71,7 +71,7 @@ def test_the_wheel_holds_one_import_name_and_exactly_the_source_tree(wheel):
     # page templates and styles are among them (package data, not only .py files)
     assert any(n.startswith("sorbrank/service/web/templates/") for n in in_wheel)
     assert any(n.startswith("sorbrank/service/web/static/") for n in in_wheel)
-    for name in ("sorbrank/service/cli.py", "sorbrank/worker/engine.py", "sorbrank/__init__.py"):
+    for name in ("sorbrank/service/cli.py", "sorbrank/worker/engine/lm.py", "sorbrank/__init__.py"):
         assert zipfile.ZipFile(wheel).read(name) == expected[name].read_bytes()
     entry_points = zipfile.ZipFile(wheel).read(f"{dist_info}/entry_points.txt").decode()
     assert "sorbrank = sorbrank.service.cli:main" in entry_points

@@ -17,7 +17,7 @@ from typing import Callable
 import numpy as np
 import pyarrow as pa
 
-from .engine import check_weighting, fit_models, resolve_models
+from .engine import SolverOptions, check_weighting, fit_models, resolve_models
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch
 from .packing import Packed, pack
 from .results import ModelFits, Selection
@@ -39,12 +39,16 @@ class FitOptions:
     # with weighting "sigma": the sigma is calibrated, so the covariance is not
     # rescaled by the residual variance and a chi-square test is reported
     absolute_sigma: bool = False
+    # the fit engine's tolerances and switches; every caller keeps the defaults
+    solver: SolverOptions = field(default_factory=SolverOptions)
 
     def __post_init__(self):
         if self.criterion not in CRITERIA:
             raise ValueError(f"criterion must be one of {', '.join(CRITERIA)}; got {self.criterion!r}")
         if not isinstance(self.absolute_sigma, bool):
             raise ValueError(f"absolute_sigma must be true or false; got {self.absolute_sigma!r}")
+        if not isinstance(self.solver, SolverOptions):
+            raise ValueError(f"solver must be SolverOptions; got {type(self.solver).__name__}")
         check_weighting(self.weighting, self.absolute_sigma)
         try:
             chosen = resolve_models(self.models)
@@ -263,7 +267,7 @@ def process_isotherms_parallel(batch: Batch, options: FitOptions | None = None, 
 
 def fit_and_select(packed: Packed, options: FitOptions) -> tuple[dict[str, ModelFits], Selection]:
     """Fit the chosen models to ``packed`` and select per isotherm."""
-    fits = fit_models(packed, options.model_ids, options.weighting, options.absolute_sigma)
+    fits = fit_models(packed, options.model_ids, options.weighting, options.absolute_sigma, options.solver)
     return fits, select(fits, options.criterion, packed)
 
 

@@ -27,7 +27,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import fdtrc, gammaln, ndtr
 
-from ..engine import _sigma_mol_per_kg
+from ..engine import sigma_mol_per_kg
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import add_flag, selected_groups, selected_loading
@@ -44,7 +44,7 @@ def fit_quality_columns(packed: Packed, fits: dict[str, ModelFits], selection: S
     mask = packed.mask
     q = packed.loading_mol_per_kg
     with np.errstate(all="ignore"):
-        weight = np.where(mask, 1.0 / _sigma_mol_per_kg(packed, weighting) ** 2, 0.0)
+        weight = np.where(mask, 1.0 / sigma_mol_per_kg(packed, weighting) ** 2, 0.0)
     weight = np.where(np.isfinite(weight), weight, 0.0)
     block, n_blocks = _pressure_blocks(packed)
     flat = block.ravel()[mask.ravel()]
