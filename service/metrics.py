@@ -113,6 +113,9 @@ class StoreCollector:
         yield GaugeMetricFamily("sorbrank_store_size_bytes",
                                 "Bytes of the store's batch files (tables, manifests, statuses)",
                                 value=sum(b.size_bytes for b in batches))
+        yield GaugeMetricFamily("sorbrank_quarantined_files",
+                                "Damaged data files moved to the store's quarantine folder",
+                                value=self.store.quarantined_count())
         if self.queue_depth is not None:
             depth = self.queue_depth()
             if depth is not None:

@@ -20,7 +20,7 @@ import pyarrow.compute as pc
 from . import fs
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, MixtureRequest
 from .pipeline import FitOptions, process_batch
-from .store import Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
+from .store import DamagedFile, Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
 
 log = logging.getLogger(__name__)
 
@@ -261,8 +261,8 @@ def execute_chunk(store: Store, batch_id: str, chunk_index: int, *,
         except Exception as exc:  # any failure is recorded, never lost
             log.exception("chunk %s of batch %s failed", chunk_index, batch_id)
             error = f"{type(exc).__name__}: {exc}"
-            if isinstance(exc, AttemptsExhausted):
-                break
+            if isinstance(exc, (AttemptsExhausted, DamagedFile)):
+                break  # running it again cannot help
     try:
         if error is not None:
             record_chunk_failure(store, batch_id, chunk_index, error)
@@ -347,7 +347,22 @@ def batch_status(store: Store, batch_id: str) -> dict | None:
         "errors": [{"chunk": c["index"], "isotherms": c["isotherms"],
                     "message": statuses[c["index"]].get("error", "")}
                    for c, s in zip(chunks, states) if s == "failed"],
+        "damaged_chunks": _damaged_chunks(store, batch_id, statuses),
     }
+
+
+def _damaged_chunks(store: Store, batch_id: str, statuses: dict[int, dict]) -> list[dict]:
+    """The batch's quarantined files; ``repaired`` once their chunk was fitted
+    again and is done (a damaged inputs file never is)."""
+    out = []
+    for record in store.damaged_files(batch_id):
+        status = statuses.get(record["chunk"], {})
+        repaired = (record["table"] != "inputs" and status.get("state") == "done"
+                    and (status.get("finished_at") or "") > record["quarantined_at"])
+        out.append({"chunk": record["chunk"], "table": record["table"],
+                    "reason": record["reason"], "quarantined_at": record["quarantined_at"],
+                    "file": record["file"], "repaired": repaired})
+    return out
 
 
 def pending_chunks(store: Store, batch_id: str) -> list[int]:

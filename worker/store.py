@@ -7,6 +7,14 @@ Layout (``<table>`` is inputs, summaries, fits or sorbents)::
     <root>/batches/<id>/chunk-00003.json               chunk status (running/done/failed)
     <root>/batches/<id>/final.json                     written when every chunk is settled
     <root>/idempotency/<sha256 of key>.json            Idempotency-Key -> batch id
+    <root>/quarantine/<id>/<table>.chunk-00003.<UTC time>.parquet   a damaged file, moved
+    <root>/quarantine/<id>/<table>.chunk-00003.<UTC time>.json      why, and when
+
+A data file a reader cannot read whole, that lacks the schema version, or whose
+column types clash with the store's is *damaged*: the first reader to meet it
+moves it into ``quarantine/`` and logs it (``Store.quarantine``), so every other
+read goes on without it. Its chunk then reads as unfinished (results) or failed
+(inputs), never as done with fewer rows; see ``Store.quarantine``.
 
 Every write goes to a temp file whose name starts with "." (pyarrow.dataset and
 our own listings skip such names), is fsynced, then renamed over a name that
@@ -21,6 +29,7 @@ gs://, ...); every file operation goes through that ``pyarrow.fs.FileSystem``
 from __future__ import annotations
 
 import json
+import logging
 import os
 import posixpath
 import re
@@ -56,10 +65,32 @@ BATCH_ID_PATTERN = re.compile(r"^b-\d{8}-\d{6}-\d{6}-[0-9a-f]{8}$")
 _KEY_HASH_PATTERN = re.compile(r"^[0-9a-f]{64}$")
 _CHUNK_STATUS_PATTERN = re.compile(r"^chunk-[0-9]{5}\.json$")
 _PARTITIONING = ds.partitioning(pa.schema([("batch_id", pa.string())]), flavor="hive")
+_INDEX_LOCK = threading.Lock()
+
+log = logging.getLogger(__name__)
+
+
+def _short(exc: BaseException) -> str:
+    """An error's type and first line: what a quarantine record and a status show."""
+    text = str(exc).strip().splitlines()
+    return f"{type(exc).__name__}: {text[0][:300] if text else ''}".rstrip(": ")
 
 
 class StoreError(RuntimeError):
     """The store holds something this code cannot read (e.g. a newer schema)."""
+
+
+class DamagedFile(StoreError):
+    """A data file of the store is damaged (and now quarantined); running its
+    chunk again cannot help when it is the chunk's inputs."""
+
+
+# columns whose type every reader relies on; a file that stores another type is damaged
+CORE_COLUMN_TYPES = {"isotherm_id": pa.string(), "sorbent_id": pa.string(),
+                     "adsorbate": pa.string(), "temperature_k": pa.float64(),
+                     "branch": pa.string(), "model": pa.string()}
+QUARANTINE_DIR = "quarantine"
+_CHUNK_FILE_PATTERN = re.compile(r"^chunk-([0-9]{5})\.parquet$")
 
 
 def version_1_error(where: str, root: Any) -> StoreError:
@@ -248,6 +279,8 @@ class Store:
         self.root = Path(self.base) if local else os.fspath(root)
         # rankings: fragments and schema of the summaries, kept between queries
         self._summaries_index = _TableIndex("summaries")
+        self._indexes: dict[str, _TableIndex] = {}  # the other tables, made on first use
+        self._accepted: set[str] = set()  # batch ids whose manifest was seen
         # batch id -> (adsorption, desorption pressure) from its manifest, written once
         self._batch_pressures: dict[str, tuple[float, float] | None] = {}
 
@@ -294,18 +327,119 @@ class Store:
         meta[SCHEMA_VERSION_KEY] = SCHEMA_VERSION.encode()
         data = data.replace_schema_metadata(meta)
         path = self.table_path(table, batch_id, chunk_index)
-        fs.atomic_write(self.fs, str(path), lambda fh: pq.write_table(data, fh))
+        # page checksums: a flipped byte is found when the file is verified, not read as a number
+        fs.atomic_write(self.fs, str(path),
+                        lambda fh: pq.write_table(data, fh, write_page_checksum=True))
         return path
 
     def read_chunk(self, table: str, batch_id: str, chunk_index: int) -> pa.Table:
+        """One chunk file, read whole; DamagedFile (after quarantining it) when it
+        cannot be read, and when it was quarantined before."""
         path = self.table_path(table, batch_id, chunk_index)
-        data = pq.read_table(str(path), filesystem=self.fs, partitioning=None)
+        try:
+            data = pq.read_table(str(path), filesystem=self.fs, partitioning=None,
+                                 page_checksum_verification=True)
+        except FileNotFoundError:
+            earlier = [d for d in self.damaged_files(batch_id)
+                       if d["table"] == table and d["chunk"] == chunk_index]
+            if earlier:
+                raise DamagedFile(f"{table} file of chunk {chunk_index} of batch {batch_id} is "
+                                  f"damaged ({earlier[-1]['reason']}); it was moved to "
+                                  f"{earlier[-1]['file']}") from None
+            raise
+        except (OSError, pa.ArrowException) as exc:
+            if fs.out_of_space(exc):
+                raise
+            record = self.quarantine(str(path), _short(exc))
+            raise DamagedFile(f"{table} file of chunk {chunk_index} of batch {batch_id} is "
+                              f"damaged ({record['reason']}); it was moved to "
+                              f"{record['file']}") from None
         version = (data.schema.metadata or {}).get(SCHEMA_VERSION_KEY, b"?").decode()
         if version == "1":
             raise version_1_error(str(path), self.root)
         if version != SCHEMA_VERSION:
             raise StoreError(f"{path}: schema version {version}, this code reads {SCHEMA_VERSION}")
         return data
+
+    # damaged files
+    def verify_file(self, path: str, table: str) -> str | None:
+        """Why the data file ``path`` is damaged (None = it reads whole, page
+        checksums match where it has them, and its key columns have their types)."""
+        try:
+            data = pq.read_table(path, filesystem=self.fs, partitioning=None,
+                                 page_checksum_verification=True)
+        except (OSError, pa.ArrowException) as exc:
+            if fs.out_of_space(exc) or isinstance(exc, FileNotFoundError):
+                raise
+            return _short(exc)
+        if SCHEMA_VERSION_KEY not in (data.schema.metadata or {}):
+            return "no sorbrank schema version: not a file this store wrote"
+        for name, expected in CORE_COLUMN_TYPES.items():
+            if name in data.schema.names and not (
+                    data.schema.field(name).type.equals(expected)
+                    or pa.types.is_null(data.schema.field(name).type)):
+                return f"column {name!r} is {data.schema.field(name).type}, expected {expected}"
+        return None
+
+    def quarantine(self, path: str, reason: str) -> dict:
+        """Move the damaged data file ``path`` to ``quarantine/<batch id>/`` with a
+        record of why, log it, and mark its chunk: a results file's chunk reads
+        as queued again (its inputs fit it anew: the embedded watch or the Celery
+        broker watch queues it), an inputs file's chunk as failed (nothing can
+        refit it). Returns the record; another process that moved it first wins."""
+        relative = posixpath.relpath(path, self.base)
+        table, part, name = PurePosixPath(relative).parts[-3:]
+        batch_id, chunk = part.removeprefix("batch_id="), _CHUNK_FILE_PATTERN.fullmatch(name)
+        if table not in TABLES or not is_batch_id(batch_id) or chunk is None:
+            raise ValueError(f"not a chunk file of the store: {path}")
+        chunk_index = int(chunk.group(1))
+        now = utc_now()
+        stem = f"{table}.chunk-{chunk_index:05d}.{now:%Y%m%dT%H%M%S%fZ}"
+        folder = self._join(QUARANTINE_DIR, batch_id)
+        record = {"batch_id": batch_id, "table": table, "chunk": chunk_index, "reason": reason,
+                  "quarantined_at": iso_utc(now), "from": relative,
+                  "file": posixpath.join(QUARANTINE_DIR, batch_id, f"{stem}.parquet")}
+        self.fs.create_dir(str(folder), recursive=True)
+        try:
+            self.fs.move(path, str(folder / f"{stem}.parquet"))
+        except FileNotFoundError:
+            return record  # quarantined by another reader a moment ago
+        self._write_json(folder / f"{stem}.json", record)
+        log.error("quarantined damaged file %s (%s): moved to %s", relative, reason,
+                  record["file"], extra={"batch_id": batch_id, "chunk": chunk_index,
+                                         "outcome": "quarantined"})
+        self._mark_damaged_chunk(record)
+        return record
+
+    def _mark_damaged_chunk(self, record: dict) -> None:
+        batch_id, chunk_index = record["batch_id"], record["chunk"]
+        status = self.read_chunk_statuses(batch_id).get(chunk_index)
+        if status is None or status.get("state") not in ("done", "failed"):
+            return  # not settled yet: its run writes the file again
+        if record["table"] == "inputs":
+            status = {**status, "state": "failed", "done": 0,
+                      "error": f"DamagedFile: the inputs file is damaged ({record['reason']}) "
+                               f"and was moved to {record['file']}; the chunk cannot be refitted"}
+        else:
+            status = {"state": "queued", "attempts": 0, "refit_after_damage": record["file"]}
+        self.write_chunk_status(batch_id, chunk_index, status)
+        try:  # the batch is unfinished again (or settled differently): final.json is rewritten
+            self.fs.delete_file(str(self.batch_dir(batch_id) / "final.json"))
+        except FileNotFoundError:
+            pass
+
+    def damaged_files(self, batch_id: str) -> list[dict]:
+        """The quarantine records of one batch, oldest first."""
+        folder = self._join(QUARANTINE_DIR, _check_batch_id(batch_id))
+        names = sorted(i.base_name for i in fs.list_dir(self.fs, str(folder))
+                       if i.base_name.endswith(".json") and not i.base_name.startswith("."))
+        records = [self._read_json(folder / name) for name in names]
+        return sorted((r for r in records if r), key=lambda r: r["quarantined_at"])
+
+    def quarantined_count(self) -> int:
+        """Files moved to quarantine, over every batch."""
+        return sum(1 for i in fs.list_dir(self.fs, str(self._join(QUARANTINE_DIR)), recursive=True)
+                   if i.base_name.endswith(".parquet") and not i.base_name.startswith("."))
 
     def has_chunk(self, table: str, batch_id: str, chunk_index: int) -> bool:
         path = str(self.table_path(table, batch_id, chunk_index))
@@ -333,29 +467,36 @@ class Store:
     def dataset(self, table: str, batch_id: str | None = None) -> ds.Dataset | None:
         """Chunks of ``table`` across batches (or of one batch), schemas unified.
 
-        None when there are no data files yet; StoreError on a version-1 store.
+        Only accepted batches (manifest on disk) and verified files: a damaged
+        one is quarantined on first sight. None when there are no data files
+        yet; StoreError on a version-1 store.
         """
         if table not in TABLES:
             return None
         self._refuse_version_1()
-        base = str(self._join(table))
-        scan = str(self._join(table, f"batch_id={_check_batch_id(batch_id)}")) if batch_id else base
-        if self.fs.get_file_info(scan).type != pafs.FileType.Directory:
-            return None
-        factory = ds.FileSystemDatasetFactory(
-            self.fs, pafs.FileSelector(scan, recursive=True),
-            ds.ParquetFileFormat(),
-            ds.FileSystemFactoryOptions(partitioning=_PARTITIONING, partition_base_dir=base,
-                                        selector_ignore_prefixes=[".", "_"],
-                                        # one damaged file must not hide every other batch
-                                        exclude_invalid_files=True))
-        # chunks written by different runs may differ in which columns are all
-        # null; inspecting every fragment lets their types merge
-        schema = factory.inspect(promote_options="permissive", fragments=None)
-        if len(schema) <= 1:  # only the partition field: no data files yet
-            return None
-        self._refuse_version_1(schema)  # one unmigrated file brings its old column
-        return factory.finish(schema)
+        if batch_id is not None:
+            _check_batch_id(batch_id)
+        snap = self._index(table).current(self)
+        if batch_id is None:
+            return snap.dataset
+        fragments = [f for f, b in zip(snap.fragments, snap.batch_of_file) if b == batch_id]
+        return _dataset_of(self, fragments)
+
+    def _index(self, table: str) -> "_TableIndex":
+        if table == "summaries":
+            return self._summaries_index
+        with _INDEX_LOCK:
+            return self._indexes.setdefault(table, _TableIndex(table))
+
+    def is_accepted(self, batch_id: str) -> bool:
+        """True once the batch's manifest is on disk (kept: it is never removed)."""
+        if batch_id in self._accepted:
+            return True
+        info = self.fs.get_file_info(str(self._join("batches", batch_id, "manifest.json")))
+        if info.type == pafs.FileType.File:
+            self._accepted.add(batch_id)
+            return True
+        return False
 
     def query(self, table: str, where: ds.Expression | None = None) -> pa.Table:
         data = self.dataset(table)
@@ -657,7 +798,13 @@ class _TableIndex:
                 continue
             relative = info.path[len(prefix):] if info.path.startswith(prefix) else \
                 posixpath.relpath(info.path, base)
-            if any(part.startswith((".", "_")) for part in relative.split("/")):
+            parts = relative.split("/")
+            if any(part.startswith((".", "_")) for part in parts):
+                continue
+            # inputs of a batch without a manifest (an acceptance that failed or
+            # is still writing) are no batch's data yet; results follow a manifest
+            if self.table == "inputs" and parts[0].startswith("batch_id=") and not store.is_accepted(
+                    parts[0].removeprefix("batch_id=")):
                 continue
             listing.append((info.path, info.size, info.mtime_ns))
         listing.sort()
@@ -676,30 +823,34 @@ class _TableIndex:
                 # parse() reads the directories of a path relative to the table
                 relative = posixpath.relpath(path, base)
                 try:
-                    fragment = fmt.make_fragment(path, store.fs,
-                                                 partition_expression=_PARTITIONING.parse(relative))
-                    fragment.ensure_complete_metadata()  # footer read once, kept
-                    names = fragment.physical_schema.names
-                except (OSError, pa.ArrowException, ValueError):
-                    fragment = names = None  # one damaged file must not hide every other batch
+                    # read whole once, when first seen: a damaged file is moved
+                    # aside here, before any query can trip over it
+                    damage = store.verify_file(path, self.table)
+                    if damage is None:
+                        fragment = fmt.make_fragment(
+                            path, store.fs, partition_expression=_PARTITIONING.parse(relative))
+                        fragment.ensure_complete_metadata()  # footer read once, kept
+                        names = fragment.physical_schema.names
+                except FileNotFoundError:
+                    continue  # replaced or moved since the listing: the next query sees it
+                except (OSError, pa.ArrowException, ValueError) as exc:
+                    damage = _short(exc)
+                if damage is not None:
+                    _quarantine_quietly(store, path, damage)
+                    continue
                 files[path] = (size, mtime_ns, fragment,
                                None if fragment is None else ds.get_partition_keys(
                                    fragment.partition_expression).get("batch_id"),
                                names is not None and "batch_id" in names)
+            _drop_clashing_types(store, files, [p for p, _, _ in listing])
             for path in set(self.files) - set(files) | {
                     p for p in files if self.files.get(p) is not files[p]}:
                 for cached in self.columns.values():  # gone or replaced: read again
                     cached.pop(path, None)
             self.files = files
-            kept = [files[path] for path, _, _ in listing if files[path][2] is not None]
+            kept = [files[path] for path, _, _ in listing if path in files]
             fragments = [k[2] for k in kept]
-            dataset = None
-            if fragments:
-                schemas = [f.physical_schema for f in fragments] + [_PARTITIONING.schema]
-                schema = pa.unify_schemas(schemas, promote_options="permissive")
-                store._refuse_version_1(schema)
-                if len(schema) > 1:
-                    dataset = ds.FileSystemDataset(fragments, schema, fmt, store.fs)
+            dataset = _dataset_of(store, fragments)
             self.snapshot = _Snapshot(key, dataset, fragments, [k[3] for k in kept],
                                       any(k[4] for k in kept), {})
             return self.snapshot
@@ -742,6 +893,41 @@ class _TableIndex:
                     offset += size
                 snap.combined[name] = combined
             return {name: snap.combined[name] for name in names}
+
+
+def _quarantine_quietly(store: "Store", path: str, reason: str) -> None:
+    try:
+        store.quarantine(path, reason)
+    except (OSError, ValueError):  # left in place: the next query tries again
+        log.exception("could not quarantine damaged file %s (%s)", path, reason)
+
+
+def _drop_clashing_types(store: "Store", files: dict, order: list[str]) -> None:
+    """Quarantine each file whose column types cannot merge with those of the
+    files before it (older batches first): one file with a wrong type must not
+    make the whole table unreadable."""
+    schema = _PARTITIONING.schema
+    for path in order:
+        if path not in files:
+            continue
+        try:
+            schema = pa.unify_schemas([schema, files[path][2].physical_schema],
+                                      promote_options="permissive")
+        except (pa.ArrowException, ValueError) as exc:
+            del files[path]
+            _quarantine_quietly(store, path, f"column types clash with the store's: {_short(exc)}")
+
+
+def _dataset_of(store: "Store", fragments: list) -> ds.Dataset | None:
+    """The fragments as one dataset, their schemas unified (None without data)."""
+    if not fragments:
+        return None
+    schemas = [f.physical_schema for f in fragments] + [_PARTITIONING.schema]
+    schema = pa.unify_schemas(schemas, promote_options="permissive")
+    store._refuse_version_1(schema)
+    if len(schema) <= 1:
+        return None
+    return ds.FileSystemDataset(fragments, schema, ds.ParquetFileFormat(), store.fs)
 
 
 # columns latest-wins and the final order need, besides the sort column

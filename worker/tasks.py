@@ -12,7 +12,7 @@ from celery.signals import worker_ready, worker_shutdown
 from . import fs, jobs
 from .celery_app import MAX_RETRIES, QUEUE, SETTINGS, SOFT_LIMIT_S, app, data_dir
 from .interrupts import register_job_ending
-from .store import Store
+from .store import DamagedFile, Store
 
 # the soft time limit ends the chunk; the fit path's broad handlers must not take it for a fit error
 register_job_ending(SoftTimeLimitExceeded)
@@ -43,7 +43,8 @@ def fit_chunk(self, batch_id: str, chunk_index: int) -> None:
         raise self.retry(exc=exc, countdown=min(2 ** self.request.retries, SPACE_RETRY_MAX_S),
                          max_retries=None)
     except Exception as exc:  # recorded below once retries run out
-        if self.request.retries < self.max_retries and not isinstance(exc, jobs.AttemptsExhausted):
+        hopeless = isinstance(exc, (jobs.AttemptsExhausted, DamagedFile))  # a rerun cannot help
+        if self.request.retries < self.max_retries and not hopeless:
             raise self.retry(exc=exc, countdown=2 ** self.request.retries)
         log.exception("chunk %s of batch %s failed for good", chunk_index, batch_id)
         jobs.record_chunk_failure(store, batch_id, chunk_index,
