@@ -140,6 +140,11 @@ def test_the_default_parser_refuses_what_it_cannot_read():
 FLAG_NAME = re.compile(r"[a-z][a-z0-9_<>]*")
 
 
+# module-level string constants of worker/ (``INTERNAL_ERROR = "internal_error"``), so
+# ``add_flag(flags, rows, INTERNAL_ERROR)`` is seen too
+_CONSTANTS: dict[str, str] = {}
+
+
 def _flag_text(node: ast.AST) -> str | None:
     """A flag name given as a literal, or an f-string with each field as ``<…>``."""
     if isinstance(node, ast.Constant) and isinstance(node.value, str):
@@ -173,7 +178,10 @@ class _FlagSites(ast.NodeVisitor):
     def visit_Call(self, node: ast.Call) -> None:
         func = node.func
         if isinstance(func, ast.Name) and func.id == "add_flag" and len(node.args) >= 3:
-            self._add(node.args[2])
+            name = node.args[2]
+            if isinstance(name, ast.Name) and name.id in _CONSTANTS:
+                name = ast.Constant(_CONSTANTS[name.id])
+            self._add(name)
         if isinstance(func, ast.Attribute) and func.attr in ("append", "add"):
             receiver = ast.unparse(func.value)
             in_flags = "flag" in receiver or any("flag" in f for f in self.function[-1:])
@@ -209,9 +217,17 @@ class _FlagSites(ast.NodeVisitor):
 
 
 def flags_the_code_raises() -> set[str]:
+    trees = [ast.parse(path.read_text(), filename=str(path))
+             for path in (ROOT / "worker").rglob("*.py")]
+    for tree in trees:
+        for node in tree.body:
+            if (isinstance(node, ast.Assign) and len(node.targets) == 1
+                    and isinstance(node.targets[0], ast.Name) and node.targets[0].id.isupper()
+                    and isinstance(node.value, ast.Constant) and isinstance(node.value.value, str)):
+                _CONSTANTS[node.targets[0].id] = node.value.value
     sites = _FlagSites()
-    for path in (ROOT / "worker").rglob("*.py"):
-        sites.visit(ast.parse(path.read_text(), filename=str(path)))
+    for tree in trees:
+        sites.visit(tree)
     return sites.names
 
 
