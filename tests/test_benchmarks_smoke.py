@@ -29,11 +29,11 @@ def test_bench_engine_prints_its_figures_per_model():
         assert f"  {model_id} " in out, out
 
 
-def test_bench_engine_all_models_against_a_reference_engine_file():
+def test_bench_engine_all_models_against_a_reference_engine_folder():
     # the current engine (the package folder) as its own reference: exercises the before/after path
-    engine_py = Path(__file__).resolve().parents[1] / "worker" / "engine"
+    engine_dir = Path(__file__).resolve().parents[1] / "worker" / "engine"
     out = run("bench_engine.py", "--n", "5", "--baseline-n", "2", "--repeats", "1",
-              "--models", "all", "--reference-engine", str(engine_py))
+              "--models", "all", "--reference-engine", str(engine_dir))
     assert "reference:" in out and "speed-up" in out, out
     assert "SSE equal to 1e-9 on 100.00%" in out, out
     assert "  dubinin_astakhov " in out, out

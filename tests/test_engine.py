@@ -461,3 +461,20 @@ def test_best_scale_projection_finds_fits_at_least_as_good_in_fewer_iterations(m
     assert np.all(proj.sse[both] <= plain.sse[both] * (1 + 1e-9)), (proj.sse[both] - plain.sse[both]).max()
     if fewer:
         assert proj_iter < plain_iter, (proj_iter, plain_iter)
+
+
+def test_solver_options_are_used_and_checked():
+    """The options object is what the solver runs with: no iterations leaves
+    noisy data (invented, truth-known) unconverged at the iteration cap;
+    the defaults converge them. Nonsense values and a solver that is not a
+    SolverOptions are refused up front (a clear 4xx-style ValueError)."""
+    from sorbrank.worker.pipeline import FitOptions
+
+    packed = pack(noisy_batch("langmuir", 4, 0.01, seed=3))
+    capped = fit_model(CATALOGUE["langmuir"], packed, options=SolverOptions(max_iter=0))
+    assert not capped.converged.any() and set(capped.reason) == {"max iterations"}, capped.reason
+    assert fit_model(CATALOGUE["langmuir"], packed).converged.all()
+    with pytest.raises(ValueError, match="max_iter"):
+        SolverOptions(max_iter=-1)
+    with pytest.raises(ValueError, match="solver must be SolverOptions"):
+        FitOptions(solver={"max_iter": 5})
