@@ -178,3 +178,35 @@ def test_full_store_refuses_new_work_and_finishes_accepted_work(mode, tmpfs, tmp
     again = post(s, api, batch("AFTER", 2))
     assert again.status_code == 202, again.text
     wait_state(s, api, again.json()["batch_id"], procs)
+
+
+def test_read_only_store_answers_503_and_keeps_serving_reads(tmpfs, tmp_path, processes):
+    """The tmpfs remounted read-only under a running embedded server: a POST is a
+    503 problem (never a 500), readiness says not ready, reads answer 200; once
+    writable again, a POST is accepted and fitted."""
+    env = clean_env(SORBRANK_DATA_DIR=str(tmpfs), SORBRANK_CHUNK_SIZE="2",
+                    SORBRANK_EMBEDDED_WORKERS="1", SORBRANK_TOKENS=tokens_json(),
+                    SORBRANK_MIN_FREE_BYTES=str(MIN_FREE_BYTES),
+                    SORBRANK_RECONCILE_INTERVAL_S="1", PYTHONPATH=str(ROOT))
+    server, url = start_server(env, tmp_path / "logs", processes)
+    api, s = url + "/api/v1", session()
+    first = post(s, api, batch("RO", 2))
+    assert first.status_code == 202, first.text
+    first_id = first.json()["batch_id"]
+    wait_state(s, api, first_id, [server])
+
+    subprocess.run(["mount", "-o", "remount,ro", str(tmpfs)], check=True)
+    try:
+        refused = post(s, api, batch("ROX", 2))
+        assert refused.status_code == 503, refused.text
+        assert refused.headers["Content-Type"].startswith("application/problem+json")
+        assert "store-read-only" in refused.json()["type"] and refused.headers["Retry-After"]
+        assert requests.get(url + "/readyz", timeout=10).status_code == 503
+        for path in (f"{api}/batches/{first_id}", f"{api}/batches/{first_id}/results",
+                     f"{api}/rankings", f"{api}/sorbents/RO-S00", url + "/"):
+            assert s.get(path, timeout=30).status_code == 200, path
+    finally:
+        subprocess.run(["mount", "-o", "remount,rw", str(tmpfs)], check=True)
+    again = post(s, api, batch("RW", 2))
+    assert again.status_code == 202, again.text
+    wait_state(s, api, again.json()["batch_id"], [server])
