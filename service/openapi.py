@@ -221,6 +221,10 @@ def document() -> dict:
                         "415": _problem("unknown body format"),
                         "422": _problem("unreadable body, nothing acceptable (issues listed), or "
                                         "Idempotency-Key reused with a different request"),
+                        "503": _problem("busy (too many intakes at once) or a read-only store; "
+                                        "Retry-After says when to retry"),
+                        "507": _problem("the store is full (below SORBRANK_MIN_FREE_BYTES, or a "
+                                        "write ran out of space); nothing of the batch is kept"),
                     },
                 },
                 "get": {
@@ -387,7 +391,13 @@ def document() -> dict:
                         k: {"type": ["string", "null"], "format": "date-time"}
                         for k in ("accepted_at", "started_at", "finished_at")}},
                     "rejected": {"type": "array", "items": {"$ref": "#/components/schemas/Issue"}},
-                    "errors": {"type": "array", "items": {"type": "object"}}}},
+                    "errors": {"type": "array", "items": {"type": "object"}},
+                    "damaged_chunks": {"type": "array", "items": {
+                        "type": "object", "properties": {
+                            "chunk": {"type": "integer"}, "table": {"type": "string"},
+                            "reason": {"type": "string"}, "file": {"type": "string"},
+                            "quarantined_at": {"type": "string", "format": "date-time"},
+                            "repaired": {"type": "boolean"}}}}}},
             },
         },
     }
