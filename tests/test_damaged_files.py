@@ -23,8 +23,8 @@ import pytest
 import requests
 from prometheus_client.parser import text_string_to_metric_families
 
-from conftest import ROOT, TOKENS, clean_env, csv_batch, isotherm, start_server, tokens_json, \
-    wait_until
+from conftest import (ROOT, TOKENS, clean_env, csv_batch, isotherm, start_redis, start_server,
+                      start_worker, tokens_json, wait_until)
 
 pytestmark = pytest.mark.integration
 
@@ -95,6 +95,33 @@ def server(tmp_path, processes):
                     SORBRANK_RECONCILE_INTERVAL_S="2", PYTHONPATH=str(ROOT))
     proc, url = start_server(env, tmp_path / "logs", processes)
     return proc, url, tmp_path / "data"
+
+
+def test_celery_worker_refits_a_damaged_chunk(tmp_path, processes):
+    """Distributed: the API quarantines the file, the worker's broker watch
+    queues the chunk again, the batch ends done with every row."""
+    logs = tmp_path / "logs"
+    _, broker = start_redis(logs, processes)
+    env = clean_env(SORBRANK_DATA_DIR=str(tmp_path / "data"), SORBRANK_CHUNK_SIZE="2",
+                    SORBRANK_TOKENS=tokens_json(), SORBRANK_BROKER_URL=broker,
+                    SORBRANK_RECONCILE_INTERVAL_S="1", PYTHONPATH=str(ROOT))
+    worker = start_worker(env, logs, processes)
+    proc, url = start_server(env, logs, processes)
+    api, s = url + "/api/v1", session()
+    batch_a = submit_and_wait(s, api, "A", 4, [proc, worker])
+    batch_b = submit_and_wait(s, api, "B", 2, [proc, worker])
+    flip_bytes(tmp_path / "data" / "summaries" / f"batch_id={batch_a}" / "chunk-00001.parquet")
+    read_everything(s, url, [batch_a, batch_b])
+    assert quarantined(s, url) == 1
+
+    def repaired():
+        now = s.get(f"{api}/batches/{batch_a}", timeout=10).json()
+        check_never_done_short(now)
+        return now if now["state"] == "done" else None
+    doc = wait_until(repaired, "the worker to refit the damaged chunk", [proc, worker],
+                     timeout_s=120)
+    assert doc["counts"]["done"] == 4 and [d["chunk"] for d in doc["damaged_chunks"]] == [1]
+    assert len(s.get(f"{api}/batches/{batch_a}/results", timeout=30).json()["summary"]) == 4
 
 
 def read_everything(s, url: str, batch_ids: list[str]) -> None:
