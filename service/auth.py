@@ -13,7 +13,6 @@ from __future__ import annotations
 import hashlib
 import hmac
 import json
-import os
 from dataclasses import dataclass
 from functools import wraps
 from pathlib import Path
@@ -127,8 +126,3 @@ def require(scope: str, owner: Callable[..., str | None] | None = None) -> Calla
             return view(*args, **kwargs)
         return guarded
     return decorate
-
-
-def token_from_env() -> str | None:
-    """The client side: a token for submit/rank from SORBRANK_TOKEN, if set."""
-    return os.environ.get("SORBRANK_TOKEN") or None

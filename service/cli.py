@@ -36,13 +36,7 @@ def build_parser(argv: list[str] | None = None) -> argparse.ArgumentParser:
     chosen = argv[0] if argv and argv[0] in COMMANDS else None
     for name in [chosen] if chosen else COMMANDS:
         module_name = f"sorbrank.service.commands.{name.replace('-', '_')}"
-        try:
-            module = importlib.import_module(module_name)
-        except ModuleNotFoundError as exc:
-            if exc.name == module_name:
-                continue  # command not built yet
-            raise
-        module.register(sub)
+        importlib.import_module(module_name).register(sub)
     return parser
 
 

@@ -199,10 +199,6 @@ def is_relative(unit: str) -> bool:
     return normalise_unit_name(unit, "pressure") == RELATIVE
 
 
-def needs_sample_mass(unit: str) -> bool:
-    return not LOADING_UNIT_TABLE[normalise_unit_name(unit, "loading")].per_kg_sorbent
-
-
 def pressure_to_pa(values, unit: str, saturation_pressure_pa=None) -> np.ndarray:
     """Return ``values`` (in ``unit``) as pressures in Pa.
 
