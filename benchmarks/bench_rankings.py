@@ -12,8 +12,8 @@
    flags drawn from a few realistic combinations. Chunks keep each sorbent's
    rows together, as jobs do.
 2. Time the queries below, each --repeats times after one warm-up, with the
-   current code and with the baseline (``worker/store.py`` of the last commit,
-   ``git show HEAD:worker/store.py``, loaded as a separate module), side by
+   current code and with the baseline (the store of the last commit,
+   ``worker/store.py`` or the ``worker/store/`` package, loaded as a separate module), side by
    side on the same store, interleaved. Prints medians and the ratio, and
    checks that both return the same page and total (exit status 1 if not).
 3. The same main query through the HTTP endpoint (Flask test client of
@@ -187,12 +187,25 @@ def build_store(root: Path, rows: int, batches: int, chunks: int, seed: int = 1)
 # the code under test and the baseline
 
 def baseline_module(rev: str):
-    """worker/store.py as of ``rev``, loaded as its own module (package worker)."""
-    source = subprocess.run(["git", "show", f"{rev}:worker/store.py"], cwd=ROOT,
-                            capture_output=True, text=True, check=True).stdout
-    path = Path(tempfile.mkdtemp(prefix="sorbrank-baseline-")) / "store_baseline.py"
-    path.write_text(source)
-    spec = importlib.util.spec_from_file_location("sorbrank.worker.store_baseline", path)
+    """The store of git revision ``rev`` (its worker/store.py if it has one,
+    else its worker/store/ package), loaded as its own module (package worker)."""
+    git = lambda *a: subprocess.run(["git", *a], cwd=ROOT, check=True, capture_output=True,  # noqa: E731
+                                    text=True).stdout
+    listed = git("ls-tree", "-r", "--name-only", rev, "worker/store.py", "worker/store/").split()
+    folder = Path(tempfile.mkdtemp(prefix="sorbrank-baseline-"))
+    name = "sorbrank.worker.store_baseline"
+    if "worker/store.py" in listed:
+        path = folder / "store_baseline.py"
+        path.write_text(git("show", f"{rev}:worker/store.py"))
+        spec = importlib.util.spec_from_file_location(name, path)
+    else:
+        for file in listed:
+            if file.endswith(".py"):
+                (folder / Path(file).name).write_text(git("show", f"{rev}:{file}"))
+        if not (folder / "__init__.py").exists():
+            raise SystemExit(f"revision {rev} has neither worker/store.py nor worker/store/")
+        spec = importlib.util.spec_from_file_location(name, folder / "__init__.py",
+                                                      submodule_search_locations=[str(folder)])
     module = importlib.util.module_from_spec(spec)
     sys.modules[spec.name] = module
     spec.loader.exec_module(module)
@@ -246,8 +259,8 @@ def main(argv=None) -> int:
     ap.add_argument("--baseline-repeats", type=int, default=None,
                     help="timed repeats of the baseline (default: --repeats)")
     ap.add_argument("--baseline", default="HEAD",
-                    help="git revision whose worker/store.py is the baseline (default HEAD); "
-                         "'none' skips it")
+                    help="git revision whose store (worker/store.py or worker/store/) is the "
+                         "baseline (default HEAD); 'none' skips it")
     ap.add_argument("--dir", type=Path, default=None,
                     help="store directory (kept between runs; default under the temp dir)")
     ap.add_argument("--no-http", action="store_true", help="skip the HTTP endpoint timing")
@@ -278,7 +291,7 @@ def main(argv=None) -> int:
         line = f"  {name:<5}: current {fmt_ms(statistics.median(now_times))}"
         if name == "main":
             main_median = statistics.median(now_times)
-            kept = store_now._summaries_index.snapshot
+            kept = store_now.snapshot("summaries")  # the listing just made, kept
             kept_mb = sum(a.nbytes for a in kept.combined.values()) / 1e6 if kept else 0.0
             print(f"  first query on a fresh Store (reads the key columns of every file): "
                   f"{timed.first_s * 1000:.0f} ms; kept in memory: {kept_mb:.0f} MB")

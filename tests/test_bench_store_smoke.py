@@ -14,7 +14,8 @@ from pathlib import Path
 import pyarrow as pa
 import pytest
 
-from sorbrank.worker.store import RankingQuery, Store, _rank_whole_rows, new_batch_id, rankings
+from sorbrank.worker.store import RankingQuery, Store, new_batch_id, rankings
+from sorbrank.worker.store.rankings import _rank_whole_rows
 
 ROOT = Path(__file__).resolve().parents[1]
 T0 = datetime(2025, 3, 1, tzinfo=timezone.utc)
@@ -208,7 +209,8 @@ def test_inputs_table_built_by_columns_equals_the_row_by_row_table():
     import pyarrow.parquet as pq
 
     from sorbrank.worker.intake import read_batch
-    from sorbrank.worker.store import _isotherms_to_table_by_rows, isotherms_to_table
+    from sorbrank.worker.store import isotherms_to_table
+    from sorbrank.worker.store.inputs import _isotherms_to_table_by_rows
 
     # three isotherms in three unit pairs, one with per-point sigma, one with a repeated pressure
     doc = {"isotherms": [

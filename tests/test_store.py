@@ -391,7 +391,7 @@ def test_latest_wins_on_integer_codes_picks_the_rows_the_full_sort_picks(seed):
     several rows of one group in one batch, equal isotherm ids, nulls in
     every key (common practice for checking an optimisation: same rows,
     any input)."""
-    from sorbrank.worker.store import _latest_rows, _latest_wins_by_sorting
+    from sorbrank.worker.store.rankings import _latest_rows, _latest_wins_by_sorting
 
     rng = np.random.default_rng(seed)
     n = 3000
@@ -427,7 +427,7 @@ def test_a_page_sorted_from_its_candidates_is_the_page_of_the_full_sort(descendi
     crowded with ties, NaN and nulls, for pages at the start, the middle,
     across the NaN/null tail and past the end (common practice for checking
     an optimisation: same page, any input)."""
-    from sorbrank.worker.store import _page_of, _sorted_for_page
+    from sorbrank.worker.store.rankings import _page_of, _sorted_for_page
 
     rng = np.random.default_rng(3)
     n = 2000

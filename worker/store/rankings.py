@@ -1,0 +1,395 @@
+"""Rankings across every batch: latest wins, flag filters, the page."""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.dataset as ds
+
+from .reliability import (_RELIABILITY_RULES, RELIABILITY_OF_SORT, _column_list, condition_sets,
+                          conditions_of_sort, reliable_rows, rows_with_flag,
+                          with_ranking_columns)
+from .tables import Store, TableSnapshot
+
+LATEST_WINS_RULE = (
+    "one row per sorbent, adsorbate, branch and temperature (rounded to the nearest "
+    "1 K); when several batches measured the same, the batch accepted last wins")
+
+
+@dataclass
+class RankingQuery:
+    adsorbate: str | None = None
+    temperature_k: float | None = None
+    temperature_tolerance_k: float = 0.5
+    flags: tuple[str, ...] = ()          # keep rows carrying every one of these
+    exclude_flags: tuple[str, ...] = ()  # drop rows carrying any of these
+    batch_id: str | None = None
+    sorbent_id: str | None = None
+    sort: str = "loading_ads_mol_per_kg"   # DEFAULT_RANKING_SORT
+    descending: bool = True
+    limit: int = 100
+    offset: int = 0
+    all_results: bool = False
+    # rows whose sorted figure is not supported by the data come after the rest
+    unreliable_last: bool = True
+
+
+# The default ranking leads with a figure inside the measured range: the
+# loading at the batch's adsorption pressure, at the isotherm's own
+# temperature (docs/results.md, "Default ranking").
+DEFAULT_RANKING_SORT = "loading_ads_mol_per_kg"
+
+
+def sortable_columns(schema: pa.Schema) -> list[str]:
+    return [f.name for f in schema
+            if not (pa.types.is_nested(f.type) or pa.types.is_binary(f.type))
+            and not f.name.startswith("_")]
+
+
+_RANKING_KEYS = ("batch_id", "isotherm_id", "sorbent_id", "adsorbate", "temperature_k",
+                 "accepted_at")
+
+
+def rankings(store: "Store", query: RankingQuery) -> tuple[pa.Table, int]:
+    """Filtered, de-duplicated (unless ``all_results``), sorted summaries:
+    (the requested page of stored rows, the number of rows before paging).
+    ``ranking`` adds the columns and conditions a reader needs."""
+    page, total, _ = _rank(store, query)
+    return page, total
+
+
+def _rank(store: "Store", query: RankingQuery) -> tuple[pa.Table, int, pa.Table]:
+    """Filtered, de-duplicated (unless ``all_results``), sorted summaries.
+
+    Returns (the requested page, the number of rows before paging, the batch
+    id and temperature of every ranked row). Filters that
+    choose which measurements compete (batch, sorbent, adsorbate, temperature)
+    apply before latest-wins; flag filters apply to the winners, so an old
+    result never resurfaces because the newer one lacks a flag.
+
+    The ranking runs on the few columns it needs (identity, temperature,
+    acceptance time, the sort column, flags when filtered on), kept in memory
+    per summary file between queries (files never change once written; new
+    ones are read when they appear); the page's whole rows are then read from
+    the row groups that hold them. Where that does not apply, the whole-row
+    path (``_rank_whole_rows`` over a dataset scan) gives the same result.
+    """
+    snap = store.snapshot("summaries")
+    data = snap.dataset
+    if data is None:
+        return pa.table({}), 0, pa.table({})
+    if query.sort not in sortable_columns(data.schema):
+        raise ValueError(f"cannot sort by {query.sort!r}; sortable columns: "
+                         + ", ".join(sortable_columns(data.schema)))
+    where = None
+
+    def both(expr):
+        return expr if where is None else where & expr
+
+    if query.batch_id is not None:
+        where = both(ds.field("batch_id") == query.batch_id)
+    if query.sorbent_id is not None:
+        where = both(ds.field("sorbent_id") == query.sorbent_id)
+    if query.adsorbate is not None:
+        where = both(ds.field("adsorbate") == query.adsorbate)
+    if query.temperature_k is not None:
+        tol = abs(query.temperature_tolerance_k)
+        where = both((ds.field("temperature_k") >= query.temperature_k - tol)
+                     & (ds.field("temperature_k") <= query.temperature_k + tol))
+    if all(name in data.schema.names for name in _RANKING_KEYS):
+        ranked = _rank_cached(snap, query)
+        if ranked is not None:
+            return ranked
+    return _ranked_whole_rows(data.to_table(filter=where), query)
+
+
+def _latest_rows(table: pa.Table) -> np.ndarray | None:
+    """Latest wins: row indices of one row per sorbent, adsorbate,
+    temperature (nearest 1 K) and branch -- the one accepted last, then of
+    the larger batch id, then of the smaller isotherm id; nulls lose.
+
+    Found on integer codes; None where
+    this path does not apply (NaN temperatures, a key space too large for one
+    int64), and ``_latest_wins_by_sorting`` decides instead.
+
+    Sorting a million rows by timestamp, batch id and isotherm id (strings)
+    took most of an unfiltered ranking; here the strings are ranked once per
+    distinct value, the rows are ordered on integers, and isotherm ids are
+    compared only between rows that tie on everything else."""
+    keys = ["sorbent_id", "adsorbate", "temperature_k"]
+    if "branch" in table.column_names:
+        keys.append("branch")
+    group = np.zeros(table.num_rows, dtype=np.int64)
+    span = 1
+    for name in keys:
+        column = table[name].combine_chunks()
+        if name == "temperature_k":
+            column = pc.round(column, 0)
+            if pc.any(pc.is_nan(column)).as_py():
+                return None
+        codes, size = _codes(column)
+        span *= size + 1
+        if span >= 2 ** 62:
+            return None
+        group = group * (size + 1) + codes
+    accepted = table["accepted_at"].combine_chunks()
+    # newest first, nulls last: order on the negated values, a null as the largest
+    if pa.types.is_timestamp(accepted.type) or pa.types.is_integer(accepted.type):
+        values = pc.cast(accepted, pa.int64()).fill_null(np.iinfo(np.int64).min + 1)
+        newest = -values.to_numpy(zero_copy_only=False)
+    else:
+        codes, size = _codes(accepted, ranked=True)
+        newest = np.where(codes < size, -codes, 1)
+    batch_codes, n_batches = _codes(table["batch_id"].combine_chunks(), ranked=True)
+    later_batch = np.where(batch_codes < n_batches, -batch_codes, 1)   # larger id first, null last
+    order = np.lexsort((later_batch, newest, group))
+    g, a, b = group[order], newest[order], later_batch[order]
+    first = np.ones(order.size, dtype=bool)
+    first[1:] = g[1:] != g[:-1]
+    same = np.zeros(order.size, dtype=bool)
+    same[1:] = ~first[1:] & (a[1:] == a[:-1]) & (b[1:] == b[:-1])
+    run = np.cumsum(~same)                     # runs of rows equal on all but the isotherm id
+    top = run == run[np.flatnonzero(first)][np.cumsum(first) - 1]
+    tied_group = np.zeros(order.size, dtype=bool)
+    tied_group[top & ~first] = True
+    if not tied_group.any():
+        return order[first]
+    # groups whose newest batch holds several of its rows: the smaller isotherm id
+    # wins (nulls last, then the earlier row: lexsort and sort_by are stable)
+    group_no = np.cumsum(first) - 1
+    has_tie = np.zeros(int(group_no[-1]) + 1, dtype=bool)
+    has_tie[group_no[tied_group]] = True
+    in_tie = top & has_tie[group_no]
+    rows = order[in_tie]
+    small = pa.table({"g": pa.array(group_no[in_tie]),
+                      "iso": table["isotherm_id"].take(pa.array(rows)),
+                      "row": pa.array(rows)})
+    small = small.sort_by([("g", "ascending"), ("iso", "ascending")])
+    sg = small["g"].to_numpy()
+    lead = np.ones(sg.size, dtype=bool)
+    lead[1:] = sg[1:] != sg[:-1]
+    return np.concatenate([order[first & ~has_tie[group_no]], small["row"].to_numpy()[lead]])
+
+
+def _codes(column: pa.Array, ranked: bool = False) -> tuple[np.ndarray, int]:
+    """Integer code per row (a null gets the largest, ``size``) and the number
+    of distinct non-null values; ``ranked``: codes follow the values' order."""
+    encoded = pc.dictionary_encode(column)
+    size = len(encoded.dictionary)
+    codes = encoded.indices.fill_null(size).to_numpy(zero_copy_only=False).astype(np.int64)
+    if ranked and size:
+        rank = np.empty(size, dtype=np.int64)
+        rank[pc.sort_indices(encoded.dictionary).to_numpy()] = np.arange(size)
+        codes = np.where(codes < size, rank[np.minimum(codes, size - 1)], size)
+    return codes, size
+
+
+def _latest_wins_by_sorting(table: pa.Table) -> pa.Table:
+    newest_first = table.sort_by([("accepted_at", "descending"), ("batch_id", "descending"),
+                                  ("isotherm_id", "ascending")])
+    keys = ["sorbent_id", "adsorbate", "_temperature_key"]
+    if "branch" in newest_first.column_names:
+        keys.append("branch")
+    keyed = newest_first.append_column(
+        "_temperature_key", pc.round(newest_first["temperature_k"], 0)
+    ).append_column("_order", pa.array(range(newest_first.num_rows), pa.int64()))
+    first = keyed.group_by(keys, use_threads=False).aggregate([("_order", "min")])
+    return newest_first.take(first["_order_min"])
+
+
+def _flag_filter(table: pa.Table, query: RankingQuery) -> pa.Table:
+    keep = np.ones(table.num_rows, dtype=bool)
+    for name in query.flags:
+        keep &= rows_with_flag(table["flags"], name)
+    for name in query.exclude_flags:
+        keep &= ~rows_with_flag(table["flags"], name)
+    return table.filter(pa.array(keep, pa.bool_()))
+
+
+# helper column: 1 where the row's sorted figure is unreliable (they rank after the rest)
+_DEMOTED = "_demoted"
+
+
+def _sorted_for_page(table: pa.Table, query: RankingQuery) -> pa.Table:
+    order = "descending" if query.descending else "ascending"
+    first = [(_DEMOTED, "ascending")] if _DEMOTED in table.column_names else []
+    return table.sort_by(first + [(query.sort, order, "at_end"),
+                                  ("sorbent_id", "ascending", "at_end"),
+                                  ("isotherm_id", "ascending", "at_end"),
+                                  ("batch_id", "descending", "at_end")])
+
+
+def _rank_whole_rows(table: pa.Table, query: RankingQuery) -> tuple[pa.Table, int]:
+    """Latest-wins, flag filter, order and page over complete rows."""
+    page, total, _ = _ranked_whole_rows(table, query)
+    return page, total
+
+
+def _ranked_whole_rows(table: pa.Table, query: RankingQuery
+                       ) -> tuple[pa.Table, int, pa.Table]:
+    """The page, the number of ranked rows, and the batch id and temperature
+    of every ranked row (what the conditions of the ranking are read from)."""
+    rows = None   # the winners by index, taken only once it is known which are needed
+    if not query.all_results and table.num_rows:
+        rows = _latest_rows(table)
+        if rows is None:
+            table = _latest_wins_by_sorting(table)
+    if (query.flags or query.exclude_flags) and table.num_rows:
+        if rows is not None:
+            table, rows = table.take(pa.array(rows)), None
+        table = _flag_filter(table, query)
+    reliability = RELIABILITY_OF_SORT.get(query.sort) if query.unreliable_last else None
+    if reliability is not None and table.num_rows:
+        if rows is not None:
+            table, rows = table.take(pa.array(rows)), None
+        table = table.append_column(_DEMOTED, pa.array(
+            (~reliable_rows(table, reliability)).astype(np.int8)))
+    ranked_keys = [n for n in ("batch_id", "temperature_k") if n in table.column_names]
+    ranked = table.select(ranked_keys) if rows is None else \
+        table.select(ranked_keys).take(pa.array(rows))
+    page, total = _page_of(table, rows, query)
+    if _DEMOTED in page.column_names:
+        page = page.drop_columns([_DEMOTED])
+    return page, total, ranked
+
+
+def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> tuple[pa.Table, int]:
+    """The requested page of ``table`` (of its ``rows`` only, when given) in
+    ranking order, and how many rows were ranked.
+
+    Only the rows that can reach the page are sorted whole: with a float sort
+    column they are the ones at or beyond the page's last value (ties kept,
+    so the tie-breaking order is untouched); NaN and null sort last and are
+    needed only when fewer finite values than the page's end exist."""
+    total = table.num_rows if rows is None else len(rows)
+    end = max(query.offset, 0) + max(query.limit, 0)
+    column = table[query.sort]
+    if 0 < end < total and pa.types.is_floating(column.type):
+        values = (column if rows is None else column.take(pa.array(rows))).to_numpy(zero_copy_only=False)
+        values = np.asarray(values, dtype=np.float64)
+        finite = ~np.isnan(values)
+        if _DEMOTED in table.column_names:  # demoted rows come after every other value
+            demoted = table[_DEMOTED] if rows is None else table[_DEMOTED].take(pa.array(rows))
+            finite &= demoted.to_numpy(zero_copy_only=False) == 0
+        if int(finite.sum()) > end:
+            ahead = values if query.descending else -values
+            last = np.partition(ahead[finite], -end)[-end]
+            keep = np.flatnonzero(finite & (ahead >= last))
+            rows = keep if rows is None else rows[keep]
+    if rows is not None:
+        table = table.take(pa.array(rows))
+    table = _sorted_for_page(table, query)
+    return table.slice(max(query.offset, 0), max(query.limit, 0)), total
+
+
+def _rank_cached(snap: TableSnapshot, query: RankingQuery
+                 ) -> tuple[pa.Table, int, pa.Table] | None:
+    """Rank on the kept key columns, then read the page's whole rows by
+    (file, row); None when the store needs the whole-row path."""
+    data, fragments = snap.dataset, snap.fragments
+    if snap.own_batch_column:
+        return None  # a file carrying its own batch_id: let the dataset reconcile it
+    names = [n for n in _RANKING_KEYS if n != "batch_id"]
+    names += [c for c in ("branch",) if c in data.schema.names]
+    if (query.flags or query.exclude_flags) and "flags" in data.schema.names:
+        names.append("flags")
+    if query.sort not in names and query.sort != "batch_id":
+        names.append(query.sort)
+    reliability = RELIABILITY_OF_SORT.get(query.sort) if query.unreliable_last else None
+    if reliability is not None:  # what the sorted figure's reliability is judged on
+        values, _ = _RELIABILITY_RULES[reliability]
+        names += [n for n in (*values, "flags") if n in data.schema.names and n not in names]
+    columns = snap.key_columns(names)
+    lengths = snap.lengths
+    file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)
+
+    # the filters that choose the competitors, as one mask (null counts as false)
+    mask = None
+
+    def both(condition):
+        condition = np.asarray(condition.fill_null(False).to_numpy(zero_copy_only=False)
+                               if not isinstance(condition, np.ndarray) else condition, bool)
+        return condition if mask is None else mask & condition
+
+    if query.batch_id is not None:  # a partition value: decided per file
+        mask = both(np.array([b == query.batch_id for b in snap.batch_of_file], bool)[file_of_row])
+    if query.sorbent_id is not None:
+        mask = both(pc.equal(columns["sorbent_id"], query.sorbent_id))
+    if query.adsorbate is not None:
+        mask = both(pc.equal(columns["adsorbate"], query.adsorbate))
+    if query.temperature_k is not None:
+        tol = abs(query.temperature_tolerance_k)
+        temperature = columns["temperature_k"]
+        mask = both(pc.and_(pc.greater_equal(temperature, query.temperature_k - tol),
+                            pc.less_equal(temperature, query.temperature_k + tol)))
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+    if mask is None:
+        chosen = np.arange(len(file_of_row))
+        table = pa.table(columns)
+    else:
+        chosen = np.flatnonzero(mask)
+        picks = pa.array(chosen)
+        table = pa.table({name: columns[name].take(picks) for name in names})
+    files = file_of_row[chosen]
+    table = table.append_column("_file", pa.array(files)).append_column(
+        "_row", pa.array(chosen - starts[files])).append_column(
+        "batch_id", pa.array(snap.batch_of_file, pa.string()).take(pa.array(files)))
+    page, total, ranked = _ranked_whole_rows(table, query)
+    if page.num_rows == 0:
+        return data.schema.empty_table(), total, ranked
+
+    # the page's rows, read whole from the row groups that hold them
+    file_no = page["_file"].to_numpy()
+    row_no = page["_row"].to_numpy()
+    subsets, expected = [], []
+    for f in np.unique(file_no):
+        fragment = fragments[f]
+        sizes = np.array([rg.num_rows for rg in fragment.row_groups], dtype=np.int64)
+        bounds = np.concatenate([[0], np.cumsum(sizes)])
+        groups = np.unique(np.searchsorted(bounds, row_no[file_no == f], side="right") - 1)
+        subsets.append(fragment.subset(row_group_ids=[int(g) for g in groups]))
+        expected.extend(f * (1 << 32) + np.arange(bounds[g], bounds[g + 1]) for g in groups)
+    rows = ds.FileSystemDataset(subsets, data.schema, data.format, data.filesystem).to_table()
+    expected = np.concatenate(expected)
+    wanted = file_no * (1 << 32) + row_no
+    if rows.num_rows != len(expected):
+        return None  # the files changed under the query: rank again over whole rows
+    at = np.searchsorted(expected, wanted)
+    if np.any(at >= len(expected)) or np.any(expected[np.minimum(at, len(expected) - 1)] != wanted):
+        return None
+    return rows.take(pa.array(at)).replace_schema_metadata(data.schema.metadata), total, ranked
+
+
+@dataclass
+class Ranking:
+    """A ranking as readers get it: the page with its reliability and
+    condition columns, and the conditions the ranked rows were computed at."""
+
+    page: pa.Table
+    total: int
+    sort: str
+    unreliable_last: bool
+    reliability_column: str | None    # the column that demotes rows for this sort
+    # distinct conditions of the sorted figure over every ranked row (not only
+    # the page), most rows first: the condition columns and "rows"
+    condition_sets: list[dict]
+
+    @property
+    def mixed_conditions(self) -> bool:
+        return len(self.condition_sets) > 1
+
+
+def ranking(store: "Store", query: RankingQuery) -> Ranking:
+    """``rankings`` plus, on every row, the conditions behind its loadings and
+    working capacity and the reliability columns; and which condition sets
+    the ranked rows span for the sorted figure."""
+    page, total, ranked = _rank(store, query)
+    pressures = [store.batch_pressures(b) for b in _column_list(page, "batch_id")]
+    page = with_ranking_columns(page, pressures)
+    sets = condition_sets(ranked, store.batch_pressures, conditions_of_sort(query.sort),
+                          abs(query.temperature_tolerance_k))
+    return Ranking(page, total, query.sort, query.unreliable_last,
+                   RELIABILITY_OF_SORT.get(query.sort), sets)
+
