@@ -88,8 +88,6 @@ def create_app(settings: Settings | None = None,
     app.json.sort_keys = False
     app.extensions["sorbrank"] = Runtime(settings, Store(settings.data_dir),
                                          Authenticator(list(settings.tokens)), enqueue)
-    problems.register(app)
-
     from .api import batches, health, sorbents, models, rankings
 
     app.register_blueprint(health.bp)
@@ -98,6 +96,8 @@ def create_app(settings: Settings | None = None,
     from .api import plots
     from .web import pages
 
+    # the app hands the pages' HTML error to problems, which imports no page
+    problems.register(app, page_error=pages.error_page)
     app.register_blueprint(plots.bp, url_prefix=API_PREFIX)
     app.register_blueprint(pages.bp)
 

@@ -1,7 +1,12 @@
-"""Errors as problem details (RFC 9457, media type application/problem+json)."""
+"""Errors as problem details (RFC 9457, media type application/problem+json).
+
+A leaf of the service's imports: the HTML error page of the pages
+(``service/web``) is handed in by the app factory, never imported here.
+"""
 from __future__ import annotations
 
 import logging
+from typing import Callable
 
 from flask import Flask, Response, json, request
 from werkzeug.exceptions import HTTPException
@@ -65,7 +70,13 @@ def storage_problem(exc: BaseException) -> Problem | None:
     return None
 
 
-def register(app: Flask) -> None:
+# (status, title, detail, headers) -> the HTML error response of the pages
+PageError = Callable[[int, str, str | None, dict], object]
+
+
+def register(app: Flask, page_error: PageError | None = None) -> None:
+    """Answer errors as problem documents; on page paths, when ``page_error``
+    is given, an unmatched URL or a wrong method answers with its HTML page."""
     @app.errorhandler(Problem)
     def _problem(exc: Problem):
         return exc.response()
@@ -73,10 +84,8 @@ def register(app: Flask) -> None:
     @app.errorhandler(HTTPException)
     def _http(exc: HTTPException):
         headers = {k: v for k, v in exc.get_headers() if k.lower() != "content-type"}
-        if _is_page_path(request.path):
-            from .web.pages import error_page
-
-            return error_page(exc.code or 500, exc.name, exc.description, headers)
+        if page_error is not None and _is_page_path(request.path):
+            return page_error(exc.code or 500, exc.name, exc.description, headers)
         return Problem(exc.code or 500, exc.name, exc.description, headers=headers).response()
 
     @app.errorhandler(Exception)

@@ -3,8 +3,9 @@ from __future__ import annotations
 
 import json
 
-import pyarrow.dataset as ds
 from flask import Blueprint, current_app
+
+from sorbrank.worker.store.readmodel import sorbent_tables
 
 from ..auth import require
 from ..problems import Problem
@@ -17,15 +18,8 @@ bp = Blueprint("sorbents", __name__)
 @require("read")
 def get_sorbent(sorbent_id: str):
     store = current_app.extensions["sorbrank"].store
-    found = {}
-    for key, table in (("isotherms", "inputs"), ("summaries", "summaries"),
-                       ("fits", "fits"), ("sorbent_metrics", "sorbents")):
-        data = store.dataset(table)
-        if data is None or "sorbent_id" not in data.schema.names:
-            found[key] = []
-            continue
-        rows = data.to_table(filter=ds.field("sorbent_id") == sorbent_id)
-        found[key] = json_rows(rows.sort_by([("batch_id", "descending")]))  # ids sort by time
+    found = {key: [] if rows is None else json_rows(rows)
+             for key, rows in sorbent_tables(store, sorbent_id).items()}
     for row in found["isotherms"]:
         row["original"] = json.loads(row.pop("original_json") or "{}")
     if not any(found.values()):

@@ -11,7 +11,6 @@ import logging
 import math
 
 import pyarrow.compute as pc
-import pyarrow.dataset as ds
 from flask import Blueprint, Response, current_app, render_template, request, url_for
 from werkzeug.exceptions import HTTPException
 
@@ -20,8 +19,8 @@ from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.store import (DEFAULT_RANKING_SORT, LATEST_WINS_RULE, Q_SAT_MAX_RELATIVE_STDERR,
                                    RELIABILITY_OF_SORT, RankingQuery, Store, nan_to_none, ranking,
                                    rankings)
+from sorbrank.worker.store.readmodel import qst_rows, sorbent_input_count, sorbent_isotherms
 
-from ..api.plots import StoredIsotherm, fit_entry, qst_rows
 from ..auth import require
 from ..commands.fit import pressure_swing
 from ..problems import Problem
@@ -243,43 +242,9 @@ def overview():
 
 # -- one sorbent -----------------------------------------------------------
 
-def _sorbent_isotherms(store: Store, sorbent_id: str,
-                        results: list[dict]) -> list[StoredIsotherm]:
-    """The stored inputs, summary and fits behind each current result row."""
-    where = ds.field("sorbent_id") == sorbent_id
-    wanted = {(r["batch_id"], r["isotherm_id"]) for r in results}
-
-    def by_key(table: str) -> dict:
-        grouped: dict = {}
-        for row in nan_to_none(store.query(table, where).to_pylist()):
-            key = (row.get("batch_id"), row.get("isotherm_id"))
-            if key in wanted:
-                grouped.setdefault(key, []).append(row)
-        return grouped
-
-    inputs, fits = by_key("inputs"), by_key("fits")
-    out = []
-    for summary in results:
-        key = (summary["batch_id"], summary["isotherm_id"])
-        if key not in inputs:
-            continue  # inputs are written before results, so only a damaged store lands here
-        entries = [fit_entry(r) for r in fits.get(key, [])]
-        # best supported first; fits with no AICc (failed, too few points) last
-        entries.sort(key=lambda f: (f["aicc"] is None, f["aicc"] or 0.0, f["model"] or ""))
-        out.append(StoredIsotherm(summary["batch_id"], inputs[key][0], summary, entries))
-    return out
-
-
 def _param_units(model_id: str) -> dict[str, str]:
     model = CATALOGUE.get(model_id)
     return {p.name: p.unit for p in model.params} if model is not None else {}
-
-
-def _pending_isotherms(store: Store, sorbent_id: str) -> int:
-    data = store.dataset("inputs")
-    if data is None:
-        return 0
-    return data.count_rows(filter=ds.field("sorbent_id") == sorbent_id)
 
 
 @bp.get("/sorbents/<path:sorbent_id>")
@@ -292,10 +257,10 @@ def sorbent(sorbent_id: str):
                                     r["isotherm_id"] or ""))
     _, every_total = rankings(store, RankingQuery(sorbent_id=sorbent_id, limit=0,
                                                   all_results=True))
-    inputs_total = _pending_isotherms(store, sorbent_id)
+    inputs_total = sorbent_input_count(store, sorbent_id)
     if not results and not inputs_total:
         raise Problem(404, "Not Found", f"No sorbent {sorbent_id!r} in any batch.")
-    isotherms = _sorbent_isotherms(store, sorbent_id, results)
+    isotherms = sorbent_isotherms(store, sorbent_id, results)
     return render_template(
         "page_sorbent.html", sorbent_id=sorbent_id, isotherms=isotherms,
         superseded=every_total - len(results), unfitted=max(inputs_total - every_total, 0),
