@@ -277,6 +277,43 @@ def small_batch(sorbents=("J1", "J2", "J3")):
     return read_batch("\n".join(lines) + "\n", "csv", batch_label="jobs")
 
 
+def test_manifest_and_chunk_status_records_read_back_to_the_json_on_disk(tmp_path):
+    """Every manifest and chunk status the jobs write -- running, done, failed
+    (also one that never started: started_at null), queued again after a
+    damaged results file -- reads into its record and back to the same JSON,
+    and keys the record does not know survive (a record written by another
+    version)."""
+    from sorbrank.worker import jobs
+    from sorbrank.worker.store.records import ChunkStatus, Manifest
+
+    store = Store(tmp_path)
+    manifest = jobs.accept_batch(store, small_batch(), options={"models": ["langmuir"]},
+                                 chunk_size=2)
+    batch_id = manifest["batch_id"]
+    jobs.run_chunk(store, batch_id, 0)
+    jobs.record_chunk_failure(store, batch_id, 1, "ValueError: boom")
+    store.write_chunk_status(batch_id, 2, {"state": "running", "attempts": 1,
+                                           "started_at": "2026-01-01T00:00:00.000000Z"})
+    written = {p.name: json.loads(p.read_text()) for p in store.batch_dir(batch_id).glob("*.json")}
+    assert {"manifest.json", "chunk-00000.json", "chunk-00001.json"} <= set(written)
+    assert written["chunk-00001.json"]["started_at"] is None   # failed before it started
+    assert written["chunk-00000.json"]["state"] == "done"
+    for name, data in written.items():
+        record = (Manifest if name == "manifest.json" else ChunkStatus).from_dict(data)
+        assert record.to_dict() == data, name
+
+    store.quarantine(str(store.table_path("summaries", batch_id, 0)), "test: damaged")
+    queued = store.read_chunk_statuses(batch_id)[0]
+    assert queued == {"state": "queued", "attempts": 0,
+                      "refit_after_damage": queued["refit_after_damage"]}
+    assert ChunkStatus.from_dict(queued).to_dict() == queued
+
+    newer = {**manifest, "written_by": "a later sorbrank",
+             "chunks": [{**c, "note": "kept"} for c in manifest["chunks"]]}
+    assert Manifest.from_dict(newer).to_dict() == newer
+    assert Manifest.from_dict(newer).chunks[0].extra == {"note": "kept"}
+
+
 def test_rerunning_a_chunk_rewrites_identical_files_without_duplicates(tmp_path):
     from sorbrank.worker import jobs
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import logging
 import time
-from dataclasses import asdict
+from dataclasses import asdict, replace
 from datetime import datetime
 from typing import Callable
 
@@ -21,13 +21,13 @@ from . import fs
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, MixtureRequest
 from .pipeline import FitOptions, process_batch
 from .store import DamagedFile, Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
+from .store.records import DONE, FAILED, RUNNING, SETTLED, ChunkEntry, ChunkStatus, Manifest
 
 log = logging.getLogger(__name__)
 
 # Deliveries of one chunk before it is marked failed. Counts crashes and hard
 # time-limit kills too, which Celery's own retry counter never sees.
 MAX_ATTEMPTS = 4
-SETTLED = ("done", "failed")
 
 
 class UnknownBatch(LookupError):
@@ -83,38 +83,43 @@ def accept_batch(store: Store, batch: Batch, *, options: dict, chunk_size: int =
     for index, positions in enumerate(chunks):
         isotherms = [batch.isotherms[p] for p in positions]
         store.write_table("inputs", batch_id, index, isotherms_to_table(isotherms))
-        chunk_entries.append({"index": index, "isotherms": len(isotherms),
-                              "sorbents": sorted({iso.sorbent_id for iso in isotherms})})
-    manifest = {
-        "batch_id": batch_id,
-        "label": batch.label,
-        "accepted_at": iso_utc(accepted_at),
-        "options": dict(options),
-        "conditions": asdict(batch.conditions),
-        "mixtures": [asdict(m) for m in batch.mixtures],
-        "chunks": chunk_entries,
-        "accepted": len(batch.isotherms),
-        "rejected": [issue.as_dict() for issue in batch.rejected],
-        "rejected_isotherms": len([i for i in batch.rejected_isotherms if i is not None]),
-        "source": source or {},
-    }
+        chunk_entries.append(ChunkEntry(index, len(isotherms),
+                                        sorted({iso.sorbent_id for iso in isotherms})))
+    manifest = Manifest(
+        batch_id=batch_id,
+        label=batch.label,
+        accepted_at=iso_utc(accepted_at),
+        options=dict(options),
+        conditions=asdict(batch.conditions),
+        mixtures=[asdict(m) for m in batch.mixtures],
+        chunks=chunk_entries,
+        accepted=len(batch.isotherms),
+        rejected=[issue.as_dict() for issue in batch.rejected],
+        rejected_isotherms=len([i for i in batch.rejected_isotherms if i is not None]),
+        source=source or {},
+    ).to_dict()
     store.write_manifest(manifest)
     return manifest
 
 
-def _manifest(store: Store, batch_id: str) -> dict:
+def _manifest(store: Store, batch_id: str) -> Manifest:
     manifest = store.read_manifest(batch_id)
     if manifest is None:
         raise UnknownBatch(f"batch {batch_id!r} is not in the store")
-    return manifest
+    return Manifest.from_dict(manifest)
 
 
-def _batch_from_manifest(manifest: dict, isotherms) -> Batch:
-    conditions = dict(manifest["conditions"])
+def _statuses(store: Store, batch_id: str) -> dict[int, ChunkStatus]:
+    return {index: ChunkStatus.from_dict(status)
+            for index, status in store.read_chunk_statuses(batch_id).items()}
+
+
+def _batch_from_manifest(manifest: Manifest, isotherms) -> Batch:
+    conditions = dict(manifest.conditions)
     conditions["reference_pressures_pa"] = tuple(conditions["reference_pressures_pa"])
-    return Batch(label=manifest["label"], isotherms=isotherms,
+    return Batch(label=manifest.label, isotherms=isotherms,
                  conditions=Conditions(**conditions),
-                 mixtures=[MixtureRequest(**m) for m in manifest["mixtures"]])
+                 mixtures=[MixtureRequest(**m) for m in manifest.mixtures])
 
 
 def _with_accepted_at(table: pa.Table, accepted_at: str) -> pa.Table:
@@ -134,22 +139,22 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
     after all three, so a chunk counted as done always has all its files.
     """
     manifest = _manifest(store, batch_id)
-    if not 0 <= chunk_index < len(manifest["chunks"]):
+    if not 0 <= chunk_index < len(manifest.chunks):
         raise UnknownBatch(f"batch {batch_id!r} has no chunk {chunk_index}")
-    previous = store.read_chunk_statuses(batch_id).get(chunk_index, {})
-    if previous.get("state") in SETTLED and not force:
-        return previous  # a duplicate delivery: the work is already on disk
-    attempts = previous.get("attempts", 0) + 1
+    previous = _statuses(store, batch_id).get(chunk_index)
+    if previous is not None and previous.settled and not force:
+        return previous.to_dict()  # a duplicate delivery: the work is already on disk
+    attempts = (previous.attempts if previous is not None else 0) + 1
     if attempts > max_attempts:
         raise AttemptsExhausted(f"chunk {chunk_index} of batch {batch_id!r} was started "
                                 f"{attempts - 1} times without finishing")
     started_at = iso_utc(utc_now())
     fields = {"batch_id": batch_id, "chunk": chunk_index,
-              "isotherm_count": manifest["chunks"][chunk_index]["isotherms"], "attempt": attempts}
+              "isotherm_count": manifest.chunks[chunk_index].isotherms, "attempt": attempts}
     started_s = time.monotonic()
     try:
-        store.write_chunk_status(batch_id, chunk_index,
-                                 {"state": "running", "attempts": attempts, "started_at": started_at})
+        store.write_chunk_status(batch_id, chunk_index, ChunkStatus(
+            RUNNING, attempts=attempts, started_at=started_at).to_dict())
         log.info("chunk started", extra=fields)
         status = _fit_and_write(store, manifest, batch_id, chunk_index)
     except Exception as exc:
@@ -161,20 +166,22 @@ def run_chunk(store: Store, batch_id: str, chunk_index: int, *, force: bool = Fa
         log.warning("chunk stopped by %s: %s", type(exc).__name__, exc, extra={
             **fields, "duration_s": round(time.monotonic() - started_s, 3), "outcome": "error"})
         raise
-    status.update(attempts=attempts, started_at=started_at, finished_at=iso_utc(utc_now()))
-    store.write_chunk_status(batch_id, chunk_index, status)
-    log.info("chunk finished", extra={**fields, "duration_s": status["fit_duration_s"],
+    status = replace(status, attempts=attempts, started_at=started_at,
+                     finished_at=iso_utc(utc_now()))
+    store.write_chunk_status(batch_id, chunk_index, status.to_dict())
+    log.info("chunk finished", extra={**fields, "duration_s": status.fit_duration_s,
                                       "outcome": "done"})
-    return status
+    return status.to_dict()
 
 
-def _give_back_attempt(store: Store, batch_id: str, chunk_index: int, previous: dict) -> None:
+def _give_back_attempt(store: Store, batch_id: str, chunk_index: int,
+                       previous: ChunkStatus | None) -> None:
     # A full disk is not the chunk's fault: its attempt must not count towards
     # MAX_ATTEMPTS. Rewriting the earlier status may itself fail for want of
     # space; deleting it always works (the chunk then reads as queued).
     try:
-        if previous:
-            store.write_chunk_status(batch_id, chunk_index, previous)
+        if previous is not None:
+            store.write_chunk_status(batch_id, chunk_index, previous.to_dict())
         else:
             store.remove_chunk_status(batch_id, chunk_index)
     except OSError:
@@ -192,12 +199,13 @@ def sorbent_rows_table(rows: list[dict]) -> pa.Table:
     return pa.Table.from_pylist([{k: row.get(k) for k in keys} for row in rows])
 
 
-def _fit_and_write(store: Store, manifest: dict, batch_id: str, chunk_index: int) -> dict:
+def _fit_and_write(store: Store, manifest: Manifest, batch_id: str, chunk_index: int
+                   ) -> ChunkStatus:
     """Fit one chunk, write its three tables; the "done" status to record (not yet written)."""
     started_s = time.monotonic()
     isotherms = table_to_isotherms(store.read_chunk("inputs", batch_id, chunk_index))
-    result = process_batch(_batch_from_manifest(manifest, isotherms), FitOptions(**manifest["options"]))
-    accepted_at = manifest["accepted_at"]
+    result = process_batch(_batch_from_manifest(manifest, isotherms), FitOptions(**manifest.options))
+    accepted_at = manifest.accepted_at
     fits = result.fits_table()
     store.write_table("fits", batch_id, chunk_index, _with_accepted_at(fits, accepted_at))
     if result.sorbent_rows:
@@ -211,33 +219,23 @@ def _fit_and_write(store: Store, manifest: dict, batch_id: str, chunk_index: int
     fitted = fits.filter(fits["applicable"])
     fitted_by_model = {row["values"]: row["counts"]
                        for row in pc.value_counts(fitted["model"]).to_pylist()}
-    return {
-        "state": "done",
-        "isotherms": len(isotherms),
-        "done": summaries.num_rows,
-        "fit_duration_s": round(time.monotonic() - started_s, 3),
-        "fitted_by_model": fitted_by_model,
-    }
+    return ChunkStatus(DONE, isotherms=len(isotherms), done=summaries.num_rows,
+                       fit_duration_s=round(time.monotonic() - started_s, 3),
+                       fitted_by_model=fitted_by_model)
 
 
 def record_chunk_failure(store: Store, batch_id: str, chunk_index: int, error: str) -> None:
     """Settle a chunk as failed, keeping the batch's other chunks going."""
-    previous = store.read_chunk_statuses(batch_id).get(chunk_index, {})
-    if previous.get("state") == "done":
+    previous = _statuses(store, batch_id).get(chunk_index) or ChunkStatus()
+    if previous.state == DONE:
         return  # a late failure report must not undo finished work
-    manifest = _manifest(store, batch_id)
-    store.write_chunk_status(batch_id, chunk_index, {
-        "state": "failed",
-        "attempts": previous.get("attempts", 0),
-        "started_at": previous.get("started_at"),
-        "finished_at": iso_utc(utc_now()),
-        "isotherms": manifest["chunks"][chunk_index]["isotherms"],
-        "done": 0,
-        "error": error,
-    })
+    isotherms = _manifest(store, batch_id).chunks[chunk_index].isotherms
+    store.write_chunk_status(batch_id, chunk_index, ChunkStatus(
+        FAILED, attempts=previous.attempts, started_at=previous.started_at,
+        finished_at=iso_utc(utc_now()), isotherms=isotherms, done=0, error=error).to_dict())
     log.error("chunk failed: %s", error, extra={
         "batch_id": batch_id, "chunk": chunk_index, "outcome": "failed",
-        "isotherm_count": manifest["chunks"][chunk_index]["isotherms"]})
+        "isotherm_count": isotherms})
 
 
 def execute_chunk(store: Store, batch_id: str, chunk_index: int, *,
@@ -301,64 +299,66 @@ def _parse_utc(text: str) -> datetime:
 
 def batch_status(store: Store, batch_id: str) -> dict | None:
     """The batch as the disk describes it (the body of GET /batches/{id})."""
-    manifest = store.read_manifest(batch_id)
-    if manifest is None:
+    raw = store.read_manifest(batch_id)
+    if raw is None:
         return None
-    statuses = store.read_chunk_statuses(batch_id)
-    chunks = manifest["chunks"]
-    states = [statuses.get(c["index"], {}).get("state", "queued") for c in chunks]
-    settled = [c for c, s in zip(chunks, states) if s in SETTLED]
-    done = sum(statuses[c["index"]].get("done", 0) for c in settled)
-    settled_isotherms = sum(c["isotherms"] for c in settled)
+    manifest = Manifest.from_dict(raw)
+    statuses = _statuses(store, batch_id)
+    chunks = manifest.chunks
+    chunk_status = [statuses.get(c.index) or ChunkStatus() for c in chunks]
+    states = [s.state for s in chunk_status]
+    settled = [(c, s) for c, s in zip(chunks, chunk_status) if s.settled]
+    done = sum(s.done or 0 for _, s in settled)
+    settled_isotherms = sum(c.isotherms for c, _ in settled)
 
     if len(settled) < len(chunks):
         state = "running" if any(s != "queued" for s in states) else "queued"
-    elif all(s == "done" for s in states):
-        state = "done"
-    elif all(s == "failed" for s in states):
-        state = "failed"
+    elif all(s == DONE for s in states):
+        state = DONE
+    elif all(s == FAILED for s in states):
+        state = FAILED
     else:
         state = "partial"
 
-    started = [s["started_at"] for s in statuses.values() if s.get("started_at")]
-    finished = [f for f in (statuses[c["index"]].get("finished_at") for c in settled) if f]
-    is_final = state in ("done", "failed", "partial")
-    accepted = manifest["accepted"]
+    started = [s.started_at for s in statuses.values() if s.started_at]
+    finished = [s.finished_at for _, s in settled if s.finished_at]
+    is_final = state in (DONE, FAILED, "partial")
+    accepted = manifest.accepted
     return {
         "batch_id": batch_id,
-        "label": manifest["label"],
+        "label": manifest.label,
         "state": state,
         "counts": {
             "accepted": accepted,
             "done": done,
             "failed": settled_isotherms - done,
-            "rejected": manifest["rejected_isotherms"],
+            "rejected": manifest.rejected_isotherms,
         },
         "progress": round(settled_isotherms / accepted, 4) if accepted else 1.0,
         "chunks": {"total": len(chunks), **{k: states.count(k) for k in
                                             ("queued", "running", "done", "failed")}},
         "timings": {
-            "accepted_at": manifest["accepted_at"],
+            "accepted_at": manifest.accepted_at,
             "started_at": min(started) if started else None,
             "finished_at": max(finished) if is_final and finished else None,
         },
-        "options": manifest["options"],
-        "rejected": manifest["rejected"],
-        "errors": [{"chunk": c["index"], "isotherms": c["isotherms"],
-                    "message": statuses[c["index"]].get("error", "")}
-                   for c, s in zip(chunks, states) if s == "failed"],
+        "options": manifest.options,
+        "rejected": manifest.rejected,
+        "errors": [{"chunk": c.index, "isotherms": c.isotherms, "message": s.error or ""}
+                   for c, s in zip(chunks, chunk_status) if s.state == FAILED],
         "damaged_chunks": _damaged_chunks(store, batch_id, statuses),
     }
 
 
-def _damaged_chunks(store: Store, batch_id: str, statuses: dict[int, dict]) -> list[dict]:
+def _damaged_chunks(store: Store, batch_id: str,
+                    statuses: dict[int, ChunkStatus]) -> list[dict]:
     """The batch's quarantined files; ``repaired`` once their chunk was fitted
     again and is done (a damaged inputs file never is)."""
     out = []
     for record in store.damaged_files(batch_id):
-        status = statuses.get(record["chunk"], {})
-        repaired = (record["table"] != "inputs" and status.get("state") == "done"
-                    and (status.get("finished_at") or "") > record["quarantined_at"])
+        status = statuses.get(record["chunk"]) or ChunkStatus()
+        repaired = (record["table"] != "inputs" and status.state == DONE
+                    and (status.finished_at or "") > record["quarantined_at"])
         out.append({"chunk": record["chunk"], "table": record["table"],
                     "reason": record["reason"], "quarantined_at": record["quarantined_at"],
                     "file": record["file"], "repaired": repaired})
@@ -367,9 +367,9 @@ def _damaged_chunks(store: Store, batch_id: str, statuses: dict[int, dict]) -> l
 
 def pending_chunks(store: Store, batch_id: str) -> list[int]:
     manifest = _manifest(store, batch_id)
-    statuses = store.read_chunk_statuses(batch_id)
-    return [c["index"] for c in manifest["chunks"]
-            if statuses.get(c["index"], {}).get("state") not in SETTLED]
+    statuses = _statuses(store, batch_id)
+    return [c.index for c in manifest.chunks
+            if not (statuses.get(c.index) or ChunkStatus()).settled]
 
 
 def unsettled_chunks(store: Store) -> dict[tuple[str, int], str]:
@@ -378,11 +378,11 @@ def unsettled_chunks(store: Store) -> dict[tuple[str, int], str]:
     for batch_id in store.batch_ids():
         if store.read_final(batch_id) is not None:
             continue
-        statuses = store.read_chunk_statuses(batch_id)
-        for chunk in _manifest(store, batch_id)["chunks"]:
-            state = statuses.get(chunk["index"], {}).get("state", "queued")
+        statuses = _statuses(store, batch_id)
+        for chunk in _manifest(store, batch_id).chunks:
+            state = (statuses.get(chunk.index) or ChunkStatus()).state
             if state not in SETTLED:
-                unsettled[(batch_id, chunk["index"])] = state
+                unsettled[(batch_id, chunk.index)] = state
     return unsettled
 
 

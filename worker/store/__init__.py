@@ -29,7 +29,8 @@ gs://, ...); every file operation goes through that ``pyarrow.fs.FileSystem``
 The package: ``layout`` (paths, schema version, batch ids, the JSON records
 and idempotency keys), ``tables`` (``Store``: chunk files, the kept listing of
 a table's files, the quarantine), ``inputs`` (Isotherms to Arrow and back),
-``rankings`` and ``reliability`` (rankings across batches and which figures
+``records`` (the manifest and chunk status as types), ``rankings`` and
+``reliability`` (rankings across batches and which figures
 the data supports), ``readmodel`` (Flask-free reads for the API and the pages;
 imported on its own, as it loads the model catalogue).
 """
@@ -38,6 +39,7 @@ from .layout import (BATCH_ID_PATTERN, SCHEMA_VERSION, SCHEMA_VERSION_KEY, TABLE
                      VERSION_1_ID_COLUMN, VERSION_1_TABLE, DamagedFile, StoreError,
                      atomic_write, is_batch_id, iso_utc, nan_to_none, new_batch_id,
                      original_json, utc_now, version_1_error)
+from .records import ChunkEntry, ChunkStatus, Manifest
 from .rankings import (DEFAULT_RANKING_SORT, LATEST_WINS_RULE, Ranking, RankingQuery, ranking,
                        rankings, sortable_columns)
 from .reliability import (CONDITION_COLUMNS, CONDITIONS_OF_SORT, Q_SAT_MAX_RELATIVE_STDERR,
@@ -55,4 +57,5 @@ __all__ = [
     "reliable_rows", "rows_with_flag", "with_ranking_columns",
     "TABLES", "DamagedFile", "INPUT_SCHEMA", "original_json", "CORE_COLUMN_TYPES",
     "QUARANTINE_DIR", "CONDITIONS_OF_SORT", "sortable_columns", "TableSnapshot",
+    "ChunkEntry", "ChunkStatus", "Manifest",
 ]

@@ -7,7 +7,7 @@ import os
 import posixpath
 import re
 import threading
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path, PurePosixPath
 from typing import NamedTuple
 
@@ -21,6 +21,7 @@ from .. import fs
 from .layout import (SCHEMA_VERSION, SCHEMA_VERSION_KEY, TABLES, DamagedFile, StoreError,
                      StoreLayout, _check_batch_id, _short, is_batch_id, iso_utc, utc_now,
                      version_1_error)
+from .records import FAILED, QUEUED, ChunkStatus
 
 _PARTITIONING = ds.partitioning(pa.schema([("batch_id", pa.string())]), flavor="hive")
 _INDEX_LOCK = threading.Lock()
@@ -139,16 +140,17 @@ class Store(StoreLayout):
 
     def _mark_damaged_chunk(self, record: dict) -> None:
         batch_id, chunk_index = record["batch_id"], record["chunk"]
-        status = self.read_chunk_statuses(batch_id).get(chunk_index)
-        if status is None or status.get("state") not in ("done", "failed"):
+        found = self.read_chunk_statuses(batch_id).get(chunk_index)
+        status = None if found is None else ChunkStatus.from_dict(found)
+        if status is None or not status.settled:
             return  # not settled yet: its run writes the file again
         if record["table"] == "inputs":
-            status = {**status, "state": "failed", "done": 0,
-                      "error": f"DamagedFile: the inputs file is damaged ({record['reason']}) "
-                               f"and was moved to {record['file']}; the chunk cannot be refitted"}
+            status = replace(status, state=FAILED, done=0, error=(
+                f"DamagedFile: the inputs file is damaged ({record['reason']}) "
+                f"and was moved to {record['file']}; the chunk cannot be refitted"))
         else:
-            status = {"state": "queued", "attempts": 0, "refit_after_damage": record["file"]}
-        self.write_chunk_status(batch_id, chunk_index, status)
+            status = ChunkStatus(QUEUED, attempts=0, refit_after_damage=record["file"])
+        self.write_chunk_status(batch_id, chunk_index, status.to_dict())
         try:  # the batch is unfinished again (or settled differently): final.json is rewritten
             self.fs.delete_file(str(self.batch_dir(batch_id) / "final.json"))
         except FileNotFoundError:
