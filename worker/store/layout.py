@@ -5,7 +5,6 @@ idempotency keys). The data tables build on it (``tables.Store``).
 from __future__ import annotations
 
 import json
-import logging
 import os
 import posixpath
 import re
@@ -34,8 +33,6 @@ BATCH_ID_PATTERN = re.compile(r"^b-\d{8}-\d{6}-\d{6}-[0-9a-f]{8}$")
 _KEY_HASH_PATTERN = re.compile(r"^[0-9a-f]{64}$")
 _CHUNK_STATUS_PATTERN = re.compile(r"^chunk-[0-9]{5}\.json$")
 
-log = logging.getLogger(__name__)
-
 
 def _short(exc: BaseException) -> str:
     """An error's type and first line: what a quarantine record and a status show."""
@@ -50,12 +47,6 @@ class StoreError(RuntimeError):
 class DamagedFile(StoreError):
     """A data file of the store is damaged (and now quarantined); running its
     chunk again cannot help when it is the chunk's inputs."""
-
-
-# columns whose type every reader relies on; a file that stores another type is damaged
-
-QUARANTINE_DIR = "quarantine"
-_CHUNK_FILE_PATTERN = re.compile(r"^chunk-([0-9]{5})\.parquet$")
 
 
 def version_1_error(where: str, root: Any) -> StoreError:

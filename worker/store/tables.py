@@ -315,10 +315,10 @@ class _TableIndex:
                 if damage is not None:
                     _quarantine_quietly(store, path, damage)
                     continue
-                files[path] = _FileEntry(size, mtime_ns, fragment,
-                               None if fragment is None else ds.get_partition_keys(
-                                   fragment.partition_expression).get("batch_id"),
-                               names is not None and "batch_id" in names)
+                files[path] = _FileEntry(
+                    size, mtime_ns, fragment,
+                    ds.get_partition_keys(fragment.partition_expression).get("batch_id"),
+                    "batch_id" in names)
             _drop_clashing_types(store, files, [p for p, _, _ in listing])
             for path in set(self.files) - set(files) | {
                     p for p in files if self.files.get(p) is not files[p]}:
