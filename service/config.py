@@ -10,18 +10,15 @@ from __future__ import annotations
 
 import ipaddress
 import os
-from dataclasses import dataclass, field
-from pathlib import Path
+from dataclasses import dataclass, field, fields
 from typing import Mapping
 
 # defined beside the data types, so reading settings does not load the engine
 from sorbrank.worker.isotherm import DEFAULT_CHUNK_SIZE
 # the rules the Celery app applies too: one parser for both
 from sorbrank.worker.settings import (
-    DEFAULT_DATA_DIR, DEFAULT_FILE_MODE, DEFAULT_MIN_FREE_BYTES, DEFAULT_RECONCILE_INTERVAL_S,
-    DEFAULT_TASK_HARD_LIMIT_S,
-    DEFAULT_TASK_MAX_RETRIES, DEFAULT_TASK_SOFT_LIMIT_S, ConfigError, broker_url_problem,
-    data_dir_problem, env_int, read_shared, redact_url,
+    ConfigError, SharedSettings, broker_url_problem, data_dir_problem, env_int, read_shared,
+    redact_url,
 )
 
 from .auth import Token, load_tokens
@@ -43,10 +40,10 @@ __all__ = ["ConfigError", "Settings", "broker_url_problem", "data_dir_problem", 
 
 
 @dataclass(frozen=True)
-class Settings:
-    # a local Path, or a URI string pyarrow.fs understands (s3://, gs://, file://)
-    data_dir: Path | str = Path(DEFAULT_DATA_DIR)
-    broker_url: str | None = None
+class Settings(SharedSettings):
+    """The shared settings (store root, broker, log level, task limits, file mode, free
+    space: one parser with the Celery app) and those only the API and CLI read."""
+
     chunk_size: int = DEFAULT_CHUNK_SIZE
     max_upload_bytes: int = DEFAULT_MAX_UPLOAD_BYTES
     embedded_workers: int = field(default_factory=lambda: os.cpu_count() or 1)
@@ -57,15 +54,6 @@ class Settings:
     worker_concurrency: int = field(default_factory=lambda: os.cpu_count() or 1)
     worker_metrics_port: int | None = None  # None: 'sorbrank worker' serves no metrics
     worker_metrics_host: str = "0.0.0.0"
-    log_level: str = "INFO"
-    # the Celery app reads these itself (worker/settings.py, the same rules);
-    # checked here too so a bad value stops 'sorbrank serve/worker' at start
-    task_soft_limit_s: int = DEFAULT_TASK_SOFT_LIMIT_S
-    task_hard_limit_s: int = DEFAULT_TASK_HARD_LIMIT_S
-    task_max_retries: int = DEFAULT_TASK_MAX_RETRIES
-    reconcile_interval_s: int = DEFAULT_RECONCILE_INTERVAL_S
-    file_mode: int = DEFAULT_FILE_MODE
-    min_free_bytes: int = DEFAULT_MIN_FREE_BYTES
     max_json_bytes: int = DEFAULT_MAX_JSON_BYTES
     max_concurrent_intakes: int = DEFAULT_MAX_CONCURRENT_INTAKES
     http_timeout_s: int = DEFAULT_HTTP_TIMEOUT_S
@@ -99,9 +87,10 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
         if env.get(var, "").strip():
             limits.append((key, env_int(env, var, 0, problems)))
     max_json_bytes = env_int(env, "SORBRANK_MAX_JSON_BYTES", DEFAULT_MAX_JSON_BYTES, problems)
+    # the shared fields as read_shared parsed them (a bad value is refused at start by
+    # 'sorbrank serve/worker' as by the Celery app), then the API's own
     settings = Settings(
-        data_dir=shared.data_dir,
-        broker_url=shared.broker_url,
+        **{f.name: getattr(shared, f.name) for f in fields(SharedSettings)},
         chunk_size=env_int(env, "SORBRANK_CHUNK_SIZE", DEFAULT_CHUNK_SIZE, problems),
         max_upload_bytes=env_int(env, "SORBRANK_MAX_UPLOAD_BYTES", DEFAULT_MAX_UPLOAD_BYTES,
                                  problems),
@@ -114,13 +103,6 @@ def load_settings(env: Mapping[str, str] | None = None) -> Settings:
                                    problems),
         worker_metrics_port=metrics_port,
         worker_metrics_host=env.get("SORBRANK_WORKER_METRICS_HOST", "").strip() or "0.0.0.0",
-        log_level=shared.log_level,
-        task_soft_limit_s=shared.task_soft_limit_s,
-        task_hard_limit_s=shared.task_hard_limit_s,
-        task_max_retries=shared.task_max_retries,
-        reconcile_interval_s=shared.reconcile_interval_s,
-        file_mode=shared.file_mode,
-        min_free_bytes=shared.min_free_bytes,
         max_json_bytes=max_json_bytes,
         max_concurrent_intakes=env_int(env, "SORBRANK_MAX_CONCURRENT_INTAKES",
                                        DEFAULT_MAX_CONCURRENT_INTAKES, problems),
