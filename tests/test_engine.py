@@ -16,25 +16,14 @@ from sorbrank.worker.engine import SolverOptions, fit_model, fit_models
 from sorbrank.worker.isotherm import Isotherm
 from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.packing import pack
+from model_cases import CASES, ENGINE_SATURATION_PRESSURE_PA, ENGINE_TEMPERATURE_K
 
-T_K = 300.0
-P0_PA = 1.0e6  # saturation pressure used for the p/p0 models (invented, truth-known)
+T_K = ENGINE_TEMPERATURE_K
+P0_PA = ENGINE_SATURATION_PRESSURE_PA
 
 # (true parameters in the model's order, pressures in Pa) per catalogue model
-TRUTH = {
-    "henry": ([3.0e-5], np.geomspace(1e2, 1e5, 20)),
-    "langmuir": ([5.0, 2.0e-5], np.geomspace(1e2, 1e6, 25)),
-    "dual_site_langmuir": ([2.0, 1.0e-3, 4.0, 1.0e-5], np.geomspace(1e1, 1e7, 40)),
-    "freundlich": ([0.02, 2.5], np.geomspace(1e2, 1e6, 25)),
-    "sips": ([6.0, 1.0e-5, 0.7], np.geomspace(1e2, 1e7, 30)),
-    "toth": ([6.0, 1.0e-4, 0.6], np.geomspace(1e1, 1e7, 30)),
-    "redlich_peterson": ([2.0e-4, 1.0e-3, 0.8], np.geomspace(1e1, 1e6, 30)),
-    "temkin": ([1.0e-2, 2.0e3], np.geomspace(1e3, 1e6, 25)),
-    "bet": ([3.0, 100.0], P0_PA * np.linspace(0.02, 0.45, 20)),
-    "gab": ([3.0, 50.0, 0.8], P0_PA * np.linspace(0.02, 0.9, 25)),
-    "dubinin_radushkevich": ([5.0, 1.5e4], P0_PA * np.geomspace(1e-5, 0.9, 25)),
-    "dubinin_astakhov": ([5.0, 1.5e4, 2.5], P0_PA * np.geomspace(1e-5, 0.9, 25)),
-}
+# truth-recovery rows of the one model case table (tests/model_cases.py)
+TRUTH = {case.model_id: (list(case.engine[0]), case.engine[1]) for case in CASES}
 
 
 def model_x(model, pressure_pa):
