@@ -58,3 +58,14 @@ def test_a_command_loads_only_its_own_module():
     run = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, timeout=120)
     assert run.returncode == 0, run.stderr
     assert run.stdout.strip() == "['sorbrank.service.commands.models']"
+
+
+def test_submit_reads_units_as_fit_does():
+    """submit takes the same units declaration as fit (one reading of the three options)."""
+    text = _help("submit")
+    for option in ("--units", "--pressure-unit", "--loading-unit", "--sample-mass-g"):
+        assert option in text
+    done = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", "submit", "x.csv",
+                           "--units", "pressure:kPa", "--pressure-unit", "bar"],
+                          capture_output=True, text=True, timeout=60)
+    assert done.returncode == 2 and "given twice" in done.stderr

@@ -36,6 +36,8 @@ def register(subparsers) -> None:
                    help="wait until every batch is finished, showing progress on stderr")
     p.add_argument("--timeout-s", type=float, default=3600.0,
                    help="with --wait: give up after this many seconds (default 3600)")
+    p.add_argument("--units", metavar="QUANTITY:UNIT,...",
+                   help="units of plain pressure/loading columns, e.g. pressure:kPa,loading:mmol/g")
     p.add_argument("--pressure-unit",
                    help="unit of a plain 'pressure' column, e.g. kPa, bar (columns such as "
                         "pressure_kpa carry their own)")
@@ -56,17 +58,18 @@ def add_connection_options(p) -> None:
     p.add_argument("--token", help="bearer token (default $SORBRANK_TOKEN)")
 
 
-def unit_options(args) -> dict | None:
-    """--pressure-unit/--loading-unit as one units declaration (None if neither)."""
-    declared = {"pressure": args.pressure_unit, "loading": args.loading_unit}
-    return {k: v for k, v in declared.items() if v} or None
-
-
 def run(args) -> int:
     from ..client import ApiError, Client, ServiceUnreachable, progress_printer
 
+    from .fit import units_declaration  # the one reading of --units/--pressure-unit/--loading-unit
+
+    try:
+        units = units_declaration(args)
+    except ValueError as exc:
+        print(f"sorbrank submit: error: {exc}", file=sys.stderr)
+        return 2
     client = Client(args.url, args.token)
-    options = {"units": unit_options(args), "sample_mass_g": args.sample_mass_g,
+    options = {"units": units, "sample_mass_g": args.sample_mass_g,
                "batch_label": args.label, "models": args.models, "criterion": args.criterion,
                "weighting": args.weighting}
     ok = True
