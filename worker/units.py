@@ -358,3 +358,19 @@ def parse_units_declaration(value) -> dict[str, str]:
 def format_units_declaration(declared: dict[str, str]) -> str:
     """The text form of a units mapping: {"pressure": "kPa"} -> "pressure:kPa"."""
     return ",".join(f"{quantity}:{unit}" for quantity, unit in declared.items())
+
+
+def declaration_from_options(units: str | None, pressure_unit: str | None = None,
+                             loading_unit: str | None = None) -> dict[str, str] | None:
+    """The one units declaration of the command line (--units plus --pressure-unit and
+    --loading-unit, which fill it), canonical unit names; None when none was given.
+    Raises ValueError, e.g. when a unit is given twice."""
+    declared = dict(parse_units_declaration(units)) if units else {}
+    for quantity, unit in (("pressure", pressure_unit), ("loading", loading_unit)):
+        if unit is None:
+            continue
+        if quantity in declared:
+            raise ValueError(f"the {quantity} unit is given twice: by --units and by "
+                             f"--{quantity}-unit")
+        declared[quantity] = unit
+    return parse_units_declaration(declared) if declared else None

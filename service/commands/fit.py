@@ -215,17 +215,9 @@ def _declared_gas(text: str) -> dict:
 def units_declaration(args) -> dict[str, str] | None:
     """The one units declaration from --units, --pressure-unit and --loading-unit
     (canonical unit names), None when none was given. Raises ValueError."""
-    from sorbrank.worker.units import parse_units_declaration
+    from sorbrank.worker.units import declaration_from_options
 
-    declared = dict(parse_units_declaration(args.units)) if args.units else {}
-    for quantity, unit in (("pressure", args.pressure_unit), ("loading", args.loading_unit)):
-        if unit is None:
-            continue
-        if quantity in declared:
-            raise ValueError(f"the {quantity} unit is given twice: by --units and by "
-                             f"--{quantity}-unit")
-        declared[quantity] = unit
-    return parse_units_declaration(declared) if declared else None
+    return declaration_from_options(args.units, args.pressure_unit, args.loading_unit)
 
 
 def _usage_error(message: str) -> int:

@@ -61,10 +61,10 @@ def add_connection_options(p) -> None:
 def run(args) -> int:
     from ..client import ApiError, Client, ServiceUnreachable, progress_printer
 
-    from .fit import units_declaration  # the one reading of --units/--pressure-unit/--loading-unit
+    from sorbrank.worker.units import declaration_from_options  # as 'sorbrank fit' reads them
 
     try:
-        units = units_declaration(args)
+        units = declaration_from_options(args.units, args.pressure_unit, args.loading_unit)
     except ValueError as exc:
         print(f"sorbrank submit: error: {exc}", file=sys.stderr)
         return 2
