@@ -1,6 +1,6 @@
 """The one table of model test cases: a row per catalogue model drives every
-generic model test (tests/test_models.py), the engine's truth-recovery tests
-(tests/test_engine.py) and the metrics robustness sweep.
+generic model test (tests/worker/test_models.py), the engine's truth-recovery tests
+(tests/worker/test_engine.py) and the metrics robustness sweep.
 
 Each row writes the model's published equation again in scalar Python math,
 from the paper named beside it, so the vectorised class is checked against
@@ -102,7 +102,7 @@ def da_eq(x, t, q_m, e, n):  # Dubinin & Astakhov, Adv. Chem. Ser. 102 (1971) 69
 
 _P0 = ENGINE_SATURATION_PRESSURE_PA
 
-# In catalogue order: tests/test_models.py checks the table against the catalogue.
+# In catalogue order: tests/worker/test_models.py checks the table against the catalogue.
 CASES: tuple[ModelCase, ...] = (
     ModelCase("henry", ("k_h",), henry_eq,
               ((298.15, (1e-5,)), (298.15, (3e-7,)), (273.15, (2e-3,))),

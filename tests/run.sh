@@ -10,7 +10,7 @@ if [ ! -x .venv/bin/python ]; then
 fi
 .venv/bin/python -m pip install -q --disable-pip-version-check --upgrade pip >/dev/null
 .venv/bin/python -m pip install -q --disable-pip-version-check -e '.[test]'
-# the build backend pyproject.toml names, in the venv itself: tests/test_packaging.py
+# the build backend pyproject.toml names, in the venv itself: tests/system/test_packaging.py
 # builds the wheel with it, without build isolation (no download at test time)
 .venv/bin/python -m pip install -q --disable-pip-version-check 'setuptools>=77' wheel
 

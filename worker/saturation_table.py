@@ -17,7 +17,7 @@ critical point, where it is awkward in T or 1/T. Each interval between two
 nodes is a cubic Hermite piece (values and exact slopes at both ends, the
 slope from CoolProp's saturation derivative), so a lookup reads only two
 nodes. Intervals are halved until the piece matches CoolProp to
-``TOLERANCE_LN_P`` at three interior points; tests/test_adsorbates.py checks
+``TOLERANCE_LN_P`` at three interior points; tests/worker/test_adsorbates.py checks
 random temperatures against live CoolProp to 1e-6.
 
 Pseudo-pure fluids (CoolProp's "pure" is false: Air, R404A, ...) get no curve:

@@ -206,7 +206,7 @@ def test_json_summary_carries_the_metric_contract(tmp_path):
     import sys
     from pathlib import Path
 
-    sample = Path(__file__).resolve().parents[1] / "sample_batches" / "b06_n2_77k_relative.csv"
+    sample = Path(__file__).resolve().parents[2] / "sample_batches" / "b06_n2_77k_relative.csv"
     out = subprocess.run([sys.executable, "-m", "sorbrank.service.cli", "fit", str(sample), "--format", "json",
                           "--workers", "1"], capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr

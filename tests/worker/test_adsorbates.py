@@ -34,7 +34,7 @@ def test_fluid_matches_live_coolprop(fluid):
     assert ads.critical_temperature_k == PropsSI("Tcrit", fluid)
     if ads.sources["molar_mass_g_per_mol"].startswith("CoolProp"):
         assert ads.molar_mass_g_per_mol == PropsSI("M", fluid) * 1000
-    else:  # curated CIAAW sums (tests/test_units.py compares them with CoolProp to 1e-4)
+    else:  # curated CIAAW sums (tests/worker/test_units.py compares them with CoolProp to 1e-4)
         assert ads.molar_mass_g_per_mol == pytest.approx(PropsSI("M", fluid) * 1000, rel=1e-4)
     for alias in filter(None, get_fluid_param_string(fluid, "aliases").split(",")):
         # CoolProp's aliases name the fluid, unless the alias is a formula other fluids share

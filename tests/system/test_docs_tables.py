@@ -18,7 +18,7 @@ from sorbrank.worker.intake import Limits
 from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.units import COLUMN_TOKENS
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 DOCS = ROOT / "docs"
 
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from model_cases import CASES
-from test_metrics_support import batch_of, stack_fits
+from metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Conditions, Isotherm, MixtureRequest
 from sorbrank.worker.metrics import sorbent_metrics, summarize
 from sorbrank.worker.models import CATALOGUE

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import constants, stats
 
-from test_metrics_support import batch_of, selection_of, truth_fits
+from metrics_support import batch_of, selection_of, truth_fits
 from sorbrank.worker.isotherm import Isotherm
 from sorbrank.worker.metrics import summarize
 from sorbrank.worker.metrics.bet import BET_MIN_R2, best_bet_ranges

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from scipy import integrate, optimize
 
-from test_metrics_support import batch_of, stack_fits
+from metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Isotherm, MixtureRequest
 from sorbrank.worker.metrics import sorbent_metrics
 from sorbrank.worker.metrics.iast import spreading_pressure

@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from test_metrics_support import batch_of, langmuir_isotherm, truth_fits
+from metrics_support import batch_of, langmuir_isotherm, truth_fits
 from sorbrank.worker.isotherm import Batch, Isotherm
 from sorbrank.worker.metrics import summarize
 from sorbrank.worker.metrics.averaging import MODEL_AVERAGE_LEFT_OUT_WEIGHT, akaike_average

@@ -237,7 +237,7 @@ def test_benchmark_runs_at_tiny_size():
     import sys
     from pathlib import Path
 
-    script = Path(__file__).resolve().parents[1] / "benchmarks" / "bench_engine.py"
+    script = Path(__file__).resolve().parents[2] / "benchmarks" / "bench_engine.py"
     run = subprocess.run([sys.executable, str(script), "--n", "25", "--baseline-n", "5", "--repeats", "1"],
                          capture_output=True, text=True, timeout=300)
     assert run.returncode == 0, run.stderr

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy import constants, stats
 
-from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
+from metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
 from sorbrank.worker.metrics import summarize
 from sorbrank.worker.metrics.capacity import (CAPACITY_EXTRAPOLATION_FRACTION, gas_volume_cm3stp_per_g,
                                      sites_per_g)

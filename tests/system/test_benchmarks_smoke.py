@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pyarrow.parquet as pq
 
-BENCH = Path(__file__).resolve().parents[1] / "benchmarks"
+BENCH = Path(__file__).resolve().parents[2] / "benchmarks"
 
 
 def run(script: str, *args: str) -> str:
@@ -31,7 +31,7 @@ def test_bench_engine_prints_its_figures_per_model():
 
 def test_bench_engine_all_models_against_a_reference_engine_folder():
     # the current engine (the package folder) as its own reference: exercises the before/after path
-    engine_dir = Path(__file__).resolve().parents[1] / "worker" / "engine"
+    engine_dir = Path(__file__).resolve().parents[2] / "worker" / "engine"
     out = run("bench_engine.py", "--n", "5", "--baseline-n", "2", "--repeats", "1",
               "--models", "all", "--reference-engine", str(engine_dir))
     assert "reference:" in out and "speed-up" in out, out

@@ -16,7 +16,7 @@ import pytest
 from sorbrank.service.client import Client
 from conftest import clean_env, start_server
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 SAMPLES = ROOT / "sample_batches"
 
 pytestmark = pytest.mark.integration

@@ -14,7 +14,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
+from metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
 from sorbrank.worker.isotherm import Batch, Isotherm
 from sorbrank.worker.metrics import summarize
 from sorbrank.worker.metrics.common import positive_interval_95, t_quantile_975

@@ -17,7 +17,7 @@ import pytest
 from sorbrank.worker.store import RankingQuery, Store, new_batch_id, rankings
 from sorbrank.worker.store.rankings import _rank_whole_rows
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 T0 = datetime(2025, 3, 1, tzinfo=timezone.utc)
 FLAGS = [[], ["at_bound"], ["ambiguous", "at_bound"], ["ambiguous"], None, ["q_sat_from_other_model"]]
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from test_metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
+from metrics_support import batch_of, langmuir_isotherm, selection_of, stack_fits, truth_fits
 from sorbrank.worker.isotherm import Conditions
 from sorbrank.worker.metrics import sorbent_metrics, summarize
 

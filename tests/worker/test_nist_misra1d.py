@@ -25,7 +25,7 @@ from sorbrank.worker.isotherm import Isotherm
 from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.packing import pack
 
-REPO = Path(__file__).resolve().parents[1]
+REPO = Path(__file__).resolve().parents[2]
 
 # NIST StRD Misra1d: x = pressure, y = volume adsorbed (14 observations)
 X = np.array([77.6, 114.9, 141.1, 190.8, 239.9, 289.0, 332.8, 378.4, 434.8, 477.3,

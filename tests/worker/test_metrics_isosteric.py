@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from scipy import constants
 
-from test_metrics_support import batch_of, stack_fits
+from metrics_support import batch_of, stack_fits
 from sorbrank.worker.isotherm import Isotherm
 from sorbrank.worker.metrics import sorbent_metrics
 from sorbrank.worker.metrics.isosteric import clausius_clapeyron
@@ -208,7 +208,7 @@ def test_one_family_with_the_smallest_summed_criterion_is_used_at_every_temperat
     # per-temperature choices langmuir, langmuir, sips; both fitted everywhere.
     # Summed criterion: langmuir -30 - 30 + 10 = -50 < sips -20 - 20 - 5 = -45
     from sorbrank.worker.metrics.isosteric import common_model_family
-    from test_metrics_support import selection_of, truth_fits
+    from metrics_support import selection_of, truth_fits
     temperatures = (273.15, 298.15, 323.15)
     lang = truth_fits("langmuir", [[Q_SAT, affinity(t)] for t in temperatures])
     sips = truth_fits("sips", [[Q_SAT, affinity(t), 1.0] for t in temperatures])

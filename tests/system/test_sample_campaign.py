@@ -16,7 +16,7 @@ import pyarrow.parquet as pq
 import pytest
 from scipy import constants, integrate, optimize
 
-SAMPLES = Path(__file__).resolve().parents[1] / "sample_batches"
+SAMPLES = Path(__file__).resolve().parents[2] / "sample_batches"
 ID_PATTERN = re.compile(r"^[A-Za-z0-9-]+$")
 
 # Unit factors typed here independently of the generator, so a conversion

@@ -14,7 +14,7 @@ import pytest
 import sorbrank
 from conftest import LOOPBACK, ROOT, TOKENS, clean_env, free_port, start_server, tokens_json
 from sorbrank.service.client import ApiError, ServiceUnreachable
-from test_python_api import TRUTH, by_isotherm, frame, plain
+from api_truth import TRUTH, by_isotherm, frame, plain
 
 pytestmark = pytest.mark.integration
 SUBMITTER = TOKENS["submitter"][0]
