@@ -1,13 +1,15 @@
 """Rankings across every batch: latest wins, flag filters, the page."""
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
+from typing import Callable, Iterator
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.dataset as ds
 
+from .. import adsorbates
 from .reliability import (_RELIABILITY_RULES, RELIABILITY_OF_SORT, _column_list, condition_sets,
                           conditions_of_sort, reliable_rows, rows_with_flag,
                           with_ranking_columns)
@@ -29,7 +31,7 @@ class RankingQuery:
     sorbent_id: str | None = None
     sort: str = "loading_ads_mol_per_kg"   # DEFAULT_RANKING_SORT
     descending: bool = True
-    limit: int = 100
+    limit: int | None = 100              # None: every row from ``offset`` on
     offset: int = 0
     all_results: bool = False
     # rows whose sorted figure is not supported by the data come after the rest
@@ -40,6 +42,47 @@ class RankingQuery:
 # loading at the batch's adsorption pressure, at the isotherm's own
 # temperature (docs/results.md, "Default ranking").
 DEFAULT_RANKING_SORT = "loading_ads_mol_per_kg"
+
+
+class UnknownAdsorbate(ValueError):
+    """An adsorbate filter that names no gas intake would accept (nor any
+    gas a batch declared): answered as a bad parameter, never as 0 rows."""
+
+    def __init__(self, name: str, suggestions: list[str]):
+        self.name, self.suggestions = name, suggestions
+        hint = ("; did you mean " + " or ".join(map(repr, suggestions)) + "?") if suggestions else ""
+        super().__init__(f"adsorbate={name!r} is not a known gas (nor one a batch declared)"
+                         + hint)
+
+
+def canonical_adsorbate(name: str, stored: Callable[[], list[str]] = list) -> str:
+    """The adsorbate as intake stores it: ``co2`` and ``carbon dioxide`` are
+    ``CO2``. A name the gas table lacks may be a gas a batch declared: it
+    matches one of the names ``stored()`` gives (the adsorbates in the store)
+    the way intake matches declared gases. Raises UnknownAdsorbate when
+    neither knows it."""
+    found = adsorbates.lookup(name)
+    if found is None:
+        declared = [adsorbates.Adsorbate(s, (), 0.0, None, None, None, declared=True)
+                    for s in stored() if isinstance(s, str)]
+        found = adsorbates.lookup(name, declared=declared) if declared else None
+    if found is None:
+        raise UnknownAdsorbate(name, adsorbates.suggestions(name))
+    return found.id
+
+
+def _stored_adsorbates(snap: TableSnapshot) -> list[str]:
+    if snap.dataset is None or "adsorbate" not in snap.dataset.schema.names:
+        return []
+    column = snap.key_columns(["adsorbate"])["adsorbate"]
+    return [v for v in pc.unique(column).to_pylist() if v is not None]
+
+
+def _resolved(query: RankingQuery, snap: TableSnapshot) -> RankingQuery:
+    if query.adsorbate is None:
+        return query
+    return replace(query, adsorbate=canonical_adsorbate(
+        query.adsorbate, lambda: _stored_adsorbates(snap)))
 
 
 def sortable_columns(schema: pa.Schema) -> list[str]:
@@ -76,13 +119,48 @@ def _rank(store: "Store", query: RankingQuery) -> tuple[pa.Table, int, pa.Table]
     the row groups that hold them. Where that does not apply, the whole-row
     path (``_rank_whole_rows`` over a dataset scan) gives the same result.
     """
+    return _rank_snapshot(*_snapshot_for(store, query))
+
+
+def _rank_snapshot(snap: TableSnapshot, query: RankingQuery
+                   ) -> tuple[pa.Table, int, pa.Table]:
+    keys = _rank_keys(snap, query)
+    if keys is not None:
+        page, total, ranked = keys
+        rows = _whole_rows(snap, page) if page.num_rows else snap.dataset.schema.empty_table()
+        if rows is not None:
+            return rows, total, ranked
+    return _rank_by_whole_rows(snap, query)
+
+
+def _snapshot_for(store: "Store", query: RankingQuery) -> tuple[TableSnapshot, RankingQuery]:
+    """The summaries as one listing found them, and the query with its
+    adsorbate in canonical form and its sort column checked."""
     snap = store.snapshot("summaries")
+    query = _resolved(query, snap)
+    data = snap.dataset
+    if data is not None and query.sort not in sortable_columns(data.schema):
+        raise ValueError(f"cannot sort by {query.sort!r}; sortable columns: "
+                         + ", ".join(sortable_columns(data.schema)))
+    return snap, query
+
+
+def _rank_keys(snap: TableSnapshot, query: RankingQuery
+               ) -> tuple[pa.Table, int, pa.Table] | None:
+    """The ranked page as key columns with each row's ``_file`` and ``_row``
+    (``_whole_rows`` reads them whole), the total and the ranked rows; None
+    where only the whole-row path applies."""
+    data = snap.dataset
+    if data is None or not all(name in data.schema.names for name in _RANKING_KEYS):
+        return None
+    return _rank_cached(snap, query)
+
+
+def _rank_by_whole_rows(snap: TableSnapshot, query: RankingQuery
+                        ) -> tuple[pa.Table, int, pa.Table]:
     data = snap.dataset
     if data is None:
         return pa.table({}), 0, pa.table({})
-    if query.sort not in sortable_columns(data.schema):
-        raise ValueError(f"cannot sort by {query.sort!r}; sortable columns: "
-                         + ", ".join(sortable_columns(data.schema)))
     where = None
 
     def both(expr):
@@ -98,10 +176,6 @@ def _rank(store: "Store", query: RankingQuery) -> tuple[pa.Table, int, pa.Table]
         tol = abs(query.temperature_tolerance_k)
         where = both((ds.field("temperature_k") >= query.temperature_k - tol)
                      & (ds.field("temperature_k") <= query.temperature_k + tol))
-    if all(name in data.schema.names for name in _RANKING_KEYS):
-        ranked = _rank_cached(snap, query)
-        if ranked is not None:
-            return ranked
     return _ranked_whole_rows(data.to_table(filter=where), query)
 
 
@@ -264,7 +338,8 @@ def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> t
     so the tie-breaking order is untouched); NaN and null sort last and are
     needed only when fewer finite values than the page's end exist."""
     total = table.num_rows if rows is None else len(rows)
-    end = max(query.offset, 0) + max(query.limit, 0)
+    limit = total if query.limit is None else max(query.limit, 0)
+    end = max(query.offset, 0) + limit
     column = table[query.sort]
     if 0 < end < total and pa.types.is_floating(column.type):
         values = (column if rows is None else column.take(pa.array(rows))).to_numpy(zero_copy_only=False)
@@ -281,13 +356,13 @@ def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> t
     if rows is not None:
         table = table.take(pa.array(rows))
     table = _sorted_for_page(table, query)
-    return table.slice(max(query.offset, 0), max(query.limit, 0)), total
+    return table.slice(max(query.offset, 0), limit), total
 
 
 def _rank_cached(snap: TableSnapshot, query: RankingQuery
                  ) -> tuple[pa.Table, int, pa.Table] | None:
-    """Rank on the kept key columns, then read the page's whole rows by
-    (file, row); None when the store needs the whole-row path."""
+    """Rank on the kept key columns: the page as key columns with ``_file``
+    and ``_row``; None when the store needs the whole-row path."""
     data, fragments = snap.dataset, snap.fragments
     if snap.own_batch_column:
         return None  # a file carrying its own batch_id: let the dataset reconcile it
@@ -336,11 +411,14 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
     table = table.append_column("_file", pa.array(files)).append_column(
         "_row", pa.array(chosen - starts[files])).append_column(
         "batch_id", pa.array(snap.batch_of_file, pa.string()).take(pa.array(files)))
-    page, total, ranked = _ranked_whole_rows(table, query)
-    if page.num_rows == 0:
-        return data.schema.empty_table(), total, ranked
+    return _ranked_whole_rows(table, query)
 
-    # the page's rows, read whole from the row groups that hold them
+
+def _whole_rows(snap: TableSnapshot, page: pa.Table) -> pa.Table | None:
+    """The rows ``page`` names by ``_file`` and ``_row``, read whole from the
+    row groups that hold them, in the page's order; None when the files
+    changed under the query."""
+    data, fragments = snap.dataset, snap.fragments
     file_no = page["_file"].to_numpy()
     row_no = page["_row"].to_numpy()
     subsets, expected = [], []
@@ -359,7 +437,7 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
     at = np.searchsorted(expected, wanted)
     if np.any(at >= len(expected)) or np.any(expected[np.minimum(at, len(expected) - 1)] != wanted):
         return None
-    return rows.take(pa.array(at)).replace_schema_metadata(data.schema.metadata), total, ranked
+    return rows.take(pa.array(at)).replace_schema_metadata(data.schema.metadata)
 
 
 @dataclass
@@ -375,21 +453,88 @@ class Ranking:
     # distinct conditions of the sorted figure over every ranked row (not only
     # the page), most rows first: the condition columns and "rows"
     condition_sets: list[dict]
+    # the query as applied: its adsorbate in the canonical form intake stores
+    query: RankingQuery | None = None
 
     @property
     def mixed_conditions(self) -> bool:
         return len(self.condition_sets) > 1
 
 
+def _readers_page(store: "Store", page: pa.Table) -> pa.Table:
+    pressures = [store.batch_pressures(b) for b in _column_list(page, "batch_id")]
+    return with_ranking_columns(page, pressures)
+
+
+def _condition_sets(store: "Store", ranked: pa.Table, query: RankingQuery) -> list[dict]:
+    return condition_sets(ranked, store.batch_pressures, conditions_of_sort(query.sort),
+                          abs(query.temperature_tolerance_k))
+
+
 def ranking(store: "Store", query: RankingQuery) -> Ranking:
     """``rankings`` plus, on every row, the conditions behind its loadings and
     working capacity and the reliability columns; and which condition sets
     the ranked rows span for the sorted figure."""
-    page, total, ranked = _rank(store, query)
-    pressures = [store.batch_pressures(b) for b in _column_list(page, "batch_id")]
-    page = with_ranking_columns(page, pressures)
-    sets = condition_sets(ranked, store.batch_pressures, conditions_of_sort(query.sort),
-                          abs(query.temperature_tolerance_k))
-    return Ranking(page, total, query.sort, query.unreliable_last,
-                   RELIABILITY_OF_SORT.get(query.sort), sets)
+    snap, query = _snapshot_for(store, query)
+    page, total, ranked = _rank_snapshot(snap, query)
+    return Ranking(_readers_page(store, page), total, query.sort, query.unreliable_last,
+                   RELIABILITY_OF_SORT.get(query.sort), _condition_sets(store, ranked, query),
+                   query)
 
+
+# rows read whole at a time by a streamed ranking: a part's memory, not the export's
+STREAM_PART_ROWS = 10_000
+
+
+@dataclass
+class RankingStream:
+    """A ranking read part by part: ``parts`` yields tables of ``schema``
+    (the columns of ``ranking``'s page), at most ``part_rows`` rows each,
+    ``returned`` rows in all, in ranking order. The ranking itself runs once,
+    on the key columns; each part's whole rows are read only when it is
+    asked for. ``parts`` can be consumed once."""
+
+    total: int                # ranked rows before offset and limit
+    returned: int             # rows the parts hold
+    schema: pa.Schema
+    query: RankingQuery       # as applied (canonical adsorbate)
+    reliability_column: str | None
+    condition_sets: list[dict]
+    parts: Iterator[pa.Table]
+
+    @property
+    def mixed_conditions(self) -> bool:
+        return len(self.condition_sets) > 1
+
+
+def ranking_stream(store: "Store", query: RankingQuery,
+                   part_rows: int = STREAM_PART_ROWS) -> RankingStream:
+    """The rows ``ranking`` gives for ``query`` (``limit=None``: every ranked
+    row from ``offset`` on), as a stream of parts for a complete export."""
+    if part_rows < 1:
+        raise ValueError(f"part_rows must be 1 or more, not {part_rows}")
+    snap, query = _snapshot_for(store, query)
+    empty = snap.dataset.schema.empty_table() if snap.dataset is not None else pa.table({})
+    schema = _readers_page(store, empty).schema
+    keys = _rank_keys(snap, query)
+    if keys is None:
+        page, total, ranked = _rank_by_whole_rows(snap, query)
+    else:
+        page, total, ranked = keys
+
+    def parts() -> Iterator[pa.Table]:
+        whole = None if keys is not None else page
+        for start in range(0, max(page.num_rows, 1), part_rows):
+            if whole is None:
+                rows = _whole_rows(snap, page.slice(start, part_rows)) if page.num_rows else empty
+                if rows is None:  # the files changed under the export: rank again, once
+                    whole = _rank_by_whole_rows(snap, query)[0]
+            if whole is not None:
+                rows = whole.slice(start, part_rows)
+            part = _readers_page(store, rows)
+            if not part.schema.equals(schema):
+                part = part.select(schema.names).cast(schema)
+            yield part
+
+    return RankingStream(total, page.num_rows, schema, query, RELIABILITY_OF_SORT.get(query.sort),
+                         _condition_sets(store, ranked, query), parts())
