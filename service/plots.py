@@ -16,26 +16,42 @@ API, the tests and anyone post-processing the SVG can find it by name:
     Qst plot        qst-<i>, qst-<i>-errorbars, qst-<i>-caps-<k> (i = row index), note
 
 Each ``*_figure`` function returns the Figure (for callers that embed or
-inspect it); each ``*_plot`` function returns the rendered bytes.
+inspect it); each ``*_plot`` function returns the rendered bytes. Reading the
+records (which fit is drawn, its curve, labels) lives in
+``service/plot_records.py``; this module draws.
 """
 from __future__ import annotations
 
 import io
-import math
 import threading
-from typing import Any, Iterable, Mapping, Sequence
+from typing import Any, Mapping, Sequence
 
 import matplotlib
 import numpy as np
 from matplotlib.figure import Figure
 
-from sorbrank.worker.models import CATALOGUE
+from .plot_records import (
+    GRID_POINTS as GRID_POINTS,  # re-exported: part of this module's public settings
+    fit_curve,
+    fit_label,
+    fmt_value,
+    id_suffix,
+    isotherm_title,
+    model_title,
+    number,
+    paired_points,
+    pressure_grid,
+    qst_series,
+    residuals,
+    row_label,
+    runner_up_fit,
+    selected_fit,
+)
 
 FORMATS = ("svg", "png")
 PNG_DPI = 120
 ISOTHERM_FIGSIZE_IN = (6.4, 5.6)
 SMALL_FIGSIZE_IN = (6.4, 4.6)
-GRID_POINTS = 400
 BET_VIEW_MIN_RELATIVE_PRESSURE = 0.35
 
 # Okabe-Ito colours stay distinct for colour-blind readers; marker shape and
@@ -117,31 +133,31 @@ def isotherm_figure(pressure_pa, loading_mol_per_kg, record: Mapping[str, Any] |
                     saturation_pressure_pa: float | None = None,
                     temperature_k: float | None = None) -> Figure:
     record = record or {}
-    p_pa, q = _paired_points(pressure_pa, loading_mol_per_kg, "pressure_pa")
+    p_pa, q = paired_points(pressure_pa, loading_mol_per_kg, "pressure_pa")
     if log_pressure:
         keep = p_pa > 0  # zero pressure has no place on a log axis
         p_pa, q = p_pa[keep], q[keep]
         if p_pa.size == 0:
             raise ValueError("log pressure axis needs at least one point with pressure > 0")
-    p0_pa = _num(saturation_pressure_pa)
+    p0_pa = number(saturation_pressure_pa)
     if p0_pa is None:
-        p0_pa = _num(record.get("saturation_pressure_pa"))
-    t_k = _num(temperature_k)
+        p0_pa = number(record.get("saturation_pressure_pa"))
+    t_k = number(temperature_k)
     if t_k is None:
-        t_k = _num(record.get("temperature_k"))
+        t_k = number(record.get("temperature_k"))
 
     notes: list[str] = []
     fits = [f for f in (record.get("fits") or []) if isinstance(f, Mapping)]
-    selected = _selected_fit(record, fits, notes)
-    runner_up = _runner_up_fit(fits, selected)
+    selected = selected_fit(record, fits, notes)
+    runner_up = runner_up_fit(fits, selected)
     if record.get("ambiguous"):
         notes.append("Selection ambiguous: the runner-up is nearly as well supported.")
 
-    grid_pa = _pressure_grid(p_pa, log_pressure)
+    grid_pa = pressure_grid(p_pa, log_pressure)
     curves = []  # (fit, role, colour, line style, gid, grid pressures, loadings)
     for fit, role, colour, style, gid in ((selected, "selected", BLUE, "-", "fit-selected"),
                                           (runner_up, "runner-up", VERMILION, "--", "fit-runner-up")):
-        curve = None if fit is None else _fit_curve(fit, grid_pa, p0_pa, t_k, notes)
+        curve = None if fit is None else fit_curve(fit, grid_pa, p0_pa, t_k, notes)
         if curve is not None:
             curves.append((fit, role, colour, style, gid, *curve))
     selected_drawn = bool(curves) and curves[0][1] == "selected"
@@ -158,7 +174,7 @@ def isotherm_figure(pressure_pa, loading_mol_per_kg, record: Mapping[str, Any] |
     pts.set_gid("data")
     for fit, role, colour, style, gid, curve_pa, q_fit in curves:
         (line,) = ax.plot(curve_pa / 1000.0, q_fit, color=colour, linestyle=style, linewidth=2.0,
-                          label=_fit_label(fit, role), zorder=2)
+                          label=fit_label(fit, role), zorder=2)
         line.set_gid(gid)
 
     if not fits:
@@ -173,7 +189,7 @@ def isotherm_figure(pressure_pa, loading_mol_per_kg, record: Mapping[str, Any] |
     else:
         ax.set_xlim(left=0.0)
     ax.grid(True, color="#DDDDDD", linewidth=0.6)
-    fig.suptitle(_isotherm_title(record, t_k), fontsize=11)
+    fig.suptitle(isotherm_title(record, t_k), fontsize=11)
     # below the axes: steep low-pressure data leave no safe corner inside
     fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=1,
                fontsize=8, frameon=False)
@@ -181,10 +197,10 @@ def isotherm_figure(pressure_pa, loading_mol_per_kg, record: Mapping[str, Any] |
     if ax_res is not None:
         zero = ax_res.axhline(0.0, color="#777777", linestyle=":", linewidth=1.0)
         zero.set_gid("residuals-zero")
-        residual = _residuals(selected, p_pa, q, p0_pa, t_k)
+        residual = residuals(selected, p_pa, q, p0_pa, t_k)
         (res,) = ax_res.plot(p_pa / 1000.0, residual, linestyle="none", marker="s",
                              markersize=4.5, color=BLUE,
-                             label=f"Residual of {_model_title(selected)}")
+                             label=f"Residual of {model_title(selected)}")
         res.set_gid("residuals")
         ax_res.set_ylabel("Residual (mol/kg)")
         ax_res.set_xlabel("Pressure (kPa)")
@@ -199,7 +215,7 @@ def isotherm_figure(pressure_pa, loading_mol_per_kg, record: Mapping[str, Any] |
 def langmuir_linear_figure(pressure_pa, loading_mol_per_kg,
                            record: Mapping[str, Any] | None) -> Figure:
     record = record or {}
-    p_pa, q = _paired_points(pressure_pa, loading_mol_per_kg, "pressure_pa")
+    p_pa, q = paired_points(pressure_pa, loading_mol_per_kg, "pressure_pa")
     keep = (p_pa > 0) & (q > 0)  # reciprocals only exist for positive values
     inv_p, inv_q = 1.0 / p_pa[keep], 1.0 / q[keep]
 
@@ -214,8 +230,8 @@ def langmuir_linear_figure(pressure_pa, loading_mol_per_kg,
         notes.append("No point with positive pressure and loading to transform.")
 
     lin = record.get("linearized_langmuir") or {}
-    q_sat = _num(lin.get("q_sat")) if isinstance(lin, Mapping) else None
-    affinity = _num(lin.get("affinity")) if isinstance(lin, Mapping) else None
+    q_sat = number(lin.get("q_sat")) if isinstance(lin, Mapping) else None
+    affinity = number(lin.get("affinity")) if isinstance(lin, Mapping) else None
     if q_sat and affinity:
         # 1/q = 1/q_sat + (1/(q_sat b)) (1/p)
         intercept_kg_per_mol = 1.0 / q_sat
@@ -228,9 +244,9 @@ def langmuir_linear_figure(pressure_pa, loading_mol_per_kg,
         line.set_gid("langmuir-line")
         text = ax.text(
             0.03, 0.97,
-            f"intercept 1/q_sat = {_fmt(intercept_kg_per_mol)} kg/mol\n"
-            f"slope 1/(q_sat b) = {_fmt(slope_kg_pa_per_mol)} kg·Pa/mol\n"
-            f"q_sat = {_fmt(q_sat)} mol/kg, b = {_fmt(affinity)} 1/Pa",
+            f"intercept 1/q_sat = {fmt_value(intercept_kg_per_mol)} kg/mol\n"
+            f"slope 1/(q_sat b) = {fmt_value(slope_kg_pa_per_mol)} kg·Pa/mol\n"
+            f"q_sat = {fmt_value(q_sat)} mol/kg, b = {fmt_value(affinity)} 1/Pa",
             transform=ax.transAxes, va="top", ha="left", fontsize=8.5,
             bbox={"boxstyle": "round", "facecolor": "white", "edgecolor": "#999999"})
         text.set_gid("langmuir-equation")
@@ -242,7 +258,7 @@ def langmuir_linear_figure(pressure_pa, loading_mol_per_kg,
     ax.set_ylabel("1 / loading (kg/mol)")
     ax.set_xlim(left=0.0)
     ax.grid(True, color="#DDDDDD", linewidth=0.6)
-    fig.suptitle(f"Double-reciprocal Langmuir plot{_id_suffix(record)}", fontsize=11)
+    fig.suptitle(f"Double-reciprocal Langmuir plot{id_suffix(record)}", fontsize=11)
     _add_note(ax, notes)
     return fig
 
@@ -250,13 +266,13 @@ def langmuir_linear_figure(pressure_pa, loading_mol_per_kg,
 def bet_figure(relative_pressure, loading_mol_per_kg,
                summary: Mapping[str, Any] | None) -> Figure:
     summary = summary or {}
-    x, q = _paired_points(relative_pressure, loading_mol_per_kg, "relative_pressure")
+    x, q = paired_points(relative_pressure, loading_mol_per_kg, "relative_pressure")
     keep = (x > 0) & (x < 1) & (q > 0)  # the transform is defined only there
     x, q = x[keep], q[keep]
     y_kg_per_mol = x / (q * (1.0 - x))
 
-    low = _num(summary.get("bet_range_relative_pressure_low"))
-    high = _num(summary.get("bet_range_relative_pressure_high"))
+    low = number(summary.get("bet_range_relative_pressure_low"))
+    high = number(summary.get("bet_range_relative_pressure_high"))
     has_range = low is not None and high is not None and high > low
 
     fig = Figure(figsize=SMALL_FIGSIZE_IN, layout="constrained")
@@ -281,9 +297,9 @@ def bet_figure(relative_pressure, loading_mol_per_kg,
     if x.size == 0:
         notes.append("No point with 0 < p/p0 < 1 and positive loading to transform.")
 
-    c = _num(summary.get("bet_c"))
-    n_m = _num(summary.get("bet_monolayer_mol_per_kg"))
-    area = _num(summary.get("bet_area_m2_per_g"))
+    c = number(summary.get("bet_c"))
+    n_m = number(summary.get("bet_monolayer_mol_per_kg"))
+    area = number(summary.get("bet_area_m2_per_g"))
     if has_range and c and n_m:
         # x/(q(1-x)) = 1/(n_m C) + (C-1)/(n_m C) x
         x_line = np.linspace(low, high, 50)
@@ -292,8 +308,8 @@ def bet_figure(relative_pressure, loading_mol_per_kg,
                           zorder=5)
         line.set_gid("bet-fit")
     if has_range:
-        annotation = (f"BET area = {_fmt(area)} m2/g\nC = {_fmt(c)}\n"
-                      f"n_m = {_fmt(n_m)} mol/kg\nrange p/p0 {low:.3g} to {high:.3g}")
+        annotation = (f"BET area = {fmt_value(area)} m2/g\nC = {fmt_value(c)}\n"
+                      f"n_m = {fmt_value(n_m)} mol/kg\nrange p/p0 {low:.3g} to {high:.3g}")
         # the transform explodes towards p/p0 = 1; zoom so the range stays readable
         x_view = max(BET_VIEW_MIN_RELATIVE_PRESSURE, 2.0 * high)
         shown = x <= x_view
@@ -331,8 +347,8 @@ def qst_figure(rows: Sequence[Mapping[str, Any]]) -> Figure:
     notes: list[str] = []
     handles, labels = [], []
     for i, row in enumerate(rows):
-        label = _row_label(row, i)
-        series = _qst_series(row)
+        label = row_label(row, i)
+        series = qst_series(row)
         if series is None:
             notes.append(f"{label}: no isosteric heat values.")
             continue
@@ -374,115 +390,6 @@ def _check_format(fmt: str) -> None:
         raise ValueError(f"unknown plot format {fmt!r}; use one of {', '.join(FORMATS)}")
 
 
-def _num(value: Any) -> float | None:
-    """A finite float, or None for None, NaN, inf and anything non-numeric."""
-    if value is None or isinstance(value, bool):
-        return None
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) else None
-
-
-def _float_array(values: Iterable[Any] | None) -> np.ndarray:
-    if values is None:
-        return np.zeros(0)
-    return np.array([np.nan if _num(v) is None else float(v) for v in np.ravel(values)],
-                    dtype=float)
-
-
-def _paired_points(x_values, q_values, x_name: str) -> tuple[np.ndarray, np.ndarray]:
-    x = _float_array(x_values)
-    q = _float_array(q_values)
-    if x.size == 0 or q.size == 0:
-        raise ValueError(f"{x_name} and loading_mol_per_kg must not be empty")
-    if x.size != q.size:
-        raise ValueError(f"{x_name} has {x.size} values but loading_mol_per_kg has {q.size}")
-    ok = np.isfinite(x) & np.isfinite(q)
-    if not np.any(ok):
-        raise ValueError("no point has both a finite pressure and a finite loading")
-    order = np.argsort(x[ok], kind="stable")
-    return x[ok][order], q[ok][order]
-
-
-def _selected_fit(record, fits, notes) -> Mapping[str, Any] | None:
-    best = record.get("best_model")
-    if not best:
-        if any(f.get("converged") for f in fits):
-            notes.append("No model was selected for this isotherm.")
-        return None
-    for fit in fits:
-        if fit.get("model") == best and fit.get("converged"):
-            return fit
-    notes.append(f"Selected model {best!r} has no converged fit in this record.")
-    return None
-
-
-def _runner_up_fit(fits, selected) -> Mapping[str, Any] | None:
-    """The converged fit, other than the selected one, with the highest weight."""
-    candidates = [f for f in fits
-                  if f is not selected and f.get("converged")
-                  and _num(f.get("akaike_weight")) is not None
-                  and (selected is None or f.get("model") != selected.get("model"))]
-    if selected is None or not candidates:
-        return None
-    return max(candidates, key=lambda f: _num(f.get("akaike_weight")))
-
-
-def _evaluate(fit, pressure_pa: np.ndarray, p0_pa, t_k, notes) -> np.ndarray | None:
-    """Model loading at the given pressures; None (with a note) if impossible."""
-    model_id = fit.get("model")
-    model = CATALOGUE.get(model_id)
-    if model is None:
-        notes.append(f"Model {model_id!r} is not in this catalogue: curve not drawn.")
-        return None
-    params = fit.get("params") or {}
-    values = [_num(params.get(name)) for name in model.param_names()]
-    if any(v is None for v in values):
-        notes.append(f"{model.title}: parameters missing, curve not drawn.")
-        return None
-    if model.relative_pressure:
-        if p0_pa is None or p0_pa <= 0:
-            notes.append(f"{model.title} needs p/p0 but no saturation pressure is known.")
-            return None
-        x = pressure_pa / p0_pa
-    else:
-        x = pressure_pa
-    x2 = np.asarray(x, dtype=float)[None, :]
-    t2 = np.full((1, 1), np.nan if t_k is None else t_k)
-    with np.errstate(all="ignore"):
-        q = model.evaluate(x2, t2, *(np.full((1, 1), v) for v in values))
-    return np.broadcast_to(np.asarray(q, dtype=float), x2.shape)[0]
-
-
-def _fit_curve(fit, grid_pa, p0_pa, t_k, notes):
-    q = _evaluate(fit, grid_pa, p0_pa, t_k, notes)
-    if q is None:
-        return None
-    ok = np.isfinite(q)
-    if not np.any(ok):
-        notes.append(f"{_model_title(fit)}: no finite values on the pressure range.")
-        return None
-    return grid_pa[ok], q[ok]
-
-
-def _residuals(fit, p_pa, q, p0_pa, t_k) -> np.ndarray:
-    """Measured minus model; only called once the model's curve was drawn."""
-    return q - _evaluate(fit, p_pa, p0_pa, t_k, [])
-
-
-def _pressure_grid(p_pa: np.ndarray, log_pressure: bool) -> np.ndarray:
-    p_max = float(np.max(p_pa))
-    if log_pressure:
-        p_min = float(np.min(p_pa[p_pa > 0]))
-        if p_max <= p_min:
-            return np.array([p_min])
-        return np.geomspace(p_min, p_max, GRID_POINTS)
-    # from zero: the low-pressure shape (Henry region) is what screening reads
-    return np.linspace(0.0, max(p_max, 0.0), GRID_POINTS)
-
-
 def _limit_loading_axis(ax, q: np.ndarray, curve_tops: list[float]) -> None:
     """Frame the data; a curve that shoots far above the data is cut off
     rather than squashing the measured points into a thin band."""
@@ -494,33 +401,6 @@ def _limit_loading_axis(ax, q: np.ndarray, curve_tops: list[float]) -> None:
     ax.set_ylim(min(0.0, q_min) - 0.03 * top, 1.06 * top)
 
 
-def _model_title(fit) -> str:
-    model = CATALOGUE.get(fit.get("model"))
-    return model.title if model is not None else str(fit.get("model"))
-
-
-def _fit_label(fit, role: str) -> str:
-    aicc = _num(fit.get("aicc"))
-    weight = _num(fit.get("akaike_weight"))
-    parts = [f"{_model_title(fit)} ({role})", "AICc " + ("n/a" if aicc is None else f"{aicc:.1f}")]
-    if weight is not None:
-        parts.append(f"w {weight:.2f}")
-    return ", ".join(parts)
-
-
-def _isotherm_title(record, t_k) -> str:
-    bits = [str(record.get(k)) for k in ("sorbent_id", "adsorbate") if record.get(k)]
-    title = " / ".join(bits) if bits else "Isotherm"
-    if t_k is not None:
-        title += f" at {t_k:.1f} K"
-    return title + _id_suffix(record)
-
-
-def _id_suffix(record) -> str:
-    iso_id = record.get("isotherm_id")
-    return f" [{iso_id}]" if iso_id else ""
-
-
 def _add_note(ax, notes: list[str]) -> None:
     """Notes go in the axes title slot so they never cover data."""
     if not notes:
@@ -528,29 +408,3 @@ def _add_note(ax, notes: list[str]) -> None:
     unique = list(dict.fromkeys(notes))
     title = ax.set_title("\n".join(unique), fontsize=8.5, loc="left", color=NOTE_COLOUR)
     title.set_gid("note")
-
-
-def _fmt(value: float | None) -> str:
-    return "n/a" if value is None else f"{value:.4g}"
-
-
-def _row_label(row: Mapping[str, Any], index: int) -> str:
-    bits = [str(row.get(k)) for k in ("sorbent_id", "adsorbate") if row.get(k)]
-    return " / ".join(bits) if bits else f"row {index}"
-
-
-def _qst_series(row: Mapping[str, Any]):
-    """(loading mol/kg, Qst kJ/mol, stderr kJ/mol or None), or None if unusable."""
-    n = _float_array(row.get("qst_loading_mol_per_kg"))
-    qst = _float_array(row.get("qst_j_per_mol"))
-    if n.size == 0 or n.size != qst.size:
-        return None
-    err = _float_array(row.get("qst_stderr_j_per_mol"))
-    ok = np.isfinite(n) & np.isfinite(qst)
-    if not np.any(ok):
-        return None
-    order = np.argsort(n[ok], kind="stable")
-    err_kj = None
-    if err.size == n.size and np.any(np.isfinite(err[ok])):
-        err_kj = np.abs(err[ok][order]) / 1000.0  # NaN entries draw no bar
-    return n[ok][order], qst[ok][order] / 1000.0, err_kj
