@@ -23,21 +23,20 @@ equilibrium, so there is no p0: krypton at 77 K (triple point 115.8 K) gets
 None, as does any supercooled liquid. Relative pressures alone (p/p0, BET) of
 Kr and Ar below their triple points refer to the supercooled liquid, by the
 trade's convention: ``relative_pressure_p0_pa`` (see
-``supercooled_liquid_saturation_pressure_pa`` for the method).
+``supercooled_liquid_saturation_pressure_pa``). Reading the curves and the
+supercooled-liquid method live in ``worker/saturation.py``; this module turns
+names into gases and gases into calls there.
 """
 from __future__ import annotations
 
-import bisect
-import functools
 import json
 import math
 import re
-import sys
-from array import array
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 
-from .saturation_table import CURVES_FILE, DATA_DIR, FLUIDS_FILE, hermite_ln_p
+from . import saturation
+from .saturation_table import DATA_DIR, FLUIDS_FILE
 
 
 # CIAAW standard atomic weights, conventional values (from memory)
@@ -406,32 +405,6 @@ def declare(name: str, molar_mass_g_per_mol: float, critical_temperature_k: floa
     return Adsorbate(name, (), molar_mass, None, None, t_crit, sources, declared=True)
 
 
-@functools.cache
-def _curves() -> array:
-    values = array("d")
-    values.frombytes((DATA_DIR / CURVES_FILE).read_bytes())
-    if sys.byteorder == "big":
-        values.byteswap()
-    return values
-
-
-@functools.cache
-def _u_nodes(start: int, n: int) -> array:
-    return _curves()[3 * start:3 * (start + n):3]
-
-
-def _saturation_pressure_from_curve(curve: dict, t_crit_k: float, temperature_k: float) -> float | None:
-    if not (curve["t_min_k"] <= temperature_k <= curve["t_max_k"]):
-        return None
-    start, n = curve["offset"], curve["nodes"]
-    u_nodes = _u_nodes(start, n)
-    # the triple point itself may round a hair past the last node
-    u = min(max(math.sqrt(max(0.0, 1.0 - temperature_k / t_crit_k)), u_nodes[0]), u_nodes[-1])
-    i = min(max(bisect.bisect_right(u_nodes, u) - 1, 0), n - 2)
-    ln_p = hermite_ln_p(u, *_curves()[3 * (start + i):3 * (start + i + 2)])
-    return math.exp(ln_p)
-
-
 def saturation_pressure_pa(adsorbate: Adsorbate | str, temperature_k: float) -> float | None:
     """Return the vapour pressure in Pa of ``adsorbate`` at ``temperature_k``.
 
@@ -446,69 +419,28 @@ def saturation_pressure_pa(adsorbate: Adsorbate | str, temperature_k: float) -> 
         curve = _CURVE_OF.get(ads.coolprop_name) if ads is not None else None
         if curve is None or not math.isfinite(t):
             return None
-        return _saturation_pressure_from_curve(curve, ads.critical_temperature_k, t)
+        return saturation.curve_saturation_pressure_pa(curve, ads.critical_temperature_k, t)
     except Exception:  # noqa: BLE001 - documented never to raise
         return None
-
-
-# Kr and Ar are measured at 77 K below their triple points (115.8 K, 83.8 K),
-# where there is no liquid p0; the trade refers relative pressures to the
-# vapour pressure of the supercooled liquid (IUPAC 2015 report, Thommes et al.,
-# Pure Appl. Chem. 87 (2015) 1051, from memory).
-SUPERCOOLED_LIQUID_GASES = ("Kr", "Ar")
-# the lowest temperature of the BET window of these gases (77.35 K - 3 K) and a margin
-SUPERCOOLED_LOWEST_TEMPERATURE_K = 74.0
-# ln p0 against 1/T is taken as straight (Clausius-Clapeyron, constant heat of
-# vaporisation) through the liquid curve at the triple point and this far above it
-SUPERCOOLED_SLOPE_SPAN_K = 5.0
-# The conventional p0 of supercooled liquid krypton at 77.35 K, 0.350 kPa
-# (2.63 Torr; from memory, /work/shared/REFERENCES.md). The straight
-# extrapolation gives 0.60 kPa there: the convention is not that extrapolation,
-# so krypton is anchored to it and only its temperature dependence comes from
-# the curve.
-SUPERCOOLED_ANCHOR_PA = {"Kr": (77.35, 350.0)}
-SUPERCOOLED_ANCHOR_SOURCE = "0.350 kPa (2.63 Torr) at 77.35 K, the conventional value (from memory)"
-
-
-def _liquid_curve_clausius_clapeyron(ads: Adsorbate) -> tuple[float, float] | None:
-    """(ln p0 at the triple point, B = heat of vaporisation / R in K) of the liquid curve."""
-    t_triple = ads.triple_point_temperature_k
-    if t_triple is None:
-        return None
-    p_triple = saturation_pressure_pa(ads, t_triple)
-    p_above = saturation_pressure_pa(ads, t_triple + SUPERCOOLED_SLOPE_SPAN_K)
-    if p_triple is None or p_above is None:
-        return None
-    slope_k = math.log(p_above / p_triple) / (1.0 / t_triple - 1.0 / (t_triple + SUPERCOOLED_SLOPE_SPAN_K))
-    return math.log(p_triple), slope_k
 
 
 def supercooled_liquid_saturation_pressure_pa(adsorbate: Adsorbate | str, temperature_k: float
                                                ) -> float | None:
     """p0 in Pa of the supercooled liquid of Kr or Ar below its triple point, for relative pressures.
 
-    ln p0 = ln p0(T_ref) - B (1/T - 1/T_ref), B from the liquid curve between
-    the triple point and SUPERCOOLED_SLOPE_SPAN_K above it; T_ref is the
-    triple point, or for krypton the conventional value's temperature
-    (SUPERCOOLED_ANCHOR_PA). None for other gases, at or above the triple
-    point (``saturation_pressure_pa`` applies there) and below
-    SUPERCOOLED_LOWEST_TEMPERATURE_K. Never raises.
+    The method and its constants are in ``worker/saturation.py``
+    (``supercooled_liquid_p0_pa``). None for other gases and declared ones, at
+    or above the triple point (``saturation_pressure_pa`` applies there) and
+    below ``saturation.SUPERCOOLED_LOWEST_TEMPERATURE_K``. Never raises.
     """
     try:
         ads = adsorbate if isinstance(adsorbate, Adsorbate) else lookup(adsorbate)
         t = float(temperature_k)
-        if (ads is None or ads.id not in SUPERCOOLED_LIQUID_GASES or ads.declared
-                or not (SUPERCOOLED_LOWEST_TEMPERATURE_K <= t < ads.triple_point_temperature_k)):
+        if ads is None or ads.declared:
             return None
-        curve = _liquid_curve_clausius_clapeyron(ads)
-        if curve is None:
-            return None
-        ln_p_ref, slope_k = curve
-        t_ref = ads.triple_point_temperature_k
-        if ads.id in SUPERCOOLED_ANCHOR_PA:
-            t_ref, p_ref = SUPERCOOLED_ANCHOR_PA[ads.id]
-            ln_p_ref = math.log(p_ref)
-        return math.exp(ln_p_ref - slope_k * (1.0 / t - 1.0 / t_ref))
+        return saturation.supercooled_liquid_p0_pa(
+            ads.id, ads.triple_point_temperature_k,
+            lambda t_k: saturation_pressure_pa(ads, t_k), t)
     except Exception:  # noqa: BLE001 - documented never to raise
         return None
 
