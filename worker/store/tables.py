@@ -9,7 +9,7 @@ import re
 import threading
 from dataclasses import dataclass, replace
 from pathlib import Path, PurePosixPath
-from typing import NamedTuple
+from typing import Callable, NamedTuple
 
 import numpy as np
 import pyarrow as pa
@@ -45,6 +45,8 @@ class Store(StoreLayout):
         # rankings: fragments and schema of the summaries, kept between queries
         self._summaries_index = _TableIndex("summaries")
         self._indexes: dict[str, _TableIndex] = {}  # the other tables, made on first use
+        # table -> sorted [(path, size, mtime_ns)] of its files, or None to list the directory
+        self.listing_source: Callable[[str], list | None] | None = None
 
     # tables
     def write_table(self, table: str, batch_id: str, chunk_index: int, data: pa.Table) -> Path:
@@ -266,6 +268,15 @@ class _TableIndex:
 
     def current(self, store: "Store") -> TableSnapshot:
         base = str(store._join(self.table))
+        # a read index (worker/store/index.py) knows the files without a listing
+        listing = None if store.listing_source is None else store.listing_source(self.table)
+        if listing is None:
+            listing = self._listed(store, base)
+        key = tuple(listing)
+        with self.lock:
+            return self._snapshot(store, base, listing, key)
+
+    def _listed(self, store: "Store", base: str) -> list[tuple[str, int | None, int | None]]:
         infos = fs.list_dir(store.fs, base, recursive=True)
         listing = []
         prefix = base.rstrip("/") + "/"
@@ -284,53 +295,54 @@ class _TableIndex:
                 continue
             listing.append((info.path, info.size, info.mtime_ns))
         listing.sort()
-        key = tuple(listing)
-        with self.lock:
-            if self.snapshot is not None and self.snapshot.key == key and None not in (
-                    m for _, _, m in listing):
-                return self.snapshot
-            fmt = ds.ParquetFileFormat()
-            files = {}
-            for path, size, mtime_ns in listing:
-                known = self.files.get(path)
-                if known is not None and (known.size, known.mtime_ns) == (size, mtime_ns) \
-                        and mtime_ns is not None:
-                    files[path] = known
-                    continue
-                # parse() reads the directories of a path relative to the table
-                relative = posixpath.relpath(path, base)
-                try:
-                    # read whole once, when first seen: a damaged file is moved
-                    # aside here, before any query can trip over it
-                    damage = store.verify_file(path, self.table)
-                    if damage is None:
-                        fragment = fmt.make_fragment(
-                            path, store.fs, partition_expression=_PARTITIONING.parse(relative))
-                        fragment.ensure_complete_metadata()  # footer read once, kept
-                        names = fragment.physical_schema.names
-                except FileNotFoundError:
-                    continue  # replaced or moved since the listing: the next query sees it
-                except (OSError, pa.ArrowException, ValueError) as exc:
-                    damage = _short(exc)
-                if damage is not None:
-                    _quarantine_quietly(store, path, damage)
-                    continue
-                files[path] = _FileEntry(
-                    size, mtime_ns, fragment,
-                    ds.get_partition_keys(fragment.partition_expression).get("batch_id"),
-                    "batch_id" in names)
-            _drop_clashing_types(store, files, [p for p, _, _ in listing])
-            for path in set(self.files) - set(files) | {
-                    p for p in files if self.files.get(p) is not files[p]}:
-                for cached in self.columns.values():  # gone or replaced: read again
-                    cached.pop(path, None)
-            self.files = files
-            kept = [files[path] for path, _, _ in listing if path in files]
-            fragments = [k.fragment for k in kept]
-            dataset = _dataset_of(store, fragments)
-            self.snapshot = TableSnapshot(key, dataset, fragments, [k.batch_id for k in kept],
-                                          any(k.own_batch_column for k in kept), {}, self)
+        return listing
+
+    def _snapshot(self, store: "Store", base: str, listing: list, key: tuple) -> TableSnapshot:
+        if self.snapshot is not None and self.snapshot.key == key and None not in (
+                m for _, _, m in listing):
             return self.snapshot
+        fmt = ds.ParquetFileFormat()
+        files = {}
+        for path, size, mtime_ns in listing:
+            known = self.files.get(path)
+            if known is not None and (known.size, known.mtime_ns) == (size, mtime_ns) \
+                    and mtime_ns is not None:
+                files[path] = known
+                continue
+            # parse() reads the directories of a path relative to the table
+            relative = posixpath.relpath(path, base)
+            try:
+                # read whole once, when first seen: a damaged file is moved
+                # aside here, before any query can trip over it
+                damage = store.verify_file(path, self.table)
+                if damage is None:
+                    fragment = fmt.make_fragment(
+                        path, store.fs, partition_expression=_PARTITIONING.parse(relative))
+                    fragment.ensure_complete_metadata()  # footer read once, kept
+                    names = fragment.physical_schema.names
+            except FileNotFoundError:
+                continue  # replaced or moved since the listing: the next query sees it
+            except (OSError, pa.ArrowException, ValueError) as exc:
+                damage = _short(exc)
+            if damage is not None:
+                _quarantine_quietly(store, path, damage)
+                continue
+            files[path] = _FileEntry(
+                size, mtime_ns, fragment,
+                ds.get_partition_keys(fragment.partition_expression).get("batch_id"),
+                "batch_id" in names)
+        _drop_clashing_types(store, files, [p for p, _, _ in listing])
+        for path in set(self.files) - set(files) | {
+                p for p in files if self.files.get(p) is not files[p]}:
+            for cached in self.columns.values():  # gone or replaced: read again
+                cached.pop(path, None)
+        self.files = files
+        kept = [files[path] for path, _, _ in listing if path in files]
+        fragments = [k.fragment for k in kept]
+        dataset = _dataset_of(store, fragments)
+        self.snapshot = TableSnapshot(key, dataset, fragments, [k.batch_id for k in kept],
+                                      any(k.own_batch_column for k in kept), {}, self)
+        return self.snapshot
 
     def key_columns(self, snap: TableSnapshot, names: list[str]) -> dict[str, pa.Array]:
         """``names`` over every file of the snapshot, in its file and row order."""
