@@ -261,3 +261,131 @@ def parquet_batch(isotherms: list[dict]) -> bytes:
     sink = io.BytesIO()
     pq.write_table(pa.Table.from_pylist(rows), sink)
     return sink.getvalue()
+
+
+# -- PostgreSQL: a throwaway server from Debian's postgresql package ----------------
+# initdb in a temp dir, the server on a free loopback port (never the machine's
+# 5432), its unix socket in that dir, trust auth; stopped and removed at the end.
+# initdb refuses to run as root, so under root the programs run as the
+# unprivileged `postgres` system user the Debian package creates.
+
+PG_INSTALL_HINT = ("install Debian's postgresql package (apt-get install postgresql; "
+                   "tests/run.sh does this when run as root)")
+
+
+def postgres_bin_dir() -> Path | None:
+    """The newest /usr/lib/postgresql/<major>/bin that has the server programs."""
+    found = []
+    for bin_dir in Path("/usr/lib/postgresql").glob("*/bin"):
+        if all((bin_dir / p).is_file() for p in ("initdb", "postgres", "pg_ctl")):
+            major = bin_dir.parent.name
+            found.append((int(major) if major.isdigit() else -1, bin_dir))
+    return max(found)[1] if found else None
+
+
+@dataclass
+class Postgres:
+    """A running PostgreSQL server of the test session (superuser ``postgres``)."""
+
+    host: str
+    port: int
+    socket_dir: Path
+    data_dir: Path
+    proc: Proc
+    _databases: list[str] = field(default_factory=list)
+
+    def conninfo(self, dbname: str = "postgres") -> str:
+        return f"host={self.host} port={self.port} user=postgres dbname={dbname}"
+
+    def connect(self, dbname: str = "postgres", **kwargs):
+        import psycopg
+
+        kwargs.setdefault("connect_timeout", 10)
+        return psycopg.connect(self.conninfo(dbname), **kwargs)
+
+    def new_database(self, prefix: str = "t") -> str:
+        """A fresh, empty database (dropped when the server goes)."""
+        name = f"{prefix}_{len(self._databases)}_{os.getpid()}"
+        with self.connect(autocommit=True) as conn:
+            conn.execute(f'CREATE DATABASE "{name}"')
+        self._databases.append(name)
+        return name
+
+
+def _postgres_user() -> dict:
+    """Popen arguments that run a program as the unprivileged server owner."""
+    if os.geteuid() != 0:
+        return {}
+    import pwd
+
+    try:
+        entry = pwd.getpwnam("postgres")
+    except KeyError:
+        pytest.skip("running as root, and initdb refuses root, but there is no 'postgres' "
+                    "user to run it as: " + PG_INSTALL_HINT)
+    return {"user": entry.pw_uid, "group": entry.pw_gid, "extra_groups": []}
+
+
+@pytest.fixture(scope="session")
+def postgres():
+    """A real PostgreSQL server for the session (see ``Postgres``)."""
+    import tempfile
+
+    try:
+        import psycopg
+    except ImportError:
+        pytest.skip("psycopg is missing: pip install -e '.[test]'")
+    bin_dir = postgres_bin_dir()
+    if bin_dir is None:
+        pytest.skip("no initdb/postgres/pg_ctl under /usr/lib/postgresql/*/bin: " + PG_INSTALL_HINT)
+    as_owner = _postgres_user()
+    # under /tmp itself: pytest's own temp root is private to root (0700), so
+    # the postgres user could not reach a data dir below it
+    base = Path(tempfile.mkdtemp(prefix="sorbrank-pg-"))
+    registry: list[Proc] = []
+    try:
+        if as_owner:
+            os.chown(base, as_owner["user"], as_owner["group"])
+        data_dir, socket_dir = base / "data", base / "socket"
+        env = clean_env(LC_ALL="C", LANG="C", PGTZ="UTC")
+        env.pop("PGDATA", None)
+        with open(base / "initdb.log", "wb") as log:
+            done = subprocess.run(
+                [str(bin_dir / "initdb"), "-D", str(data_dir), "-U", "postgres", "--auth=trust",
+                 "--encoding=UTF8", "--no-locale", "--no-sync"],
+                env=env, cwd=str(base), stdout=log, stderr=subprocess.STDOUT,
+                stdin=subprocess.DEVNULL, timeout=120, **as_owner)
+        if done.returncode != 0:
+            pytest.fail(f"initdb failed ({done.returncode}):\n"
+                        + (base / "initdb.log").read_text(errors="replace")[-4000:])
+        socket_dir.mkdir()
+        if as_owner:
+            os.chown(socket_dir, as_owner["user"], as_owner["group"])
+        port = free_port()
+        log_path = base / "postgres.log"
+        # a throwaway cluster: durability off (its data dies with the test run)
+        args = [str(bin_dir / "postgres"), "-D", str(data_dir), "-p", str(port),
+                "-c", f"listen_addresses={LOOPBACK}", "-c", f"unix_socket_directories={socket_dir}",
+                "-c", "fsync=off", "-c", "synchronous_commit=off", "-c", "full_page_writes=off",
+                "-c", "max_connections=20", "-c", "shared_buffers=16MB", "-c", "TimeZone=UTC"]
+        with open(log_path, "ab") as log:
+            popen = subprocess.Popen(args, env=env, cwd=str(base), stdout=log,
+                                     stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+                                     start_new_session=True, **as_owner)
+        proc = Proc("postgres", popen, log_path)
+        registry.append(proc)
+        server = Postgres(LOOPBACK, port, socket_dir, data_dir, proc)
+
+        def accepts() -> bool:
+            try:
+                with server.connect(connect_timeout=2) as conn:
+                    return conn.execute("SELECT 1").fetchone() == (1,)
+            except psycopg.OperationalError:
+                return False
+
+        wait_until(accepts, "PostgreSQL to accept connections", [proc], timeout_s=60)
+        yield server
+    finally:
+        for proc in registry:  # SIGTERM ends the backends, then the postmaster
+            proc.stop()
+        shutil.rmtree(base, ignore_errors=True)

@@ -21,6 +21,8 @@ command -v redis-server >/dev/null 2>&1 || need_apt+=(redis-server)
 # headless browser for the overview-page test (Debian's build; nothing downloads its own)
 command -v chromium >/dev/null 2>&1 || need_apt+=(chromium)
 command -v chromedriver >/dev/null 2>&1 || need_apt+=(chromium-driver)
+# PostgreSQL server programs for the load test (it runs its own initdb on a free port)
+compgen -G '/usr/lib/postgresql/*/bin/initdb' >/dev/null || need_apt+=(postgresql)
 # where a docker client exists, a compose implementation lets the deploy test
 # parse docker/compose.yaml (no engine is needed for that)
 if command -v docker >/dev/null 2>&1 && ! docker compose version >/dev/null 2>&1 \
