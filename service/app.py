@@ -118,6 +118,10 @@ def create_app(settings: Settings | None = None,
                         headers={"Content-Type": metrics.CONTENT_TYPE})
 
     _log_requests(app)
+    from .api import params
+
+    # every endpoint's query parameters are declared there; others answer 400
+    params.register(app)
 
     @app.after_request
     def no_sniffing(response):

@@ -7,6 +7,9 @@ from __future__ import annotations
 
 from sorbrank.worker.store import BATCH_ID_PATTERN, LATEST_WINS_RULE
 
+# one declaration of every endpoint's query parameters: what the app checks
+from .api.params import query_parameters
+
 TABULAR = {
     "application/json": {"schema": {"type": "object"}},
     "text/csv": {"schema": {"type": "string"}},
@@ -26,48 +29,17 @@ def _ref(name: str) -> dict:
     return {"$ref": f"#/components/parameters/{name}"}
 
 
-def _query(name: str, description: str, schema: dict) -> dict:
-    return {"name": name, "in": "query", "required": False, "description": description,
-            "schema": schema}
-
-
 AUTH_ERRORS = {"401": _problem("missing or invalid bearer token"),
                "403": _problem("the token lacks the needed scope")}
 READ = [{"bearer": ["read"]}]
 SUBMIT = [{"bearer": ["submit"]}]
 
-RANKING_PARAMS = [
-    _query("adsorbate", "only this adsorbate (e.g. CO2)", {"type": "string"}),
-    _query("temperature_k", "only isotherms measured within temperature_tolerance_k of this "
-           "temperature, K", {"type": "number"}),
-    _query("temperature_tolerance_k", "half-width of the temperature window, K",
-           {"type": "number", "default": 0.5}),
-    _query("flag", "keep rows carrying this quality flag (repeatable: all must be present)",
-           {"type": "string"}),
-    _query("exclude_flag", "drop rows carrying this quality flag (repeatable)", {"type": "string"}),
-    _query("batch_id", "only results of this batch", {"type": "string"}),
-    _query("sorbent_id", "only results of this sorbent", {"type": "string"}),
-    _query("sort", "any summary column, e.g. loading_ads_mol_per_kg (the loading at the "
-           "batch's adsorption pressure), working_capacity_mol_per_kg, q_sat_mol_per_kg, "
-           "henry_mol_per_kg_pa", {"type": "string", "default": "loading_ads_mol_per_kg"}),
-    _query("unreliable_last", "rows whose sorted figure is unreliable (an extrapolation, or a "
-           "q_sat with a relative standard error above 25 %; columns *_reliable) come after "
-           "the rest; false ranks them in place", {"type": "boolean", "default": True}),
-    _query("order", "sort direction", {"type": "string", "enum": ["asc", "desc"], "default": "desc"}),
-    _query("limit", "rows per page", {"type": "integer", "minimum": 0, "maximum": 100000,
-                                      "default": 100}),
-    _query("offset", "rows to skip", {"type": "integer", "minimum": 0, "default": 0}),
-    _query("all", "every result instead of one per sorbent, adsorbate, branch and temperature",
-           {"type": "boolean", "default": False}),
-    _ref("format"),
-]
+RANKING_PARAMS = query_parameters("rankings.get_rankings")
 
 
 IMAGES = {"image/svg+xml": {"schema": {"type": "string"}},
           "image/png": {"schema": {"type": "string", "contentMediaType": "image/png"}}}
 HTML = {"text/html": {"schema": {"type": "string"}}}
-IMAGE_FORMAT = _query("format", "image format", {"type": "string", "enum": ["svg", "png"],
-                                                 "default": "svg"})
 # plots of stored results, and the HTML pages (errors there are HTML pages too)
 PLOT_AND_PAGE_PATHS = {
     "/api/v1/isotherms/{isotherm_id}/plot": {
@@ -82,13 +54,7 @@ PLOT_AND_PAGE_PATHS = {
             "parameters": [
                 {"name": "isotherm_id", "in": "path", "required": True,
                  "schema": {"type": "string"}},
-                _query("kind", "which plot", {"type": "string", "enum": [
-                    "isotherm", "langmuir-linear", "bet"], "default": "isotherm"}),
-                IMAGE_FORMAT,
-                _query("log_pressure", "logarithmic pressure axis (kind=isotherm)",
-                       {"type": "boolean", "default": False}),
-                _query("batch_id", "the batch to draw from; default the newest holding it",
-                       {"type": "string", "pattern": BATCH_ID_PATTERN.pattern}),
+                *query_parameters("plots.isotherm_plot"),
             ],
             "responses": {"200": {"description": "the plot", "content": IMAGES},
                           "400": _problem("bad parameter"), **AUTH_ERRORS,
@@ -105,8 +71,7 @@ PLOT_AND_PAGE_PATHS = {
             "parameters": [
                 {"name": "sorbent_id", "in": "path", "required": True,
                  "schema": {"type": "string"}},
-                _query("adsorbate", "only this gas", {"type": "string"}),
-                IMAGE_FORMAT,
+                *query_parameters("plots.qst_plot"),
             ],
             "responses": {"200": {"description": "the plot", "content": IMAGES},
                           "400": _problem("bad parameter"), **AUTH_ERRORS,
@@ -116,11 +81,7 @@ PLOT_AND_PAGE_PATHS = {
     "/": {
         "get": {"operationId": "pageRankings", "summary": "HTML page: rankings and batches",
                 "security": READ,
-                "parameters": [_query(n, d, {"type": "string"}) for n, d in (
-                    ("adsorbate", "only this gas"), ("temperature_k", "only this temperature, K"),
-                    ("flag", "only rows with this flag"), ("exclude_flag", "no rows with this flag"),
-                    ("sort", "column to sort by"), ("order", "asc or desc"),
-                    ("offset", "rows to skip"))],
+                "parameters": query_parameters("web.overview"),
                 "responses": {"200": {"description": "the page", "content": HTML},
                               "400": {"description": "bad parameter (HTML page)", "content": HTML},
                               "401": {"description": "no read access (HTML page)", "content": HTML}}},
@@ -148,7 +109,36 @@ PLOT_AND_PAGE_PATHS = {
 }
 
 
+UNKNOWN_PARAMETER = ("a query parameter this operation does not take (problem "
+                     "unknown-parameter: `unknown` names each, `accepted` lists the rest), or a "
+                     "parameter read once given twice (repeated-parameter)")
+PAGING_HEADERS = {
+    "X-Total-Count": {"schema": {"type": "integer"}, "description": "rows that match"},
+    "X-Returned-Count": {"schema": {"type": "integer"}, "description": "rows in this answer"},
+    "Link": {"schema": {"type": "string"}, "description": "RFC 8288 links (rel first, prev, "
+             "next, last; root-relative URLs keeping the other parameters) whenever this answer "
+             "holds fewer rows than match"},
+}
+
+
 def document() -> dict:
+    """The document; every operation answers 400 for a query parameter it does
+    not take (service/api/params.py), so each lists a 400."""
+    doc = _document()
+    for path, operations in doc["paths"].items():
+        page = not path.startswith("/api/") and path not in ("/healthz", "/readyz", "/metrics")
+        for operation in operations.values():
+            responses = operation["responses"]
+            if "400" not in responses:
+                responses["400"] = ({"description": UNKNOWN_PARAMETER + " (HTML page)",
+                                     "content": HTML} if page else _problem(UNKNOWN_PARAMETER))
+            elif "unknown-parameter" not in responses["400"]["description"]:
+                responses["400"] = {**responses["400"], "description":
+                                    responses["400"]["description"] + "; or " + UNKNOWN_PARAMETER}
+    return doc
+
+
+def _document() -> dict:
     return {
         "openapi": "3.1.0",
         "info": {
@@ -173,31 +163,7 @@ def document() -> dict:
                                    "rest proceed.",
                     "security": SUBMIT,
                     "parameters": [
-                        _query("format", "body format when Content-Type does not say "
-                               "(application/octet-stream)",
-                               {"type": "string", "enum": ["csv", "json", "parquet"]}),
-                        _query("units", "units of plain pressure/loading columns that do not "
-                               "name their own (a column such as pressure_kpa carries its unit), "
-                               "e.g. pressure:kPa,loading:mmol/g; see docs/formats.md",
-                               {"type": "string", "example": "pressure:kPa,loading:mmol/g"}),
-                        _query("sample_mass_g", "sample mass in g, for absolute loadings (e.g. "
-                               "loading_mmol) where the body gives none",
-                               {"type": "number", "exclusiveMinimum": 0}),
-                        _query("delimiter", "CSV delimiter; detected from the header line when "
-                               "left out", {"type": "string",
-                                            "enum": ["comma", "semicolon", "tab", ",", ";"]}),
-                        _query("decimal", "CSV decimal mark; a comma only in files not "
-                               "comma-delimited; detected when left out",
-                               {"type": "string", "enum": ["point", "comma", ".", ","]}),
-                        _query("batch_label", "a name for the batch", {"type": "string"}),
-                        _query("models", "'all' or comma-separated model ids (see /api/v1/models)",
-                               {"type": "string", "default": "all"}),
-                        _query("criterion", "model selection criterion",
-                               {"type": "string", "enum": ["aicc", "aic", "bic"], "default": "aicc"}),
-                        _query("weighting", "least-squares weighting", {"type": "string"}),
-                        _query("absolute_sigma", "with weighting=sigma: the sigma is calibrated; "
-                               "covariance not rescaled, chi-square reported (docs/results.md)",
-                               {"type": "boolean", "default": False}),
+                        *query_parameters("batches.submit_batch"),
                         {"name": "Idempotency-Key", "in": "header", "required": False,
                          "description": "a retried request with the same key returns the same "
                                         "batch instead of creating another",
@@ -232,12 +198,11 @@ def document() -> dict:
                     "summary": "Batches, newest first, with state and progress",
                     "security": READ,
                     "parameters": [
-                        _query("state", "only batches in this state", {"$ref": "#/components/schemas/State"}),
-                        _query("limit", "batches per page", {"type": "integer", "minimum": 1,
-                                                             "maximum": 1000, "default": 50}),
-                        _query("offset", "batches to skip", {"type": "integer", "minimum": 0}),
+                        *query_parameters("batches.list_batches"),
                     ],
-                    "responses": {"200": {"description": "a page of batches", "content": {
+                    "responses": {"200": {"description": "a page of batches, newest first; "
+                                                         "Link rel=next while more remain",
+                                          "headers": PAGING_HEADERS, "content": {
                         "application/json": {"schema": {"type": "object", "properties": {
                             "batches": {"type": "array", "items": {"type": "object"}},
                             "total": {"type": "integer"}}}}}},
@@ -263,9 +228,7 @@ def document() -> dict:
                                    "formats hold one table (default summary). CSV text cells "
                                    "that a spreadsheet would evaluate are prefixed with '.",
                     "security": READ,
-                    "parameters": [_ref("batch_id"), _ref("format"),
-                                   _query("table", "which table", {"type": "string", "enum":
-                                                                   ["summary", "fits", "sorbents"]})],
+                    "parameters": [_ref("batch_id"), *query_parameters("batches.get_results")],
                     "responses": {"200": {"description": "results so far (see X-Batch-State)",
                                           "content": TABULAR},
                                   "400": _problem("bad parameter"), **AUTH_ERRORS,
@@ -282,15 +245,24 @@ def document() -> dict:
                                    "filters apply before that choice, flag filters after it.",
                     "security": READ,
                     "parameters": RANKING_PARAMS,
-                    "responses": {"200": {"description": "a page of ranked rows; JSON as "
-                                                         "{rows, total, mixed_conditions, "
-                                                         "condition_sets}, headers "
-                                                         "X-Total-Count and X-Mixed-Conditions "
-                                                         "(true when the ranked rows' sorted "
-                                                         "figure was computed at several "
-                                                         "pressures or temperatures)",
+                    "responses": {"200": {"description": "JSON: a page of ranked rows "
+                                                         "(default 100) as {rows, total, "
+                                                         "returned, links, mixed_conditions, "
+                                                         "condition_sets}; CSV, Parquet and "
+                                                         "Arrow: every matching row unless "
+                                                         "limit/offset are given, streamed. "
+                                                         "X-Mixed-Conditions is true when the "
+                                                         "ranked rows' sorted figure was "
+                                                         "computed at several pressures or "
+                                                         "temperatures",
+                                          "headers": {**PAGING_HEADERS, "X-Mixed-Conditions": {
+                                              "schema": {"type": "string",
+                                                         "enum": ["true", "false"]}}},
                                           "content": TABULAR},
-                                  "400": _problem("bad parameter (e.g. unknown sort column)"),
+                                  "400": _problem("bad parameter (e.g. unknown sort column), "
+                                                  "an adsorbate intake does not know "
+                                                  "(unknown-adsorbate, with suggestions), or "
+                                                  + UNKNOWN_PARAMETER),
                                   **AUTH_ERRORS, "406": _problem("no acceptable format")},
                 },
             },
@@ -356,10 +328,6 @@ def document() -> dict:
             "parameters": {
                 "batch_id": {"name": "batch_id", "in": "path", "required": True,
                              "schema": {"type": "string", "pattern": BATCH_ID_PATTERN.pattern}},
-                "format": {"name": "format", "in": "query", "required": False,
-                           "description": "response format; otherwise the Accept header decides "
-                                          "(arrow = Arrow IPC stream)",
-                           "schema": {"type": "string", "enum": ["json", "csv", "parquet", "arrow"]}},
             },
             "schemas": {
                 "Problem": {"type": "object", "required": ["type", "title", "status"],

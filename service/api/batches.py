@@ -17,6 +17,7 @@ from sorbrank.worker.store import iso_utc, is_batch_id, new_batch_id, utc_now
 
 from ..auth import require
 from ..problems import Problem, insufficient_storage, storage_problem
+from .export import page_links, paging_headers
 from .formats import choice_arg, int_arg, json_rows, negotiate, table_response
 
 bp = Blueprint("batches", __name__)
@@ -31,8 +32,6 @@ CONTENT_FORMATS = {
 }
 # query parameters handed to intake as they are (intake checks them)
 INTAKE_PARAMS = ("units", "sample_mass_g", "delimiter", "decimal")
-OLD_PARAMS = {"pressure_unit": "units=pressure:<unit> (e.g. units=pressure:kPa,loading:mmol/g)",
-              "loading_unit": "units=loading:<unit> (e.g. units=pressure:kPa,loading:mmol/g)"}
 # whole-input intake errors: size -> 413, cannot even be parsed -> 400, else 422
 # internal_error means a defect in intake itself: say so honestly with a 500
 # (the hostile-input tests then catch it) rather than blame the client
@@ -87,10 +86,7 @@ def _fit_options() -> dict:
 def _intake_params() -> dict:
     """The intake query parameters, the units declaration checked here so that a bad
     one is a 400 naming the parameter."""
-    for old, new in OLD_PARAMS.items():
-        if old in request.args:
-            raise Problem(400, "Bad Request", f"{old} is no longer read: use {new}",
-                          slug="bad-parameter", parameter=old)
+    # retired names (pressure_unit, ...) are refused by params.RETIRED before the view
     params = {k: request.args[k] for k in INTAKE_PARAMS if k in request.args}
     if "units" in params:
         try:
@@ -311,7 +307,10 @@ def list_batches():
     for status in page:  # the list stays small; details are one GET away
         status["rejected_issues"] = len(status.pop("rejected"))
         status["status_url"] = url_for("batches.get_batch", batch_id=status["batch_id"])
-    return {"batches": page, "total": total, "limit": limit, "offset": offset}
+    # a page: the rest is one Link away, never cut silently
+    return ({"batches": page, "total": total, "returned": len(page), "limit": limit,
+             "offset": offset, "links": page_links(total, offset, limit)},
+            200, paging_headers(total, offset, limit))
 
 
 def _submitted_by(batch_id: str) -> str | None:
