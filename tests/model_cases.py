@@ -100,6 +100,12 @@ def da_eq(x, t, q_m, e, n):  # Dubinin & Astakhov, Adv. Chem. Ser. 102 (1971) 69
     return q_m * math.exp(-((R * t * math.log(1 / x) / e) ** n))
 
 
+def jovanovic_eq(p, t, q_sat, b):  # Jovanovic, Kolloid-Z. Z. Polym. 235 (1969) 1203
+    # q = q_sat (1 - e^-bp); 1 - e^-bp written as -expm1(-bp), which keeps its
+    # digits at small bp where 1 - exp(-bp) loses them
+    return q_sat * -math.expm1(-b * p)
+
+
 _P0 = ENGINE_SATURATION_PRESSURE_PA
 
 # In catalogue order: tests/worker/test_models.py checks the table against the catalogue.
@@ -179,6 +185,12 @@ CASES: tuple[ModelCase, ...] = (
               engine=((5.0, 1.5e4, 2.5), _P0 * np.geomspace(1e-5, 0.9, 25)),
               henry=(((5.0, 15000.0, 2.5), 1e5, 0.0), ((5.0, 15000.0, 0.8), 1e5, np.inf)),
               capacity=((6.0, 12000.0, 3.0), 6.0)),
+    ModelCase("jovanovic", ("q_sat", "affinity"), jovanovic_eq,
+              ((298.15, (3.0, 1e-5)), (298.15, (8.0, 2e-4)), (298.15, (1.5, 3e-7))),
+              lambda r: (_u(r, 0.1, 20), _lu(r, 1e-7, 1e-2)),
+              engine=((5.0, 2.0e-5), np.geomspace(1e2, 1e6, 25)),
+              henry=(((3.0, 2e-5), None, None),),
+              capacity=((3.0, 2e-5), 3.0)),
 )
 
 BY_ID: dict[str, ModelCase] = {case.model_id: case for case in CASES}

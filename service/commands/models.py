@@ -8,7 +8,8 @@ import sys
 HELP = """\
 List the isotherm models sorbrank fits: id, equation, parameters with their
 canonical units and bounds, and the published source. Models marked p/p0
-take relative pressure and apply only where a saturation pressure exists.
+take relative pressure and apply only where a saturation pressure exists;
+models marked opt-in are fitted only when named (--models all,ID).
 
 examples:
   sorbrank models
@@ -35,6 +36,8 @@ def run(args) -> int:
         return 0
     for model in catalogue:
         tag = "  [p/p0]" if model["relative_pressure"] else ""
+        if not model["in_default_catalogue"]:
+            tag += "  [opt-in: fitted only when named in --models]"
         print(f"{model['id']}{tag}\n  {model['equation']}")
         for p in model["parameters"]:
             lo = "-inf" if p["lower"] is None else f"{p['lower']:g}"

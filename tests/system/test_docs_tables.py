@@ -284,6 +284,8 @@ def test_model_table_is_the_catalogue_in_its_order():
     for cells in rows:
         model = CATALOGUE[code_names(cells[0])[0]]
         assert (cells[1].startswith("yes")) == bool(model.relative_pressure), cells
+        # an opt-in model changes no default selection only if users are told
+        assert cells[2].startswith("yes") == model.in_default_catalogue, cells
 
 
 @pytest.mark.parametrize("page", sorted(p.name for p in DOCS.glob("*.md")) + ["README.md"])

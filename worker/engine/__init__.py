@@ -52,7 +52,7 @@ import logging
 import numpy as np
 
 from ..interrupts import ends_job
-from ..models import CATALOGUE, IsothermModel
+from ..models import CATALOGUE, IsothermModel, default_models
 from ..packing import Packed
 from ..results import ModelFits
 from .lm import fit_rows
@@ -70,7 +70,8 @@ def fit_models(packed: Packed, models="all", weighting: str = "uniform",
                absolute_sigma: bool = False, options: SolverOptions | None = None) -> dict[str, ModelFits]:
     """Fit each model to every isotherm of ``packed``; return {model id: ModelFits}.
 
-    ``models`` is "all" (the whole catalogue) or a list of model ids or classes;
+    ``models`` is "all" (the default set), a comma string or a list of model ids or
+    classes (``resolve_models``);
     ``weighting``, ``absolute_sigma`` and ``options`` as in ``fit_model``.
     """
     check_weighting(weighting, absolute_sigma)
@@ -90,18 +91,25 @@ def fit_models(packed: Packed, models="all", weighting: str = "uniform",
 
 
 def resolve_models(models="all") -> list[type[IsothermModel]]:
-    """Model classes named by "all", a comma string, or a list of ids/classes."""
+    """Model classes named by "all", a comma string, or a list of ids/classes.
+
+    "all" is the default set (``default_models``: opt-in models left out); in
+    a list it stands for that set, so "all,jovanovic" adds an opt-in model.
+    A model named twice is fitted once.
+    """
     if isinstance(models, str):
-        if models == "all":
-            return list(CATALOGUE.values())
         models = [s.strip() for s in models.split(",") if s.strip()]
     out = []
     for m in models:
         if isinstance(m, str):
+            if m == "all":
+                out += [d for d in default_models() if d not in out]
+                continue
             if m not in CATALOGUE:
                 raise KeyError(f"unknown model {m!r}; known models: {', '.join(sorted(CATALOGUE))}")
             m = CATALOGUE[m]
-        out.append(m)
+        if m not in out:
+            out.append(m)
     return out
 
 

@@ -1,5 +1,9 @@
 """The isotherm model catalogue. Adding a model: one class (its own module
-here) plus one entry in ``_REGISTERED``; DEVELOPERS.md "Adding a model"."""
+here) plus one entry in ``_REGISTERED``; DEVELOPERS.md "Adding a model".
+
+``models="all"`` means the default set (``default_models``): every model
+whose class keeps ``in_default_catalogue = True``. An opt-in model is fitted
+only where a caller names it (``--models all,jovanovic``)."""
 from __future__ import annotations
 
 from importlib import import_module
@@ -21,6 +25,9 @@ _REGISTERED = (
     "bet.GAB",
     "dubinin.DubininRadushkevich",
     "dubinin.DubininAstakhov",
+    # opt-in models (in_default_catalogue = False) last, so listings show the
+    # default set first
+    "jovanovic.Jovanovic",
 )
 
 
@@ -42,8 +49,14 @@ def get_model(model_id: str) -> type[IsothermModel]:
         raise KeyError(f"unknown model {model_id!r}; known models: {known}") from None
 
 
+def default_models() -> list[type[IsothermModel]]:
+    """The models ``models="all"`` fits, in catalogue order."""
+    return [m for m in _MODELS if m.in_default_catalogue]
+
+
 def catalogue_description() -> list[dict]:
     return [m.describe() for m in _MODELS]
 
 
-__all__ = ["CATALOGUE", "IsothermModel", "Param", "get_model", "catalogue_description"]
+__all__ = ["CATALOGUE", "IsothermModel", "Param", "catalogue_description", "default_models",
+           "get_model"]

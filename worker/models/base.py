@@ -10,7 +10,8 @@ metrics read instead of lists of model ids:
   (empty: no finite plateau, so no capacity of its own);
 * ``multilayer`` / ``pore_filling``: what the high-pressure end means;
 * ``henry_slope_from_exponent``: the p -> 0 slope is set by a fitted exponent;
-* ``reduced_spreading_pressure``: the closed-form IAST integral, where one exists.
+* ``reduced_spreading_pressure``: the closed-form IAST integral, where one exists;
+* ``in_default_catalogue``: fitted by ``models="all"`` (False: only when named).
 
 Shapes used throughout (n = isotherms in the batch, m = padded points):
 
@@ -77,6 +78,9 @@ class IsothermModel:
     # psi(p, *params) = integral_0^p q(t)/t dt in mol/kg, in closed form, as a
     # staticmethod; None: IAST integrates the model numerically
     reduced_spreading_pressure: ClassVar[Callable[..., np.ndarray] | None] = None
+    # False for an opt-in model, fitted only where a caller names it: a model
+    # added this way changes no selection made by the default set before it
+    in_default_catalogue: ClassVar[bool] = True
 
     @staticmethod
     def evaluate(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> np.ndarray:
@@ -172,6 +176,7 @@ class IsothermModel:
             "relative_pressure": cls.relative_pressure,
             "multilayer": cls.multilayer,
             "pore_filling": cls.pore_filling,
+            "in_default_catalogue": cls.in_default_catalogue,
             "parameters": [
                 {
                     "name": p.name,
