@@ -1,18 +1,16 @@
 """Tables out as JSON, CSV, Parquet or an Arrow IPC stream."""
 from __future__ import annotations
 
-import csv
 import io
-import json
 import math
-import re
-from datetime import datetime
+from typing import Iterator
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 from flask import Response, request
 
-from sorbrank.worker.store import iso_utc, nan_to_none
+from sorbrank.worker import csvcodec
+from sorbrank.worker.store import nan_to_none
 
 from ..problems import Problem
 
@@ -23,8 +21,6 @@ MEDIA_TYPES = {
     "arrow": "application/vnd.apache.arrow.stream",
 }
 FORMATS = tuple(MEDIA_TYPES)
-_PLAIN_NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
-_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
 def negotiate() -> str:
@@ -49,37 +45,22 @@ def json_rows(table: pa.Table) -> list[dict]:
 
 
 def safe_cell(value) -> str:
-    """One CSV cell; text that a spreadsheet would run as a formula is quoted.
-
-    Numbers stay numbers (a negative value is not a formula); any text starting
-    with = + - @ tab or CR gets a leading apostrophe so it displays as text.
-    """
-    if value is None:
-        return ""
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, float):
-        return "" if math.isnan(value) else repr(value)
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, datetime):
-        return iso_utc(value)
-    if isinstance(value, (list, dict)):
-        value = ";".join(map(str, value)) if isinstance(value, list) else json.dumps(value)
-    text = str(value)
-    if text.startswith(_FORMULA_START) and not _PLAIN_NUMBER.match(text):
-        return "'" + text
-    return text
+    """One CSV cell's text (before CSV quoting), by the one export encoding of
+    ``sorbrank.worker.csvcodec``: lists as PostgreSQL array literals ``{a,b}``,
+    floats as their shortest round-trip repr, null and NaN as empty, and text a
+    spreadsheet would run as a formula (= + - @ tab CR) behind an apostrophe.
+    Numbers stay numbers (a negative value is not a formula)."""
+    text = csvcodec.cell_text(value)
+    return "" if text is None else text
 
 
 def to_csv(table: pa.Table) -> bytes:
-    out = io.StringIO()
-    writer = csv.writer(out, lineterminator="\n")
-    writer.writerow([safe_cell(name) for name in table.column_names])
-    for batch in table.to_batches(max_chunksize=10_000):
-        columns = [col.to_pylist() for col in batch.columns]
-        writer.writerows([safe_cell(v) for v in row] for row in zip(*columns))
-    return out.getvalue().encode()
+    return csvcodec.csv_bytes(table)
+
+
+def csv_chunks(column_names: list[str], batches) -> Iterator[str]:
+    """The CSV of ``to_csv`` piece by piece (header first), for streamed exports."""
+    return csvcodec.csv_lines(column_names, batches)
 
 
 def to_parquet(table: pa.Table) -> bytes:

@@ -231,22 +231,29 @@ def test_result_formats_and_negotiation(client):
     assert_problem(client.get(url + "?format=csv&table=everything", headers=auth()), 400)
 
 
-def test_csv_cells_cannot_become_spreadsheet_formulas(client):
+def test_ids_a_spreadsheet_would_run_are_refused_and_other_text_stays_guarded(client):
+    # an id beginning with = + - @ is refused at intake (formula_start), so no export
+    # ever alters an id; the CSV guard stays for other text cells
     evil = ["=HYPERLINK(1)", "+SUM(A1)", "-2+3", "@cmd"]
-    body = csv_batch([isotherm(m, 2, 0.1) for m in evil])
+    body = csv_batch([isotherm(m, 2, 0.1) for m in evil] + [isotherm("MOF-neg", 2, 0.1)])
     resp = submit(client, body)
-    assert resp.status_code == 202, resp.json
+    assert resp.status_code == 202 and resp.json["accepted"] == 1, resp.json
+    refused = {(i["code"], i["field"], i["row"]) for i in resp.json["rejected"]}
+    points = len(isotherm("x", 2, 0.1)["pressure"])  # rows per isotherm in the CSV
+    assert refused == {("formula_start", "sorbent_id", 1 + points * k) for k in range(4)}
+    assert all("formula" in i["message"] for i in resp.json["rejected"])
     text = client.get(f"{resp.json['status_url']}/results?format=csv", headers=auth()).get_data(as_text=True)
     import csv as pycsv
 
     rows = list(pycsv.DictReader(io.StringIO(text)))
-    sorbents = {r["sorbent_id"] for r in rows}
-    assert sorbents == {"'" + m for m in evil}
+    assert {r["sorbent_id"] for r in rows} == {"MOF-neg"}
     assert all(not v.startswith(("=", "+", "@")) for r in rows for v in r.values())
     # numbers stay numbers, negative ones included
     assert safe_cell(-1.5) == "-1.5" and safe_cell("-1.5e3") == "-1.5e3"
+    assert safe_cell("=1+2") == "'=1+2" and safe_cell("@cmd") == "'@cmd"
     assert safe_cell("\tTAB") == "'\tTAB" and safe_cell("\rx") == "'\rx"
-    assert safe_cell(["=a", "b"]) == "'=a;b" and safe_cell(None) == ""
+    # a list is an array literal: it starts with '{', which no spreadsheet runs
+    assert safe_cell(["=a", "b"]) == "{=a,b}" and safe_cell(None) == ""
 
 
 def test_rankings_parameters(client):

@@ -125,6 +125,59 @@ def test_format_characters_in_the_batch_label_are_refused():
     assert issue.code == "invalid_batch_label" and "U+202E" in issue.message
 
 
+# --- ids a spreadsheet would run as a formula ------------------------------------------
+# CSV exports put an apostrophe before text starting with = + - @ tab or CR (the OWASP
+# "CSV injection" characters, common practice); an id so written would differ between
+# CSV and Parquet, so intake refuses it and exports never touch an id.
+
+FORMULA_IDS = ["=HYPERLINK(1)", "+SUM(A1)", "-MOF-neg", "@cmd", "'=quoted", "''-two"]
+
+
+@pytest.mark.parametrize("bad", FORMULA_IDS)
+@pytest.mark.parametrize("fld", ["sorbent_id", "isotherm_id"])
+def test_an_id_beginning_with_a_formula_character_is_refused_naming_field_and_row(fld, bad):
+    batch = read_batch(body(iso(**{fld: bad}), iso("TG31-S2")))
+    assert [i.sorbent_id for i in batch.isotherms] == ["TG31-S2"]
+    (issue,) = [i for i in batch.rejected if i.field == fld]
+    assert (issue.code, issue.row) == ("formula_start", None)  # JSON: an isotherm-level field
+    assert "formula" in issue.message and repr(bad[: len(bad) - len(bad.lstrip("'")) + 1]) \
+        in issue.message
+
+
+@pytest.mark.parametrize("fld", ["sorbent_id", "isotherm_id"])
+def test_a_leading_tab_or_cr_never_reaches_an_id(fld):
+    # ids are stripped of surrounding whitespace, so the tab and CR of the guard never
+    # begin one
+    batch = read_batch(body(iso(**{fld: "\tTG31-T"}), iso(**{"adsorbate": "N2", fld: "\rTG31-R"})))
+    assert not batch.rejected
+    assert {getattr(i, fld) for i in batch.isotherms} == {"TG31-T", "TG31-R"}
+
+
+def test_formula_ids_in_a_csv_file_name_the_data_row():
+    rows = ["sorbent_id,adsorbate,temperature_k,pressure_kpa,loading_mol_per_kg"]
+    for sorbent in ("TG31-S1", "-MOF-neg", "MOF-neg-", "TG31-1e-3"):
+        rows += [f"{sorbent},CO2,298.15,{p},{q}" for p, q in zip(PRESSURES_KPA, LOADINGS)]
+    batch = read_batch(("\n".join(rows) + "\n").encode())
+    # a minus, a letter or digit anywhere but first is fine
+    assert [i.sorbent_id for i in batch.isotherms] == ["TG31-S1", "MOF-neg-", "TG31-1e-3"]
+    (issue,) = batch.rejected
+    assert (issue.code, issue.field, issue.row) == ("formula_start", "sorbent_id", 6)
+    assert "'-MOF-neg'" in issue.message and "row 6" in str(issue)
+
+
+def test_a_formula_mixture_sorbent_id_and_gas_name_are_batch_errors():
+    issue = batch_error(body(iso(), iso(adsorbate="N2"), mixtures=[mixture(sorbent_id="=A1")]))
+    assert (issue.code, issue.field) == ("formula_start", "mixtures[0].sorbent_id")
+    issue = batch_error(body(iso(), gases=[{"name": "+R1", "molar_mass_g_per_mol": 48.1}]))
+    assert (issue.code, issue.field) == ("formula_start", "gases[0]")
+
+
+def test_text_that_is_not_an_id_keeps_its_formula_characters():
+    # the batch label is no key of any table: accepted as sent, guarded in CSV cells
+    batch = read_batch(body(iso()), batch_label="=night-run")
+    assert batch.label == "=night-run" and len(batch.isotherms) == 1
+
+
 def test_visible_non_ascii_ids_stay_accepted():
     batch = read_batch(body(iso("TG31-Zeolith-ß-日本"), batch_label="Lauf-α"))
     assert [i.sorbent_id for i in batch.isotherms] == ["TG31-Zeolith-ß-日本"]

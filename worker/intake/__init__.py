@@ -126,7 +126,9 @@ Issue codes
 Per isotherm: missing_value, not_a_number, not_finite, negative_value,
 non_positive_value, wrong_type, length_mismatch, unknown_unit, missing_unit,
 conflicting_columns, old_spelling, inconsistent_value,
-unknown_adsorbate, unknown_branch, invalid_id, relative_pressure_above_one,
+unknown_adsorbate, unknown_branch, invalid_id, formula_start (an id beginning
+with = + - @ tab or CR, which CSV exports would have to alter),
+relative_pressure_above_one,
 missing_saturation_pressure, missing_sample_mass, out_of_range (above the
 physical bounds of ``sorbrank.worker.units``, after conversion), invalid_text,
 too_few_points,
@@ -139,7 +141,8 @@ duplicate_column, conflicting_columns, old_spelling, too_many_columns,
 unsupported_column_type, malformed_row, no_data, too_many_isotherms,
 too_deeply_nested, wrong_type, unknown_field, unknown_setting,
 invalid_setting, unknown_unit, invalid_gas, invalid_batch_label,
-invalid_conditions, invalid_mixture.
+invalid_conditions, invalid_mixture, formula_start (a mixture's sorbent_id or
+a declared gas name).
 """
 from __future__ import annotations
 

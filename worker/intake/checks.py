@@ -6,6 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import adsorbates
+from ..csvcodec import formula_problem
 from .issues import Findings, short
 from .rows import (
     BLANK,
@@ -110,6 +111,14 @@ def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relati
         found.rows_where(bad_value, name, "invalid_id",
                          lambda i, c=column, p=problems, n=name:
                          f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+        # an id the CSV formula guard would rewrite is refused, so that every export
+        # (JSON, CSV, Parquet, Arrow) carries it byte for byte
+        formula = [None if p is not None else formula_problem(v)
+                   for v, p in zip(column.values, problems)]
+        found.rows_where(per_row(column.codes, [f is not None for f in formula], False, bool),
+                         name, "formula_start",
+                         lambda i, c=column, f=formula, n=name:
+                         f"{n} {short(c.values[c.codes[i]])!r} {f[c.codes[i]]}", once=True)
     bad_text = {}
     for name in ("adsorbate", "branch"):
         column = text[name]

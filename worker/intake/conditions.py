@@ -8,6 +8,7 @@ import math
 from typing import Any
 
 from .. import units
+from ..csvcodec import formula_problem
 from ..isotherm import Conditions, MixtureRequest
 from .checks import lookup_adsorbate, unknown_adsorbate
 from .issues import batch_error, echo, nearest, short
@@ -121,6 +122,10 @@ def read_mixtures(raw: Any, settings: dict, declared: list, label: str) -> list[
                 raise batch_error(label, "invalid_mixture", f"sorbent_id {echo(str(sorbent_id))} "
                                    f"{problem} (give a valid id, or null for every sorbent)",
                                    fld=f"{where}.sorbent_id")
+            problem = formula_problem(sorbent_id)
+            if problem:  # intake refuses such sorbent ids, so none could match
+                raise batch_error(label, "formula_start", f"sorbent_id {echo(sorbent_id)} "
+                                   f"{problem}", fld=f"{where}.sorbent_id")
         components = item.get("components")
         fractions = item.get("mole_fractions")
         if not isinstance(components, list) or len(components) < 2:

@@ -14,6 +14,7 @@ from typing import Any, Callable
 import pyarrow as pa
 
 from .. import adsorbates, units
+from ..csvcodec import formula_problem
 from .issues import batch_error, echo, nearest, old_spelling, short
 from .rows import MAX_ID_CHARS, OLD_SPELLINGS, SETTINGS, Limits, Rows
 
@@ -179,6 +180,10 @@ def declared_gases(raw: list, label: str) -> list:
         name = item.get("name")
         if not isinstance(name, str) or not name.strip() or id_problem(name.strip()):
             raise batch_error(label, "invalid_gas", "needs a name (text usable as an id)", fld=fld)
+        problem = formula_problem(name.strip())
+        if problem:  # the name is the adsorbate key of every table, like an id
+            raise batch_error(label, "formula_start", f"gas name {echo(name.strip())} {problem}",
+                              fld=fld)
         mass = positive_float(item.get("molar_mass_g_per_mol"))
         if mass is None:
             raise batch_error(label, "invalid_gas", f"gas {short(name)!r}: molar_mass_g_per_mol "
