@@ -7,6 +7,21 @@ import os
 import sys
 from pathlib import Path
 
+# re-exported: the web pages, 'sorbrank plot', the benchmarks and tests use them from here
+from .fit_output import (  # noqa: F401
+    ProgressBar,
+    emit_bytes,
+    emit_text,
+    fits_rows,
+    is_nested,
+    is_numeric,
+    json_bytes,
+    pressure_swing,
+    render_table,
+    terminal_width,
+    write_table,
+)
+
 FORMATS = ("table", "json", "csv", "parquet")
 CRITERIA = ("aicc", "bic", "aic")
 WEIGHTINGS = ("uniform", "relative", "sigma")
@@ -95,6 +110,9 @@ options in detail:
                 the summary table, one row per isotherm; with --fits the fit
                 table, one row per isotherm and model, parameters as
                 param_<name>, stderr_<name>, ci95_low_<name>, ci95_high_<name>.
+                CSV writes lists as PostgreSQL array literals {a,b}, floats in
+                their shortest round-trip form, no value as an empty cell
+                (docs/formats.md, "Exports"; the same as the API's CSV).
 
 examples:
   sorbrank fit screen.csv
@@ -285,12 +303,12 @@ def run(args) -> int:
     summary = result.summary_table()
     summary = with_ranking_columns(summary, [swing] * summary.num_rows)
     sort = args.sort or DEFAULT_SORT
-    if sort not in summary.column_names or _is_nested(summary.schema.field(sort).type):
+    if sort not in summary.column_names or is_nested(summary.schema.field(sort).type):
         if args.sort is not None:
-            sortable = [f.name for f in summary.schema if not _is_nested(f.type)]
+            sortable = [f.name for f in summary.schema if not is_nested(f.type)]
             return _usage_error(f"cannot sort by {sort!r}; columns: {', '.join(sortable)}")
         sort = "isotherm_id"
-    numeric = _is_numeric(summary.schema.field(sort).type)
+    numeric = is_numeric(summary.schema.field(sort).type)
     order = "ascending" if (args.ascending or not numeric) else "descending"
     keys = [(sort, order, "at_end"), ("isotherm_id", "ascending", "at_end")]
     reliability = None if args.unreliable_in_place else RELIABILITY_OF_SORT.get(sort)
@@ -311,255 +329,18 @@ def run(args) -> int:
     if args.fmt == "json":
         doc = result.to_json()
         doc["isotherms"] = [doc["isotherms"][i] for i in index]
-        _emit_bytes(json_bytes(doc), args.out)
+        emit_bytes(json_bytes(doc), args.out)
     elif args.fmt == "table":
-        width = _terminal_width() if args.out is None else None
-        _emit_text(render_table(summary.take(index), sort, result.batch.conditions, width),
+        width = terminal_width() if args.out is None else None
+        emit_text(render_table(summary.take(index), sort, result.batch.conditions, width),
                    args.out)
     else:
-        table = _fits_rows(result.fits_table(), index, len(result.fits)) if args.fits \
+        table = fits_rows(result.fits_table(), index, len(result.fits)) if args.fits \
             else summary.take(index)
-        _write_table(table, args.fmt, args.out)
+        write_table(table, args.fmt, args.out)
 
     fitted = sum(1 for b in result.selection.best if b is not None)
     if fitted == 0:
         print("sorbrank fit: no isotherm has an acceptable model", file=sys.stderr)
         return 1
     return 0
-
-
-# ---------------------------------------------------------------------------
-# output
-
-def json_bytes(doc: dict) -> bytes:
-    """The --format json document as UTF-8 bytes, through orjson (about 40 %
-    of a 20,000-isotherm run went to the json module; see bench_start.py).
-
-    ``to_json`` already holds None where a number is NaN or infinite; orjson
-    would write null for any that slipped through, so the output is always
-    valid JSON (the json module's allow_nan=False raised instead)."""
-    import orjson
-
-    return orjson.dumps(doc, option=orjson.OPT_INDENT_2 | orjson.OPT_APPEND_NEWLINE)
-
-
-MISSING = "—"
-
-
-def render_table(table, sort: str, conditions=None, width: int | None = None) -> str:
-    """A ranked plain-text table, one line per isotherm: identity, best model,
-    q_sat with its 95 % interval, BET area, working capacity with the pressure
-    swing of ``conditions`` (a worker.isotherm.Conditions), points and flags.
-    Lines longer than ``width`` characters end in an ellipsis."""
-    from sorbrank.worker.store import Q_SAT_MAX_RELATIVE_STDERR, RELIABILITY_OF_SORT
-
-    names = set(table.column_names)
-    columns = [c for c in _table_columns(conditions) if c[0] in names]
-    shown = {source for c in columns for source in _TABLE_SOURCES[c[0]]}
-    if sort not in shown and sort != "isotherm_id":
-        shown.add(sort)
-        numeric = _is_numeric(table.schema.field(sort).type)
-        columns.insert(-1, (sort, sort, (lambda row, s=sort: _number(row[s], ".4g")) if numeric
-                            else (lambda row, s=sort: _text(row[s])), numeric))
-    # a figure the ranking holds unreliable (an extrapolation, or q_sat with a
-    # large standard error) is starred, so the table never shows it as fact
-    judged = {c[0]: RELIABILITY_OF_SORT[c[0]] for c in columns
-              if RELIABILITY_OF_SORT.get(c[0]) in names}
-    data = {name: table[name].to_pylist() for name in shown | set(judged.values()) if name in names}
-    headers = ["#"] + [header for _, header, _, _ in columns]
-    right = [True] + [r for _, _, _, r in columns]
-    rows, starred = [], False
-    for i in range(table.num_rows):
-        row = {name: values[i] for name, values in data.items()}
-        cells = [str(i + 1)]
-        for name, _, render, _ in columns:
-            cell = render(row)
-            if name in judged and row[judged[name]] is False and cell != MISSING:
-                cell, starred = cell + " *", True
-            cells.append(cell)
-        rows.append(cells)
-    widths = [max(len(r[j]) for r in rows + [headers]) for j in range(len(headers))]
-
-    def line(cells):
-        text = "  ".join(c.rjust(w) if r else c.ljust(w)
-                         for c, w, r in zip(cells, widths, right)).rstrip()
-        return text if width is None or len(text) <= width else text[: width - 1] + "…"
-
-    # the last column is ragged (flags): its rule spans the header only
-    rule = ["-" * w for w in widths[:-1]] + ["-" * len(headers[-1])]
-    notes = [f"* unreliable: an extrapolation beyond the measured data (q_sat: also a standard "
-             f"error above {Q_SAT_MAX_RELATIVE_STDERR:.0%}); see docs/results.md, 'Default "
-             "ranking'"] if starred else []
-    return "\n".join([line(headers), line(rule)] + [line(r) for r in rows] + notes) + "\n"
-
-
-# summary columns each table column is drawn from (the first names it)
-_TABLE_SOURCES = {
-    "sorbent_id": ("sorbent_id",),
-    "adsorbate": ("adsorbate",),
-    "temperature_k": ("temperature_k",),
-    "best_model": ("best_model",),
-    "q_sat_mol_per_kg": ("q_sat_mol_per_kg", "q_sat_ci95_low_mol_per_kg",
-                         "q_sat_ci95_high_mol_per_kg"),
-    "bet_area_m2_per_g": ("bet_area_m2_per_g",),
-    "working_capacity_mol_per_kg": ("working_capacity_mol_per_kg",),
-    "n_points": ("n_points",),
-    "flags": ("flags",),
-}
-
-
-def _table_columns(conditions):
-    """(summary column, header, row -> cell text, right-aligned) in display order."""
-    swing = "" if conditions is None else \
-        f" ({pressure_swing(conditions.adsorption_pressure_pa, conditions.desorption_pressure_pa)})"
-    return [
-        ("sorbent_id", "sorbent", lambda r: _text(r["sorbent_id"]), False),
-        ("adsorbate", "gas", lambda r: _text(r["adsorbate"]), False),
-        ("temperature_k", "T/K", lambda r: _number(r["temperature_k"], ".2f"), True),
-        ("best_model", "best model", lambda r: _text(r["best_model"]), False),
-        ("q_sat_mol_per_kg", "q_sat mol/kg [95 %]", _q_sat_cell, True),
-        ("bet_area_m2_per_g", "BET m2/g", lambda r: _area(r.get("bet_area_m2_per_g")), True),
-        ("working_capacity_mol_per_kg", "work. cap. mol/kg",
-         lambda r: _with_suffix(_number(r["working_capacity_mol_per_kg"], ".3g"), swing), True),
-        ("n_points", "n", lambda r: _number(r["n_points"], "d"), True),
-        ("flags", "flags", lambda r: ",".join(r["flags"] or []), False),
-    ]
-
-
-def pressure_swing(adsorption_pa: float, desorption_pa: float) -> str:
-    """'1→0.1 bar': adsorption -> desorption pressure, in bar, kPa or Pa
-    (the largest unit in which the lower pressure is at least 0.01)."""
-    low = min(adsorption_pa, desorption_pa)
-    for unit, pa in (("bar", 1e5), ("kPa", 1e3), ("Pa", 1.0)):
-        if low >= 0.01 * pa or unit == "Pa":
-            return f"{adsorption_pa / pa:g}→{desorption_pa / pa:g} {unit}"
-    raise AssertionError("unreachable")
-
-
-def _q_sat_cell(row) -> str:
-    """'4.21 [3.98, 4.45]': three significant digits of q_sat, its interval to
-    the same decimal place; '4.21 [—]' where the fit gives no interval."""
-    q = row["q_sat_mol_per_kg"]
-    if not _finite(q):
-        return _number(q, ".3g")
-    places = max(0, 2 - math.floor(math.log10(abs(q)))) if q else 2
-    low, high = row.get("q_sat_ci95_low_mol_per_kg"), row.get("q_sat_ci95_high_mol_per_kg")
-    if _finite(low) and _finite(high):
-        return f"{q:.{places}f} [{low:.{places}f}, {high:.{places}f}]"
-    return f"{q:.{places}f} [{MISSING}]"
-
-
-def _area(value) -> str:
-    # areas run from ~1 to ~7000 m2/g: whole numbers above 100 read best
-    return _number(value, ".0f" if _finite(value) and abs(value) >= 100 else ".3g")
-
-
-def _with_suffix(cell: str, suffix: str) -> str:
-    return cell if cell == MISSING else cell + suffix
-
-
-def _finite(value) -> bool:
-    return isinstance(value, (int, float)) and math.isfinite(value)
-
-
-def _number(value, fmt: str) -> str:
-    if value is None or (isinstance(value, float) and value != value):
-        return MISSING
-    if isinstance(value, float) and not math.isfinite(value):
-        return str(value)
-    return format(value, fmt)
-
-
-def _text(value) -> str:
-    return MISSING if value is None else str(value)
-
-
-def _terminal_width() -> int | None:
-    """Columns of the terminal standard output is, None when it is not one."""
-    import shutil
-
-    return shutil.get_terminal_size().columns if sys.stdout.isatty() else None
-
-
-def _fits_rows(fits_table, index, n_models: int):
-    import numpy as np
-
-    rows = (np.asarray(index)[:, None] * n_models + np.arange(n_models)[None, :]).ravel()
-    return fits_table.take(rows)
-
-
-def _write_table(table, fmt: str, out: str | None) -> None:
-    import json
-
-    import pyarrow as pa
-    import pyarrow.csv as pcsv
-    import pyarrow.parquet as pq
-
-    if fmt == "parquet":
-        pq.write_table(table, out)
-        return
-    # CSV has no lists: flags as "a;b", other nested values as JSON text
-    for i, fld in enumerate(table.schema):
-        if _is_nested(fld.type) or pa.types.is_null(fld.type):
-            values = table.column(i).to_pylist()
-            text = [None if v is None else (";".join(v) if fld.name == "flags" else json.dumps(v))
-                    for v in values]
-            table = table.set_column(i, fld.name, pa.array(text, pa.string()))
-    if out:
-        pcsv.write_csv(table, out)
-    else:
-        sink = pa.BufferOutputStream()
-        pcsv.write_csv(table, sink)
-        sys.stdout.write(sink.getvalue().to_pybytes().decode())
-
-
-def _emit_text(text: str, out: str | None) -> None:
-    if out:
-        Path(out).write_text(text)
-    else:
-        sys.stdout.write(text)
-
-
-def _emit_bytes(data: bytes, out: str | None) -> None:
-    if out:
-        Path(out).write_bytes(data)
-        return
-    buffer = getattr(sys.stdout, "buffer", None)
-    if buffer is None:  # a text-only stream, e.g. contextlib.redirect_stdout(io.StringIO())
-        sys.stdout.write(data.decode())
-        return
-    sys.stdout.flush()
-    buffer.write(data)
-    buffer.flush()
-
-
-def _is_nested(arrow_type) -> bool:
-    import pyarrow as pa
-
-    return pa.types.is_nested(arrow_type)
-
-
-def _is_numeric(arrow_type) -> bool:
-    import pyarrow as pa
-
-    return pa.types.is_integer(arrow_type) or pa.types.is_floating(arrow_type)
-
-
-class ProgressBar:
-    """'fitting [#####-----]  50%  1000/2000 isotherms' on one stderr line."""
-
-    WIDTH = 30
-
-    def __init__(self, stream):
-        self.stream = stream
-
-    def __call__(self, done: int, total: int) -> None:
-        share = done / total if total else 1.0
-        filled = int(round(self.WIDTH * share))
-        self.stream.write(f"\rfitting [{'#' * filled}{'-' * (self.WIDTH - filled)}] "
-                          f"{share:4.0%}  {done}/{total} isotherms")
-        self.stream.flush()
-
-    def finish(self) -> None:
-        self.stream.write("\n")
-        self.stream.flush()
