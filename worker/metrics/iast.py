@@ -13,8 +13,8 @@ over every (request, sorbent) pair at once. Total loading follows from
 1/q_T = sum_i x_i / q_i(p_i^0), component loadings from q_i = x_i q_T.
 
 psi_i is in closed form where the model class declares one
-(``reduced_spreading_pressure``: henry, langmuir, dual_site_langmuir, sips,
-freundlich); every other model is integrated numerically in ln p by a fixed
+(``reduced_spreading_pressure``, e.g. Langmuir's q_sat ln(1 + b p)); every
+other model is integrated numerically in ln p by a fixed
 composite Gauss-Legendre rule (IAST_PANELS panels of IAST_NODES_PER_PANEL
 nodes) over IAST_LOG_SPAN e-folds below p, plus the Henry-law tail q(p_low)
 for the rest down to zero (exact for a model linear in p there).
