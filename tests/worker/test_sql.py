@@ -16,9 +16,9 @@ from decimal import Decimal
 import pyarrow as pa
 import pytest
 
-from sorbrank.worker.store.sql import (UnmappableType, column_comment, postgres_copy_from_stdin,
-                                       postgres_create_table, postgres_type, quote_identifier,
-                                       quote_literal)
+from sorbrank.worker.store.sql import (UnmappableType, column_comment, create_table_statements,
+                                       postgres_copy_from_stdin, postgres_create_table,
+                                       postgres_type, quote_identifier, quote_literal)
 
 # Arrow type -> the name PostgreSQL's format_type() gives the column
 EXPECTED = [
@@ -120,6 +120,26 @@ def test_definition_text():
     assert postgres_copy_from_stdin("rankings", schema) == (
         'COPY "rankings" ("isotherm_id", "q_sat_mol_per_kg", "flags") FROM STDIN '
         '(FORMAT csv, HEADER true)')
+    assert postgres_copy_from_stdin("rankings", schema, namespace="screening", match_header=True
+                                    ).endswith('"screening"."rankings" ("isotherm_id", '
+                                               '"q_sat_mol_per_kg", "flags") FROM STDIN '
+                                               '(FORMAT csv, HEADER match)')
+    with pytest.raises(ValueError, match="csv format only"):
+        postgres_copy_from_stdin("rankings", schema, format="binary", match_header=True)
+
+
+def test_store_tables_get_their_partition_column_last():
+    schemas = {"summaries": pa.schema([("isotherm_id", pa.string())]),
+               "other": pa.schema([("x", pa.int64()), ("batch_id", pa.string())])}
+    script = create_table_statements(schemas)
+    assert script.startswith('CREATE TABLE "summaries" (\n    "isotherm_id" text,\n'
+                             '    "batch_id" text NOT NULL\n);\n'
+                             'COMMENT ON COLUMN "summaries"."batch_id" IS ')
+    # a schema that holds the column keeps it where it is, once
+    assert ('CREATE TABLE "other" (\n    "x" bigint,\n    "batch_id" text\n);\n'
+            in script)
+    assert "batch_id" not in create_table_statements(
+        {"summaries": schemas["summaries"]}, partition_column=None)
 
 
 def test_repeated_and_unknown_key_columns_are_refused():

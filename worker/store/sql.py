@@ -14,13 +14,17 @@ values, the type of an all-null column).
 """
 from __future__ import annotations
 
-from typing import Iterable
+from typing import Iterable, Mapping
 
 import pyarrow as pa
 
 # PostgreSQL keeps NAMEDATALEN - 1 = 63 bytes of an identifier and silently
 # truncates longer ones, so two long column names could become the same column
 MAX_IDENTIFIER_BYTES = 63
+
+# The store keeps each row's batch in its partition directory
+# (``<table>/batch_id=<id>/``), not in the files
+PARTITION_COLUMN = "batch_id"
 
 # Field metadata keys turned into column comments (and the schema's own
 # b"description" into the table comment).
@@ -208,14 +212,36 @@ def postgres_create_table(name: str, schema: pa.Schema, *, namespace: str | None
     return "".join(s + ";\n" for s in statements)
 
 
+def create_table_statements(schemas: Mapping[str, pa.Schema], *, namespace: str | None = None,
+                            partition_column: str | None = PARTITION_COLUMN) -> str:
+    """The definitions of several store tables, one script (docs/schema.md shows it).
+
+    A schema without ``partition_column`` gets it as a last ``text NOT NULL``
+    column: the store keeps the batch id in the directory name, a row loaded
+    elsewhere needs it, and hive-partitioned readers (pyarrow.dataset, DuckDB,
+    polars) put it last, so their rows line up with the table's columns.
+    """
+    scripts = []
+    for name, schema in schemas.items():
+        if partition_column and partition_column not in schema.names:
+            schema = schema.append(pa.field(partition_column, pa.string(), nullable=False,
+                                            metadata={DESCRIPTION_KEY: b"the batch (the store's "
+                                                      b"partition directory)"}))
+        scripts.append(postgres_create_table(name, schema, namespace=namespace))
+    return "\n".join(scripts)
+
+
 def postgres_copy_from_stdin(name: str, schema: pa.Schema, *, namespace: str | None = None,
-                             format: str = "csv") -> str:
+                             format: str = "csv", match_header: bool = False) -> str:
     """The ``COPY ... FROM STDIN`` that loads ``schema``'s columns by name:
-    ``csv`` for our CSV export (its header line skipped), or ``binary``/``text``
-    for rows sent by a client library."""
-    options = {"csv": "FORMAT csv, HEADER true", "binary": "FORMAT binary",
-               "text": "FORMAT text"}
+    ``csv`` for our CSV export (its header line skipped; with ``match_header``
+    checked against the column names, PostgreSQL 15 and later), or
+    ``binary``/``text`` for rows sent by a client library."""
+    options = {"csv": "FORMAT csv, HEADER " + ("match" if match_header else "true"),
+               "binary": "FORMAT binary", "text": "FORMAT text"}
     if format not in options:
         raise ValueError(f"COPY format {format!r}: one of {', '.join(options)}")
+    if match_header and format != "csv":
+        raise ValueError("match_header applies to the csv format only")
     columns = ", ".join(quote_identifier(n) for n in _column_names(schema, name))
     return f"COPY {qualified_name(name, namespace)} ({columns}) FROM STDIN ({options[format]})"
