@@ -10,10 +10,12 @@ SORBRANK_WORKER_METRICS_PORT when set, for a worker machine Prometheus can
 reach while the API is out of its reach: scrape one source, not both, or
 the sums double.)
 
-Cost of a scrape: one listing of ``<root>/batches`` with a manifest check per
-batch, plus the status files of unsettled batches. A settled batch
-(final.json written) never changes again, so its figures are read once per
-process and kept (a few hundred bytes per batch).
+Cost of a scrape: the read index's refresh (``worker/store/index.py``): a
+finished batch's figures were recorded in its seal when it finished, so a
+scrape reads only the status files of unfinished batches. Without the index
+(SORBRANK_READ_INDEX=0): one listing of ``<root>/batches`` with a manifest
+check per batch; a settled batch's figures are read once per process and
+kept (a few hundred bytes per batch).
 
 Where the figures come from: each finished chunk's status file records the
 isotherms fitted per model and the chunk's wall time (``worker/jobs.py``).
@@ -31,6 +33,7 @@ from prometheus_client.core import (CounterMetricFamily, GaugeMetricFamily,
                                     HistogramMetricFamily, Metric)
 
 from sorbrank.worker.store import Store
+from sorbrank.worker.store.index import read_index
 
 log = logging.getLogger(__name__)
 
@@ -74,8 +77,19 @@ class StoreCollector:
 
     def figures(self) -> list[BatchFigures]:
         with self._lock:
+            index = read_index(self.store)
+            if index is None:
+                ids, finished = self.store.batch_ids(), {}
+            else:
+                ids, finished = index.batch_ids(), index.finished()
             out = []
-            for batch_id in self.store.batch_ids():
+            for batch_id in ids:
+                record = finished.get(batch_id)
+                if record is not None:  # a sealed batch: its figures, kept in the index
+                    out.append(BatchFigures(record["state"], dict(record["fitted_by_model"]),
+                                            tuple(record["chunk_durations_s"]),
+                                            int(record["size_bytes"])))
+                    continue
                 figures = self._settled.get(batch_id)
                 if figures is None:
                     figures = batch_figures(self.store, batch_id)

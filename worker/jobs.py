@@ -20,6 +20,7 @@ import pyarrow.compute as pc
 from . import fs
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, MixtureRequest
 from .pipeline import FitOptions, process_batch
+from .store import index as read_index
 from .store import DamagedFile, Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
 from .store.records import DONE, FAILED, RUNNING, SETTLED, ChunkEntry, ChunkStatus, Manifest
 
@@ -79,10 +80,11 @@ def accept_batch(store: Store, batch: Batch, *, options: dict, chunk_size: int =
     accepted_at = utc_now()
     batch_id = batch_id or new_batch_id(accepted_at)
     chunks = plan_chunks([iso.sorbent_id for iso in batch.isotherms], chunk_size)
-    chunk_entries = []
+    chunk_entries, written = [], []
     for index, positions in enumerate(chunks):
         isotherms = [batch.isotherms[p] for p in positions]
-        store.write_table("inputs", batch_id, index, isotherms_to_table(isotherms))
+        written.append(("inputs", index, isotherms_to_table(isotherms)))
+        store.write_table("inputs", batch_id, index, written[-1][2])
         chunk_entries.append(ChunkEntry(index, len(isotherms),
                                         sorted({iso.sorbent_id for iso in isotherms})))
     manifest = Manifest(
@@ -99,6 +101,7 @@ def accept_batch(store: Store, batch: Batch, *, options: dict, chunk_size: int =
         source=source or {},
     ).to_dict()
     store.write_manifest(manifest)
+    read_index.record_files(store, batch_id, "accepted", written)
     return manifest
 
 
@@ -207,12 +210,17 @@ def _fit_and_write(store: Store, manifest: Manifest, batch_id: str, chunk_index:
     result = process_batch(_batch_from_manifest(manifest, isotherms), FitOptions(**manifest.options))
     accepted_at = manifest.accepted_at
     fits = result.fits_table()
-    store.write_table("fits", batch_id, chunk_index, _with_accepted_at(fits, accepted_at))
+    written = [("fits", chunk_index, _with_accepted_at(fits, accepted_at))]
+    store.write_table("fits", batch_id, chunk_index, written[-1][2])
     if result.sorbent_rows:
         sorbents = sorbent_rows_table(result.sorbent_rows)
-        store.write_table("sorbents", batch_id, chunk_index, _with_accepted_at(sorbents, accepted_at))
+        written.append(("sorbents", chunk_index, _with_accepted_at(sorbents, accepted_at)))
+        store.write_table("sorbents", batch_id, chunk_index, written[-1][2])
     summaries = _with_accepted_at(result.summary_table(), accepted_at)
     store.write_table("summaries", batch_id, chunk_index, summaries)
+    written.append(("summaries", chunk_index, summaries))
+    # before the "done" status: every done chunk has its read-index entry
+    read_index.record_files(store, batch_id, f"chunk-{chunk_index:05d}", written)
 
     # operational figures, read back by the metrics endpoint: isotherms each
     # model was fitted to (where it applies), and the chunk's wall time
@@ -284,6 +292,10 @@ def finalize_batch(store: Store, batch_id: str) -> dict | None:
              "counts": status["counts"]}
     if store.read_final(batch_id) != final:
         store.write_final(batch_id, final)
+        # the batch's key rows and /metrics figures in one index file; merged
+        # with the other seals once there are enough of them
+        read_index.seal_batch(store, batch_id)
+        read_index.consolidate_quietly(store)
         accepted_at, finished_at = status["timings"]["accepted_at"], final["finished_at"]
         duration_s = None if not finished_at else round(
             (_parse_utc(finished_at) - _parse_utc(accepted_at)).total_seconds(), 3)

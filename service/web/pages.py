@@ -10,16 +10,16 @@ from __future__ import annotations
 import logging
 import math
 
-import pyarrow.compute as pc
 from flask import Blueprint, Response, current_app, render_template, request, url_for
 from werkzeug.exceptions import HTTPException
 
 from sorbrank.worker import jobs
 from sorbrank.worker.models import CATALOGUE
 from sorbrank.worker.store import (DEFAULT_RANKING_SORT, LATEST_WINS_RULE, Q_SAT_MAX_RELATIVE_STDERR,
-                                   RELIABILITY_OF_SORT, RankingQuery, Store, nan_to_none, ranking,
-                                   rankings)
-from sorbrank.worker.store.readmodel import qst_rows, sorbent_input_count, sorbent_isotherms
+                                   RELIABILITY_OF_SORT, RankingQuery, Store, nan_to_none, ranking)
+from sorbrank.worker.store.readmodel import (attach, batch_ids, filter_choices, qst_rows,
+                                             sorbent_input_count, sorbent_isotherms,
+                                             sorbent_results)
 
 from ..auth import require
 from ..commands.fit import pressure_swing
@@ -160,14 +160,7 @@ def _page_headers(resp: Response) -> Response:
 
 def _choices(store: Store) -> dict:
     """Values the filter form offers, read from every stored summary."""
-    data = store.dataset("summaries")
-    if data is None:
-        return {"adsorbates": [], "flags": [], "temperatures_k": []}
-    table = data.to_table(columns=["adsorbate", "temperature_k", "flags"])
-    flags = pc.unique(pc.list_flatten(table["flags"])).drop_null().to_pylist()
-    temperatures = pc.unique(pc.round(table["temperature_k"], 2)).drop_null().to_pylist()
-    return {"adsorbates": sorted(pc.unique(table["adsorbate"]).drop_null().to_pylist()),
-            "flags": sorted(flags), "temperatures_k": sorted(temperatures)}
+    return filter_choices(store)
 
 
 def _sort_links(filters: dict, sort: str, descending: bool) -> dict:
@@ -183,7 +176,7 @@ def _sort_links(filters: dict, sort: str, descending: bool) -> dict:
 
 
 def _batches(store: Store) -> tuple[list[dict], int]:
-    ids = store.batch_ids()
+    ids = batch_ids(store)
     shown = [jobs.batch_status(store, b) for b in ids[:BATCHES_SHOWN]]
     return [s for s in shown if s is not None], len(ids)
 
@@ -212,6 +205,7 @@ def overview():
                          exclude_flags=tuple(filter(None, [filters.get("exclude_flag")])),
                          sort=sort, descending=order == "desc", limit=ROWS_PER_PAGE,
                          offset=offset, unreliable_last=not in_place)
+    attach(store)  # the ranking lists the summaries through the read index
     try:
         ranked = ranking(store, query)
     except ValueError as exc:  # a sort column absent from every stored summary
@@ -251,12 +245,10 @@ def _param_units(model_id: str) -> dict[str, str]:
 @require("read")
 def sorbent(sorbent_id: str):
     store = _store()
-    current, _ = rankings(store, RankingQuery(sorbent_id=sorbent_id, limit=10_000))
+    current, every_total = sorbent_results(store, sorbent_id)
     results = sorted(nan_to_none(current.to_pylist()),
                      key=lambda r: (r["adsorbate"] or "", r["temperature_k"] or 0.0,
                                     r["isotherm_id"] or ""))
-    _, every_total = rankings(store, RankingQuery(sorbent_id=sorbent_id, limit=0,
-                                                  all_results=True))
     inputs_total = sorbent_input_count(store, sorbent_id)
     if not results and not inputs_total:
         raise Problem(404, "Not Found", f"No sorbent {sorbent_id!r} in any batch.")

@@ -2,6 +2,10 @@
 fits, a sorbent's isotherms, tables and isosteric heat. Flask-free: the API
 (``service/api``) and the HTML pages (``service/web``) both read through here.
 
+Each read asks the store's read index (``index.py``) which files hold the
+rows it needs and opens only those; with SORBRANK_READ_INDEX=0, or when an
+indexed file cannot be read, it scans the tables as before (``_scan``).
+
 Nothing is refitted here. The points are the normalised inputs the store kept
 at acceptance; the curves come from the stored fits and summary of the same
 batch, so a picture always shows what the rankings were built from.
@@ -16,7 +20,9 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 
 from ..models import CATALOGUE
+from . import index as read_index
 from .layout import nan_to_none
+from .rankings import RankingQuery, _rank_whole_rows, rankings
 from .tables import Store
 
 FIT_FIELDS = ("model", "converged", "reason", "selected", "excluded_reason", "n_params",
@@ -76,8 +82,54 @@ def fit_entry(row: dict) -> dict:
     return entry
 
 
-def _rows(store: Store, table: str, where: ds.Expression) -> list[dict]:
-    return nan_to_none(store.query(table, where).to_pylist())
+_PARTITION = pa.schema([("batch_id", pa.string())])
+_FORMAT = ds.ParquetFileFormat()
+
+
+class _IndexMiss(Exception):
+    """An indexed file could not be read (moved, damaged): scan instead."""
+
+
+def _index(store: Store) -> read_index.ReadIndex | None:
+    return read_index.read_index(store)
+
+
+def _indexed(store: Store, index: read_index.ReadIndex, table: str, column: str, value: str,
+             where: ds.Expression) -> pa.Table:
+    """``store.query(table, where)`` over the files the index says hold a row
+    with ``column == value`` (``where`` must imply it); same columns, same order."""
+    schema = index.schema(table)
+    paths = index.files_with(table, column, value)
+    if schema is None or not paths:
+        return pa.table({})
+    schema = pa.unify_schemas([schema, _PARTITION], promote_options="permissive")
+    fragments = []
+    for path in paths:  # sorted, as a listing of the table would be
+        batch_id = path.rsplit("/batch_id=", 1)[1].split("/", 1)[0]
+        fragments.append(_FORMAT.make_fragment(
+            path, store.fs, partition_expression=ds.field("batch_id") == batch_id))
+    try:
+        return ds.FileSystemDataset(fragments, schema, _FORMAT, store.fs).to_table(filter=where)
+    except (OSError, pa.ArrowException) as exc:
+        raise _IndexMiss(str(exc)) from exc
+
+
+def _query(store: Store, table: str, column: str, value: str, where: ds.Expression) -> pa.Table:
+    index = _index(store)
+    if index is not None:
+        try:
+            return _indexed(store, index, table, column, value, where)
+        except _IndexMiss:
+            pass  # the scan below quarantines a damaged file and reads the rest
+    return _scan(store, table, where)
+
+
+def _scan(store: Store, table: str, where: ds.Expression) -> pa.Table:
+    return store.query(table, where)
+
+
+def _rows(store: Store, table: str, where: ds.Expression, column: str, value: str) -> list[dict]:
+    return nan_to_none(_query(store, table, column, value, where).to_pylist())
 
 
 def load_isotherm(store: Store, isotherm_id: str, batch_id: str | None = None
@@ -86,19 +138,20 @@ def load_isotherm(store: Store, isotherm_id: str, batch_id: str | None = None
     where = ds.field("isotherm_id") == isotherm_id
     if batch_id is not None:
         where = where & (ds.field("batch_id") == batch_id)
-    inputs = _rows(store, "inputs", where)
+    inputs = _rows(store, "inputs", where, "isotherm_id", isotherm_id)
     if not inputs:
         return None
     newest = max(inputs, key=lambda r: r["batch_id"])  # batch ids sort by acceptance time
     where = (ds.field("isotherm_id") == isotherm_id) & (ds.field("batch_id") == newest["batch_id"])
-    summaries = _rows(store, "summaries", where)
-    fits = [fit_entry(r) for r in _rows(store, "fits", where)]
+    summaries = _rows(store, "summaries", where, "isotherm_id", isotherm_id)
+    fits = [fit_entry(r) for r in _rows(store, "fits", where, "isotherm_id", isotherm_id)]
     return StoredIsotherm(newest["batch_id"], newest, summaries[0] if summaries else None, fits)
 
 
 def qst_rows(store: Store, sorbent_id: str, adsorbate: str | None = None) -> list[dict]:
     """Newest isosteric-heat row per adsorbate of a sorbent, sorted by adsorbate."""
-    data = store.query("sorbents", ds.field("sorbent_id") == sorbent_id)
+    data = _query(store, "sorbents", "sorbent_id", sorbent_id,
+                  ds.field("sorbent_id") == sorbent_id)
     if "kind" not in data.column_names or not data.num_rows:
         return []
     data = data.filter(pc.equal(data["kind"], "isosteric_heat"))
@@ -121,7 +174,7 @@ def sorbent_isotherms(store: Store, sorbent_id: str,
 
     def by_key(table: str) -> dict:
         grouped: dict = {}
-        for row in nan_to_none(store.query(table, where).to_pylist()):
+        for row in nan_to_none(_query(store, table, "sorbent_id", sorbent_id, where).to_pylist()):
             key = (row.get("batch_id"), row.get("isotherm_id"))
             if key in wanted:
                 grouped.setdefault(key, []).append(row)
@@ -142,6 +195,9 @@ def sorbent_isotherms(store: Store, sorbent_id: str,
 
 def sorbent_input_count(store: Store, sorbent_id: str) -> int:
     """How many input isotherms of the sorbent the store holds, over every batch."""
+    index = _index(store)
+    if index is not None:
+        return index.count("inputs", "sorbent_id", sorbent_id)
     data = store.dataset("inputs")
     if data is None:
         return 0
@@ -151,6 +207,25 @@ def sorbent_input_count(store: Store, sorbent_id: str) -> int:
 def sorbent_tables(store: Store, sorbent_id: str) -> dict[str, pa.Table | None]:
     """The sorbent's rows of each table of ``SORBENT_TABLES``, newest batch
     first (batch ids sort by time); None for a table without a sorbent_id column."""
+    index = _index(store)
+    if index is not None:
+        try:
+            found: dict[str, pa.Table | None] = {}
+            for key, table in SORBENT_TABLES:
+                schema = index.schema(table)
+                if schema is None or "sorbent_id" not in schema.names:
+                    found[key] = None
+                    continue
+                rows = _indexed(store, index, table, "sorbent_id", sorbent_id,
+                                ds.field("sorbent_id") == sorbent_id)
+                found[key] = rows.sort_by([("batch_id", "descending")])
+            return found
+        except _IndexMiss:
+            pass
+    return _scan_sorbent_tables(store, sorbent_id)
+
+
+def _scan_sorbent_tables(store: Store, sorbent_id: str) -> dict[str, pa.Table | None]:
     found: dict[str, pa.Table | None] = {}
     for key, table in SORBENT_TABLES:
         data = store.dataset(table)
@@ -160,3 +235,50 @@ def sorbent_tables(store: Store, sorbent_id: str) -> dict[str, pa.Table | None]:
         rows = data.to_table(filter=ds.field("sorbent_id") == sorbent_id)
         found[key] = rows.sort_by([("batch_id", "descending")])
     return found
+
+
+def sorbent_results(store: Store, sorbent_id: str, limit: int = 10_000) -> tuple[pa.Table, int]:
+    """(the sorbent's current results: latest wins, as ``rankings`` ranks them;
+    how many summary rows it has over every batch, superseded ones included)."""
+    current = RankingQuery(sorbent_id=sorbent_id, limit=limit)
+    index = _index(store)
+    if index is not None:
+        try:
+            rows = _indexed(store, index, "summaries", "sorbent_id", sorbent_id,
+                            ds.field("sorbent_id") == sorbent_id)
+            if not rows.num_rows:
+                return rows, 0
+            page, _ = _rank_whole_rows(rows, current)
+            return page, rows.num_rows
+        except _IndexMiss:
+            pass
+    page, _ = rankings(store, current)
+    _, every = rankings(store, RankingQuery(sorbent_id=sorbent_id, limit=0, all_results=True))
+    return page, every
+
+
+def filter_choices(store: Store) -> dict:
+    """Values the overview's filter form offers, read from every stored summary."""
+    index = _index(store)
+    if index is not None:
+        return index.choices()
+    data = store.dataset("summaries")
+    if data is None:
+        return {"adsorbates": [], "flags": [], "temperatures_k": []}
+    flag = next((c for c in read_index.FLAG_COLUMNS if c in data.schema.names), None)
+    table = data.to_table(columns=["adsorbate", "temperature_k", *([flag] if flag else [])])
+    flags = pc.unique(pc.list_flatten(table[flag])).drop_null().to_pylist() if flag else []
+    temperatures = pc.unique(pc.round(table["temperature_k"], 2)).drop_null().to_pylist()
+    return {"adsorbates": sorted(pc.unique(table["adsorbate"]).drop_null().to_pylist()),
+            "flags": sorted(flags), "temperatures_k": sorted(temperatures)}
+
+
+def batch_ids(store: Store) -> list[str]:
+    """Accepted batches, newest first."""
+    index = _index(store)
+    return store.batch_ids() if index is None else index.batch_ids()
+
+
+def attach(store: Store) -> None:
+    """Let the store's table listings (rankings) come from the read index."""
+    _index(store)
