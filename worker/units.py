@@ -22,6 +22,18 @@ Conventions:
 * mmHg and torr both take scipy.constants' value (atm/760); the
   conventional mmHg differs by 1.4e-7 relative, far below any rig's precision.
 
+Exactness: a conversion by a power of ten (kPa, MPa, bar, mbar to Pa; mmol/g,
+mol/g to mol/kg) is correctly rounded: the double nearest to the exact product
+of the value read and 10^k, so 3.1 mol/g is 3100 mol/kg and 0.0031 mol/g is
+3.1, never 3.1000000000000005; mmol on a sample mass in g is the correctly
+rounded quotient. It is one IEEE
+operation: a multiplication by 10^k for k >= 0 (10^k is an exact double up to
+10^22), a division by 10^-k otherwise (``scaled_by``; 0.001 is no exact double,
+so multiplying by it adds an error). An absolute amount is first divided by the
+sample mass in g (mmol per g of sample is mol/kg: one division). Every other
+conversion (atm, torr, psi, mass, gas volume, p/p0) takes at most two roundings,
+a relative error of at most about 2.2e-16.
+
 Units in column names
 ---------------------
 Input columns carry their unit the way output columns do (``temperature_k``,
@@ -118,8 +130,8 @@ class LoadingUnit:
     adsorbate) or ``gas_volume`` (cm3 at STP). ``per_kg_sorbent`` tells
     whether it is already specific (per mass of sorbent) or an absolute amount
     that must be divided by the sample mass. ``scale`` turns the number into
-    mol (or g, or cm3) per kg of sorbent for specific units, or into mol (or g,
-    or cm3) for absolute ones.
+    mol (or g, or cm3) per kg of sorbent; for an absolute unit, the number once
+    divided by the sample mass in g (mmol per g of sample is mol/kg: scale 1).
     """
 
     name: str
@@ -136,10 +148,24 @@ LOADING_UNIT_TABLE: dict[str, LoadingUnit] = {u.name: u for u in [
     LoadingUnit("g/g", "mass", True, 1000.0),
     LoadingUnit("wt%", "mass", True, 10.0),          # g per 100 g = 10 g/kg
     LoadingUnit("cm3(STP)/g", "gas_volume", True, 1000.0),
-    LoadingUnit("cm3(STP)", "gas_volume", False, 1.0),
-    LoadingUnit("mmol", "amount", False, 1e-3),
-    LoadingUnit("mol", "amount", False, 1.0),
+    # absolute amounts: the scale applies per g of sample (cm3/g = 1000 cm3/kg)
+    LoadingUnit("cm3(STP)", "gas_volume", False, 1000.0),
+    LoadingUnit("mmol", "amount", False, 1.0),
+    LoadingUnit("mol", "amount", False, 1000.0),
 ]}
+
+# the powers of ten a double holds exactly (10^0..10^22) and their reciprocals, by value
+_POWER_OF_TEN = {float(f"1e{k}"): k for k in range(-22, 23)}
+
+
+def scaled_by(values, factor: float) -> np.ndarray:
+    """``values * factor``, correctly rounded where ``factor`` is a power of ten: 10^-k
+    (not an exact double) is applied as a division by 10^k (exact), so 3.1 x 0.001
+    gives 0.0031, not 0.0031000000000000003."""
+    exponent = _POWER_OF_TEN.get(factor)
+    if exponent is not None and exponent < 0:
+        return np.asarray(values, dtype=float) / float(f"1e{-exponent}")
+    return np.asarray(values, dtype=float) * factor
 
 _LOADING_ALIASES = {
     "mol/kg": ["mol/kg", "mol kg-1", "mol.kg-1", "mol_per_kg"],
@@ -208,7 +234,7 @@ def pressure_to_pa(values, unit: str, saturation_pressure_pa=None) -> np.ndarray
     values = np.asarray(values, dtype=float)
     pa_per_unit = PRESSURE_PA_PER_UNIT[normalise_unit_name(unit, "pressure")]
     if pa_per_unit is not None:
-        return values * pa_per_unit
+        return scaled_by(values, pa_per_unit)
     if saturation_pressure_pa is None:
         raise MissingReference("relative pressure needs the saturation pressure",
                                field="saturation_pressure", code="missing_saturation_pressure")
@@ -225,13 +251,13 @@ def loading_to_mol_per_kg(values, unit: str, molar_mass_g_per_mol,
     """
     values = np.asarray(values, dtype=float)
     spec = LOADING_UNIT_TABLE[normalise_unit_name(unit, "loading")]
-    scaled = values * spec.scale
     if not spec.per_kg_sorbent:
         if sample_mass_g is None:
             raise MissingReference(f"loading unit {spec.name!r} is an absolute amount and needs "
                                    "the sample mass", field="sample_mass_g",
                                    code="missing_sample_mass")
-        scaled = scaled / (np.asarray(sample_mass_g, dtype=float) / 1000.0)
+        values = values / np.asarray(sample_mass_g, dtype=float)
+    scaled = scaled_by(values, spec.scale)
     if spec.quantity == "mass":
         return scaled / np.asarray(molar_mass_g_per_mol, dtype=float)
     if spec.quantity == "gas_volume":

@@ -124,6 +124,23 @@ def test_absolute_loading_with_sample_mass_and_gas_volume():
     np.testing.assert_allclose(batch.isotherms[0].loading_mol_per_kg, expected, rtol=1e-14)
 
 
+def test_converted_values_are_correctly_rounded_where_the_conversion_is_a_power_of_ten():
+    from fractions import Fraction
+
+    # the reference is exact rational arithmetic (float(Fraction) rounds correctly):
+    # kPa -> Pa is x 1000, mmol on a sample of 0.37 g -> mol/kg is / 0.37, each the
+    # double nearest the exact result (so 0.0031 stays 0.0031, never 0.0031000000000000003)
+    pressures_kpa = ["0.0031", "0.1235709", "1.546324", "12.7", "99.99"]
+    amounts_mmol = ["0.0031", "0.05677142", "0.06517968", "1.2", "3.3"]
+    rows = [f"m1,CO2,298.15,{p},{q},0.37,{q}" for p, q in zip(pressures_kpa, amounts_mmol)]
+    header = HEADER + ",sample_mass_g,loading_sigma"
+    (iso,) = read_batch(csv_of(*rows, header=header,
+                               units="# units: pressure:kPa,loading:mmol\n")).isotherms
+    assert iso.pressure_pa.tolist() == [float(Fraction(float(p)) * 1000) for p in pressures_kpa]
+    exact = [float(Fraction(float(q)) / Fraction(0.37)) for q in amounts_mmol]
+    assert iso.loading_mol_per_kg.tolist() == exact and iso.sigma_mol_per_kg.tolist() == exact
+
+
 def test_sigma_is_converted_with_the_loading():
     rows = [f"m1,CO2,298.15,{p},{q},{s}" for p, q, s in ((10, 44.0, 0.44), (20, 88.0, 0.88), (30, 99.0, 1.0))]
     batch = read_batch(csv_of(*rows, header=HEADER + ",loading_sigma", units="# units: pressure:kPa,loading:mg/g\n"))

@@ -64,15 +64,18 @@ def unit_index_per_row(column: Text, table: list[str]) -> np.ndarray:
     return per_row(column.codes, [table.index(v) for v in column.values], -1, np.int64)
 
 
-def loading_factor(unit: np.ndarray, table: list[str], molar_mass, mass_g) -> np.ndarray:
-    """Per row: mol/kg per unit of the row's loading unit (nan where unknown)."""
-    factor = np.full(unit.size, np.nan)
+def loading_in_mol_per_kg(values: np.ndarray, unit: np.ndarray, table: list[str], molar_mass,
+                          mass_g) -> np.ndarray:
+    """Per row: the loading ``values`` in mol/kg, each converted from the row's loading
+    unit (nan where unknown). The values themselves go through the conversion, not a
+    factor per unit, so a power-of-ten conversion is correctly rounded (units module)."""
+    out = np.full(unit.size, np.nan)
     for index, unit_name in enumerate(table):
         rows_in_unit = unit == index
         if rows_in_unit.any():
-            factor[rows_in_unit] = units.loading_to_mol_per_kg(
-                1.0, unit_name, molar_mass[rows_in_unit], mass_g[rows_in_unit])
-    return factor
+            out[rows_in_unit] = units.loading_to_mol_per_kg(
+                values[rows_in_unit], unit_name, molar_mass[rows_in_unit], mass_g[rows_in_unit])
+    return out
 
 
 class GroupNames:
@@ -323,10 +326,10 @@ def _canonical_points(found: Findings, number, unit: _RowUnits, p0_g, molar_mass
     with np.errstate(all="ignore"):
         pressure_pa = number["pressure"].value * np.where(unit.is_relative, p0_g[gid],
                                                           unit.pa_per_unit)
-        loading = number["loading"].value * loading_factor(unit.loading, l_table, molar_mass,
-                                                           mass_g[gid])
-        sigma = number["loading_sigma"].value * loading_factor(unit.loading_sigma, l_table,
-                                                               molar_mass, mass_g[gid])
+        loading = loading_in_mol_per_kg(number["loading"].value, unit.loading, l_table,
+                                        molar_mass, mass_g[gid])
+        sigma = loading_in_mol_per_kg(number["loading_sigma"].value, unit.loading_sigma, l_table,
+                                      molar_mass, mass_g[gid])
     unit_names = {"pressure": (unit.pressure_units, unit.pressure),
                   "saturation_pressure": (unit.pressure_units, unit.saturation_pressure),
                   "loading": (l_table, unit.loading),
