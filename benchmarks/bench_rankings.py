@@ -117,7 +117,7 @@ def chunk_table(schema: pa.Schema, rng, n: int, sorbents: np.ndarray, accepted_a
             columns[name] = _strings(branch)
         elif name == "temperature_k":
             columns[name] = pa.array(temp, pa.float64())
-        elif name == "flags":
+        elif name == "quality_flags":
             columns[name] = flags
         elif name == "accepted_at":
             columns[name] = pa.array([accepted_at] * n, kind)

@@ -367,7 +367,7 @@ def _numeric(text: str) -> bool:
 
 
 RANK_COLUMNS = ["sorbent_id", "adsorbate", "temperature_k", "best_model", "q_sat_mol_per_kg",
-                "henry_mol_per_kg_pa", "bet_area_m2_per_g", "working_capacity_mol_per_kg", "flags"]
+                "henry_mol_per_kg_pa", "bet_area_m2_per_g", "working_capacity_mol_per_kg", "quality_flags"]
 
 
 def ranked_table(rows: list[dict], sort: str, offset: int = 0) -> str:

@@ -21,7 +21,7 @@ PLOT_KINDS = ("isotherm", "langmuir-linear", "bet")
 TABLES = ("summary", "fits", "sorbents")
 # the columns a notebook shows first: who, what, which model, the headline figures
 HTML_COLUMNS = ("sorbent_id", "adsorbate", "temperature_k", "best_model", "q_sat_mol_per_kg",
-                "henry_mol_per_kg_pa", "working_capacity_mol_per_kg", "flags")
+                "henry_mol_per_kg_pa", "working_capacity_mol_per_kg", "quality_flags")
 HTML_ROWS = 10
 HTML_ISSUES = 3
 # temperatures of one isotherm as typed by people: 298 and 298.15 name the same one

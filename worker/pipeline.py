@@ -22,6 +22,7 @@ from .isotherm import DEFAULT_CHUNK_SIZE, Batch
 from .packing import Packed, pack
 from .results import ModelFits, Selection
 from .selection import CRITERIA, linearized_langmuir, select
+from .store.schema import QUALITY_FLAGS, REFERENCE_LISTS, conform
 
 Progress = Callable[[int, int], None]  # (isotherms done, isotherms total)
 
@@ -102,7 +103,10 @@ class BatchResult:
         lin_q = _json_list(self.linearized["q_sat_mol_per_kg"])
         lin_b = _json_list(self.linearized["affinity_per_pa"])
         temps = _json_list(p.temperature_k)
-        metric = {name: _json_list(v) for name, v in self.summary.items() if name != "flags"}
+        references, per_pressure = self._reference_columns()
+        metric = {name: _json_list(v) for name, v in self.summary.items()
+                  if name != "flags" and name not in per_pressure}
+        metric.update({name: _json_list(v) for name, v in references.items()})
         flags = self.flags()
         bet_ranges = self._bet_ranges()
         records = []
@@ -115,12 +119,12 @@ class BatchResult:
                 "n_points": int(p.n_points[i]),
                 "best_model": sel.best[i],
                 "ambiguous": bool(sel.ambiguous[i]),
-                "flags": flags[i],
+                QUALITY_FLAGS: flags[i],
                 "fits": [_fit_record(mid, lists, i) for mid, lists in per_model.items()],
                 "linearized_langmuir": {"q_sat": lin_q[i], "affinity": lin_b[i]},
                 "summary": {**{name: values[i] for name, values in metric.items()},
                             "bet_range_relative_pressure": bet_ranges[i],
-                            "flags": flags[i]},
+                            QUALITY_FLAGS: flags[i]},
             })
         return records
 
@@ -192,7 +196,8 @@ class BatchResult:
             has = stacked(lambda m, f: np.full(f.n, name in f.param_names))
             bound = stacked(lambda m, f: _param_column(f, f.at_bound.astype(float), name)).astype(float)
             columns[f"at_bound_{name}"] = pa.array(bound == 1.0, pa.bool_(), mask=~has.astype(bool))
-        return pa.table(columns)
+        # every catalogue parameter has its columns (typed nulls where unused)
+        return conform("fits", pa.table(columns)).drop_columns(["accepted_at"])
 
     def summary_table(self) -> pa.Table:
         """One row per isotherm: identity, selection, double-reciprocal
@@ -213,8 +218,9 @@ class BatchResult:
             "linearized_q_sat_mol_per_kg": _float_array(self.linearized["q_sat_mol_per_kg"]),
             "linearized_affinity_per_pa": _float_array(self.linearized["affinity_per_pa"]),
         }
+        references, per_pressure = self._reference_columns()
         for name, values in self.summary.items():
-            if name == "flags" or name in columns:
+            if name == "flags" or name in columns or name in per_pressure:
                 continue
             values = np.asarray(values)
             if values.dtype.kind == "f":
@@ -223,8 +229,32 @@ class BatchResult:
                 columns[name] = pa.array(values.tolist())
         columns["bet_range_relative_pressure"] = pa.array(
             self._bet_ranges(), pa.list_(pa.float64()))
-        columns["flags"] = pa.array(self.flags(), pa.list_(pa.string()))
-        return pa.table(columns)
+        for name, values in references.items():
+            columns[name] = _float_lists(values)
+        columns[QUALITY_FLAGS] = pa.array(self.flags(), pa.list_(pa.string()))
+        # the declared columns, in their order and types (accepted_at: the store's)
+        return conform("summaries", pa.table(columns)).drop_columns(["accepted_at"])
+
+    def _reference_columns(self) -> tuple[dict[str, np.ndarray], set[str]]:
+        """The figures at the batch's reference pressures as (n, k) arrays, one
+        per list column of the summaries, and the per-pressure names of the
+        metric columns they gather (their values go to the lists)."""
+        pressures = [float(p) for p in self.batch.conditions.reference_pressures_pa]
+        if not self.summary:
+            return {}, set()
+        from .metrics.common import pressure_label
+
+        labels = [pressure_label(p) for p in pressures]
+        out = {"reference_pressures_pa": np.tile(np.asarray(pressures, dtype=float), (self.n, 1))}
+        consumed: set[str] = set()
+        for list_name, template in REFERENCE_LISTS:
+            names = [template.format(p=label) for label in labels]
+            if all(name in self.summary for name in names):
+                out[list_name] = np.stack([np.asarray(self.summary[name], dtype=float)
+                                           for name in names], axis=1) if names else \
+                    np.zeros((self.n, 0))
+                consumed.update(names)
+        return out, consumed
 
     def _bet_ranges(self) -> list[list[float] | None]:
         """[low, high] p/p0 of the chosen BET range per isotherm, None where none."""
@@ -253,7 +283,8 @@ def process_batch(batch: Batch, options: FitOptions | None = None, *, workers: i
         from . import metrics  # imported here: metrics depend on the catalogue, not the reverse
 
         result.summary = metrics.summarize(packed, fits, selection, batch, options.weighting)
-        result.sorbent_rows = metrics.sorbent_metrics(packed, fits, selection, batch)
+        result.sorbent_rows = [_renamed_flags(row) for row in
+                               metrics.sorbent_metrics(packed, fits, selection, batch)]
     return result
 
 
@@ -269,6 +300,14 @@ def fit_and_select(packed: Packed, options: FitOptions) -> tuple[dict[str, Model
     """Fit the chosen models to ``packed`` and select per isotherm."""
     fits = fit_models(packed, options.model_ids, options.weighting, options.absolute_sigma, options.solver)
     return fits, select(fits, options.criterion, packed)
+
+
+def _renamed_flags(row: dict) -> dict:
+    """A metrics row with its flags under the stored name (one vocabulary for
+    the tables, the JSON and the Python API)."""
+    if "flags" in row:
+        row[QUALITY_FLAGS] = row.pop("flags")
+    return row
 
 
 def _fit_and_select_chunks(packed, options, workers, chunk_size, progress):
@@ -325,6 +364,15 @@ def _concat_selections(parts: list[Selection]) -> Selection:
 def _float_array(values) -> pa.Array:
     values = np.asarray(values, dtype=float)
     return pa.array(values, pa.float64(), mask=np.isnan(values))
+
+
+def _float_lists(values: np.ndarray) -> pa.Array:
+    """(n, k) floats -> list<double> of k values per row, NaN as null."""
+    values = np.asarray(values, dtype=float)
+    n, k = values.shape
+    flat = values.ravel()
+    offsets = pa.array(np.arange(n + 1, dtype=np.int32) * k, pa.int32())
+    return pa.ListArray.from_arrays(offsets, pa.array(flat, pa.float64(), mask=np.isnan(flat)))
 
 
 def _json_list(values) -> list:

@@ -33,7 +33,7 @@ def summary_rows(n, *, seed, sorbents=6, adsorbates=("CO2", "N2"), temps=(273.15
             "q_sat_stderr_mol_per_kg": rng.choice([None, rng.uniform(0, 1), rng.uniform(0, 5)]),
             "henry_mol_per_kg_pa": rng.uniform(1e-6, 1e-4),
             "loading_ads_mol_per_kg": rng.choice([None, float("nan")] + [rng.uniform(0, 5)] * 8),
-            "flags": rng.choice([[], ["at_bound"], ["ambiguous", "at_bound"], ["ambiguous"],
+            "quality_flags": rng.choice([[], ["at_bound"], ["ambiguous", "at_bound"], ["ambiguous"],
                                  ["extrapolated_adsorption_pressure"],
                                  ["capacity_extrapolated", "ambiguous"]]),
         })
@@ -156,8 +156,8 @@ def brute_force_rankings(batches, query: RankingQuery):
         for r in ordered:
             first.setdefault((r["sorbent_id"], r["adsorbate"], round(r["temperature_k"])), r)
         rows = list(first.values())
-    rows = [r for r in rows if set(query.flags) <= set(r["flags"])
-            and not set(query.exclude_flags) & set(r["flags"])]
+    rows = [r for r in rows if set(query.flags) <= set(r["quality_flags"])
+            and not set(query.exclude_flags) & set(r["quality_flags"])]
 
     def value(r):
         v = r[query.sort]
@@ -168,10 +168,10 @@ def brute_force_rankings(batches, query: RankingQuery):
         if not query.unreliable_last:
             return False
         if query.sort == "loading_ads_mol_per_kg":
-            return "extrapolated_adsorption_pressure" in r["flags"]
+            return "extrapolated_adsorption_pressure" in r["quality_flags"]
         if query.sort == "q_sat_mol_per_kg":
             q, se = r["q_sat_mol_per_kg"], r["q_sat_stderr_mol_per_kg"]
-            return "capacity_extrapolated" in r["flags"] or se is None or not se <= 0.25 * q
+            return "capacity_extrapolated" in r["quality_flags"] or se is None or not se <= 0.25 * q
         return False
 
     present = [r for r in rows if value(r) is not None]
@@ -226,8 +226,8 @@ def test_rankings_paging_and_unknown_sort_column(tmp_path):
     assert page["isotherm_id"].to_pylist() == everything["isotherm_id"].to_pylist()[10:15]
     with pytest.raises(ValueError, match="cannot sort by 'no_such_column'"):
         rankings(store, RankingQuery(sort="no_such_column"))
-    with pytest.raises(ValueError, match="cannot sort by 'flags'"):
-        rankings(store, RankingQuery(sort="flags"))
+    with pytest.raises(ValueError, match="cannot sort by 'quality_flags'"):
+        rankings(store, RankingQuery(sort="quality_flags"))
 
 
 def test_empty_store_ranks_nothing(tmp_path):
@@ -505,7 +505,7 @@ def _row(iso, sorbent, loading, q_sat, stderr, flags=(), temperature_k=298.15):
             "temperature_k": temperature_k, "loading_ads_mol_per_kg": loading,
             "loading_des_mol_per_kg": loading / 2,
             "working_capacity_mol_per_kg": loading / 2, "q_sat_mol_per_kg": q_sat,
-            "q_sat_stderr_mol_per_kg": stderr, "flags": list(flags)}
+            "q_sat_stderr_mol_per_kg": stderr, "quality_flags": list(flags)}
 
 
 def test_extrapolated_rows_sort_last_by_default_and_in_place_only_when_asked(tmp_path):

@@ -9,22 +9,9 @@ import pyarrow as pa
 
 from ..isotherm import Isotherm
 from .layout import original_json
+from .schema import INPUTS, QUALITY_FLAGS
 
-INPUT_SCHEMA = pa.schema([
-    ("isotherm_id", pa.string()),
-    ("sorbent_id", pa.string()),
-    ("adsorbate", pa.string()),
-    ("temperature_k", pa.float64()),
-    ("branch", pa.string()),
-    ("saturation_pressure_pa", pa.float64()),
-    ("surface_area_m2_per_g", pa.float64()),
-    ("batch_label", pa.string()),
-    ("flags", pa.list_(pa.string())),
-    ("pressure_pa", pa.list_(pa.float64())),
-    ("loading_mol_per_kg", pa.list_(pa.float64())),
-    ("sigma_mol_per_kg", pa.list_(pa.float64())),
-    ("original_json", pa.string()),
-])
+INPUT_SCHEMA = INPUTS  # declared in schema.py
 
 
 def _float_lists(arrays: list) -> pa.Array:
@@ -55,7 +42,7 @@ def isotherms_to_table(isotherms: Iterable[Isotherm]) -> pa.Table:
         "surface_area_m2_per_g": pa.array([iso.surface_area_m2_per_g for iso in isotherms],
                                           pa.float64()),
         "batch_label": pa.array([iso.batch_label for iso in isotherms], pa.string()),
-        "flags": pa.array([list(iso.flags) for iso in isotherms], pa.list_(pa.string())),
+        QUALITY_FLAGS: pa.array([list(iso.flags) for iso in isotherms], pa.list_(pa.string())),
         "pressure_pa": _float_lists([iso.pressure_pa for iso in isotherms]),
         "loading_mol_per_kg": _float_lists([iso.loading_mol_per_kg for iso in isotherms]),
         "sigma_mol_per_kg": _float_lists([iso.sigma_mol_per_kg for iso in isotherms]),
@@ -75,7 +62,7 @@ def _isotherms_to_table_by_rows(isotherms: Iterable[Isotherm]) -> pa.Table:
         "saturation_pressure_pa": iso.saturation_pressure_pa,
         "surface_area_m2_per_g": iso.surface_area_m2_per_g,
         "batch_label": iso.batch_label,
-        "flags": list(iso.flags),
+        QUALITY_FLAGS: list(iso.flags),
         "pressure_pa": [float(v) for v in iso.pressure_pa],
         "loading_mol_per_kg": [float(v) for v in iso.loading_mol_per_kg],
         "sigma_mol_per_kg": None if iso.sigma_mol_per_kg is None
@@ -103,7 +90,7 @@ def table_to_isotherms(table: pa.Table) -> list[Isotherm]:
             sigma_mol_per_kg=None if sigma is None else np.asarray(sigma, dtype=float),
             surface_area_m2_per_g=row["surface_area_m2_per_g"],
             batch_label=row["batch_label"],
-            flags=list(row["flags"] or []),
+            flags=list(row[QUALITY_FLAGS] or []),
             original=json.loads(row["original_json"]),
         ))
     return out

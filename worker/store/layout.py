@@ -18,10 +18,14 @@ import pyarrow as pa
 import pyarrow.fs as pafs
 
 from .. import fs
+# re-exported: the package and tables.py take the version from here
+from .schema import SCHEMA_VERSION, SCHEMA_VERSION_KEY  # noqa: F401
 
-SCHEMA_VERSION = "2"
-SCHEMA_VERSION_KEY = b"sorbrank.schema_version"
 TABLES = ("inputs", "summaries", "fits", "sorbents")
+# <root>/schema_version.json: the version every data file of the store is at;
+# written with a new store's first file and by ``sorbrank migrate-store`` when
+# it has finished. A store with data files and without it predates version 3.
+SCHEMA_MARKER = "schema_version.json"
 # what only a version-1 store holds: its per-sorbent table directory, and the
 # sample's id column in every table (``worker/store_migration.py`` rewrites both)
 VERSION_1_TABLE = "materials"
@@ -53,6 +57,13 @@ def version_1_error(where: str, root: Any) -> StoreError:
     return StoreError(
         f"{where}: written by an older sorbrank (store schema version 1, 'material_id' and "
         f"'materials'); this sorbrank reads version {SCHEMA_VERSION}. Stop the API and the "
+        f"workers and run 'sorbrank migrate-store --data-dir {root}' once")
+
+
+def older_version_error(where: str, root: Any, version: str = "2") -> StoreError:
+    return StoreError(
+        f"{where}: written by an older sorbrank (store schema version {version}); this "
+        f"sorbrank reads version {SCHEMA_VERSION} (docs/schema.md). Stop the API and the "
         f"workers and run 'sorbrank migrate-store --data-dir {root}' once")
 
 
@@ -187,7 +198,39 @@ class StoreLayout:
         its migration has rewritten every other file."""
         if self.fs.get_file_info(str(self._join(VERSION_1_TABLE))).type != pafs.FileType.NotFound:
             return str(version_1_error(f"{self.root}: the store", self.root))
+        marker = self._read_json(self._join(SCHEMA_MARKER))
+        if marker is not None:
+            version = str(marker.get("schema_version"))
+            if version == SCHEMA_VERSION:
+                return None
+            if version in ("1", "2"):
+                return str(older_version_error(f"{self.root}: the store", self.root, version))
+            return (f"{self.root}: the store is at schema version {version}; this sorbrank "
+                    f"reads version {SCHEMA_VERSION} (a newer sorbrank wrote it?)")
+        if self._has_data_files():
+            return str(older_version_error(f"{self.root}: the store (no {SCHEMA_MARKER})",
+                                           self.root))
         return None
+
+    def _has_data_files(self) -> bool:
+        """True when any table has a batch directory (one listing per table)."""
+        return any(info.type == pafs.FileType.Directory and info.base_name.startswith("batch_id=")
+                   for table in TABLES for info in fs.list_dir(self.fs, str(self._join(table))))
+
+    def ensure_current_schema(self) -> None:
+        """Before the first write: StoreError when the store is at an older
+        schema version (a worker must not add version-3 files to it); a new
+        store gets its marker. Checked once per instance."""
+        if getattr(self, "_schema_checked", False):
+            return
+        if problem := self.schema_problem():
+            raise StoreError(problem)
+        if self._read_json(self._join(SCHEMA_MARKER)) is None:
+            self.write_schema_marker()
+        self._schema_checked = True
+
+    def write_schema_marker(self) -> None:
+        self._write_json(self._join(SCHEMA_MARKER), {"schema_version": SCHEMA_VERSION})
 
     def _refuse_version_1(self, schema: pa.Schema | None = None) -> None:
         """StoreError when ``schema`` has the version-1 id column (without a

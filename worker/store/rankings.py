@@ -276,9 +276,9 @@ def _latest_wins_by_sorting(table: pa.Table) -> pa.Table:
 def _flag_filter(table: pa.Table, query: RankingQuery) -> pa.Table:
     keep = np.ones(table.num_rows, dtype=bool)
     for name in query.flags:
-        keep &= rows_with_flag(table["flags"], name)
+        keep &= rows_with_flag(table["quality_flags"], name)
     for name in query.exclude_flags:
-        keep &= ~rows_with_flag(table["flags"], name)
+        keep &= ~rows_with_flag(table["quality_flags"], name)
     return table.filter(pa.array(keep, pa.bool_()))
 
 
@@ -368,14 +368,14 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
         return None  # a file carrying its own batch_id: let the dataset reconcile it
     names = [n for n in _RANKING_KEYS if n != "batch_id"]
     names += [c for c in ("branch",) if c in data.schema.names]
-    if (query.flags or query.exclude_flags) and "flags" in data.schema.names:
-        names.append("flags")
+    if (query.flags or query.exclude_flags) and "quality_flags" in data.schema.names:
+        names.append("quality_flags")
     if query.sort not in names and query.sort != "batch_id":
         names.append(query.sort)
     reliability = RELIABILITY_OF_SORT.get(query.sort) if query.unreliable_last else None
     if reliability is not None:  # what the sorted figure's reliability is judged on
         values, _ = _RELIABILITY_RULES[reliability]
-        names += [n for n in (*values, "flags") if n in data.schema.names and n not in names]
+        names += [n for n in (*values, "quality_flags") if n in data.schema.names and n not in names]
     columns = snap.key_columns(names)
     lengths = snap.lengths
     file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)

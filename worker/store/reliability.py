@@ -91,9 +91,9 @@ def reliable_rows(table: pa.Table, reliability: str) -> np.ndarray:
         if reliability == "q_sat_reliable":
             stderr = _float_values(table, values[1])
             ok &= (figure > 0) & np.isfinite(stderr) & (stderr <= Q_SAT_MAX_RELATIVE_STDERR * figure)
-    if "flags" in table.column_names:
+    if "quality_flags" in table.column_names:
         for name in extrapolation_flags:
-            ok &= ~rows_with_flag(table["flags"], name)
+            ok &= ~rows_with_flag(table["quality_flags"], name)
     return ok
 
 

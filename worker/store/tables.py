@@ -20,8 +20,9 @@ import pyarrow.parquet as pq
 from .. import fs
 from .layout import (SCHEMA_VERSION, SCHEMA_VERSION_KEY, TABLES, DamagedFile, StoreError,
                      StoreLayout, _check_batch_id, _short, is_batch_id, iso_utc, utc_now,
-                     version_1_error)
+                     older_version_error, version_1_error)
 from .records import FAILED, QUEUED, ChunkStatus
+from .schema import conform
 
 _PARTITIONING = ds.partitioning(pa.schema([("batch_id", pa.string())]), flavor="hive")
 _INDEX_LOCK = threading.Lock()
@@ -50,12 +51,13 @@ class Store(StoreLayout):
 
     # tables
     def write_table(self, table: str, batch_id: str, chunk_index: int, data: pa.Table) -> Path:
-        if "batch_id" in data.column_names:  # the partition directory carries it
-            data = data.drop_columns(["batch_id"])
-        meta = dict(data.schema.metadata or {})
-        meta[SCHEMA_VERSION_KEY] = SCHEMA_VERSION.encode()
-        data = data.replace_schema_metadata(meta)
+        """Write one chunk file of ``table``, conformed to its declared schema
+        (``schema.conform``: SchemaMismatch for a column it does not declare);
+        the partition directory carries the batch id. StoreError on a store at
+        an older schema version."""
         path = self.table_path(table, batch_id, chunk_index)
+        data = conform(table, data)
+        self.ensure_current_schema()
         # page checksums: a flipped byte is found when the file is verified, not read as a number
         fs.atomic_write(self.fs, str(path),
                         lambda fh: pq.write_table(data, fh, write_page_checksum=True))
@@ -86,6 +88,8 @@ class Store(StoreLayout):
         version = (data.schema.metadata or {}).get(SCHEMA_VERSION_KEY, b"?").decode()
         if version == "1":
             raise version_1_error(str(path), self.root)
+        if version == "2":
+            raise older_version_error(str(path), self.root)
         if version != SCHEMA_VERSION:
             raise StoreError(f"{path}: schema version {version}, this code reads {SCHEMA_VERSION}")
         return data
