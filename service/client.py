@@ -179,12 +179,35 @@ class Client:
                                    f"/results?{query}", headers={"Accept": PARQUET_MEDIA})
         return pq.read_table(io.BytesIO(data))
 
+    def batches(self, state: str | None = None) -> list[dict]:
+        """Every batch's status summary, newest first (``state``: only those in
+        it), following the list's Link rel="next" page after page."""
+        return [b for page in self._pages("/batches", {"state": state, "limit": 1000})
+                for b in page["batches"]]
+
+    def _pages(self, path: str, params: dict):
+        """JSON pages of a list endpoint: the first, then each Link rel="next"."""
+        query = {k: v for k, v in params.items() if v is not None}
+        url = self.api + path + ("?" + urllib.parse.urlencode(query, doseq=True) if query else "")
+        seen = set()
+        while url is not None:
+            if url in seen:  # a server linking a page to itself would never end
+                raise ApiError(502, {"detail": f"pagination loops at {url}"})
+            seen.add(url)
+            _, headers, data = self._request("GET", url, headers={"Accept": "application/json"})
+            yield json.loads(data)
+            following = link_relations(header(headers, "Link")).get("next")
+            url = urllib.parse.urljoin(self.root + "/", following) if following else None
+
     # -- rankings -------------------------------------------------------------
     def rankings(self, adsorbate: str | None = None, temperature_k: float | None = None,
-                 sort: str = "q_sat_mol_per_kg", limit: int = 100, **filters):
+                 sort: str = "q_sat_mol_per_kg", limit: int | None = None, **filters):
         """Ranked results across every batch as a pandas DataFrame (latest batch
-        wins per sorbent, adsorbate, branch and temperature unless ``all=True``).
+        wins per sorbent, adsorbate, branch and temperature unless ``all=True``):
+        every matching row, or the first ``limit`` (after ``offset``).
 
+        ``adsorbate`` is matched as intake stores it (co2 is CO2); a gas
+        name intake does not know raises ApiError (400) naming it.
         ``filters``: temperature_tolerance_k, order ("desc"/"asc"), offset,
         flag, exclude_flag (a name or a list), batch_id, sorbent_id, all.
         """
@@ -195,8 +218,9 @@ class Client:
                                    limit=limit, **filters).to_pandas()
 
     def rankings_table(self, adsorbate: str | None = None, temperature_k: float | None = None,
-                       sort: str = "q_sat_mol_per_kg", limit: int = 100, **filters):
-        """``rankings`` as a pyarrow Table (fetched as an Arrow stream)."""
+                       sort: str = "q_sat_mol_per_kg", limit: int | None = None, **filters):
+        """``rankings`` as a pyarrow Table: the service's complete Arrow export
+        (every matching row in one stream unless ``limit`` is given)."""
         import pyarrow as pa
 
         unknown = sorted(set(filters) - set(RANKING_FILTERS))
@@ -212,14 +236,50 @@ class Client:
             return reader.read_all()
 
     def rankings_document(self, params: dict) -> dict:
-        """GET /rankings as JSON: rows, total, limit, offset, sort, order, deduplication."""
-        return self._get_json("/rankings", {k: v for k, v in params.items() if v is not None})
+        """GET /rankings as JSON: rows, total, sort, order, deduplication...
+        Without a ``limit`` in ``params``, every matching row: the pages are
+        followed by their Link rel="next" and their rows joined (``returned``
+        counts them); with one, that page only."""
+        params = {k: v for k, v in params.items() if v is not None}
+        doc = None
+        for page in self._pages("/rankings", params):
+            if doc is None:
+                doc = page
+            else:
+                doc["rows"].extend(page["rows"])
+            if "limit" in params:
+                break
+        doc["returned"] = len(doc["rows"])
+        if "limit" not in params:
+            doc["limit"], doc["links"] = None, {}
+        return doc
 
     def rankings_bytes(self, params: dict, fmt: str) -> bytes:
-        """GET /rankings in ``fmt`` (csv, parquet, arrow) as the service sent it."""
+        """GET /rankings in ``fmt`` (csv, parquet, arrow) as the service sent it:
+        every matching row unless ``params`` has a ``limit``."""
         query = urllib.parse.urlencode({**{k: v for k, v in params.items() if v is not None},
                                         "format": fmt}, doseq=True)
         return self._request("GET", f"{self.api}/rankings?{query}")[2]
+
+
+def header(headers: dict, name: str) -> str | None:
+    """A response header by its name in any case."""
+    return next((v for k, v in headers.items() if k.lower() == name.lower()), None)
+
+
+def link_relations(value: str | None) -> dict[str, str]:
+    """RFC 8288 Link header -> {rel: URL} (each rel of a space-separated list)."""
+    found: dict[str, str] = {}
+    for part in (value or "").split(","):
+        if "<" not in part or ">" not in part:
+            continue
+        url, _, rest = part.strip().partition(">")
+        for param in rest.split(";"):
+            key, _, val = param.strip().partition("=")
+            if key.strip().lower() == "rel":
+                for rel in val.strip().strip('"').split():
+                    found.setdefault(rel.lower(), url.strip().lstrip("<"))
+    return found
 
 
 class SubmittedBatch:

@@ -8,9 +8,8 @@ read (``RankingStream.parts``), so memory holds one part, not the export:
 - Parquet: a true stream too: ``pyarrow.parquet.ParquetWriter`` writes
   sequentially (row groups, then the footer at the end, no seek back), so
   each part becomes a row group sent as soon as it is written.
-- CSV: the header, then each part's lines. The cell encoding is
-  ``formats.to_csv``'s; this module only drops the header it writes for every
-  part after the first.
+- CSV: the header, then each part's lines, by ``formats.csv_chunks`` (the
+  one CSV encoding of every export, ``worker/csvcodec.py``).
 
 JSON answers stay paged; ``page_links`` gives RFC 8288 ``Link`` relations
 (first, prev, next, last) as root-relative URLs keeping every other query
@@ -28,7 +27,8 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 from flask import Response, request, stream_with_context
 
-from .formats import MEDIA_TYPES, to_csv
+from . import formats
+from .formats import MEDIA_TYPES
 
 log = logging.getLogger(__name__)
 EXTENSIONS = {"csv": "csv", "parquet": "parquet", "arrow": "arrows"}
@@ -83,13 +83,8 @@ def parquet_chunks(schema: pa.Schema, parts: Iterator[pa.Table]) -> Iterator[byt
 
 
 def csv_chunks(schema: pa.Schema, parts: Iterator[pa.Table]) -> Iterator[bytes]:
-    header = to_csv(schema.empty_table())
-    yield header
-    for part in parts:
-        body = to_csv(part)
-        if not body.startswith(header):  # to_csv writes the header line first, always
-            raise RuntimeError("CSV export: a part's header differs from the first")
-        yield body[len(header):]
+    for text in formats.csv_chunks(schema.names, parts):
+        yield text.encode()
 
 
 WRITERS = {"csv": csv_chunks, "parquet": parquet_chunks, "arrow": arrow_chunks}

@@ -12,7 +12,10 @@ DESCRIPTION = """\
 Ask a running sorbrank service for its ranking across every batch. By
 default there is one row per sorbent, adsorbate, branch and temperature
 (nearest 1 K): when several batches measured the same, the batch accepted
-last wins. --all lists every result instead.
+last wins. --all lists every result instead. Every matching row is printed
+unless --limit is given (the service's pages are followed; --format csv is
+its complete export). --adsorbate is matched as intake stores gas names
+(co2 is CO2); a name intake does not know is refused, with a suggestion.
 
 The default sort is the loading at the batch's adsorption pressure
 (loading_ads_mol_per_kg); rows whose sorted figure is unreliable (an
@@ -25,7 +28,7 @@ Units: temperature K, loading mol/kg, Henry constant mol/kg/Pa, area m2/g."""
 EPILOG = """\
 example:
   sorbrank rank --adsorbate CO2 --temperature-k 298.15 --sort henry_mol_per_kg_pa --limit 10
-  sorbrank rank --format csv --limit 1000 > ranking.csv"""
+  sorbrank rank --format csv > ranking.csv      # every matching row"""
 
 
 def register(subparsers) -> None:
@@ -42,7 +45,8 @@ def register(subparsers) -> None:
     p.add_argument("--unreliable-in-place", action="store_true",
                    help="rank rows whose sorted figure is unreliable in place, not last")
     p.add_argument("--order", choices=["asc", "desc"], default="desc", help="default desc")
-    p.add_argument("--limit", type=int, default=20, help="rows to show (default 20)")
+    p.add_argument("--limit", type=int, default=None,
+                   help="rows to show (default every matching row)")
     p.add_argument("--offset", type=int, default=0, help="rows to skip (default 0)")
     p.add_argument("--flag", action="append", help="keep rows with this quality flag (repeatable)")
     p.add_argument("--exclude-flag", action="append",
@@ -87,7 +91,9 @@ def run(args) -> int:
     columns[at:at] = [c for c in _condition_columns(doc) if c not in columns]
     numbered = [{"rank": args.offset + i + 1, **row} for i, row in enumerate(doc["rows"])]
     print(format_table(numbered, ["rank"] + columns))
-    print(f"\n{len(doc['rows'])} of {doc['total']} rows; {doc['deduplication']}", file=sys.stderr)
+    start = f" from row {args.offset + 1}" if args.offset else ""
+    print(f"\n{len(doc['rows'])} of {doc['total']} matching rows{start}; {doc['deduplication']}",
+          file=sys.stderr)
     if doc.get("reliability_column") and doc.get("unreliable_last"):
         print(f"rows whose {doc['reliability_column']} is false come last "
               "(--unreliable-in-place ranks them in place)", file=sys.stderr)

@@ -16,6 +16,7 @@ from openapi_spec_validator import validate
 
 from conftest import TOKENS, clean_env, csv_batch, free_port, isotherm, json_batch, parquet_batch, tokens_json
 from sorbrank.service.api.formats import safe_cell
+from sorbrank.service.api.params import ACCEPTED
 from sorbrank.service.app import create_app
 from sorbrank.service.auth import parse_tokens
 from sorbrank.service.config import ConfigError, Settings, load_settings, open_access_verdict
@@ -25,9 +26,9 @@ from sorbrank.worker.store import Store, new_batch_id
 
 
 def make_app(tmp_path, *, tokens=True, **overrides):
-    settings = Settings(data_dir=tmp_path / "data", chunk_size=2, embedded_workers=1,
+    settings = Settings(data_dir=tmp_path / "data", embedded_workers=1,
                         tokens=tuple(parse_tokens(tokens_json(), "test")) if tokens else (),
-                        **overrides)
+                        **{"chunk_size": 2, **overrides})
     store = Store(settings.data_dir)
     app = create_app(settings, enqueue=lambda batch_id, chunk: jobs.execute_chunk(store, batch_id, chunk))
     app.testing = True
@@ -449,3 +450,248 @@ def test_csv_content_type_names_its_charset_once(client):
     resp = client.get("/api/v1/rankings?format=csv", headers=auth("reader"))
     assert resp.status_code == 200
     assert resp.headers["Content-Type"].replace(" ", "").lower() == "text/csv;charset=utf-8"
+
+
+# -- query parameters: declared once, unknown ones refused ---------------------------
+
+def _rule_url(rule) -> str:
+    """A URL the rule matches, its variables filled with plausible values."""
+    values = {name: (new_batch_id() if name == "batch_id" else "sorbrank.css"
+                     if name == "filename" else "X1") for name in rule.arguments}
+    return re.sub(r"<(?:[^:<>]+:)?([^<>]+)>", lambda m: values[m.group(1)], rule.rule)
+
+
+def _operations(app):
+    for rule in app.url_map.iter_rules():
+        for method in sorted(rule.methods - {"HEAD", "OPTIONS"}):
+            yield rule, method
+
+
+def test_every_endpoint_refuses_an_unknown_query_parameter_naming_it(app):
+    client = app.test_client()
+    seen = set()
+    for rule, method in _operations(app):
+        resp = client.open(_rule_url(rule) + "?adsorbat=CO2&format=csv", method=method,
+                           headers=auth())
+        assert resp.status_code == 400, (rule.rule, method, resp.status_code)
+        seen.add(rule.endpoint)
+        if resp.mimetype == "text/html":  # the pages answer with their HTML error page
+            assert not rule.rule.startswith("/api/") and "adsorbat" in resp.get_data(as_text=True)
+            continue
+        doc = assert_problem(resp, 400)
+        accepted = [p.name for p in ACCEPTED[rule.endpoint]]
+        wrong = ["adsorbat"] + ([] if "format" in accepted else ["format"])
+        assert doc["type"] == "urn:sorbrank:problem:unknown-parameter"
+        assert doc["unknown"] == wrong and doc["accepted"] == accepted, rule.rule
+        assert all(f"'{name}'" in doc["detail"] for name in wrong)
+    assert seen == set(app.view_functions)
+    # a near miss of an accepted name is suggested
+    doc = assert_problem(client.get("/api/v1/rankings?adsorbat=CO2", headers=auth()), 400)
+    assert doc["suggestions"] == {"adsorbat": "adsorbate"} and "did you mean 'adsorbate'" in doc["detail"]
+
+
+def test_an_endpoint_without_a_declaration_stops_the_app(tmp_path, monkeypatch):
+    from sorbrank.service.api import params
+
+    monkeypatch.delitem(params.ACCEPTED, "models.list_models")
+    with pytest.raises(RuntimeError, match="models.list_models"):
+        make_app(tmp_path)
+
+
+def test_openapi_lists_exactly_the_declared_query_parameters_and_the_app_takes_them(app):
+    doc = document()
+    client = app.test_client()
+    for rule, method in _operations(app):
+        if rule.endpoint == "static":
+            continue
+        path = re.sub(r"<(?:[^:<>]+:)?([^<>]+)>", r"{\1}", rule.rule)
+        operation = doc["paths"][path][method.lower()]
+        documented = [p["name"] for p in operation.get("parameters", []) if p.get("in") == "query"]
+        declared = [p.name for p in ACCEPTED[rule.endpoint]]
+        assert documented == declared, (method, path)
+        assert "400" in operation["responses"], (method, path)
+        for name in documented:  # each one documented is taken, not refused as unknown
+            resp = client.open(_rule_url(rule), method=method, headers=auth(),
+                               query_string={name: "1"})
+            body = resp.get_json(silent=True) or {}
+            assert body.get("type") != "urn:sorbrank:problem:unknown-parameter", (path, name)
+            assert resp.status_code < 500, (path, name, resp.get_data(as_text=True)[:300])
+
+
+def test_repeatable_filters_repeat_and_other_parameters_may_not(client):
+    ok = client.get("/api/v1/rankings?flag=a&flag=b&exclude_flag=c&exclude_flag=d", headers=auth())
+    assert ok.status_code == 200
+    doc = assert_problem(client.get("/api/v1/rankings?limit=1&limit=500", headers=auth()), 400)
+    assert doc["type"] == "urn:sorbrank:problem:repeated-parameter" and doc["parameter"] == "limit"
+
+
+# -- gas names as intake stores them -------------------------------------------------
+
+def test_adsorbate_filter_matches_the_canonical_gas_name(client):
+    submit(client, csv_batch([isotherm("G1", 3.0, 0.1, adsorbate="co2"),
+                              isotherm("G2", 2.0, 0.1, adsorbate="carbon dioxide"),
+                              isotherm("G3", 1.0, 0.1, adsorbate="N2")]))
+    every = [(r["sorbent_id"], r["adsorbate"]) for r in
+             client.get("/api/v1/rankings", headers=auth()).json["rows"]]
+    assert sorted(every) == [("G1", "CO2"), ("G2", "CO2"), ("G3", "N2")]  # intake's canonical ids
+    for spelling in ("CO2", "co2", "Carbon Dioxide", " co2 "):
+        doc = client.get("/api/v1/rankings", query_string={"adsorbate": spelling},
+                         headers=auth()).json
+        assert [r["sorbent_id"] for r in doc["rows"]] == ["G1", "G2"], spelling
+        assert doc["adsorbate"] == "CO2"
+    assert client.get("/api/v1/rankings?adsorbate=nitrogen", headers=auth()).json["total"] == 1
+    # the HTML page filters the same way
+    page = client.get("/?adsorbate=co2", headers=auth()).get_data(as_text=True)
+    assert "G1" in page and "G2" in page and "G3" not in page
+
+
+@pytest.mark.parametrize("name, suggested", [("C02", ["CO2"]), ("nitrogn", ["nitrogen"]),
+                                             ("C4H10", ["n-C4H10", "i-C4H10"]),
+                                             ("unobtainium", [])])
+def test_unknown_gas_name_is_400_naming_it_with_intakes_suggestion(client, name, suggested):
+    from sorbrank.worker.adsorbates import suggestions
+
+    doc = assert_problem(client.get("/api/v1/rankings", query_string={"adsorbate": name},
+                                    headers=auth()), 400)
+    assert doc["type"] == "urn:sorbrank:problem:unknown-adsorbate"
+    assert doc["parameter"] == "adsorbate" and doc["adsorbate"] == name and repr(name) in doc["detail"]
+    # the same suggestions intake gives for the same name in a batch
+    assert sorted(doc["suggestions"]) == sorted(suggestions(name)) == sorted(suggested)
+    rejected = submit(client, csv_batch([isotherm("U1", 1.0, 0.1, adsorbate=name)]))
+    message = rejected.json["issues"][0]["message"]
+    assert all(s in message for s in suggested)
+    assert assert_problem(client.get("/api/v1/rankings", query_string={
+        "adsorbate": name, "format": "csv"}, headers=auth()), 400)["adsorbate"] == name
+
+
+def test_a_declared_gas_is_found_by_its_name(client):
+    body = csv_batch([isotherm("D1", 2.0, 0.1, adsorbate="Gas-X7")],
+                     ) .replace(b"sorbent_id,", b"# gas: Gas-X7, molar_mass_g_per_mol=50\nsorbent_id,", 1)
+    assert submit(client, body).status_code == 202
+    for spelling in ("Gas-X7", "gas x7", "GASX7"):
+        doc = client.get("/api/v1/rankings", query_string={"adsorbate": spelling}, headers=auth()).json
+        assert [r["sorbent_id"] for r in doc["rows"]] == ["D1"], spelling
+    assert_problem(client.get("/api/v1/rankings?adsorbate=Gas-X8", headers=auth()), 400)
+
+
+# -- complete exports and paging -----------------------------------------------------
+
+def _ranked_store(app, n: int, sorbent_prefix: str = "E") -> None:
+    body = csv_batch([isotherm(f"{sorbent_prefix}{i:04d}", 1.0 + i / 100, 0.1) for i in range(n)])
+    resp = submit(app.test_client(), body, query_string={"models": "langmuir"})
+    assert resp.status_code == 202, resp.get_data(as_text=True)
+
+
+def test_machine_formats_hold_every_row_json_pages_link_to_the_rest(tmp_path):
+    app = make_app(tmp_path, chunk_size=50)
+    _ranked_store(app, 230)
+    client = app.test_client()
+    want = [r["sorbent_id"] for r in client.get("/api/v1/rankings?limit=100000",
+                                               headers=auth()).json["rows"]]
+    assert len(want) == 230 and want == [f"E{i:04d}" for i in reversed(range(230))]
+    for fmt in ("csv", "parquet", "arrow"):
+        resp = client.get(f"/api/v1/rankings?format={fmt}", headers=auth())
+        assert resp.status_code == 200 and resp.is_streamed, fmt
+        table = read_table(resp.data, fmt)
+        assert table["sorbent_id"].to_pylist() == want, fmt
+        assert resp.headers["X-Total-Count"] == resp.headers["X-Returned-Count"] == "230"
+        assert "Link" not in resp.headers
+        cut = client.get(f"/api/v1/rankings?format={fmt}&limit=50&offset=200&sort="
+                         "loading_ads_mol_per_kg", headers=auth())
+        assert read_table(cut.data, fmt)["sorbent_id"].to_pylist() == want[200:230]
+        assert cut.headers["X-Returned-Count"] == "30" and cut.headers["X-Total-Count"] == "230"
+        assert '; rel="prev"' in cut.headers["Link"] and '; rel="next"' not in cut.headers["Link"]
+    first = client.get("/api/v1/rankings?sort=loading_ads_mol_per_kg&flag=x&flag=y&all=false",
+                       headers=auth())
+    doc = first.json
+    assert doc["total"] == 0 and doc["links"] == {} and "Link" not in first.headers
+    page = client.get("/api/v1/rankings?sort=loading_ads_mol_per_kg&order=desc", headers=auth())
+    assert page.json["returned"] == 100 and page.json["total"] == 230
+    links = page.json["links"]
+    assert links["next"] == ("/api/v1/rankings?sort=loading_ads_mol_per_kg&order=desc&offset=100")
+    assert links["last"].endswith("offset=200") and "prev" not in links
+    assert f'<{links["next"]}>; rel="next"' in page.headers["Link"]
+
+
+def read_table(data: bytes, fmt: str):
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    if fmt == "csv":
+        return pacsv.read_csv(io.BytesIO(data))
+    if fmt == "parquet":
+        return pq.read_table(io.BytesIO(data))
+    with pa.ipc.open_stream(data) as reader:
+        return reader.read_all()
+
+
+def test_a_ranking_streams_in_parts_as_row_groups_and_record_batches(tmp_path):
+    import pyarrow as pa
+
+    from sorbrank.service.api.export import arrow_chunks, csv_chunks, parquet_chunks
+    from sorbrank.worker.store import RankingQuery, ranking
+    from sorbrank.worker.store.rankings import ranking_stream
+
+    app = make_app(tmp_path, chunk_size=40)
+    _ranked_store(app, 250)
+    store = Store(tmp_path / "data")
+    whole = ranking(store, RankingQuery(limit=None)).page
+    assert whole.num_rows == 250
+    for offset, limit in ((0, None), (30, None), (7, 111)):
+        stream = ranking_stream(store, RankingQuery(limit=limit, offset=offset), part_rows=60)
+        parts = list(stream.parts)
+        expected = whole.slice(offset, limit)
+        assert stream.total == 250 and stream.returned == expected.num_rows
+        assert [p.num_rows for p in parts][:-1] == [60] * (len(parts) - 1)
+        assert all(p.schema.equals(stream.schema) for p in parts)
+        assert pa.concat_tables(parts).equals(expected)
+    stream = ranking_stream(store, RankingQuery(limit=None), part_rows=60)
+    parts = list(stream.parts)
+    chunks = list(parquet_chunks(stream.schema, iter(parts)))
+    assert len(chunks) == len(parts) + 1 and all(chunks[:-1])  # bytes leave after every part
+    written = pq.ParquetFile(io.BytesIO(b"".join(chunks)))
+    assert [written.metadata.row_group(i).num_rows for i in range(written.num_row_groups)] == \
+        [p.num_rows for p in parts]
+    assert written.read().equals(whole)
+    with pa.ipc.open_stream(b"".join(arrow_chunks(stream.schema, iter(parts)))) as reader:
+        batches = list(reader)
+    assert [b.num_rows for b in batches] == [p.num_rows for p in parts]
+    csv_parts = list(csv_chunks(stream.schema, iter(parts)))
+    assert csv_parts[0].decode().splitlines() == [",".join(stream.schema.names)]  # the header once
+    assert len(csv_parts) == len(parts) + 1
+    read = read_table(b"".join(csv_parts), "csv")
+    assert read.num_rows == 250 and read["sorbent_id"].to_pylist() == whole["sorbent_id"].to_pylist()
+
+
+def test_page_links_keep_the_other_parameters(app):
+    from sorbrank.service.api.export import page_links, paging_headers
+
+    with app.test_request_context("/api/v1/rankings?adsorbate=CO2&flag=a&flag=b&offset=300&limit=100"):
+        links = page_links(733, 300, 100)
+        assert links == {
+            "first": "/api/v1/rankings?adsorbate=CO2&flag=a&flag=b&limit=100&offset=0",
+            "prev": "/api/v1/rankings?adsorbate=CO2&flag=a&flag=b&limit=100&offset=200",
+            "next": "/api/v1/rankings?adsorbate=CO2&flag=a&flag=b&limit=100&offset=400",
+            "last": "/api/v1/rankings?adsorbate=CO2&flag=a&flag=b&limit=100&offset=700"}
+        assert page_links(733, 0, None) == {} and page_links(0, 0, 100) == {}
+        headers = paging_headers(733, 700, 100)
+        assert headers["X-Returned-Count"] == "33" and headers["X-Total-Count"] == "733"
+        assert page_links(100, 0, 100) == {} and page_links(101, 0, 100)["last"].endswith("offset=100")
+    with app.test_request_context("/api/v1/rankings?format=csv&offset=700"):
+        # every row from offset on: the rows before it are one link away
+        assert page_links(733, 700, None) == {"first": "/api/v1/rankings?format=csv&offset=0"}
+        assert "Link" in paging_headers(733, 700, None)
+
+
+def test_batch_list_pages_link_to_the_rest(client):
+    for i in range(5):
+        submit(client, csv_batch([isotherm(f"L{i}", 2.0, 0.1)]))
+    seen, url = [], "/api/v1/batches?limit=2&state=done"
+    while url:
+        resp = client.get(url, headers=auth())
+        doc = resp.json
+        assert doc["total"] == 5 and resp.headers["X-Total-Count"] == "5"
+        seen += [b["batch_id"] for b in doc["batches"]]
+        url = doc["links"].get("next")
+        assert (url is None) == ('rel="next"' not in resp.headers.get("Link", ""))
+    assert len(seen) == len(set(seen)) == 5 and seen == sorted(seen, reverse=True)
