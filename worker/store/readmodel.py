@@ -99,10 +99,12 @@ def _indexed(store: Store, index: read_index.ReadIndex, table: str, column: str,
     """``store.query(table, where)`` over the files the index says hold a row
     with ``column == value`` (``where`` must imply it); same columns, same order."""
     schema = index.schema(table)
-    paths = index.files_with(table, column, value)
-    if schema is None or not paths:
+    if schema is None:
         return pa.table({})
     schema = pa.unify_schemas([schema, _PARTITION], promote_options="permissive")
+    paths = index.files_with(table, column, value)
+    if not paths:
+        return schema.empty_table()
     fragments = []
     for path in paths:  # sorted, as a listing of the table would be
         batch_id = path.rsplit("/batch_id=", 1)[1].split("/", 1)[0]
