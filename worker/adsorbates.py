@@ -210,7 +210,7 @@ def _make(record: dict, composition_count: dict[frozenset, int]) -> Adsorbate:
 
 def _build() -> tuple[dict[str, Adsorbate], dict[str, tuple[Adsorbate, ...]], dict[str, str],
                       dict[frozenset, tuple[Adsorbate, ...]]]:
-    compositions = {}
+    compositions: dict[frozenset, int] = {}
     for record in _TABLE["fluids"]:
         counts = parse_formula(record["formula_coolprop"] or "")
         if counts:
@@ -228,8 +228,9 @@ def _build() -> tuple[dict[str, Adsorbate], dict[str, tuple[Adsorbate, ...]], di
             display.setdefault(_key(name), name)
     by_composition: dict[frozenset, list[Adsorbate]] = {}
     for ads in everything:
-        if ads.formula:
-            by_composition.setdefault(_composition_key(parse_formula(ads.formula)), []).append(ads)
+        # a formula is written by hill_formula, so it parses back
+        if ads.formula and (composition := parse_formula(ads.formula)):
+            by_composition.setdefault(_composition_key(composition), []).append(ads)
     # a curated formula id claims its composition (C3H6 is propylene, see the docstring)
     for ads in everything:
         counts = parse_formula(ads.id)
@@ -243,7 +244,8 @@ def _build() -> tuple[dict[str, Adsorbate], dict[str, tuple[Adsorbate, ...]], di
 ADSORBATES, _BY_KEY, _DISPLAY, _BY_COMPOSITION = _build()
 
 
-def _declared_adsorbates(declared) -> Iterable[Adsorbate]:
+def _declared_adsorbates(declared: Mapping[str, Adsorbate] | Iterable[Adsorbate] | None
+                         ) -> Iterable[Adsorbate]:
     if declared is None:
         return ()
     if isinstance(declared, Mapping):
@@ -251,7 +253,7 @@ def _declared_adsorbates(declared) -> Iterable[Adsorbate]:
     return declared
 
 
-def _candidates(name) -> tuple[Adsorbate, ...]:
+def _candidates(name: object) -> tuple[Adsorbate, ...]:
     """Every known fluid ``name`` may mean: by name, else by formula."""
     if not isinstance(name, str):
         return ()
@@ -354,7 +356,7 @@ def suggest(name: str) -> str | None:
     return " or ".join(found) if found else None
 
 
-def _finite_positive(value, what: str, upper: float) -> float:
+def _finite_positive(value: object, what: str, upper: float) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise ValueError(f"{what} must be a number, not {value!r}")
     value = float(value)
@@ -392,7 +394,9 @@ def declare(name: str, molar_mass_g_per_mol: float, critical_temperature_k: floa
             raise ValueError(f"declared gas {name!r} is the known gas {gas.id} but its molar mass "
                              f"{molar_mass:g} g/mol is not {gas.id}'s {gas.molar_mass_g_per_mol:.4g} g/mol; "
                              f"choose another name for a different gas")
-        if t_crit is not None and abs(t_crit - gas.critical_temperature_k) > DECLARED_CRITICAL_TEMPERATURE_TOL_K:
+        # every gas of the table has its critical temperature (CoolProp's)
+        if (t_crit is not None and gas.critical_temperature_k is not None
+                and abs(t_crit - gas.critical_temperature_k) > DECLARED_CRITICAL_TEMPERATURE_TOL_K):
             raise ValueError(f"declared gas {name!r} is the known gas {gas.id} but its critical temperature "
                              f"{t_crit:g} K is not {gas.id}'s {gas.critical_temperature_k:.2f} K")
         return gas
@@ -416,8 +420,10 @@ def saturation_pressure_pa(adsorbate: Adsorbate | str, temperature_k: float) -> 
     try:
         ads = adsorbate if isinstance(adsorbate, Adsorbate) else lookup(adsorbate)
         t = float(temperature_k)
-        curve = _CURVE_OF.get(ads.coolprop_name) if ads is not None else None
-        if curve is None or not math.isfinite(t):
+        if ads is None or ads.coolprop_name is None or not math.isfinite(t):
+            return None
+        curve = _CURVE_OF.get(ads.coolprop_name)
+        if curve is None or ads.critical_temperature_k is None:
             return None
         return saturation.curve_saturation_pressure_pa(curve, ads.critical_temperature_k, t)
     except Exception:  # noqa: BLE001 - documented never to raise

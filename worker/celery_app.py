@@ -61,7 +61,7 @@ app.conf.update(
 
 
 @setup_logging.connect
-def json_logs(loglevel=None, **_) -> None:
+def json_logs(loglevel: int | str | None = None, **_: object) -> None:
     # connecting here tells Celery not to configure logging itself; forked pool
     # processes inherit this handler. Celery's --loglevel wins over the environment.
     logs.configure(logging.getLevelName(loglevel) if isinstance(loglevel, int) else None)

@@ -129,7 +129,7 @@ class EmbeddedExecutor:
         return suspects
 
     def _watch_store(self) -> None:
-        suspects = frozenset()
+        suspects: frozenset = frozenset()
         while not self._stop_watch.wait(self.watch_interval_s):
             try:
                 suspects = self.requeue_lost(suspects)

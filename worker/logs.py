@@ -16,7 +16,9 @@ import json
 import logging
 import os
 import sys
+from collections.abc import Mapping
 from datetime import datetime, timezone
+from typing import TextIO
 
 LEVELS = ("DEBUG", "INFO", "WARNING", "ERROR")
 DEFAULT_LEVEL = "INFO"
@@ -42,12 +44,12 @@ class JsonFormatter(logging.Formatter):
         return json.dumps(entry, default=str)
 
 
-def level_from_env(env=None) -> str:
+def level_from_env(env: Mapping[str, str] | None = None) -> str:
     raw = (os.environ if env is None else env).get("SORBRANK_LOG_LEVEL", "").strip().upper()
     return raw if raw in LEVELS else DEFAULT_LEVEL
 
 
-def configure(level: str | None = None, stream=None) -> None:
+def configure(level: str | None = None, stream: TextIO | None = None) -> None:
     """Send every log record of this process to ``stream`` (stderr) as JSON lines."""
     handler = logging.StreamHandler(stream or sys.stderr)
     handler.setFormatter(JsonFormatter())

@@ -39,12 +39,13 @@ class ModelFits:
     n_points: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))  # (n,)
     # goodness of fit against calibrated (absolute) sigma: chi-square = sse,
     # its degrees of freedom n - k and upper-tail p-value; nan for rows whose
-    # sigma was not taken as absolute (the default). None = all nan.
-    chi_square: np.ndarray | None = None          # (n,)
-    chi_square_dof: np.ndarray | None = None      # (n,)
-    chi_square_p_value: np.ndarray | None = None  # (n,)
+    # sigma was not taken as absolute (the default). None = all nan: typed as
+    # the arrays they are once __post_init__ has replaced a None.
+    chi_square: np.ndarray = None  # type: ignore[assignment]          # (n,)
+    chi_square_dof: np.ndarray = None  # type: ignore[assignment]      # (n,)
+    chi_square_p_value: np.ndarray = None  # type: ignore[assignment]  # (n,)
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         for name in ("chi_square", "chi_square_dof", "chi_square_p_value"):
             if getattr(self, name) is None:
                 setattr(self, name, np.full(self.params.shape[0], np.nan))

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .models import CATALOGUE
+from .models import CATALOGUE, IsothermModel
 from .models.linear import masked_linear_fit
 from .packing import Packed
 from .results import ModelFits, Selection
@@ -54,7 +54,7 @@ def exclusion_reasons(fits: ModelFits, criterion: str = "aicc") -> np.ndarray:
     return reason
 
 
-def data_range_exclusions(model, packed: Packed) -> np.ndarray:
+def data_range_exclusions(model: type[IsothermModel], packed: Packed) -> np.ndarray:
     """Why ``model`` cannot compete on each isotherm given where its data lie
     relative to p0; "" where it can. (n,) object.
 
@@ -131,10 +131,11 @@ def select(fits: dict[str, ModelFits], criterion: str = "aicc",
     return Selection(
         criterion=criterion,
         model_ids=model_ids,
-        best=np.where(any_ok, ids[best_col], None).astype(object),
+        # numpy's stubs take no bare None as a value; numpy itself does (an object array)
+        best=np.where(any_ok, ids[best_col], None).astype(object),  # type: ignore[attr-defined]
         weights=weights,
         ambiguous=ambiguous,
-        runner_up=np.where(has_runner & any_ok, ids[runner_col], None).astype(object),
+        runner_up=np.where(has_runner & any_ok, ids[runner_col], None).astype(object),  # type: ignore[attr-defined]
         delta_runner_up=delta_runner_up,
         excluded=excluded,
     )

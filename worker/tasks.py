@@ -6,6 +6,7 @@ import json
 import logging
 import threading
 
+from celery import Task
 from celery.exceptions import SoftTimeLimitExceeded
 from celery.signals import worker_ready, worker_shutdown
 
@@ -29,7 +30,7 @@ log = logging.getLogger(__name__)
 
 
 @app.task(bind=True, name="sorbrank.fit_chunk", max_retries=MAX_RETRIES)
-def fit_chunk(self, batch_id: str, chunk_index: int) -> None:
+def fit_chunk(self: Task, batch_id: str, chunk_index: int) -> None:
     store = Store(data_dir())
     try:
         jobs.run_chunk(store, batch_id, chunk_index)
@@ -72,7 +73,7 @@ def enqueue(batch_id: str, chunk_index: int) -> None:
 
 
 @worker_ready.connect
-def reconcile_on_start(**_):
+def reconcile_on_start(**_: object) -> None:
     # Redis may have lost queued chunks (restart without AOF, flush): the store
     # knows which batches are unfinished, so enqueue their missing chunks again
     try:
@@ -128,7 +129,7 @@ def reconcile_lost_chunks(suspects: frozenset = frozenset()) -> frozenset:
 
 
 def _watch_broker() -> None:
-    suspects = frozenset()
+    suspects: frozenset = frozenset()
     while not _stop_watch.wait(RECONCILE_INTERVAL_S):
         try:
             suspects = reconcile_lost_chunks(suspects)
@@ -137,11 +138,11 @@ def _watch_broker() -> None:
 
 
 @worker_ready.connect
-def start_broker_watch(**_):
+def start_broker_watch(**_: object) -> None:
     if RECONCILE_INTERVAL_S > 0:
         threading.Thread(target=_watch_broker, name="sorbrank-broker-watch", daemon=True).start()
 
 
 @worker_shutdown.connect
-def stop_broker_watch(**_):
+def stop_broker_watch(**_: object) -> None:
     _stop_watch.set()

@@ -48,6 +48,7 @@ Cholesky), stats.py (covariance, intervals, criteria, reasons), options.py
 from __future__ import annotations
 
 import logging
+from collections.abc import Iterable
 
 import numpy as np
 
@@ -65,8 +66,11 @@ __all__ = ["WEIGHTINGS", "SolverOptions", "check_weighting", "fit_model", "fit_m
 
 log = logging.getLogger(__name__)
 
+# "all", "langmuir,sips", or model ids and classes
+ModelChoice = str | Iterable[str | type[IsothermModel]]
 
-def fit_models(packed: Packed, models="all", weighting: str = "uniform",
+
+def fit_models(packed: Packed, models: ModelChoice = "all", weighting: str = "uniform",
                absolute_sigma: bool = False, options: SolverOptions | None = None) -> dict[str, ModelFits]:
     """Fit each model to every isotherm of ``packed``; return {model id: ModelFits}.
 
@@ -90,7 +94,7 @@ def fit_models(packed: Packed, models="all", weighting: str = "uniform",
     return out
 
 
-def resolve_models(models="all") -> list[type[IsothermModel]]:
+def resolve_models(models: ModelChoice = "all") -> list[type[IsothermModel]]:
     """Model classes named by "all", a comma string, or a list of ids/classes.
 
     "all" is the default set (``default_models``: opt-in models left out); in

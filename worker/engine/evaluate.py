@@ -4,28 +4,31 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..arrays import BoolArray, FloatArray
+from ..models import IsothermModel
+
 
 class Transform:
     """Fitted coordinates theta: log(p) for log_scale params, p otherwise."""
 
-    def __init__(self, model):
+    def __init__(self, model: type[IsothermModel]) -> None:
         lo, hi = model.lower_bounds(), model.upper_bounds()
         self.log = np.array([p.log_scale and p.lower >= 0 for p in model.params])
         with np.errstate(divide="ignore"):
             self.lo = np.where(self.log, np.log(np.maximum(lo, 0.0)), lo)
             self.hi = np.where(self.log, np.log(hi), hi)
 
-    def to_theta(self, p):
+    def to_theta(self, p: FloatArray) -> FloatArray:
         with np.errstate(divide="ignore", invalid="ignore"):
             return np.where(self.log, np.log(np.maximum(p, 1e-300)), p)
 
-    def to_params(self, theta):
+    def to_params(self, theta: FloatArray) -> FloatArray:
         with np.errstate(over="ignore"):
             return np.where(self.log, np.exp(theta), theta)
 
 
 
-def params_batch_last(tr, theta):
+def params_batch_last(tr: Transform, theta: FloatArray) -> FloatArray:
     """Model parameters (k, R) from fitted coordinates theta (k, R)."""
     with np.errstate(over="ignore"):
         return np.where(tr.log[:, None], np.exp(theta), theta)
@@ -49,14 +52,17 @@ class Evaluator:
     ``euler_coefficients``); otherwise (None) ``model.evaluate`` is called.
     """
 
-    def __init__(self, model, tr, unit_weights, euler, project_scale=True):
+    def __init__(self, model: type[IsothermModel], tr: Transform, unit_weights: bool,
+                 euler: tuple[int, ...] | None, project_scale: bool = True) -> None:
         self.model, self.tr, self.unit, self.euler = model, tr, unit_weights, euler
         self.project_scale = project_scale  # SolverOptions.project_scale
         self.k = len(model.params)
         # the Euler degrees as a column, for moving rows to their best scale
         self.degree = None if euler is None else np.asarray(euler, dtype=float)[:, None]
 
-    def __call__(self, theta, x, swq, sw, t, project=None):
+    def __call__(self, theta: FloatArray, x: FloatArray, swq: FloatArray, sw: FloatArray,
+                 t: FloatArray, project: BoolArray | None = None
+                 ) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray, BoolArray, FloatArray]:
         """At ``theta`` (k, R): sse (R,), a (k, k, R), g (k, R), noise (R,),
         finite (R,) and theta itself (moved where ``project`` asks).
 
@@ -80,6 +86,7 @@ class Evaluator:
                     if c != 0:
                         term = pd[j] if c == 1 else c * pd[j]
                         f = term if f is None else f + term
+                assert f is not None  # euler_coefficients never returns all-zero degrees
                 f = np.broadcast_to(f, shape)
             else:
                 f = model.evaluate(x, t, *cols)
@@ -119,13 +126,15 @@ class Evaluator:
         finite = np.isfinite(sse) & np.isfinite(a).all(axis=(0, 1)) & np.isfinite(g).all(axis=0)
         return sse, a, g, noise, finite, theta
 
-    def _best_scale(self, theta, swf, swq, ff, project):
+    def _best_scale(self, theta: FloatArray, swf: FloatArray, swq: FloatArray, ff: FloatArray,
+                    project: BoolArray | None) -> tuple[FloatArray, FloatArray, FloatArray]:
         """The least-squares scale lambda of the curve per row and the point it
         leads to: theta (k, R) moved to p_j lambda^c_j (f(p) -> lambda f(p),
         Euler), lambda (R,) (1 where no admissible scale exists), and the
         factor (k, R) each Jacobian column (in the solver's coordinates) takes
         there: lambda for log coordinates, lambda^(1 - c_j) for linear ones."""
         tr, c = self.tr, self.degree
+        assert c is not None  # called only with Euler degrees (see __call__)
         lam = np.einsum("ij,ij->i", swf, swq) / ff
         good = np.isfinite(lam) & (lam > 0)
         if project is not None:
@@ -140,7 +149,8 @@ class Evaluator:
 
 
 
-def euler_coefficients(model, tr, theta, x, t):
+def euler_coefficients(model: type[IsothermModel], tr: Transform, theta: FloatArray, x: FloatArray,
+                       t: FloatArray) -> tuple[int, ...] | None:
     """Integer c with f = sum_j c_j p_j df/dp_j at the probe rows, or None.
 
     Found by least squares on the probe and accepted only if the identity
@@ -162,7 +172,7 @@ def euler_coefficients(model, tr, theta, x, t):
         return None
     scale = np.where(scale > 0, scale, 1.0)
     with np.errstate(all="ignore"):
-        c, *_ = np.linalg.lstsq(basis / scale, target, rcond=None)
+        c: FloatArray = np.linalg.lstsq(basis / scale, target, rcond=None)[0]
     c = c / scale
     c_int = np.round(c)
     if not np.all(np.isfinite(c)) or np.any(np.abs(c - c_int) > 1e-6) or not np.any(c_int):

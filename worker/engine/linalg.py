@@ -9,10 +9,15 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..arrays import BoolArray, FloatArray
+
+# the lower triangle of R small k x k matrices, entry [i][j] (j <= i) an (R,) vector
+Triangle = list[list[FloatArray]]
+
 PIVOT_RTOL = 1e-13      # Cholesky pivot / original diagonal below this = singular
 
 
-def dot_k(a, b):
+def dot_k(a: FloatArray | list[FloatArray], b: FloatArray | list[FloatArray]) -> FloatArray:
     """sum_i a[i] * b[i] over the short parameter axis, per row (R,).
 
     Added in a fixed order, element by element: a reduction over the first
@@ -25,11 +30,11 @@ def dot_k(a, b):
     return acc
 
 
-def scaled_restricted(a_mat, free, d):
+def scaled_restricted(a_mat: FloatArray, free: BoolArray, d: FloatArray) -> Triangle:
     """Lower triangle (list of lists of (R,) vectors) of D^-1 A_f D^-1, where
     A_f is ``a_mat`` with frozen parameters decoupled (identity rows/cols)."""
     k = a_mat.shape[0]
-    out = [[None] * k for _ in range(k)]
+    out: Triangle = [[np.empty(0)] * k for _ in range(k)]  # every entry below is set
     for i in range(k):
         for j in range(i + 1):
             if i == j:
@@ -39,7 +44,8 @@ def scaled_restricted(a_mat, free, d):
     return out
 
 
-def gauss_newton(a_mat, g, free):
+def gauss_newton(a_mat: FloatArray, g: FloatArray, free: BoolArray
+                 ) -> tuple[FloatArray, BoolArray, FloatArray]:
     """Undamped step of the Jacobi-scaled, restricted normal equations.
 
     Returns (scaled step (k, R), ok (R,), predicted SSE reduction (R,)).
@@ -51,7 +57,7 @@ def gauss_newton(a_mat, g, free):
     return step, ok, -dot_k(gf_s, step)
 
 
-def cholesky_vectors(low_in, b):
+def cholesky_vectors(low_in: Triangle, b: FloatArray) -> tuple[FloatArray, BoolArray]:
     """Solve m x = b for many small symmetric positive definite systems.
 
     ``low_in`` is the lower triangle as a list of lists of (R,) vectors, b is
@@ -61,7 +67,7 @@ def cholesky_vectors(low_in, b):
     operations, far cheaper than a LAPACK call per tiny matrix.
     """
     k = b.shape[0]
-    low = [[None] * k for _ in range(k)]
+    low: Triangle = [[np.empty(0)] * k for _ in range(k)]  # filled row by row below
     ok = np.ones(b.shape[1], dtype=bool)
     with np.errstate(all="ignore"):
         for j in range(k):
@@ -76,7 +82,7 @@ def cholesky_vectors(low_in, b):
                 for m in range(j):
                     dot = dot - low[i][m] * low[j][m]
                 low[i][j] = dot / low[j][j]
-        y = [None] * k
+        y: list[FloatArray] = [np.empty(0)] * k
         for i in range(k):
             acc = b[i]
             for m in range(i):
@@ -91,7 +97,7 @@ def cholesky_vectors(low_in, b):
     return np.where(ok & np.isfinite(sol), sol, 0.0), ok
 
 
-def cholesky_solve(a_mat, b):
+def cholesky_solve(a_mat: FloatArray, b: FloatArray) -> tuple[FloatArray, BoolArray]:
     """Solve a x = b for a stack of symmetric positive definite k x k matrices.
 
     Returns (x (n, k), ok (n,)); ok is False where a pivot falls below

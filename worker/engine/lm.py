@@ -8,9 +8,13 @@ from the queue top it up again, so the arrays stay compact and cache-sized.
 from __future__ import annotations
 
 from dataclasses import dataclass, field, fields
+from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
+from ..arrays import BoolArray, FloatArray, IntArray
+from ..models import IsothermModel
 from .evaluate import Evaluator, Transform, euler_coefficients
 from .linalg import cholesky_vectors, dot_k, gauss_newton, scaled_restricted
 from .options import SolverOptions
@@ -20,7 +24,9 @@ from .status import CONVERGED, DRIFTING, MAX_ITER, MERGED, NONFINITE, RUNNING, S
 _EULER_PROBE_ROWS = 256
 
 
-def fit_rows(model, x, q, w, mask, t, options: SolverOptions):
+def fit_rows(model: type[IsothermModel], x: FloatArray, q: FloatArray, w: FloatArray,
+             mask: BoolArray, t: FloatArray, options: SolverOptions
+             ) -> tuple[FloatArray, IntArray, IntArray, NDArray[np.int8]]:
     """Best-of-seeds fit for each row.
 
     Returns params (n, k), status (n,), iterations (n,) and drift (n, k): per
@@ -47,11 +53,11 @@ def fit_rows(model, x, q, w, mask, t, options: SolverOptions):
     return params[flat], status[flat], iters[flat], drift[flat]
 
 
-def _batch_last():
+def _batch_last() -> Any:  # dataclasses.field() is Any to a type checker
     return field(metadata={"row_axis": -1})
 
 
-def _row_major():
+def _row_major() -> Any:
     return field(metadata={"row_axis": 0})
 
 
@@ -87,7 +93,7 @@ class WorkingSet:
     t: np.ndarray = _row_major()         # (R, 1) temperature
 
     @classmethod
-    def empty(cls, k: int, point_shape: tuple) -> WorkingSet:
+    def empty(cls, k: int, point_shape: tuple[int, ...]) -> WorkingSet:
         data = np.zeros((0,) + point_shape)
         return cls(rid=np.zeros(0, dtype=np.int64), theta=np.zeros((k, 0)), sse=np.zeros(0),
                    a_mat=np.zeros((k, k, 0)), g=np.zeros((k, 0)), noise=np.zeros(0), lam=np.zeros(0),
@@ -100,7 +106,7 @@ class WorkingSet:
     def size(self) -> int:
         return self.rid.size
 
-    def take(self, keep: np.ndarray) -> WorkingSet:
+    def take(self, keep: BoolArray) -> WorkingSet:
         """The rows where ``keep`` (R,) bool is True, every field at once."""
         return WorkingSet(**{f.name: np.compress(keep, getattr(self, f.name), axis=f.metadata["row_axis"])
                              for f in fields(self)})
@@ -112,13 +118,16 @@ class WorkingSet:
                              for f in fields(self)})
 
 
-def _free(theta, g, lo, hi):
+def _free(theta: FloatArray, g: FloatArray, lo: FloatArray, hi: FloatArray) -> BoolArray:
     """(k, R): parameters not held on a bound (a projected Newton active set:
     one sitting on a bound whose gradient pushes outward is frozen)."""
     return ~(((theta <= lo) & (g > 0)) | ((theta >= hi) & (g < 0)))
 
 
-def levenberg_marquardt(model, theta0_params, x, q, w, mask, t, src, options: SolverOptions):
+def levenberg_marquardt(model: type[IsothermModel], theta0_params: FloatArray, x: FloatArray,
+                        q: FloatArray, w: FloatArray, mask: BoolArray, t: FloatArray, src: IntArray,
+                        options: SolverOptions
+                        ) -> tuple[FloatArray, FloatArray, IntArray, IntArray, NDArray[np.int8]]:
     """Run LM on rows ``src`` (indices into x, q, ...) from the given params.
 
     Returns params (N, k), sse (N,), status (N,), iterations (N,) and drift

@@ -74,7 +74,7 @@ class SolverOptions:
     (rows, points) arrays stay in cache, large enough that numpy's per-call
     overhead is amortised (see benchmarks/bench_engine.py --block)."""
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if self.max_iter < 0 or self.drift_window < 1 or self.row_block < 1:
             raise ValueError("max_iter must be >= 0, drift_window and row_block >= 1; got "
                              f"{self.max_iter}, {self.drift_window}, {self.row_block}")

@@ -25,14 +25,19 @@ limit) and named in its reason.
 from __future__ import annotations
 
 import numpy as np
+from numpy.typing import NDArray
 
-from .evaluate import params_batch_last
+from ..arrays import BoolArray, FloatArray, IntArray
+from ..models import IsothermModel
+from .evaluate import Transform, params_batch_last
 from .linalg import dot_k
 from .status import CONVERGED
 
 
-def merged_seeds(rid, src, group, pos, st, near, theta, sse, a_mat, pred_gn,
-                 theta_out, sse_out, status_out):
+def merged_seeds(rid: IntArray, src: IntArray, group: int, pos: IntArray, st: IntArray,
+                 near: BoolArray, theta: FloatArray, sse: FloatArray, a_mat: FloatArray,
+                 pred_gn: FloatArray, theta_out: FloatArray, sse_out: FloatArray,
+                 status_out: IntArray) -> BoolArray:
     """Working-set rows whose seed is heading to the minimum that a sibling
     seed (same isotherm) reaches with a lower SSE; (R,) mask.
 
@@ -83,7 +88,7 @@ def merged_seeds(rid, src, group, pos, st, near, theta, sse, a_mat, pred_gn,
     return kill
 
 
-def decades_to_bound(tr, before, after):
+def decades_to_bound(tr: Transform, before: FloatArray, after: FloatArray) -> FloatArray:
     """Signed progress (k, R) of each parameter towards a bound from ``before``
     to ``after`` (theta, (k, R)), in decades: + towards the upper bound, -
     towards the lower one. Towards a finite bound it is the decades by which
@@ -102,8 +107,11 @@ def decades_to_bound(tr, before, after):
     return np.nan_to_num(out, nan=0.0, posinf=0.0, neginf=0.0)
 
 
-def drift_proof(model, tr, theta, th1, th2, sse, x, swq, sw, t, unit, euler, windows_left,
-                drift_decades):
+def drift_proof(model: type[IsothermModel], tr: Transform, theta: FloatArray, th1: FloatArray,
+                th2: FloatArray, sse: FloatArray, x: FloatArray, swq: FloatArray, sw: FloatArray,
+                t: FloatArray, unit: bool, euler: tuple[int, ...] | None,
+                windows_left: FloatArray, drift_decades: float
+                ) -> tuple[BoolArray, NDArray[np.int8]]:
     """Which suspect rows (R,) are drifting, and where to: (k, R) int8, -1 / +1
     for a parameter running to its lower / upper bound.
 
@@ -141,15 +149,15 @@ def drift_proof(model, tr, theta, th1, th2, sse, x, swq, sw, t, unit, euler, win
     # probes at 1, 2, 4, ... windows ahead; a row's last one is the largest <= need
     need = 2.0 * np.maximum(windows_left, 1.0)
     n_probes = np.floor(np.log2(need)).astype(np.int64) + 1
-    paths, path, pace = [], step.copy(), step.copy()
+    path_list, path, pace = [], step.copy(), step.copy()
     for i in range(int(n_probes.max())):
-        paths.append(path.copy())
+        path_list.append(path.copy())
         for _ in range(2 ** i):  # windows from probe i to probe i + 1
             pace = pace * ratio
             path = path + pace
-    paths = np.stack(paths)  # (probes, k, R)
+    paths = np.stack(path_list)  # (probes, k, R)
 
-    def probe_sse(idx, where):
+    def probe_sse(idx: IntArray, where: FloatArray) -> FloatArray:
         """SSE at theta u + ``where`` (k, len(idx)) for rows ``idx``, scale optimised."""
         with np.errstate(all="ignore"):
             probe = u[:, idx] + where

@@ -7,13 +7,18 @@ import numpy as np
 # stats.norm.ppf call them) without the 0.5 s import of scipy.stats at every start
 from scipy.special import chdtrc, stdtrit
 
+from numpy.typing import ArrayLike, NDArray
+
+from ..arrays import BoolArray, FloatArray, IntArray, ObjectArray
+from ..models import IsothermModel
 from ..results import ModelFits
 from .linalg import cholesky_solve
 from .options import DEFAULT_SOLVER_OPTIONS
 from .status import CONVERGED, DRIFTING, NONFINITE, SINGULAR, STATUS_REASON
 
 
-def canonical_with_flags(model, params, flags):
+def canonical_with_flags(model: type[IsothermModel], params: FloatArray, flags: NDArray[np.int8]
+                         ) -> tuple[FloatArray, NDArray[np.int8]]:
     """``model.canonical(params)``, and the per-parameter ``flags`` (n, k)
     permuted the same way (matched by value: canonical only reorders)."""
     out = model.canonical(params)
@@ -33,7 +38,8 @@ def canonical_with_flags(model, params, flags):
     return out, moved
 
 
-def empty_fits(model, n, n_points, applicable) -> ModelFits:
+def empty_fits(model: type[IsothermModel], n: int, n_points: ArrayLike, applicable: ArrayLike
+               ) -> ModelFits:
     """ModelFits of ``n`` rows not fitted yet: nan statistics, not converged, no reason."""
     k = len(model.params)
     nan = lambda *shape: np.full(shape, np.nan)  # noqa: E731
@@ -48,8 +54,11 @@ def empty_fits(model, n, n_points, applicable) -> ModelFits:
     )
 
 
-def fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=None,
-                    calibrated=None, influence_rtol=DEFAULT_SOLVER_OPTIONS.influence_rtol):
+def fill_statistics(out: ModelFits, model: type[IsothermModel], rows: IntArray, params: FloatArray,
+                    status: IntArray, x: FloatArray, q: FloatArray, w: FloatArray, mask: BoolArray,
+                    t: FloatArray, drift: NDArray[np.int8] | None = None,
+                    calibrated: BoolArray | None = None,
+                    influence_rtol: float = DEFAULT_SOLVER_OPTIONS.influence_rtol) -> None:
     """Write SSE, covariance, intervals and criteria for ``rows`` into ``out``.
 
     ``drift`` (n, k): -1 / +1 where a drifting row's parameter runs to its
@@ -160,7 +169,7 @@ def fill_statistics(out, model, rows, params, status, x, q, w, mask, t, drift=No
     out.reason[rows] = reason
 
 
-def drift_reasons(model, drift):
+def drift_reasons(model: type[IsothermModel], drift: NDArray[np.int8]) -> ObjectArray:
     """'parameter drifting to bound: q_sat -> inf, affinity -> 0' per row of drift (n, k)."""
     out = np.empty(drift.shape[0], dtype=object)
     codes, inverse = np.unique(drift, axis=0, return_inverse=True)

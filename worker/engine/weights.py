@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..arrays import BoolArray, FloatArray
 from ..packing import Packed
 
 WEIGHTINGS = ("uniform", "relative", "sigma")
@@ -18,7 +19,7 @@ def check_weighting(weighting: str, absolute_sigma: bool = False) -> None:
                          f"loading); got weighting {weighting!r}")
 
 
-def sigma_mol_per_kg(packed: Packed, weighting: str) -> np.ndarray:
+def sigma_mol_per_kg(packed: Packed, weighting: str) -> FloatArray:
     """Per-point standard deviation (n, m) for the chosen weighting."""
     q = packed.loading_mol_per_kg
     if weighting == "relative":
@@ -31,9 +32,12 @@ def sigma_mol_per_kg(packed: Packed, weighting: str) -> np.ndarray:
     return np.ones_like(q)
 
 
-def without_sigma(packed: Packed) -> np.ndarray:
+def without_sigma(packed: Packed) -> BoolArray:
     """(n,) bool: the isotherm came without sigma (pack() marks it by a whole nan row)."""
-    return np.all(np.isnan(packed.sigma_mol_per_kg) | ~packed.mask, axis=1)
+    sigma = packed.sigma_mol_per_kg
+    if sigma is None:  # no isotherm of the batch gave sigma
+        return np.ones(packed.n, dtype=bool)
+    return np.all(np.isnan(sigma) | ~packed.mask, axis=1)
 
 
 # Row sums (einsum, np.sum) add a row's tail in a different order when the
@@ -45,7 +49,8 @@ def without_sigma(packed: Packed) -> np.ndarray:
 POINT_AXIS_QUANTUM = 8
 
 
-def canonical_width(x, q, w, mask):
+def canonical_width(x: FloatArray, q: FloatArray, w: FloatArray, mask: BoolArray
+                    ) -> tuple[FloatArray, FloatArray, FloatArray, BoolArray]:
     """(x, q, w, mask) padded on the point axis to a multiple of POINT_AXIS_QUANTUM."""
     m = x.shape[1]
     extra = -m % POINT_AXIS_QUANTUM
@@ -56,7 +61,7 @@ def canonical_width(x, q, w, mask):
             np.concatenate([mask, np.zeros((mask.shape[0], extra), dtype=bool)], axis=1))
 
 
-def last_real(values: np.ndarray, mask: np.ndarray) -> np.ndarray:
+def last_real(values: FloatArray, mask: BoolArray) -> FloatArray:
     """(n, 1): each row's value at its last real (unpadded) point."""
     last = np.maximum(mask.sum(axis=1) - 1, 0)
     return values[np.arange(values.shape[0]), last][:, None]

@@ -63,7 +63,7 @@ def _summary_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
         has_bet, gas_volume_cm3stp_per_g(bet_monolayer), columns["monolayer_volume_cm3stp_per_g"])
     columns["monolayer_source"] = np.where(
         has_bet, "bet", np.where(np.isfinite(columns["monolayer_volume_cm3stp_per_g"]),
-                                 "q_sat", None)).astype(object)
+                                 "q_sat", None)).astype(object)  # type: ignore[call-overload]
     area, source = surface_area_for_sites(packed, columns["bet_area_m2_per_g"])
     columns["surface_area_used_m2_per_g"] = area
     columns["surface_area_source"] = source
@@ -80,10 +80,11 @@ def surface_area_for_sites(packed: Packed, bet_area_m2_per_g: np.ndarray
     """
     given = np.isfinite(packed.surface_area_m2_per_g) & (packed.surface_area_m2_per_g > 0)
     area = np.where(given, packed.surface_area_m2_per_g, np.nan)
-    source = np.where(given, "given", None).astype(object)
+    # numpy's stubs take no bare None as a value; numpy itself does (an object array)
+    source = np.where(given, "given", None).astype(object)  # type: ignore[call-overload]
     measured = np.isfinite(bet_area_m2_per_g)
-    for rows in rows_by(packed.sorbent_ids, range(len(packed.sorbent_ids))).values():
-        rows = np.asarray(rows)
+    for members in rows_by(packed.sorbent_ids, range(len(packed.sorbent_ids))).values():
+        rows = np.asarray(members)
         with_area = rows[measured[rows]]
         if with_area.size == 0:
             continue

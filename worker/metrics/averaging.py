@@ -42,7 +42,7 @@ import numpy as np
 
 from ..interrupts import ends_job
 from ..isotherm import Batch
-from ..models import CATALOGUE
+from ..models import CATALOGUE, IsothermModel
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .capacity import saturation_capacity_gradient
@@ -95,11 +95,12 @@ def akaike_average(weights: np.ndarray, values: np.ndarray, variances: np.ndarra
     }
 
 
-def central_difference_gradient(figure: Callable[[np.ndarray], np.ndarray],
+def central_difference_gradient(figure: Callable[[np.ndarray], np.ndarray | None],
                                 params: np.ndarray) -> np.ndarray:
     """d figure / d params by central differences: (g, ..., k) for params (g, k).
 
-    ``figure`` maps params (g, k) to an array (g, ...). Same relative step as
+    ``figure`` maps params (g, k) to an array (g, ...), or None where the
+    figure is undefined there (the gradient is nan). Same relative step as
     the capacity module's saturation-capacity gradient.
     """
     g, k = params.shape
@@ -126,8 +127,8 @@ def delta_method_variance(gradient: np.ndarray, covariance: np.ndarray) -> np.nd
 
 
 def _eligible_weights(selection: Selection, fits: dict[str, ModelFits],
-                      model_filter: Callable[[type], bool] = lambda model: True
-                      ) -> list[tuple[int, type, ModelFits, np.ndarray]]:
+                      model_filter: Callable[[type[IsothermModel]], bool] = lambda model: True
+                      ) -> list[tuple[int, type[IsothermModel], ModelFits, np.ndarray]]:
     """(column, model class, fits, rows) for every model that may take part, with the
     rows (indices) where it is eligible, has a positive weight and finite parameters."""
     out = []
@@ -153,8 +154,9 @@ def _residual_dof(model_fits: ModelFits, rows: np.ndarray) -> np.ndarray:
     return (model_fits.n_points[rows] - model_fits.n_params).astype(float)
 
 
-def _positive(values: np.ndarray, allow_zero: bool = False) -> np.ndarray:
-    """Values where they are a physical figure (finite, > 0 or >= 0), nan elsewhere."""
+def _positive(values: np.ndarray | None, allow_zero: bool = False) -> np.ndarray:
+    """Values where they are a physical figure (finite, > 0 or >= 0), nan elsewhere
+    (None, no figure at all, is one nan)."""
     values = np.asarray(values, dtype=float)
     with np.errstate(invalid="ignore"):
         ok = np.isfinite(values) & ((values >= 0) if allow_zero else (values > 0))
@@ -162,9 +164,9 @@ def _positive(values: np.ndarray, allow_zero: bool = False) -> np.ndarray:
 
 
 def _averaged_figure(selection: Selection, fits: dict[str, ModelFits], shape: tuple[int, ...],
-                     per_model: Callable[[type, ModelFits, np.ndarray],
+                     per_model: Callable[[type[IsothermModel], ModelFits, np.ndarray],
                                          tuple[np.ndarray, np.ndarray]],
-                     model_filter: Callable[[type], bool] = lambda model: True
+                     model_filter: Callable[[type[IsothermModel]], bool] = lambda model: True
                      ) -> dict[str, np.ndarray]:
     """Akaike average of a figure of shape (n, *shape) that ``per_model`` gives as
     (values, variances) of shape (len(rows), *shape) for a model's eligible rows."""
@@ -192,7 +194,8 @@ def _averaged_figure(selection: Selection, fits: dict[str, ModelFits], shape: tu
 def averaged_q_sat(packed: Packed, fits: dict[str, ModelFits],
                    selection: Selection) -> dict[str, np.ndarray]:
     """Akaike average of q_sat (mol/kg) over the eligible models that define one."""
-    def per_model(model, model_fits, rows):
+    def per_model(model: type[IsothermModel], model_fits: ModelFits, rows: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray]:
         params = model_fits.params[rows]
         with np.errstate(all="ignore"):
             value = _positive(model.saturation_capacity(params))
@@ -207,11 +210,12 @@ def averaged_henry(packed: Packed, fits: dict[str, ModelFits],
                    selection: Selection) -> dict[str, np.ndarray]:
     """Akaike average of the models' p -> 0 slopes (mol/kg/Pa); a model without a
     finite positive limit (none defined, or diverging) is left out."""
-    def per_model(model, model_fits, rows):
+    def per_model(model: type[IsothermModel], model_fits: ModelFits, rows: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray]:
         temperature_k = packed.temperature_k[rows]
         p0 = packed.saturation_pressure_pa[rows]
 
-        def henry(params):
+        def henry(params: np.ndarray) -> np.ndarray:
             k_h = model.henry_constant(params, temperature_k, p0)
             if k_h is None:
                 return np.full(params.shape[0], np.nan)
@@ -235,12 +239,13 @@ def averaged_loadings(packed: Packed, fits: dict[str, ModelFits], selection: Sel
     (k+1)-th column holds the average of each model's q(p_a) - q(p_d)."""
     k = pressure_pa.shape[1]
 
-    def per_model(model, model_fits, rows):
+    def per_model(model: type[IsothermModel], model_fits: ModelFits, rows: np.ndarray
+                  ) -> tuple[np.ndarray, np.ndarray]:
         temperature_k = packed.temperature_k[rows]
         p0 = packed.saturation_pressure_pa[rows]
         pressure = pressure_pa[rows]
 
-        def loading(params):
+        def loading(params: np.ndarray) -> np.ndarray:
             q = evaluate_model(model, params, temperature_k, p0, pressure)
             if swing_pairs is not None:
                 a, d = swing_pairs
@@ -263,9 +268,9 @@ def averaged_loadings(packed: Packed, fits: dict[str, ModelFits], selection: Sel
 
 
 def _figure_columns(name: str, unit: str, average: dict[str, np.ndarray],
-                    index=None) -> dict[str, np.ndarray]:
+                    index: int | None = None) -> dict[str, np.ndarray]:
     """The averaged value, its eq. 4.9 standard error and positive 95 % interval."""
-    def part(key):
+    def part(key: str) -> np.ndarray:
         return average[key] if index is None else average[key][:, index]
 
     value = part("value")

@@ -194,7 +194,7 @@ def best_bet_ranges(relative_pressure: np.ndarray, loading_mol_per_kg: np.ndarra
     pa, pb = np.unravel_index(pick, (m, m))
     rows = np.arange(g)
 
-    def at_pick(arr):
+    def at_pick(arr: np.ndarray) -> np.ndarray:
         return np.where(valid_row, arr.reshape(g, -1)[rows, pick], np.nan)
 
     held = np.stack([crit1, crit2, crit3, crit4], axis=-1) & linear[..., None]
@@ -221,7 +221,8 @@ def best_bet_ranges(relative_pressure: np.ndarray, loading_mol_per_kg: np.ndarra
     }
 
 
-def _valid_points_first(relative_pressure, loading, mask):
+def _valid_points_first(relative_pressure: np.ndarray, loading: np.ndarray, mask: np.ndarray
+                        ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Reorder each row so usable points (0 < x < 1, n > 0) come first, in pressure order."""
     with np.errstate(invalid="ignore"):
         valid = (mask & np.isfinite(relative_pressure) & np.isfinite(loading)
@@ -236,7 +237,8 @@ def _valid_points_first(relative_pressure, loading, mask):
     return x, q, valid, valid.sum(axis=1)
 
 
-def _window_fits(x, y, valid, a, b):
+def _window_fits(x: np.ndarray, y: np.ndarray, valid: np.ndarray, a: np.ndarray, b: np.ndarray
+                 ) -> dict[str, np.ndarray]:
     """Straight-line fits of y on x for every window [a, b] of every row: (g, m, m) arrays."""
     w = valid.astype(float)
     count = np.maximum(w.sum(axis=1, keepdims=True), 1.0)
@@ -245,7 +247,7 @@ def _window_fits(x, y, valid, a, b):
     y0 = (y * w).sum(axis=1, keepdims=True) / count
     xc, yc = np.where(valid, x - x0, 0.0), np.where(valid, y - y0, 0.0)
 
-    def window_sum(v):
+    def window_sum(v: np.ndarray) -> np.ndarray:
         prefix = np.concatenate([np.zeros((v.shape[0], 1)), np.cumsum(v, axis=1)], axis=1)
         return prefix[:, b + 1] - prefix[:, a]
 
@@ -263,7 +265,9 @@ def _window_fits(x, y, valid, a, b):
             "syy": syy, "mean_x": mean_x, "mean_y": mean_y, "n": np.broadcast_to(n, slope.shape)}
 
 
-def _rising_within_noise(x, rouquerol, valid, bet_fit, a, b, from_first_point):
+def _rising_within_noise(x: np.ndarray, rouquerol: np.ndarray, valid: np.ndarray,
+                         bet_fit: dict[str, np.ndarray], a: np.ndarray, b: np.ndarray,
+                         from_first_point: bool) -> np.ndarray:
     """Criterion 1 as a trend within the noise, for every window [a, b]: (g, m, m) bool.
 
     Two conditions, both needed:
@@ -301,13 +305,14 @@ def _rising_within_noise(x, rouquerol, valid, bet_fit, a, b, from_first_point):
         return trend & (worst <= allowed)
 
 
-def _shift_end(v):
+def _shift_end(v: np.ndarray) -> np.ndarray:
     """Value of window [a, b-1] stored at [a, b]."""
     pad = np.full(v.shape[:2] + (1,), np.nan)
     return np.concatenate([pad, v[:, :, :-1]], axis=2)
 
 
-def _no_bend_on_the_way_up(below, x, y, a, b):
+def _no_bend_on_the_way_up(below: dict[str, np.ndarray], x: np.ndarray, y: np.ndarray,
+                           a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """True where each point of the window, from the fourth on, lies within the
     prediction interval of the line through the window's points below it."""
     n_below = below["n"]
@@ -322,7 +327,8 @@ def _no_bend_on_the_way_up(below, x, y, a, b):
     return np.logical_and.accumulate(step_ok, axis=2)
 
 
-def _relative_pressure_at_loading(x, q, n_valid, target):
+def _relative_pressure_at_loading(x: np.ndarray, q: np.ndarray, n_valid: np.ndarray,
+                                  target: np.ndarray) -> np.ndarray:
     """x (g, m, m) read by linear interpolation of the data at loading target (g, m, m).
 
     The data are made non-decreasing first (running maximum) so the reading is

@@ -5,6 +5,7 @@ import numpy as np
 from scipy import constants
 
 from ..interrupts import ends_job
+from ..models import IsothermModel
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (MOLAR_VOLUME_STP_CM3_PER_MOL, add_flag, max_measured_loading,
@@ -16,7 +17,7 @@ CAPACITY_EXTRAPOLATION_FRACTION = 0.5
 MONOLAYER, PORE_FILLING = "monolayer", "pore_filling"
 
 
-def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
+def saturation_capacity_gradient(model: type[IsothermModel], params: np.ndarray) -> np.ndarray:
     """d q_sat / d params (g, k) by central differences of ``model.saturation_capacity``.
 
     Differences keep this generic over the catalogue; q_sat is a sum of
@@ -29,7 +30,10 @@ def saturation_capacity_gradient(model, params: np.ndarray) -> np.ndarray:
         up, down = params.copy(), params.copy()
         up[:, j] += step
         down[:, j] -= step
-        grad[:, j] = (model.saturation_capacity(up) - model.saturation_capacity(down)) / (2 * step)
+        q_up, q_down = model.saturation_capacity(up), model.saturation_capacity(down)
+        if q_up is None or q_down is None:  # callers ask only models that define q_sat
+            raise TypeError(f"model {model.id} defines no saturation capacity")
+        grad[:, j] = (q_up - q_down) / (2 * step)
     return grad
 
 
@@ -131,8 +135,9 @@ def capacity_columns(packed: Packed, fits: dict[str, ModelFits], selection: Sele
 
     return {
         "q_sat_mol_per_kg": q_sat,
-        "q_sat_model": np.where(has_q_sat, source, None),
-        "q_sat_kind": np.where(has_q_sat, kind, None),
+        # numpy's stubs take no bare None as a value; numpy itself does (an object array)
+        "q_sat_model": np.where(has_q_sat, source, None),  # type: ignore[call-overload]
+        "q_sat_kind": np.where(has_q_sat, kind, None),  # type: ignore[call-overload]
         "q_sat_stderr_mol_per_kg": q_sat_se,
         "q_sat_ci95_low_mol_per_kg": low,
         "q_sat_ci95_high_mol_per_kg": high,

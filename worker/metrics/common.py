@@ -9,17 +9,22 @@ from __future__ import annotations
 import logging
 from contextlib import contextmanager
 from contextvars import ContextVar
-from typing import Hashable, Iterable, Iterator, Sequence
+from typing import Hashable, Iterable, Iterator, Sequence, TypeVar
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import constants
 
+from ..arrays import BoolArray, FloatArray, IntArray, ObjectArray
+
 from ..interrupts import ends_job
-from ..models import CATALOGUE
+from ..models import CATALOGUE, IsothermModel
 from ..packing import Packed
 from ..results import ModelFits, Selection
 
 log = logging.getLogger(__name__)
+
+Key = TypeVar("Key", bound=Hashable)
 
 # Flag on every row a model's internal error touched: its figure there is nan
 # because the model raised, not because the data cannot support it.
@@ -40,7 +45,7 @@ MOLAR_VOLUME_STP_CM3_PER_MOL = constants.R * STP_TEMPERATURE_K / STP_PRESSURE_PA
 SAME_TEMPERATURE_TOLERANCE_K = 0.5
 
 
-def t_quantile_975(dof) -> np.ndarray:
+def t_quantile_975(dof: ArrayLike) -> FloatArray:
     """Two-sided 95 % Student-t quantile for ``dof`` degrees of freedom; nan where dof < 1."""
     from scipy.special import stdtrit  # what stats.t.ppf calls, without importing scipy.stats
     dof = np.asarray(dof, dtype=float)
@@ -48,7 +53,8 @@ def t_quantile_975(dof) -> np.ndarray:
         return np.where(dof >= 1, stdtrit(np.maximum(dof, 1.0), 0.975), np.nan)
 
 
-def positive_interval_95(value, stderr, dof) -> tuple[np.ndarray, np.ndarray]:
+def positive_interval_95(value: ArrayLike, stderr: ArrayLike, dof: ArrayLike
+                         ) -> tuple[FloatArray, FloatArray]:
     """95 % interval (low, high) of a quantity that is positive by nature.
 
     The Wald interval is built for ln(value), whose standard error is
@@ -67,13 +73,13 @@ def positive_interval_95(value, stderr, dof) -> tuple[np.ndarray, np.ndarray]:
     return low, high
 
 
-def rows_by(keys: Sequence[Hashable], rows: Iterable[int]) -> dict[Hashable, list[int]]:
+def rows_by(keys: Sequence[Key], rows: Iterable[int]) -> dict[Key, list[int]]:
     """The given row indices grouped by ``keys[row]``, each group in batch order.
 
     One pass over the rows: a scan of the whole batch per sorbent would make
     the per-sorbent metrics quadratic in the batch size.
     """
-    groups: dict[Hashable, list[int]] = {}
+    groups: dict[Key, list[int]] = {}
     for i in rows:
         groups.setdefault(keys[i], []).append(int(i))
     return groups
@@ -91,8 +97,8 @@ def internal_errors_recorded() -> Iterator[dict[str, set[int]]]:
         _internal_errors.reset(token)
 
 
-def note_internal_error(model, exc: BaseException, where: str,
-                        rows: np.ndarray | None = None) -> None:
+def note_internal_error(model: type[IsothermModel], exc: BaseException, where: str,
+                        rows: ArrayLike | None = None) -> None:
     """A model raised ``exc`` inside metric ``where``; its figure there becomes nan.
 
     A broad handler calls this after re-raising job-ending errors
@@ -110,7 +116,7 @@ def note_internal_error(model, exc: BaseException, where: str,
             hit.update(int(i) for i in np.asarray(rows).ravel())
 
 
-def internal_error_rows(record: dict[str, set[int]], selection: Selection) -> np.ndarray:
+def internal_error_rows(record: dict[str, set[int]], selection: Selection) -> BoolArray:
     """(n,) bool: rows a recorded internal error touched (named rows, else the
     rows that selected the model)."""
     best = np.asarray(selection.best, dtype=object)
@@ -127,14 +133,14 @@ def new_flags(n: int) -> list[list[str]]:
     return [[] for _ in range(n)]
 
 
-def add_flag(flags: list[list[str]], where: np.ndarray, name: str) -> None:
+def add_flag(flags: list[list[str]], where: ArrayLike, name: str) -> None:
     """Append ``name`` to the flag list of every isotherm where ``where`` holds."""
     for i in np.flatnonzero(where):
         if name not in flags[i]:
             flags[i].append(name)
 
 
-def flags_as_object_array(flags: list[list[str]]) -> np.ndarray:
+def flags_as_object_array(flags: list[list[str]]) -> ObjectArray:
     out = np.empty(len(flags), dtype=object)
     for i, f in enumerate(flags):
         out[i] = list(f)
@@ -142,7 +148,7 @@ def flags_as_object_array(flags: list[list[str]]) -> np.ndarray:
 
 
 def selected_groups(selection: Selection, fits: dict[str, ModelFits]
-                    ) -> Iterator[tuple[type, ModelFits, np.ndarray]]:
+                    ) -> Iterator[tuple[type[IsothermModel], ModelFits, IntArray]]:
     """Yield (model class, its fits, row indices) per selected model id.
 
     Rows whose selected model is unknown to the catalogue or missing from
@@ -156,7 +162,7 @@ def selected_groups(selection: Selection, fits: dict[str, ModelFits]
         yield CATALOGUE[model_id], fits[model_id], rows
 
 
-def has_selected_fit(selection: Selection, fits: dict[str, ModelFits]) -> np.ndarray:
+def has_selected_fit(selection: Selection, fits: dict[str, ModelFits]) -> BoolArray:
     """(n,) bool: the isotherm has a selected model whose parameters are finite."""
     best = np.asarray(selection.best, dtype=object)
     ok = np.zeros(best.shape[0], dtype=bool)
@@ -165,7 +171,8 @@ def has_selected_fit(selection: Selection, fits: dict[str, ModelFits]) -> np.nda
     return ok
 
 
-def model_x(model, pressure_pa: np.ndarray, saturation_pressure_pa: np.ndarray) -> np.ndarray:
+def model_x(model: type[IsothermModel], pressure_pa: FloatArray, saturation_pressure_pa: FloatArray
+            ) -> FloatArray:
     """The model's abscissa: p in Pa, or p/p0 for relative-pressure models.
 
     ``pressure_pa`` is (g, k); ``saturation_pressure_pa`` is (g,).
@@ -175,7 +182,7 @@ def model_x(model, pressure_pa: np.ndarray, saturation_pressure_pa: np.ndarray) 
     return pressure_pa
 
 
-def evaluate_model(model, params: np.ndarray, temperature_k: np.ndarray,
+def evaluate_model(model: type[IsothermModel], params: np.ndarray, temperature_k: np.ndarray,
                    saturation_pressure_pa: np.ndarray, pressure_pa: np.ndarray) -> np.ndarray:
     """Loading (g, k) in mol/kg of ``model`` with params (g, n_params) at pressures (g, k).
 
@@ -253,7 +260,7 @@ INVERSION_HALVINGS = 200
 INVERSION_SPAN_E_FOLDS = 40.0
 
 
-def invert_model(model, params: np.ndarray, temperature_k: np.ndarray,
+def invert_model(model: type[IsothermModel], params: np.ndarray, temperature_k: np.ndarray,
                  saturation_pressure_pa: np.ndarray, loading_mol_per_kg: np.ndarray,
                  low_pa: np.ndarray, high_pa: np.ndarray) -> np.ndarray:
     """Pressure (g, k) in Pa at which the model reaches ``loading_mol_per_kg`` (g, k).
@@ -266,7 +273,7 @@ def invert_model(model, params: np.ndarray, temperature_k: np.ndarray,
     ln_lo = np.broadcast_to(np.log(low_pa)[:, None], shape).copy()
     ln_hi = np.broadcast_to(np.log(high_pa)[:, None], shape).copy()
 
-    def excess(ln_p):
+    def excess(ln_p: FloatArray) -> FloatArray:
         return evaluate_model(model, params, temperature_k, saturation_pressure_pa,
                               np.exp(ln_p)) - loading_mol_per_kg
 

@@ -25,6 +25,7 @@ Rules (docs/results.md, "Replicates, pure error and lack of fit" and
 from __future__ import annotations
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.special import fdtrc, gammaln, ndtr
 
 from ..engine import sigma_mol_per_kg
@@ -49,7 +50,7 @@ def fit_quality_columns(packed: Packed, fits: dict[str, ModelFits], selection: S
     block, n_blocks = _pressure_blocks(packed)
     flat = block.ravel()[mask.ravel()]
 
-    def per_block(values):
+    def per_block(values: np.ndarray) -> np.ndarray:
         return np.bincount(flat, weights=values.ravel()[mask.ravel()], minlength=n_blocks)
 
     owner = np.repeat(np.arange(n), mask.shape[1]).reshape(mask.shape)
@@ -115,7 +116,8 @@ def _pressure_blocks(packed: Packed) -> tuple[np.ndarray, int]:
     return (count - 1).reshape(p.shape), int(count[-1]) if count.size else 0
 
 
-def _runs(block_residual: np.ndarray, block_row: np.ndarray, n: int):
+def _runs(block_residual: np.ndarray, block_row: np.ndarray, n: int
+          ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per isotherm: runs of equal sign, positive and negative count of the block
     residuals in pressure order (zero residuals are left out)."""
     sign = np.sign(np.nan_to_num(block_residual))
@@ -129,7 +131,7 @@ def _runs(block_residual: np.ndarray, block_row: np.ndarray, n: int):
     return runs, n_pos, n_neg
 
 
-def runs_test_p(runs, n_pos, n_neg) -> np.ndarray:
+def runs_test_p(runs: ArrayLike, n_pos: ArrayLike, n_neg: ArrayLike) -> np.ndarray:
     """One-sided p = P(R <= runs) of the number of runs R of n_pos + and n_neg -
     signs in random order; nan where either count is zero."""
     runs, n1, n2 = (np.asarray(a, dtype=np.int64) for a in (runs, n_pos, n_neg))
@@ -148,14 +150,14 @@ def runs_test_p(runs, n_pos, n_neg) -> np.ndarray:
     return out
 
 
-def _log_comb(a, b):
+def _log_comb(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """ln C(a, b), -inf where b < 0 or b > a."""
     with np.errstate(all="ignore"):
         value = gammaln(a + 1.0) - gammaln(b + 1.0) - gammaln(a - b + 1.0)
     return np.where((b >= 0) & (b <= a), value, -np.inf)
 
 
-def _exact_runs_cdf(runs, n1, n2) -> np.ndarray:
+def _exact_runs_cdf(runs: np.ndarray, n1: np.ndarray, n2: np.ndarray) -> np.ndarray:
     """P(R <= runs) by the exact run-count distribution (Swed & Eisenhart 1943):
     P(R = 2j) = 2 C(n1-1, j-1) C(n2-1, j-1) / C(n1+n2, n1),
     P(R = 2j+1) = [C(n1-1, j-1) C(n2-1, j) + C(n1-1, j) C(n2-1, j-1)] / C(n1+n2, n1)."""

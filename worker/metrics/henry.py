@@ -31,7 +31,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..interrupts import ends_job
-from ..models import CATALOGUE
+from ..models import CATALOGUE, IsothermModel
 from ..models.linear import masked_linear_fit
 from ..packing import Packed
 from ..results import ModelFits, Selection
@@ -81,7 +81,8 @@ def _model_henry_and_stderr(packed: Packed, fits: dict[str, ModelFits], selectio
     return k_h, stderr, dof
 
 
-def _limit(model, params, temperature_k, saturation_pressure_pa, rows):
+def _limit(model: type[IsothermModel], params: np.ndarray, temperature_k: np.ndarray,
+           saturation_pressure_pa: np.ndarray, rows: np.ndarray) -> np.ndarray | None:
     """K_H (len(rows),) of ``model`` for the packed ``rows``; None if undefined."""
     shape = rows.shape
     try:
@@ -97,8 +98,9 @@ def _limit(model, params, temperature_k, saturation_pressure_pa, rows):
     return np.broadcast_to(np.asarray(value, dtype=float), shape).copy()
 
 
-def _delta_method_stderr(model, params, covariance, temperature_k, saturation_pressure_pa,
-                         value, rows) -> np.ndarray:
+def _delta_method_stderr(model: type[IsothermModel], params: np.ndarray, covariance: np.ndarray,
+                         temperature_k: np.ndarray, saturation_pressure_pa: np.ndarray,
+                         value: np.ndarray, rows: np.ndarray) -> np.ndarray:
     """sqrt(g' C g) with g = dK_H/dparams; nan where K_H is not finite and
     positive or the covariance is missing."""
     gradient = central_difference_gradient(

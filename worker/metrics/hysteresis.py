@@ -80,7 +80,8 @@ def _branch(packed: Packed, row: int) -> tuple[np.ndarray, np.ndarray]:
     return pressures, mean
 
 
-def _loop(packed: Packed, ads: int, des: int):
+def _loop(packed: Packed, ads: int, des: int
+          ) -> tuple[float, float, float, float, bool, bool] | None:
     """(max width, its pressure, closure pressure, tolerance, loop?, open at the low end?)
     of one adsorption/desorption pair, or None where their pressures do not overlap."""
     p_a, q_a = _branch(packed, ads)

@@ -21,11 +21,15 @@ for the rest down to zero (exact for a model linear in p there).
 """
 from __future__ import annotations
 
+from collections.abc import Callable
+from typing import Any
+
 import numpy as np
 
 from ..adsorbates import lookup
+from ..arrays import FloatArray, IntArray
 from ..isotherm import MixtureRequest
-from ..models import CATALOGUE
+from ..models import CATALOGUE, IsothermModel
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import SAME_TEMPERATURE_TOLERANCE_K, evaluate_model, measured_pressure_range, rows_by
@@ -52,15 +56,17 @@ def _gauss_legendre_unit_nodes() -> tuple[np.ndarray, np.ndarray]:
 _UNIT_NODES, _UNIT_WEIGHTS = _gauss_legendre_unit_nodes()
 
 
-def spreading_pressure(model, params, temperature_k, saturation_pressure_pa, pressure_pa,
-                       analytic: bool = True) -> np.ndarray:
+def spreading_pressure(model: type[IsothermModel], params: FloatArray, temperature_k: FloatArray,
+                       saturation_pressure_pa: FloatArray, pressure_pa: FloatArray,
+                       analytic: bool = True) -> FloatArray:
     """Reduced spreading pressure psi (g,) in mol/kg at pressure_pa (g,).
 
     ``analytic=False`` forces the numerical rule (used to test it).
     """
-    if analytic and model.has_closed_form_spreading_pressure():
+    closed_form = model.reduced_spreading_pressure
+    if analytic and model.has_closed_form_spreading_pressure() and closed_form is not None:
         with np.errstate(all="ignore"):
-            return model.reduced_spreading_pressure(
+            return closed_form(
                 pressure_pa, *[params[:, j] for j in range(params.shape[1])])
     ln_p = np.log(pressure_pa)[:, None]
     nodes = np.exp(ln_p - IAST_LOG_SPAN * (1.0 - _UNIT_NODES[None, :]))
@@ -73,7 +79,8 @@ def spreading_pressure(model, params, temperature_k, saturation_pressure_pa, pre
     return np.where(bad, np.nan, psi)
 
 
-def increasing_root(fun, lo, hi, scale=0.0):
+def increasing_root(fun: Callable[[FloatArray], tuple[FloatArray, FloatArray]], lo: FloatArray,
+                    hi: FloatArray, scale: float = 0.0) -> FloatArray:
     """Root in [lo, hi] of an increasing function; ``fun(v)`` returns (value, slope).
 
     Newton steps, replaced by bisection whenever they leave the bracket the
@@ -103,20 +110,22 @@ def increasing_root(fun, lo, hi, scale=0.0):
 class _Components:
     """Flattened pure-component fits (one slot per component per mixture row)."""
 
-    def __init__(self, models, params, temperature_k, saturation_pressure_pa, analytic=True):
+    def __init__(self, models: list[type[IsothermModel]], params: list[FloatArray],
+                 temperature_k: FloatArray, saturation_pressure_pa: FloatArray,
+                 analytic: bool = True) -> None:
         self.models = models                      # list of model classes, len S
         self.params = params                      # list of 1-D param arrays
         self.temperature_k = temperature_k        # (S,)
         self.saturation_pressure_pa = saturation_pressure_pa  # (S,)
         self.analytic = analytic
-        self.groups = {}
+        self.groups: dict[str, tuple[type[IsothermModel], list[int]]] = {}
         for s, model in enumerate(models):
             self.groups.setdefault(model.id, (model, []))[1].append(s)
 
-    def _by_model(self, pressure_pa, what):
+    def _by_model(self, pressure_pa: FloatArray, what: str) -> FloatArray:
         out = np.full(pressure_pa.shape, np.nan)
-        for model, slots in self.groups.values():
-            slots = np.array(slots)
+        for model, members in self.groups.values():
+            slots = np.array(members)
             params = np.array([self.params[s] for s in slots])
             t, p0 = self.temperature_k[slots], self.saturation_pressure_pa[slots]
             if what == "psi":
@@ -126,27 +135,27 @@ class _Components:
                 out[slots] = evaluate_model(model, params, t, p0, pressure_pa[slots][:, None])[:, 0]
         return out
 
-    def psi(self, pressure_pa):
+    def psi(self, pressure_pa: FloatArray) -> FloatArray:
         return self._by_model(pressure_pa, "psi")
 
-    def loading(self, pressure_pa):
+    def loading(self, pressure_pa: FloatArray) -> FloatArray:
         return self._by_model(pressure_pa, "loading")
 
-    def upper_pressure_pa(self, wanted_pa):
+    def upper_pressure_pa(self, wanted_pa: FloatArray) -> FloatArray:
         """Highest pressure a model may be evaluated at (p0 for p/p0 models)."""
         top = wanted_pa.copy()
-        for model, slots in self.groups.values():
+        for model, members in self.groups.values():
             if model.relative_pressure:
-                slots = np.array(slots)
+                slots = np.array(members)
                 top[slots] = self.saturation_pressure_pa[slots] * (1.0 - 1e-9)
         return top
 
-    def pressure_at_psi(self, psi, around_pa):
+    def pressure_at_psi(self, psi: FloatArray, around_pa: FloatArray) -> FloatArray:
         """p_i^0 (S,) at which psi_i equals psi (S,)."""
         lo = np.log(around_pa) - IAST_PRESSURE_SPAN_E_FOLDS
         hi = np.log(self.upper_pressure_pa(around_pa * np.exp(IAST_PRESSURE_SPAN_E_FOLDS)))
 
-        def residual(ln_p):
+        def residual(ln_p: FloatArray) -> tuple[FloatArray, FloatArray]:
             p = np.exp(ln_p)
             return self.psi(p) - psi, self.loading(p)
 
@@ -175,7 +184,7 @@ def solve_iast(components: _Components, gas_mole_fractions: np.ndarray,
         psi_lo = np.max(psi_partial, axis=1) * (1.0 - 1e-9)
         psi_hi = np.max(psi_total, axis=1) * (1.0 + 1e-9)
 
-        def excess(psi):
+        def excess(psi: FloatArray) -> tuple[FloatArray, FloatArray]:
             p0 = components.pressure_at_psi(np.repeat(psi, n), around).reshape(r, n)
             x = y * p_total / p0
             q0 = components.loading(p0.ravel()).reshape(r, n)
@@ -190,6 +199,10 @@ def solve_iast(components: _Components, gas_mole_fractions: np.ndarray,
     return {"adsorbed_mole_fractions": x, "pure_component_pressures_pa": p0,
             "loadings_mol_per_kg": x * q_total[:, None], "total_loading_mol_per_kg": q_total,
             "reduced_spreading_pressure_mol_per_kg": psi}
+
+
+# (request, sorbent_id, isotherm rows or None, flags)
+_Plan = tuple[MixtureRequest, str | None, IntArray | None, list[str]]
 
 
 def _same_gas(a: str, b: str) -> bool:
@@ -212,7 +225,7 @@ def iast_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
     """One row per (mixture request, sorbent) with the IAST solution or nan + flags."""
     adsorption = np.array([b == "adsorption" for b in packed.branches], dtype=bool)
     candidates = usable & adsorption
-    planned = []  # (request, sorbent_id, isotherm rows or None, flags)
+    planned: list[_Plan] = []
     for req in mixtures:
         if not _request_is_valid(req):
             planned.append((req, req.sorbent_id, None, ["iast_invalid_request"]))
@@ -222,23 +235,23 @@ def iast_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
         by_sorbent = rows_by(packed.sorbent_ids, np.flatnonzero(near_t))
         sorbents = [req.sorbent_id] if req.sorbent_id is not None else sorted(by_sorbent)
         for sorbent_id in sorbents:
-            rows = []
+            members: list[int | None] = []
             for gas in req.components:
-                match = [i for i in by_sorbent.get(sorbent_id, ())
+                match = [i for i in by_sorbent.get(sorbent_id, [])
                          if _same_gas(packed.adsorbates[i], gas)]
-                rows.append(match[0] if match else None)  # first isotherm of the batch
-            if all(i is not None for i in rows):
-                planned.append((req, sorbent_id, np.array(rows), []))
+                members.append(match[0] if match else None)  # first isotherm of the batch
+            if all(i is not None for i in members):
+                planned.append((req, sorbent_id, np.array(members), []))
             elif req.sorbent_id is not None:
                 planned.append((req, sorbent_id, None, ["iast_missing_component"]))
 
     solutions = _solve_planned(packed, fits, selection, planned)
     _, p_high = measured_pressure_range(packed)
     out = []
-    for k, (req, sorbent_id, rows, flags) in enumerate(planned):
+    for k, (req, plan_sorbent_id, rows, flags) in enumerate(planned):
         n = len(req.components)
-        row = {
-            "sorbent_id": sorbent_id,
+        row: dict[str, Any] = {
+            "sorbent_id": plan_sorbent_id,
             "adsorbate": "/".join(req.components),
             "adsorbates": list(req.components),
             "kind": "iast",
@@ -279,17 +292,18 @@ def iast_rows(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
     return out
 
 
-def _solve_planned(packed, fits, selection, planned) -> dict[int, dict]:
+def _solve_planned(packed: Packed, fits: dict[str, ModelFits], selection: Selection,
+                   planned: list[_Plan]) -> dict[int, dict[str, Any]]:
     """Solutions keyed by index into ``planned``, all mixtures of one component
     count solved together."""
-    solutions = {}
-    by_size = {}
+    solutions: dict[int, dict[str, Any]] = {}
+    by_size: dict[int, list[int]] = {}
     for k, plan in enumerate(planned):
         if plan[2] is not None:
             by_size.setdefault(len(plan[2]), []).append(k)
     for indices in by_size.values():
         plans = [planned[k] for k in indices]
-        slots = np.concatenate([plan[2] for plan in plans])
+        slots = np.concatenate([plan[2] for plan in plans if plan[2] is not None])
         models = [CATALOGUE[selection.best[i]] for i in slots]
         params = [fits[selection.best[i]].params[i] for i in slots]
         components = _Components(models, params, packed.temperature_k[slots],

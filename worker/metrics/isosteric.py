@@ -25,11 +25,13 @@ temperatures (one group), the rules, stated once in docs/results.md:
 """
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from scipy import constants
 
 from ..interrupts import ends_job
-from ..models import CATALOGUE
+from ..models import CATALOGUE, IsothermModel
 from ..packing import Packed
 from ..results import ModelFits, Selection
 from .common import (SAME_TEMPERATURE_TOLERANCE_K, evaluate_model, invert_model,
@@ -68,9 +70,9 @@ def isosteric_groups(packed: Packed, usable: np.ndarray) -> list[tuple[str, str,
     adsorption = np.array([b == "adsorption" for b in packed.branches], dtype=bool)
     keep = usable & adsorption
     groups = rows_by(list(zip(packed.sorbent_ids, packed.adsorbates)), np.flatnonzero(keep))
-    out = []
-    for (sorbent_id, adsorbate), rows in sorted(groups.items()):
-        rows = _temperature_window(np.array(rows), packed.temperature_k)
+    out: list[tuple[str, str, np.ndarray]] = []
+    for (sorbent_id, adsorbate), members in sorted(groups.items()):
+        rows = _temperature_window(np.array(members), packed.temperature_k)
         if _distinct_temperatures(packed.temperature_k[rows]) >= 2:
             out.append((sorbent_id, adsorbate, rows))
     return out
@@ -111,7 +113,7 @@ def common_model_family(fits: dict[str, ModelFits], selection: Selection,
     return min(candidates)[2] if candidates else None
 
 
-def common_loading_range(packed: Packed, model, model_fits: ModelFits, rows: np.ndarray
+def common_loading_range(packed: Packed, model: type[IsothermModel], model_fits: ModelFits, rows: np.ndarray
                          ) -> tuple[float, float, np.ndarray, np.ndarray]:
     """(low, high) loading in mol/kg every temperature covers, and each row's pressure bracket.
 
@@ -134,7 +136,7 @@ def common_loading_range(packed: Packed, model, model_fits: ModelFits, rows: np.
     return low, high, p_low * (1.0 - BRACKET_MARGIN), p_high * (1.0 + BRACKET_MARGIN)
 
 
-def ln_pressure_variance(model, params: np.ndarray, covariance: np.ndarray,
+def ln_pressure_variance(model: type[IsothermModel], params: np.ndarray, covariance: np.ndarray,
                          temperature_k: np.ndarray, saturation_pressure_pa: np.ndarray,
                          pressure_pa: np.ndarray) -> np.ndarray:
     """Variance (g, G) of ln p(n) from the fit covariance (g, k, k), by the delta method.
@@ -186,9 +188,10 @@ def isosteric_heat_rows(packed: Packed, fits: dict[str, ModelFits], selection: S
     return out
 
 
-def _group_heats(packed, fits, selection, rows, reference_loading_mol_per_kg) -> dict:
+def _group_heats(packed: Packed, fits: dict[str, ModelFits], selection: Selection, rows: np.ndarray,
+                 reference_loading_mol_per_kg: float | None) -> dict[str, Any]:
     flags: list[str] = []
-    result = {"qst_model": None, "reference_loading_mol_per_kg": float("nan"),
+    result: dict[str, Any] = {"qst_model": None, "reference_loading_mol_per_kg": float("nan"),
               "isosteric_heat_j_per_mol": float("nan"),
               "isosteric_heat_stderr_j_per_mol": float("nan"),
               "qst_loading_mol_per_kg": [], "qst_j_per_mol": [], "qst_stderr_j_per_mol": [],
@@ -269,7 +272,7 @@ def clausius_clapeyron(temperature_k: np.ndarray, pressure_pa: np.ndarray,
     weighted = np.all(np.isfinite(variance) & (variance > 0), axis=0)
     weight = np.where(weighted, 1.0 / np.where(weighted, variance, 1.0), 1.0)
 
-    def mean(values):
+    def mean(values: np.ndarray) -> np.ndarray:
         return np.sum(weight * values, axis=0) / np.sum(weight, axis=0)
 
     dx = inv_t - mean(inv_t)
