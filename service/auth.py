@@ -124,5 +124,7 @@ def require(scope: str, owner: Callable[..., str | None] | None = None) -> Calla
                               required_scope=scope)
             g.client = token.name
             return view(*args, **kwargs)
+        # read by service/api/params.py: a request refused here hears 401 before any 400
+        guarded.required_scope = scope
         return guarded
     return decorate

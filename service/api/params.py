@@ -2,7 +2,8 @@
 
 ``ACCEPTED`` maps each Flask endpoint (API, plots, pages, probes) to the
 query parameters it reads. ``register`` checks every request against it
-before the view runs: a parameter the endpoint does not take answers 400
+before the view runs (a request without the token a view needs hears its
+401 first): a parameter the endpoint does not take answers 400
 (problem ``unknown-parameter``, naming each one and listing the accepted
 ones) instead of being ignored, so a misspelt filter never returns
 unfiltered rows. The app refuses to start while an endpoint is missing
@@ -14,7 +15,7 @@ from __future__ import annotations
 import difflib
 from dataclasses import dataclass, field
 
-from flask import Flask, request
+from flask import Flask, current_app, request
 
 from sorbrank.worker.store import BATCH_ID_PATTERN
 
@@ -167,7 +168,7 @@ def query_parameters(endpoint: str) -> list[dict]:
 def check_query() -> None:
     """Refuse a query parameter the endpoint does not take, or one given
     twice that is read once; unmatched URLs are left to the router (404/405)."""
-    if request.url_rule is None or request.endpoint is None:
+    if request.url_rule is None or request.endpoint is None or _refused_for_no_token():
         return
     declared = ACCEPTED.get(request.endpoint, ())
     accepted = {p.name: p for p in declared}
@@ -180,6 +181,16 @@ def check_query() -> None:
         raise Problem(400, "Bad Request", "given more than once, read once: "
                       + ", ".join(repeated), slug="repeated-parameter",
                       parameter=", ".join(repeated), repeated=repeated)
+
+
+def _refused_for_no_token() -> bool:
+    """The view needs a token and none valid came: its 401 comes first, so a
+    caller without access learns nothing about the parameters."""
+    view = current_app.view_functions[request.endpoint]
+    if getattr(view, "required_scope", None) is None:
+        return False
+    auth = current_app.extensions["sorbrank"].auth
+    return not auth.open and auth.identify(request.headers.get("Authorization")) is None
 
 
 def unknown_parameters(endpoint: str, unknown: list[str], accepted: list[str]) -> Problem:

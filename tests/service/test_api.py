@@ -485,6 +485,9 @@ def test_every_endpoint_refuses_an_unknown_query_parameter_naming_it(app):
         assert doc["unknown"] == wrong and doc["accepted"] == accepted, rule.rule
         assert all(f"'{name}'" in doc["detail"] for name in wrong)
     assert seen == set(app.view_functions)
+    # without a token the 401 comes first; an open probe still checks its parameters
+    assert client.get("/api/v1/rankings?adsorbat=CO2").status_code == 401
+    assert client.get("/healthz?adsorbat=CO2").status_code == 400
     # a near miss of an accepted name is suggested
     doc = assert_problem(client.get("/api/v1/rankings?adsorbat=CO2", headers=auth()), 400)
     assert doc["suggestions"] == {"adsorbat": "adsorbate"} and "did you mean 'adsorbate'" in doc["detail"]
