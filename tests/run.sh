@@ -41,4 +41,5 @@ fi
 
 # the linter first (pyproject.toml [tool.ruff]): seconds, and it fails fast
 .venv/bin/ruff check .
+.venv/bin/mypy  # pyproject.toml [tool.mypy]: the worker package
 exec .venv/bin/python -m pytest "$@"
