@@ -289,6 +289,8 @@ def decode_cell(cell: str, arrow_type: Any) -> Any:
 
     if cell == "":
         return None
+    if pa.types.is_dictionary(arrow_type):
+        arrow_type = arrow_type.value_type
     if pa.types.is_list(arrow_type) or pa.types.is_large_list(arrow_type):
         return [_decode_element(e, arrow_type.value_type) for e in parse_array(cell)]
     if pa.types.is_string(arrow_type) or pa.types.is_large_string(arrow_type):
