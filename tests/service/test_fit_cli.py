@@ -86,7 +86,7 @@ def test_json_follows_the_contract_and_is_valid_json(capsys, screen_csv):
     assert [r["isotherm"] for r in doc["rejected"]] == ["broken"]
     rec = doc["isotherms"][0]
     assert rec["isotherm_id"] == "iso1" and rec["temperature_k"] == 298.15 and rec["n_points"] == 15
-    for key in ("sorbent_id", "adsorbate", "best_model", "ambiguous", "flags", "fits",
+    for key in ("sorbent_id", "adsorbate", "best_model", "ambiguous", "quality_flags", "fits",
                 "linearized_langmuir", "summary"):
         assert key in rec
     fits = {f["model"]: f for f in rec["fits"]}
@@ -215,7 +215,7 @@ def test_json_summary_carries_the_metric_contract(tmp_path):
     records = json.loads(out.stdout)["isotherms"]
     contract = ("q_sat_mol_per_kg", "monolayer_volume_cm3stp_per_g", "sites_per_g",
                 "henry_mol_per_kg_pa", "bet_area_m2_per_g", "bet_c",
-                "bet_range_relative_pressure", "flags")
+                "bet_range_relative_pressure", "quality_flags")
     with_range = 0
     for rec in records:
         summary = rec["summary"]
@@ -225,7 +225,7 @@ def test_json_summary_carries_the_metric_contract(tmp_path):
             with_range += 1
             assert 0 < rng[0] < rng[1] < 1 and summary["bet_area_m2_per_g"] > 0
         else:
-            assert summary["bet_area_m2_per_g"] is None and "bet_no_valid_range" in summary["flags"]
+            assert summary["bet_area_m2_per_g"] is None and "bet_no_valid_range" in summary["quality_flags"]
     assert with_range >= 0.9 * len(records)
 
 
@@ -420,7 +420,7 @@ def test_table_marks_a_missing_interval_and_ends_long_lines_at_the_terminal(caps
         "q_sat_mol_per_kg": [4.2134, None], "q_sat_ci95_low_mol_per_kg": [None, None],
         "q_sat_ci95_high_mol_per_kg": [None, None], "bet_area_m2_per_g": [None, None],
         "working_capacity_mol_per_kg": [1.5, None], "n_points": [8, 3],
-        "flags": [["capacity_extrapolated", "extrapolated_adsorption_pressure"], []],
+        "quality_flags": [["capacity_extrapolated", "extrapolated_adsorption_pressure"], []],
     })
     text = render_table(table, "q_sat_mol_per_kg", Conditions(), width=None)
     first, second = text.splitlines()[2:]
@@ -448,7 +448,7 @@ def test_table_stars_figures_the_ranking_holds_unreliable():
         "q_sat_ci95_low_mol_per_kg": [8.8, 1.8, 2.9], "q_sat_ci95_high_mol_per_kg": [9.2, 8.9, 3.1],
         "bet_area_m2_per_g": [None] * 3, "loading_ads_mol_per_kg": [2.0, 1.5, 1.0],
         "working_capacity_mol_per_kg": [1.5, 1.0, 0.8], "n_points": [8, 8, 8],
-        "flags": [["capacity_extrapolated", "extrapolated_adsorption_pressure"], [], []],
+        "quality_flags": [["capacity_extrapolated", "extrapolated_adsorption_pressure"], [], []],
     })
     table = with_ranking_columns(table, [(1e5, 1e4)] * 3)
     lines = render_table(table, "q_sat_mol_per_kg", Conditions(), width=None).splitlines()
