@@ -82,14 +82,13 @@ class IsothermModel:
     # added this way changes no selection made by the default set before it
     in_default_catalogue: ClassVar[bool] = True
 
-    @staticmethod
-    def evaluate(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> np.ndarray:
-        raise NotImplementedError
-
-    @staticmethod
-    def jacobian(x: np.ndarray, temperature_k: np.ndarray, *params: np.ndarray) -> tuple[np.ndarray, ...]:
-        """d loading / d param, one array per parameter, each shaped like x."""
-        raise NotImplementedError
+    # Each model defines both as staticmethods naming its parameters after x and
+    # temperature_k: evaluate(x, temperature_k, q_sat, affinity) -> loading (n, m);
+    # jacobian(...) -> d loading / d param, one array per parameter, each
+    # broadcasting to x. Declared as callables, not methods, so that a model's
+    # own parameter names are no signature clash for the type checker.
+    evaluate: ClassVar[Callable[..., np.ndarray]]
+    jacobian: ClassVar[Callable[..., tuple[np.ndarray, ...]]]
 
     @classmethod
     def initial_guesses(cls, x: np.ndarray, q: np.ndarray, mask: np.ndarray,
@@ -105,6 +104,13 @@ class IsothermModel:
     @classmethod
     def has_closed_form_spreading_pressure(cls) -> bool:
         return cls.reduced_spreading_pressure is not None
+
+    @classmethod
+    def defines_henry_limit(cls) -> bool:
+        """True when the model defines its own ``henry_constant`` (entries may
+        still be inf or nan for some parameters)."""
+        owner = next(k for k in cls.__mro__ if "henry_constant" in vars(k))
+        return owner is not IsothermModel
 
     @classmethod
     def saturation_capacity(cls, params: np.ndarray) -> np.ndarray | None:
@@ -188,7 +194,7 @@ class IsothermModel:
                 for p in cls.params
             ],
             "has_saturation_capacity": cls.defines_saturation_capacity(),
-            "has_henry_limit": cls.henry_constant.__func__ is not IsothermModel.henry_constant.__func__,
+            "has_henry_limit": cls.defines_henry_limit(),
         }
 
 
