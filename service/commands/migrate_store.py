@@ -8,9 +8,14 @@ import sys
 HELP = "rewrite a store written by an older sorbrank to the current schema version"
 DESCRIPTION = """\
 Rewrite the store under --data-dir (default: SORBRANK_DATA_DIR, else ./data)
-to the schema version this sorbrank reads. From version 1: the column
-material_id becomes sorbent_id in every Parquet file, the per-sorbent table
-moves from materials/ to sorbents/, and batch manifests use the new names.
+to the schema version this sorbrank reads (3: one declared schema per table,
+docs/schema.md). From version 2: every Parquet file is conformed to its
+table's schema (flags becomes quality_flags, the per-pressure loading_at_*
+columns become the list columns reference_pressures_pa and
+reference_loadings_*, typed nulls, every catalogue parameter in fits). From
+version 1 also: the column material_id becomes sorbent_id, the per-sorbent
+table moves from materials/ to sorbents/, and batch manifests use the new
+names. schema_version.json is written last.
 
 Each file is replaced atomically, so a run that is stopped half-way is
 completed by running the command again; on a store that is already current it

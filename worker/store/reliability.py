@@ -1,7 +1,6 @@
 """Which ranked figures the data supports, and the conditions behind them."""
 from __future__ import annotations
 
-import re
 from typing import Callable
 
 import numpy as np
@@ -39,13 +38,10 @@ CONDITIONS_OF_SORT = {
     "loading_des_mol_per_kg": ("desorption_pressure_pa", "desorption_temperature_k"),
     "working_capacity_mol_per_kg": CONDITION_COLUMNS,
 }
-_REFERENCE_LOADING = re.compile(r"^loading_at_.+_pa_mol_per_kg$")
 
 
 def conditions_of_sort(sort: str) -> tuple[str, ...]:
     """The condition columns a ranking by ``sort`` depends on (none for other figures)."""
-    if _REFERENCE_LOADING.fullmatch(sort):  # the pressure is in the column's name
-        return ("adsorption_temperature_k",)
     return CONDITIONS_OF_SORT.get(sort, ())
 
 
