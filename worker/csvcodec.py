@@ -125,11 +125,12 @@ def _element(value: Any) -> str:
     if isinstance(value, str):
         text = value
     else:
-        text = cell_text(value)
-        if text is None:
+        encoded = cell_text(value)
+        if encoded is None:
             return "NULL"
         if not isinstance(value, dict):
-            return text  # numbers, booleans and timestamps need no quotes
+            return encoded  # numbers, booleans and timestamps need no quotes
+        text = encoded
     if text == "" or text.upper() == "NULL" or _QUOTE_ELEMENT.search(text):
         return '"' + text.replace("\\", "\\\\").replace('"', '\\"') + '"'
     return text
@@ -208,11 +209,11 @@ def _parse_array(text: str, i: int) -> tuple[list, int]:
         if i >= len(text):
             raise ValueError(f"unterminated array literal: {text!r}")
         if text[i] == "{":
-            item, i = _parse_array(text, i)
-            items.append(item)
+            nested, i = _parse_array(text, i)
+            items.append(nested)
         else:
-            item, i = _parse_element(text, i)
-            items.append(item)
+            element, i = _parse_element(text, i)
+            items.append(element)
         i = _skip_space(text, i)
         if i >= len(text):
             raise ValueError(f"unterminated array literal: {text!r}")

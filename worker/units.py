@@ -51,6 +51,7 @@ import difflib
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import constants
 
 STP_TEMPERATURE_K = 273.15
@@ -158,7 +159,7 @@ LOADING_UNIT_TABLE: dict[str, LoadingUnit] = {u.name: u for u in [
 _POWER_OF_TEN = {float(f"1e{k}"): k for k in range(-22, 23)}
 
 
-def scaled_by(values, factor: float) -> np.ndarray:
+def scaled_by(values: ArrayLike, factor: float) -> np.ndarray:
     """``values * factor``, correctly rounded where ``factor`` is a power of ten: 10^-k
     (not an exact double) is applied as a division by 10^k (exact), so 3.1 x 0.001
     gives 0.0031, not 0.0031000000000000003."""
