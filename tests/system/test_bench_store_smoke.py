@@ -37,7 +37,7 @@ def rows_for(seed: int, n: int) -> list[dict]:
             "q_sat_mol_per_kg": q,
             "henry_mol_per_kg_pa": rng.choice([None, rng.uniform(1e-6, 1e-4)]),
             "loading_ads_mol_per_kg": q,   # the default sort
-            "flags": rng.choice(FLAGS),
+            "quality_flags": rng.choice(FLAGS),
         })
     return rows
 
@@ -84,7 +84,7 @@ def brute_force(stored, query: RankingQuery):
                               r["branch"]), r)
         rows = list(first.values())
     want, avoid = set(query.flags), set(query.exclude_flags)
-    rows = [r for r in rows if want <= set(r["flags"] or []) and not avoid & set(r["flags"] or [])]
+    rows = [r for r in rows if want <= set(r["quality_flags"] or []) and not avoid & set(r["quality_flags"] or [])]
 
     def value(r):
         v = r[query.sort]
@@ -174,19 +174,20 @@ def test_new_replaced_removed_and_damaged_files_are_seen_by_the_next_query(tmp_p
     store, stored = build(tmp_path, batches=3)
     query = RankingQuery(limit=1000, all_results=True)
     assert rankings(store, query)[1] == 90
-    # a new batch whose chunk widens a column's type (null -> string)
+    # a new batch with a text column empty in one chunk (written as a typed
+    # null, never as type null: worker/store/schema.py) and filled in the next
     late = T0 + timedelta(hours=1)
     batch_id = new_batch_id(late)
     extra = rows_for(900, 6)
     for r in extra:
-        r["note"] = None
+        r["surface_area_source"] = None
     write(store, batch_id, late, extra[:3], 0)
     assert rankings(store, query)[1] == 93
     for r in extra:
-        r["note"] = "typed"
+        r["surface_area_source"] = "given"
     write(store, batch_id, late, extra[3:], 1)
     page, total = rankings(store, query)
-    assert total == 96 and page.schema.field("note").type == pa.string()
+    assert total == 96 and page.schema.field("surface_area_source").type == pa.string()
     assert same(page, whole_rows(store, query)[0])
     # a retried job replaces its chunk: the new content is what ranks
     replaced = [{**r, "q_sat_mol_per_kg": 99.0 + k} for k, r in enumerate(extra[:3])]

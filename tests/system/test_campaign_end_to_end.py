@@ -87,7 +87,7 @@ def test_bet_areas_match_the_ground_truth(campaign):
         row = summaries[t["isotherm_id"]]
         got = row["bet_area_m2_per_g"]
         if got is None:
-            assert "bet_no_valid_range" in row["flags"]
+            assert "bet_no_valid_range" in row["quality_flags"]
             withheld.append(t["isotherm_id"])
         elif abs(got - t["bet_area_m2_per_g"]) > tol * t["bet_area_m2_per_g"]:
             off.append((t["isotherm_id"], got, t["bet_area_m2_per_g"]))
@@ -106,7 +106,7 @@ def test_every_bad_dataset_gets_its_expected_outcome(campaign):
             assert bad["code"] in rejected_codes.get(bad["isotherm_id"], set()), bad
             assert bad["isotherm_id"] not in summaries
         else:
-            assert bad["code"] in summaries[bad["isotherm_id"]]["flags"], bad
+            assert bad["code"] in summaries[bad["isotherm_id"]]["quality_flags"], bad
 
 
 def test_isosteric_heats_match_the_ground_truth(campaign):

@@ -103,7 +103,7 @@ def test_dual_site_heat_within_tolerance_at_every_reported_loading(dual_site):
     for row in rows:
         n = np.array(row["qst_loading_mol_per_kg"])
         got = np.array(row["qst_j_per_mol"])
-        assert n.size == 11 and np.all(np.isfinite(got)), row["flags"]
+        assert n.size == 11 and np.all(np.isfinite(got)), row["quality_flags"]
         worst.append(np.max(np.abs(got - exact_qst_j_per_mol(spec["sites"], n))))
     assert_within_tolerance(np.array(worst))
 
@@ -132,7 +132,7 @@ def test_grid_lies_inside_every_measured_loading_range_and_reaches_its_low_end(d
 def test_one_model_family_for_all_temperatures(dual_site):
     _, rows, _ = dual_site
     for row in rows:
-        assert row["qst_model"] is not None and row["flags"] == []
+        assert row["qst_model"] is not None and row["quality_flags"] == []
 
 
 def test_single_site_langmuir_gives_the_constant_heat():
@@ -163,6 +163,6 @@ def test_propagated_standard_error_matches_the_scatter_over_replicas():
     heat = np.array([r["isosteric_heat_j_per_mol"] for r in rows])
     stderr = np.array([r["isosteric_heat_stderr_j_per_mol"] for r in rows])
     assert np.all(np.isfinite(stderr)) and np.all(stderr > 0)
-    assert all(r["method"] == "two_point" and r["flags"] == [] for r in rows)
+    assert all(r["method"] == "two_point" and r["quality_flags"] == [] for r in rows)
     ratio = np.std(heat, ddof=1) / np.median(stderr)
     assert 1 / 1.5 < ratio < 1.5, ratio
