@@ -149,11 +149,12 @@ class BatchResult:
         excluded_reason, sse, rmse, r2, aic, aicc, bic, chi_square,
         chi_square_dof, chi_square_p_value (nan unless absolute sigma),
         akaike_weight, then
-        for every parameter name of the fitted models (units: the model
+        for every parameter name of the whole model catalogue (units: the
         catalogue) param_<name>, stderr_<name>, ci95_low_<name>,
         ci95_high_<name>, at_bound_<name> -- null where the row's model has no
-        such parameter. NaN is stored as null; +-inf stays (e.g. AICc with
-        too few points).
+        such parameter: the same columns whichever models a batch fits
+        (worker/store/schema.py). NaN is stored as null; +-inf stays (e.g.
+        AICc with too few points).
         """
         p, sel = self.packed, self.selection
         ids = list(self.fits)
@@ -201,7 +202,9 @@ class BatchResult:
 
     def summary_table(self) -> pa.Table:
         """One row per isotherm: identity, selection, double-reciprocal
-        estimate, the metric columns, and flags (list of strings)."""
+        estimate, the metric columns (the figures at the batch's reference
+        pressures as lists beside reference_pressures_pa), and quality_flags
+        (list of strings); the declared columns of worker/store/schema.py."""
         p, sel = self.packed, self.selection
         columns = {
             "isotherm_id": pa.array(p.isotherm_ids, pa.string()),
