@@ -210,6 +210,6 @@ def test_krypton_77_k_in_relative_pressure_gets_a_bet_area_on_the_supercooled_li
     summary = result.summary_table().to_pylist()[0]
     kr_area = N_M_MOL_PER_KG / 1000 * constants.Avogadro * 0.202e-18
     assert summary["bet_area_m2_per_g"] == pytest.approx(kr_area, rel=0.02)
-    assert "p0_supercooled_liquid" in summary["flags"]
+    assert "p0_supercooled_liquid" in summary["quality_flags"]
     low, high = summary["bet_area_ci95_low_m2_per_g"], summary["bet_area_ci95_high_m2_per_g"]
     assert 0 < low <= summary["bet_area_m2_per_g"] <= high

@@ -201,11 +201,11 @@ def test_infinite_henry_constant_survives_parquet_and_json_with_its_flag(tmp_pat
     table = pq.read_table(path)
     assert table["henry_mol_per_kg_pa"].type == pa.float64()
     assert table["henry_mol_per_kg_pa"][0].as_py() == float("inf")
-    assert "henry_diverges" in table["flags"][0].as_py()
+    assert "henry_diverges" in table["quality_flags"][0].as_py()
     record = json.loads(json.dumps(result.to_json(), allow_nan=False))["isotherms"][0]
     assert record["summary"]["henry_mol_per_kg_pa"] is None
     assert record["summary"]["henry_source"] == "model"
-    assert "henry_diverges" in record["flags"]
+    assert "henry_diverges" in record["quality_flags"]
 
 
 def _coverage(n_points: int, n_isotherms: int, seed: int) -> tuple[float, float]:
