@@ -91,6 +91,8 @@ SCHEMAS_KEY = b"sorbrank.index.schemas"   # per table: the files' schemas, seria
 # for batches no entry announced
 RECHECK_S = 30.0
 # loose seals that make a consolidation worth its write; segments merged when more
+# a local directory's modification time is trusted once it is this old (seconds)
+SETTLED_S = 2.0
 CONSOLIDATE_SEALS = 200
 MERGE_SEGMENTS = 8
 
@@ -265,7 +267,8 @@ def record_files(store, batch_id: str, kind: str, tables: Iterable[tuple[str, in
             if size is None:
                 continue
             parts.append(key_rows(table, batch_id, chunk, data, size, mtime_ns))
-            schemas.setdefault(table, pq.read_schema(path, filesystem=store.fs))
+            if table not in schemas:  # the file's own (conformed) schema, read once per table
+                schemas[table] = pq.read_schema(path, filesystem=store.fs)
         rows = pa.concat_tables(parts) if parts else _empty_rows()
         return _write_entry(store, _entry_name(batch_id, kind), rows, schemas)
     return write()
@@ -505,6 +508,9 @@ class ReadIndex:
         self.quarantine_seen: dict[str, int] = {}    # batch id -> quarantine records seen
         self.changed_at: dict[str, int] = {}         # batch id -> newest loose entry / damage
         self.last_full_check = 0.0
+        self.waiting: set[str] = set()              # batch directories without a manifest yet
+        self.dir_times: dict[str, int | None] = {}  # local directory -> mtime at the last look
+        self.parts_loaded = False
         self._combined: pa.Table | None = None
         self._listings: dict[str, list] = {}
         self._schemas: dict[str, pa.Schema | None] = {}
@@ -525,8 +531,27 @@ class ReadIndex:
             if changed or self._combined is None:
                 self._rebuild_views()
 
+    def _unchanged(self, path: str) -> bool:
+        """True when the local directory ``path`` is as at the last look: its
+        modification time is the same and older than ``SETTLED_S`` (a change
+        within the same clock tick as the last look cannot hide). Elsewhere
+        (object stores have no directory times) always False."""
+        if not fs.is_local(self.store.fs):
+            return False
+        try:
+            mtime_ns = os.stat(path).st_mtime_ns
+        except FileNotFoundError:
+            mtime_ns = -1
+        settled = mtime_ns < time.time_ns() - int(SETTLED_S * 1e9)
+        same = self.dir_times.get(path) == mtime_ns
+        self.dir_times[path] = mtime_ns if settled else None
+        return same and settled
+
     def _load_parts(self) -> bool:
         loose_dir, seg_dir = _dir(self.store, LOOSE_DIR), _dir(self.store, SEGMENTS_DIR)
+        if self.parts_loaded and self._unchanged(loose_dir) & self._unchanged(seg_dir):
+            return False
+        self.parts_loaded = True
         for attempt in range(3):
             # loose before segments: a consolidation writes its segment before it deletes
             wanted = [posixpath.join(loose_dir, n) for n in _names(self.store, loose_dir)]
@@ -590,6 +615,12 @@ class ReadIndex:
             return False
         self.last_full_check = now
         folder = str(self.store._join("batches"))
+        # a batch directory whose manifest is still being written is looked at again
+        waiting = {b for b in self.waiting if self.store.is_accepted(b)}
+        self.waiting -= waiting
+        self.known_batches |= waiting
+        if self._unchanged(folder):
+            return bool(waiting)
         if local:
             try:
                 names = os.listdir(folder)
@@ -599,13 +630,16 @@ class ReadIndex:
             names = [i.base_name for i in fs.list_dir(self.store.fs, folder)
                      if i.type == pafs.FileType.Directory]
         new = {n for n in names if is_batch_id(n)} - self.known_batches
-        new = {b for b in new if self.store.is_accepted(b)}  # a manifest being written: later
-        self.known_batches |= new
-        return bool(new)
+        accepted = {b for b in new if self.store.is_accepted(b)}
+        self.waiting |= new - accepted
+        self.known_batches |= accepted
+        return bool(accepted or waiting)
 
     def _check_quarantine(self) -> bool:
         """A damaged file moved aside after a batch was sealed reopens it."""
         folder = str(self.store._join("quarantine"))
+        if fs.is_local(self.store.fs) and not os.path.isdir(folder):
+            return False
         try:
             entries = fs.list_dir(self.store.fs, folder)
         except OSError:
@@ -614,6 +648,8 @@ class ReadIndex:
         for info in entries:
             batch_id = info.base_name
             if info.type != pafs.FileType.Directory or not is_batch_id(batch_id):
+                continue
+            if self._unchanged(info.path):
                 continue
             records = self.store.damaged_files(batch_id) if batch_id in self.records or \
                 batch_id in self.known_batches else []
@@ -641,6 +677,10 @@ class ReadIndex:
         changed = sealed = False
         entries = [p for p in self.parts.values() if p.kind == "entry"]
         for batch_id in sorted(self.open):
+            folders = [str(self.store._join(t, f"batch_id={batch_id}")) for t in TABLES]
+            folders.append(str(self.store.batch_dir(batch_id)))  # final.json, statuses
+            if all([self._unchanged(f) for f in folders]) and batch_id in self.examined:
+                continue
             for part in entries:
                 if batch_id in part.batches:
                     self._remember_entry_rows(part, batch_id)

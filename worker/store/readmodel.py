@@ -111,7 +111,9 @@ def _indexed(store: Store, index: read_index.ReadIndex, table: str, column: str,
         fragments.append(_FORMAT.make_fragment(
             path, store.fs, partition_expression=ds.field("batch_id") == batch_id))
     try:
-        return ds.FileSystemDataset(fragments, schema, _FORMAT, store.fs).to_table(filter=where)
+        # a few files: threads cost more than they save
+        return ds.FileSystemDataset(fragments, schema, _FORMAT, store.fs).to_table(
+            filter=where, use_threads=len(fragments) > 16)
     except (OSError, pa.ArrowException) as exc:
         raise _IndexMiss(str(exc)) from exc
 
