@@ -236,8 +236,11 @@ class StoreLayout:
         """StoreError when ``schema`` has the version-1 id column (without a
         schema: when the store still has its version-1 table)."""
         if schema is None:
-            if problem := self.schema_problem():
-                raise StoreError(problem)
+            # one lookup per read; the version-2 check (schema_problem) runs where
+            # the service and the workers start and before a store's first write
+            if self.fs.get_file_info(str(self._join(VERSION_1_TABLE))).type != \
+                    pafs.FileType.NotFound:
+                raise version_1_error(f"{self.root}: the store", self.root)
         elif VERSION_1_ID_COLUMN in schema.names:
             raise version_1_error(f"{self.root}: a table with a {VERSION_1_ID_COLUMN!r} column",
                                   self.root)
