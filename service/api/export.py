@@ -1,8 +1,9 @@
 """Complete exports, streamed; and the Link headers of paged answers.
 
 CSV, Parquet and Arrow answers hold every matching row unless the request
-gives ``limit``/``offset``; they are written part by part as the rows are
-read (``RankingStream.parts``), so memory holds one part, not the export:
+gives ``limit``/``offset``. The ranked rows are read once as Arrow
+(``RankingStream``); the answer is then encoded and sent part by part, so
+it never exists whole in memory:
 
 - Arrow: one IPC stream, a record batch per part, sent as each is written.
 - Parquet: a true stream too: ``pyarrow.parquet.ParquetWriter`` writes
@@ -32,6 +33,10 @@ from .formats import MEDIA_TYPES
 
 log = logging.getLogger(__name__)
 EXTENSIONS = {"csv": "csv", "parquet": "parquet", "arrow": "arrows"}
+# rows encoded at a time: CSV text is one Python string per cell while it is
+# built (a 50,000-row rankings export peaked at 135 MiB of Python objects with
+# 10,000-row parts, 27 MiB with 2,000); Arrow and Parquet stay columnar
+PART_ROWS = {"csv": 2_000, "parquet": 10_000, "arrow": 10_000}
 
 
 class _Sink:

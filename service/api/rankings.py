@@ -13,7 +13,7 @@ from sorbrank.worker.store.rankings import UnknownAdsorbate, ranking_stream
 
 from ..auth import require
 from ..problems import Problem
-from .export import page_links, paging_headers, streamed_table
+from .export import PART_ROWS, page_links, paging_headers, streamed_table
 from .formats import bool_arg, choice_arg, float_arg, int_arg, json_rows, negotiate
 
 bp = Blueprint("rankings", __name__)
@@ -56,7 +56,8 @@ def get_rankings():
     query = ranking_query(None if fmt != "json" else JSON_PAGE_ROWS)
     rule = "all results" if query.all_results else LATEST_WINS_RULE
     try:
-        ranked = ranking_stream(store, query) if fmt != "json" else ranking(store, query)
+        ranked = (ranking_stream(store, query, PART_ROWS[fmt]) if fmt != "json"
+                  else ranking(store, query))
     except ValueError as exc:
         raise _bad_query(exc) from None
     # the marker every format carries: the rows were computed at several condition sets

@@ -482,17 +482,24 @@ def ranking(store: "Store", query: RankingQuery) -> Ranking:
                    query)
 
 
-# rows read whole at a time by a streamed ranking: a part's memory, not the export's
+# rows per part of a streamed ranking: what is encoded at a time
 STREAM_PART_ROWS = 10_000
 
 
 @dataclass
 class RankingStream:
-    """A ranking read part by part: ``parts`` yields tables of ``schema``
-    (the columns of ``ranking``'s page), at most ``part_rows`` rows each,
-    ``returned`` rows in all, in ranking order. The ranking itself runs once,
-    on the key columns; each part's whole rows are read only when it is
-    asked for. ``parts`` can be consumed once."""
+    """A ranking handed out part by part: ``parts`` yields tables of
+    ``schema`` (the columns of ``ranking``'s page), at most ``part_rows``
+    rows each, ``returned`` rows in all, in ranking order; it can be
+    consumed once.
+
+    The ranking runs once, on the key columns, and the ranked rows are then
+    read whole once, as Arrow (the row groups that hold them, each read
+    once), before the first part: a damaged file fails the request before an
+    answer starts. Reading them part by part instead would read every row
+    group again for each part, since the ranking order crosses all files.
+    What stays small is everything after that: each part gets its condition
+    and reliability columns, and is encoded, only when it is asked for."""
 
     total: int                # ranked rows before offset and limit
     returned: int             # rows the parts hold
@@ -516,25 +523,14 @@ def ranking_stream(store: "Store", query: RankingQuery,
     snap, query = _snapshot_for(store, query)
     empty = snap.dataset.schema.empty_table() if snap.dataset is not None else pa.table({})
     schema = _readers_page(store, empty).schema
-    keys = _rank_keys(snap, query)
-    if keys is None:
-        page, total, ranked = _rank_by_whole_rows(snap, query)
-    else:
-        page, total, ranked = keys
+    rows, total, ranked = _rank_snapshot(snap, query)
 
     def parts() -> Iterator[pa.Table]:
-        whole = None if keys is not None else page
-        for start in range(0, max(page.num_rows, 1), part_rows):
-            if whole is None:
-                rows = _whole_rows(snap, page.slice(start, part_rows)) if page.num_rows else empty
-                if rows is None:  # the files changed under the export: rank again, once
-                    whole = _rank_by_whole_rows(snap, query)[0]
-            if whole is not None:
-                rows = whole.slice(start, part_rows)
-            part = _readers_page(store, rows)
+        for start in range(0, max(rows.num_rows, 1), part_rows):
+            part = _readers_page(store, rows.slice(start, part_rows) if rows.num_rows else empty)
             if not part.schema.equals(schema):
                 part = part.select(schema.names).cast(schema)
             yield part
 
-    return RankingStream(total, page.num_rows, schema, query, RELIABILITY_OF_SORT.get(query.sort),
+    return RankingStream(total, rows.num_rows, schema, query, RELIABILITY_OF_SORT.get(query.sort),
                          _condition_sets(store, ranked, query), parts())
