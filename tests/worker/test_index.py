@@ -23,6 +23,7 @@ from sorbrank.worker import jobs
 from sorbrank.worker.intake import read_batch
 from sorbrank.worker.store import Store
 from sorbrank.worker.store import index as read_index
+from sorbrank.worker.store import index_reader
 from sorbrank.worker.store import readmodel
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -232,7 +233,7 @@ def test_changes_the_index_did_not_record_are_detected(tmp_path, monkeypatch):
 def test_a_store_on_another_filesystem_is_rechecked(tmp_path, monkeypatch):
     """Without cheap local listings, batches no entry announced appear after
     RECHECK_S (0 here); everything else as on a local store."""
-    monkeypatch.setattr(read_index, "RECHECK_S", 0.0)
+    monkeypatch.setattr(index_reader, "RECHECK_S", 0.0)
     filesystem = pafs.SubTreeFileSystem(str(tmp_path), pafs.LocalFileSystem())
     store = Store("sorbrank", filesystem=filesystem)
     run_batch(store)
