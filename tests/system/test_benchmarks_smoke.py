@@ -66,3 +66,12 @@ def test_bench_start_prints_the_ratio_and_the_json_shares():
     for word in ("machine  :", "vector extensions:", "bare   :", "fit    :", "ratio    :",
                  "x the bare interpreter", "json module:", "orjson     :", "12 isotherms"):
         assert word in out, out
+
+
+def test_bench_reads_builds_a_store_and_compares_both_read_paths(tmp_path):
+    out = run("bench_reads.py", "--batches", "10", "--repeats", "1", "--old-repeats", "1",
+              "--build-jobs", "1", "--compaction", "--dir", str(tmp_path / "store"))
+    for word in ("build    :", "disk     :", "sorbent record :", "plot           :",
+                 "overview       :", "metrics        :", "ratio warm", "fresh    : a new sealed "
+                 "batch is in the next sorbent record: yes", "compact  :", "result   : OK"):
+        assert word in out, out
