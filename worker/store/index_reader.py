@@ -69,7 +69,8 @@ class ReadIndex:
             changed = self._load_parts()
             changed |= self._discover()
             changed |= self._check_quarantine()
-            opened = self._open_batches()
+            # which batches are open changes only with what was just read
+            opened = self._open_batches() if changed or self._combined is None else self.open
             if opened != self.open:
                 changed = True
                 for gone in self.open - opened:
