@@ -15,6 +15,7 @@ import sys
 
 import pytest
 
+import sorbrank
 from conftest import TOKENS, tokens_json
 from sorbrank.service.app import create_app
 from sorbrank.service.auth import parse_tokens
@@ -23,7 +24,6 @@ from sorbrank.worker import jobs
 from sorbrank.worker.engine import resolve_models
 from sorbrank.worker.models import CATALOGUE, default_models
 from sorbrank.worker.pipeline import FitOptions
-from sorbrank.study import fit
 from sorbrank.worker.store import Store
 
 OPT_IN = [m.id for m in CATALOGUE.values() if not m.in_default_catalogue]
@@ -77,14 +77,12 @@ def test_sorbrank_fit_leaves_it_out_by_default_and_fits_it_when_named(tmp_path):
 
 
 def test_the_python_api_fits_it_when_named():
-    # sorbrank.fit is sorbrank.study.fit; a bare "import sorbrank" here would find
-    # the tests/sorbrank folder first (a namespace package without fit)
-    results = fit(jovanovic_csv(), models="all,jovanovic")
+    results = sorbrank.fit(jovanovic_csv(), models="all,jovanovic")
     summary = results.summary.sort_values("sorbent_id")
     assert list(summary["best_model"]) == ["jovanovic"] * len(TRUTHS)
     for (_, q_sat, _), got in zip(TRUTHS, summary["q_sat_mol_per_kg"]):
         assert got == pytest.approx(q_sat, rel=1e-2)
-    assert "jovanovic" not in set(fit(jovanovic_csv()).fits["model"])
+    assert "jovanovic" not in set(sorbrank.fit(jovanovic_csv()).fits["model"])
 
 
 def test_the_http_api_fits_it_when_named_in_the_models_parameter(tmp_path):
