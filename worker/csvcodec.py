@@ -38,7 +38,10 @@ import json
 import math
 import re
 from datetime import date, datetime, timezone
-from typing import IO, Any, Iterable, Iterator
+from typing import IO, TYPE_CHECKING, Any, Iterable, Iterator, Union
+
+if TYPE_CHECKING:  # imported where used: pyarrow loads only when a table is encoded
+    import pyarrow as pa
 
 FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 _PLAIN_NUMBER = re.compile(r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$")
@@ -47,6 +50,9 @@ _QUOTE_CELL = re.compile(r'[,"\r\n]')
 # braces, commas, quotes and backslashes; any other whitespace is quoted too, harmless
 _QUOTE_ELEMENT = re.compile(r'[,{}"\\\s]')
 INFINITY, MINUS_INFINITY = "Infinity", "-Infinity"
+
+# an element of a parsed array literal: text, None for NULL, a nested array
+ArrayItem = Union[str, None, list["ArrayItem"]]
 
 
 def formula_problem(text: str) -> str | None:
@@ -145,7 +151,8 @@ def csv_field(text: str | None) -> str:
     return text
 
 
-def csv_lines(column_names: list[str], batches: Iterable[Any]) -> Iterator[str]:
+def csv_lines(column_names: list[str],
+              batches: Iterable[pa.RecordBatch | pa.Table]) -> Iterator[str]:
     """The header line, then one line per row of ``batches`` (pyarrow record batches
     or tables), each ending in LF."""
     yield ",".join(csv_field(guard_text(str(name))) for name in column_names) + "\n"
@@ -158,7 +165,7 @@ def csv_lines(column_names: list[str], batches: Iterable[Any]) -> Iterator[str]:
 _FLOAT_SPECIAL = {"nan": "", "inf": INFINITY, "-inf": MINUS_INFINITY}
 
 
-def column_fields(column: Any) -> list[str]:
+def column_fields(column: pa.Array | pa.ChunkedArray) -> list[str]:
     """The CSV fields of one pyarrow array, row by row: ``csv_field(cell_text(v))``
     for each value, with a shortcut for float columns (most of every export)."""
     import pyarrow as pa
@@ -171,13 +178,13 @@ def column_fields(column: Any) -> list[str]:
     return [csv_field(cell_text(v)) for v in values]
 
 
-def write_csv(table: Any, out: IO[str], chunk_rows: int = 10_000) -> None:
+def write_csv(table: pa.Table, out: IO[str], chunk_rows: int = 10_000) -> None:
     """Write a pyarrow Table as CSV to the text stream ``out``."""
     for text in csv_lines(table.column_names, table.to_batches(max_chunksize=chunk_rows)):
         out.write(text)
 
 
-def csv_bytes(table: Any) -> bytes:
+def csv_bytes(table: pa.Table) -> bytes:
     """A pyarrow Table as CSV, UTF-8."""
     out = io.StringIO()
     write_csv(table, out)
@@ -187,7 +194,7 @@ def csv_bytes(table: Any) -> bytes:
 # ---------------------------------------------------------------------------
 # reading back
 
-def parse_array(text: str) -> list:
+def parse_array(text: str) -> list[ArrayItem]:
     """The elements of a PostgreSQL array literal: text, None for NULL, lists for
     nested arrays. Raises ValueError for text that is not one."""
     items, end = _parse_array(text, 0)
@@ -196,12 +203,12 @@ def parse_array(text: str) -> list:
     return items
 
 
-def _parse_array(text: str, i: int) -> tuple[list, int]:
+def _parse_array(text: str, i: int) -> tuple[list[ArrayItem], int]:
     i = _skip_space(text, i)
     if i >= len(text) or text[i] != "{":
         raise ValueError(f"an array literal starts with '{{': {text!r}")
     i = _skip_space(text, i + 1)
-    items: list = []
+    items: list[ArrayItem] = []
     if i < len(text) and text[i] == "}":
         return items, i + 1
     while True:
@@ -278,7 +285,7 @@ def parse_float(text: str) -> float:
     return float(text)
 
 
-def decode_cell(cell: str, arrow_type: Any) -> Any:
+def decode_cell(cell: str, arrow_type: pa.DataType) -> Any:
     """The value an exported cell holds, for a column of ``arrow_type`` (pyarrow).
 
     ``cell`` is the field as the ``csv`` module returns it. An empty field is None:
@@ -299,7 +306,7 @@ def decode_cell(cell: str, arrow_type: Any) -> Any:
     return _decode_scalar(cell, arrow_type)
 
 
-def _decode_element(element: Any, arrow_type: Any) -> Any:
+def _decode_element(element: ArrayItem, arrow_type: pa.DataType) -> Any:
     import pyarrow as pa
 
     if element is None:
@@ -311,7 +318,7 @@ def _decode_element(element: Any, arrow_type: Any) -> Any:
     return _decode_scalar(element, arrow_type)
 
 
-def _decode_scalar(text: str, arrow_type: Any) -> Any:
+def _decode_scalar(text: str, arrow_type: pa.DataType) -> Any:
     import pyarrow as pa
 
     if pa.types.is_boolean(arrow_type):

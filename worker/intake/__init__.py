@@ -147,6 +147,7 @@ a declared gas name).
 from __future__ import annotations
 
 import hashlib
+from typing import Any
 
 import pyarrow as pa
 
@@ -163,6 +164,7 @@ from .rows import Limits
 from .source import (
     READERS,
     Reader,
+    Source,
     check_batch_label,
     checked_settings,
     declared_gases,
@@ -178,10 +180,10 @@ __all__ = ["IntakeError", "Limits", "MAX_REFERENCE_PRESSURES", "Reader", "checke
            "declared_gases", "read_batch", "read_conditions", "read_mixtures", "register_reader"]
 
 
-def read_batch(source, fmt: str | None = None, *, batch_label: str | None = None,
-               units: dict | str | None = None, sample_mass_g: float | str | None = None,
+def read_batch(source: Source, fmt: str | None = None, *, batch_label: str | None = None,
+               units: dict[str, str] | str | None = None, sample_mass_g: float | str | None = None,
                delimiter: str | None = None, decimal: str | None = None,
-               gases: list[dict] | None = None, limits: Limits | None = None) -> Batch:
+               gases: list[dict[str, Any]] | None = None, limits: Limits | None = None) -> Batch:
     """Return the validated, unit-normalised Batch read from ``source``.
 
     ``source`` is bytes, text, a pathlib.Path or a pyarrow.Table; ``fmt`` is

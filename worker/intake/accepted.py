@@ -9,6 +9,8 @@ from typing import Any
 
 import numpy as np
 
+from ..adsorbates import Adsorbate
+from ..arrays import BoolArray, FloatArray, IntArray
 from ..isotherm import Isotherm
 from .rows import (
     BRANCHES,
@@ -17,7 +19,9 @@ from .rows import (
     OK,
     QUANTITIES,
     UNIT_FIELD,
+    Numbers,
     Rows,
+    Text,
 )
 
 
@@ -25,16 +29,17 @@ from .rows import (
 class Points:
     """All points sorted by (isotherm, pressure); replicates kept, in input order."""
 
-    group: np.ndarray          # isotherm index per point
-    pressure_pa: np.ndarray
-    loading_mol_per_kg: np.ndarray
-    sigma_mol_per_kg: np.ndarray
-    start: np.ndarray          # isotherm g owns points start[g]:start[g + 1]
-    n_distinct: np.ndarray     # distinct pressures per isotherm
-    block_start: np.ndarray    # per point: index of the first point at its pressure
+    group: IntArray            # isotherm index per point
+    pressure_pa: FloatArray
+    loading_mol_per_kg: FloatArray
+    sigma_mol_per_kg: FloatArray
+    start: IntArray            # isotherm g owns points start[g]:start[g + 1]
+    n_distinct: IntArray       # distinct pressures per isotherm
+    block_start: IntArray      # per point: index of the first point at its pressure
 
 
-def sorted_points(gid, n_groups, pressure_pa, loading, sigma) -> Points:
+def sorted_points(gid: IntArray, n_groups: int, pressure_pa: FloatArray, loading: FloatArray,
+                  sigma: FloatArray) -> Points:
     """Return every point sorted per isotherm by pressure, replicates kept (module
     docstring)."""
     order = np.lexsort((pressure_pa, gid))
@@ -49,7 +54,7 @@ def sorted_points(gid, n_groups, pressure_pa, loading, sigma) -> Points:
                    n_distinct, block_start)
 
 
-def non_monotonic_groups(points: Points, n_groups: int) -> np.ndarray:
+def non_monotonic_groups(points: Points, n_groups: int) -> BoolArray:
     """Per isotherm: does a point fall below the best loading at lower pressure by more
     than max(2 % of the isotherm's top loading, 3 sigma)?"""
     q = points.loading_mol_per_kg
@@ -76,18 +81,18 @@ class Accepted:
     """Everything needed to build the accepted isotherms, one cheap call each."""
 
     rows: Rows
-    text: dict
-    number: dict
+    text: dict[str, Text]
+    number: dict[str, Numbers]
     label: str
     points: Points
-    input_order: np.ndarray    # rows grouped by isotherm, input order inside
-    input_start: np.ndarray
-    has_sigma: np.ndarray
-    adsorbate: list
-    group_value: dict
-    p0_pa: np.ndarray
-    relative_input: np.ndarray
-    non_monotonic: np.ndarray
+    input_order: IntArray      # rows grouped by isotherm, input order inside
+    input_start: IntArray
+    has_sigma: BoolArray
+    adsorbate: list[Adsorbate | None]   # per isotherm; None: no known adsorbate (rejected)
+    group_value: dict[str, FloatArray]
+    p0_pa: FloatArray
+    relative_input: BoolArray
+    non_monotonic: BoolArray
 
     def isotherm(self, g: int) -> Isotherm:
         pts = self.points
@@ -103,6 +108,8 @@ class Accepted:
         value = self.group_value
         sorbent_id = self.text["sorbent_id"].values[int(value["sorbent_id"][g])]
         adsorbate = self.adsorbate[g]
+        if adsorbate is None:  # an isotherm without a known adsorbate is rejected before this
+            raise ValueError(f"isotherm {g} has no known adsorbate")
         temperature_k = float(value["temperature_k"][g])
         branch = BRANCHES[int(value["branch"][g])]
         in_input = self.input_order[self.input_start[g]:self.input_start[g + 1]]
@@ -122,16 +129,16 @@ class Accepted:
             batch_label=self.label, flags=flags, original=self._original(g, in_input),
         )
 
-    def _original(self, g: int, in_input: np.ndarray) -> dict[str, Any]:
+    def _original(self, g: int, in_input: IntArray) -> dict[str, Any]:
         """The values as sent, with their units and source rows, in input order."""
         first = in_input[0]
 
-        def as_sent(name):
+        def as_sent(name: str) -> str | None:
             column = self.text[name]
             code = column.codes[first]
             return column.values[code] if code >= 0 else None
 
-        def scalar(name):
+        def scalar(name: str) -> float | None:
             column = self.number[name]
             return float(column.value[first]) if column.problem[first] == OK else None
 

@@ -6,10 +6,13 @@ saturation pressures, canonical values and range checks, then the accepted isoth
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
 from .. import adsorbates, units
+from ..adsorbates import Adsorbate
+from ..arrays import BoolArray, FloatArray, IntArray
 from ..isotherm import Batch
 from .accepted import Accepted, Points, non_monotonic_groups, sorted_points
 from .checks import (
@@ -58,14 +61,14 @@ def resolved_text(rows: Rows, name: str, default: str | None) -> Text:
     return Text(codes, values)
 
 
-def unit_index_per_row(column: Text, table: list[str]) -> np.ndarray:
+def unit_index_per_row(column: Text, table: list[str]) -> IntArray:
     """Per-row index into ``table`` of canonical unit names (the column holds only
     checked canonical names), -1 where blank."""
     return per_row(column.codes, [table.index(v) for v in column.values], -1, np.int64)
 
 
-def loading_in_mol_per_kg(values: np.ndarray, unit: np.ndarray, table: list[str], molar_mass,
-                          mass_g) -> np.ndarray:
+def loading_in_mol_per_kg(values: FloatArray, unit: IntArray, table: list[str],
+                          molar_mass: FloatArray, mass_g: FloatArray) -> FloatArray:
     """Per row: the loading ``values`` in mol/kg, each converted from the row's loading
     unit (nan where unknown). The values themselves go through the conversion, not a
     factor per unit, so a power-of-ten conversion is correctly rounded (units module)."""
@@ -82,9 +85,9 @@ class GroupNames:
     """A readable name per isotherm for issues: its id if usable, else a description.
     Built on demand, since only rejected isotherms need one."""
 
-    def __init__(self, rows: Rows, text, gid: np.ndarray):
+    def __init__(self, rows: Rows, text: dict[str, Text], gid: IntArray) -> None:
         self.rows, self.text, self.gid = rows, text, gid
-        self.first_row: np.ndarray | None = None
+        self.first_row: IntArray | None = None
 
     def __getitem__(self, g: int) -> str:
         if self.rows.group_names is not None:
@@ -106,7 +109,8 @@ class GroupNames:
         return "|".join(parts) + f" (from row {self.rows.row_label[r]})"
 
 
-def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limits: Limits) -> Batch:
+def assembled_batch(rows: Rows, settings: dict[str, Any], declared: list[Adsorbate], label: str,
+                    limits: Limits) -> Batch:
     """The checked, converted Batch of ``rows``: the steps below, in this order, since
     the order findings are recorded in is the order of the issues."""
     number, text = _filled_columns(rows, settings)
@@ -148,7 +152,8 @@ def assembled_batch(rows: Rows, settings: dict, declared: list, label: str, limi
     return batch
 
 
-def _filled_columns(rows: Rows, settings: dict) -> tuple[dict[str, Numbers], dict[str, Text]]:
+def _filled_columns(rows: Rows, settings: dict[str, Any]
+                    ) -> tuple[dict[str, Numbers], dict[str, Text]]:
     """Every number and text column, absent ones as all-missing, with the batch-wide
     sample mass and units filled in where a row gives none."""
     n = rows.n_rows
@@ -169,7 +174,7 @@ def _filled_columns(rows: Rows, settings: dict) -> tuple[dict[str, Numbers], dic
     return number, text
 
 
-def _branches(rows: Rows, text: dict[str, Text]) -> tuple[np.ndarray, np.ndarray]:
+def _branches(rows: Rows, text: dict[str, Text]) -> tuple[IntArray, IntArray]:
     """Per row: branch index and grouping key, after splitting CSV/Parquet/Table
     isotherms at their pressure turning point (``text["branch"]`` is updated)."""
     branch, branch_key = branch_codes(text["branch"])
@@ -179,7 +184,8 @@ def _branches(rows: Rows, text: dict[str, Text]) -> tuple[np.ndarray, np.ndarray
     return branch, branch_key
 
 
-def _adsorbates(text: dict[str, Text], declared: list) -> tuple[list, np.ndarray, np.ndarray]:
+def _adsorbates(text: dict[str, Text], declared: list[Adsorbate]
+                ) -> tuple[list[Adsorbate], IntArray, FloatArray]:
     """The distinct known adsorbates, each row's index into them (UNKNOWN_ADSORBATE,
     NO_ADSORBATE) and each row's molar mass (nan where not known)."""
     known = [lookup_adsorbate(v, declared) for v in text["adsorbate"].values]
@@ -198,13 +204,13 @@ class _RowUnits:
 
     pressure_units: list[str]
     loading_units: list[str]
-    pressure: np.ndarray
-    loading: np.ndarray
-    saturation_pressure: np.ndarray
-    loading_sigma: np.ndarray
-    is_relative: np.ndarray
-    pa_per_unit: np.ndarray    # of the pressure (nan: relative or none)
-    p0_row: np.ndarray         # saturation pressure in Pa as each row gives it
+    pressure: IntArray
+    loading: IntArray
+    saturation_pressure: IntArray
+    loading_sigma: IntArray
+    is_relative: BoolArray
+    pa_per_unit: FloatArray    # of the pressure (nan: relative or none)
+    p0_row: FloatArray         # saturation pressure in Pa as each row gives it
 
     @classmethod
     def of(cls, text: dict[str, Text], number: dict[str, Numbers]) -> _RowUnits:
@@ -226,12 +232,13 @@ class _RowUnits:
                    per_row(p_unit, factors, np.nan, float), p0_row)
 
 
-def _isotherm_values(found: Findings, rows: Rows, text, number, branch_key, p0_row, gid,
-                     n_groups: int) -> dict[str, np.ndarray]:
+def _isotherm_values(found: Findings, rows: Rows, text: dict[str, Text],
+                     number: dict[str, Numbers], branch_key: IntArray, p0_row: FloatArray,
+                     gid: IntArray, n_groups: int) -> dict[str, FloatArray]:
     """Per isotherm: each isotherm-level value, which must be the same on every row that
     gives it (``inconsistent_value`` otherwise); nan where no row does."""
     n = rows.n_rows
-    group_value = {}
+    group_value: dict[str, FloatArray] = {}
     for fld, values, given, code in [
         ("sorbent_id", text["sorbent_id"].codes, text["sorbent_id"].codes >= 0, "inconsistent_value"),
         ("adsorbate", text["adsorbate"].codes, text["adsorbate"].codes >= 0, "inconsistent_value"),
@@ -245,15 +252,16 @@ def _isotherm_values(found: Findings, rows: Rows, text, number, branch_key, p0_r
          number["surface_area_m2_per_g"].problem == OK, "inconsistent_value"),
     ]:
         low, high = group_range(values.astype(float), given, gid, n_groups)
-        found.groups_where(high > low, fld, code,
-                           lambda g, f=fld: f"rows of this isotherm give different values for "
-                                            f"{rows.field_name(f, g)!r}")
+        def differ(g: int, f: str = fld) -> str:
+            return f"rows of this isotherm give different values for {rows.field_name(f, g)!r}"
+        found.groups_where(high > low, fld, code, differ)
         group_value[fld] = np.where(np.isfinite(low), low, np.nan)
     return group_value
 
 
-def _unit_and_count_checks(found: Findings, rows: Rows, number, unit: _RowUnits, gid,
-                           n_groups: int, limits: Limits) -> tuple[np.ndarray, np.ndarray]:
+def _unit_and_count_checks(found: Findings, rows: Rows, number: dict[str, Numbers],
+                           unit: _RowUnits, gid: IntArray, n_groups: int,
+                           limits: Limits) -> tuple[IntArray, FloatArray]:
     """Record missing units (one per quantity and isotherm: a JSON isotherm's own, else
     the batch's), a partial loading_sigma and too many points; return the points and
     the points with a sigma per isotherm."""
@@ -264,11 +272,14 @@ def _unit_and_count_checks(found: Findings, rows: Rows, number, unit: _RowUnits,
             ("saturation_pressure", unit.saturation_pressure,
              number["saturation_pressure"].problem == OK)):
         missing = np.bincount(gid, weights=needed & (index < 0), minlength=n_groups) > 0
-        found.groups_where(missing, quantity, "missing_unit",
-                           lambda g, q=quantity: missing_unit(q, rows.field_name(q, g)))
+        def no_unit(g: int, q: str = quantity) -> str:
+            return missing_unit(q, rows.field_name(q, g))
+        found.groups_where(missing, quantity, "missing_unit", no_unit)
 
     sigma_given = number["loading_sigma"].problem == OK
-    n_sigma = np.bincount(gid, weights=sigma_given, minlength=n_groups)
+    # numpy's stub gives bincount an intp result; with weights it is float64
+    n_sigma: FloatArray = np.bincount(gid, weights=sigma_given,  # type: ignore[assignment]
+                                      minlength=n_groups)
     counts = np.bincount(gid, minlength=n_groups)
     found.groups_where((n_sigma > 0) & (n_sigma < counts), "loading_sigma", "missing_value",
                        lambda g: "loading_sigma is given for some points but not all")
@@ -277,8 +288,10 @@ def _unit_and_count_checks(found: Findings, rows: Rows, number, unit: _RowUnits,
     return counts, n_sigma
 
 
-def _saturation_pressures(found: Findings, number, group_value, table: list, ads, unit: _RowUnits,
-                          gid, n_groups: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _saturation_pressures(found: Findings, number: dict[str, Numbers],
+                          group_value: dict[str, FloatArray], table: list[Adsorbate],
+                          ads: IntArray, unit: _RowUnits, gid: IntArray,
+                          n_groups: int) -> tuple[FloatArray, BoolArray, IntArray]:
     """Per isotherm: the saturation pressure in Pa (given, else from the property table;
     nan if neither), whether its pressures are relative, and its adsorbate's index
     (-1: none); a relative isotherm without one is ``missing_saturation_pressure``."""
@@ -302,7 +315,8 @@ def _saturation_pressures(found: Findings, number, group_value, table: list, ads
     return p0_g, relative_g, ads_index_g
 
 
-def _sample_mass_check(found: Findings, number, group_value, unit: _RowUnits, gid,
+def _sample_mass_check(found: Findings, number: dict[str, Numbers],
+                       group_value: dict[str, FloatArray], unit: _RowUnits, gid: IntArray,
                        n_groups: int) -> None:
     """An isotherm whose loading (or sigma) is an absolute amount needs a sample mass."""
     sigma_given = number["loading_sigma"].problem == OK
@@ -317,8 +331,9 @@ def _sample_mass_check(found: Findings, number, group_value, unit: _RowUnits, gi
                                  "to express it per mass of sorbent")
 
 
-def _canonical_points(found: Findings, number, unit: _RowUnits, p0_g, molar_mass, group_value,
-                      gid, n_groups: int) -> Points:
+def _canonical_points(found: Findings, number: dict[str, Numbers], unit: _RowUnits,
+                      p0_g: FloatArray, molar_mass: FloatArray,
+                      group_value: dict[str, FloatArray], gid: IntArray, n_groups: int) -> Points:
     """Every point in Pa and mol/kg, sorted per isotherm by pressure, after recording
     the values above their physical bounds (``out_of_range``)."""
     mass_g = group_value["sample_mass_g"]
@@ -345,7 +360,7 @@ def _canonical_points(found: Findings, number, unit: _RowUnits, p0_g, molar_mass
     return sorted_points(gid, n_groups, pressure_pa, loading, sigma)
 
 
-def _add_accepted(batch: Batch, build: Accepted, accepted: np.ndarray, names: GroupNames,
+def _add_accepted(batch: Batch, build: Accepted, accepted: IntArray, names: GroupNames,
                   label: str) -> None:
     """Append one Isotherm per accepted group; one that cannot be built, or whose derived
     id repeats an earlier one, is rejected instead."""

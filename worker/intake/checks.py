@@ -3,9 +3,12 @@ branch) and the physical-range checks after conversion.
 """
 from __future__ import annotations
 
+from collections.abc import Callable, Sequence
+
 import numpy as np
 
 from .. import adsorbates
+from ..arrays import BoolArray, FloatArray, IntArray
 from ..csvcodec import formula_problem
 from .issues import Findings, short
 from .rows import (
@@ -17,13 +20,17 @@ from .rows import (
     NUMBER_FIELDS,
     OK,
     UNITS_HINT,
+    Numbers,
     Rows,
+    Text,
     per_row,
 )
 from .source import character_problem, id_problem
 
 
-def range_checks(found: Findings, number: dict, unit_names: dict, canonical: dict) -> None:
+def range_checks(found: Findings, number: dict[str, Numbers],
+                 unit_names: dict[str, tuple[list[str], IntArray]],
+                 canonical: dict[str, tuple[FloatArray, str, float]]) -> None:
     """Record ``out_of_range`` for every usable value whose canonical form is above its
     physical bound (``sorbrank.worker.units``), infinite after an overflowing conversion
     included: the message gives the value as sent with its unit and what it became."""
@@ -33,9 +40,11 @@ def range_checks(found: Findings, number: dict, unit_names: dict, canonical: dic
             mask = (sent.problem == OK) & (converted > bound)
         table, unit_index = unit_names.get(name, (None, None))
 
-        def detail(i, sent=sent, converted=converted, canon=canon, bound=bound, table=table,
-                   unit_index=unit_index):
-            unit = canon if table is None else (table[unit_index[i]] if unit_index[i] >= 0 else "")
+        def detail(i: int, sent: Numbers = sent, converted: FloatArray = converted,
+                   canon: str = canon, bound: float = bound, table: list[str] | None = table,
+                   unit_index: IntArray | None = unit_index) -> str:
+            unit = canon if table is None or unit_index is None else (
+                table[unit_index[i]] if unit_index[i] >= 0 else "")
             given = f"{sent.value[i]:g} {unit}"
             if unit == canon:
                 return f"{given} is above the limit {bound:g} {canon}"
@@ -52,7 +61,7 @@ def missing_unit(quantity: str, sent_as: str) -> str:
     return f"no unit for {sent_as!r}: {UNITS_HINT}"
 
 
-def missing_p0(gas, temperature_k: float, is_declared: bool) -> str:
+def missing_p0(gas: adsorbates.Adsorbate, temperature_k: float, is_declared: bool) -> str:
     if is_declared:
         why = f"{gas.id} is a declared gas, which has no saturation-pressure table"
     else:
@@ -62,13 +71,25 @@ def missing_p0(gas, temperature_k: float, is_declared: bool) -> str:
             "in a saturation_pressure column (e.g. saturation_pressure_kpa)")
 
 
-def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relative) -> None:
+def row_checks(found: Findings, rows: Rows, text: dict[str, Text], number: dict[str, Numbers],
+               branch: IntArray, ads: IntArray, is_relative: BoolArray) -> None:
     """Record every per-row problem (vectorised; messages built lazily)."""
-    def raw(name):
+    def raw(name: str) -> Callable[[int], str]:
         return lambda i: f"value {short(number[name].raw(i))!r}"
 
-    def not_a_number(name):
-        def detail(i):
+    def missing(sent: str) -> Callable[[int], str]:
+        return lambda i: f"{sent!r} is missing"
+
+    def raw_then(name: str, tail: str) -> Callable[[int], str]:
+        r = raw(name)
+        return lambda i: f"{r(i)} {tail}"
+
+    def bad_value_of(name: str, column: Text,
+                     problems: Sequence[str | None]) -> Callable[[int], str]:
+        return lambda i: f"{name} {short(column.values[column.codes[i]])!r} {problems[column.codes[i]]}"
+
+    def not_a_number(name: str) -> Callable[[int], str]:
+        def detail(i: int) -> str:
             value = str(number[name].raw(i))
             if rows.decimal == ",":
                 note = " (this file's numbers use decimal commas)"
@@ -80,25 +101,23 @@ def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relati
         return detail
 
     for name in ("sorbent_id", "adsorbate"):
-        found.rows_where(text[name].codes == BLANK, name, "missing_value",
-                         lambda i, n=name: f"{n!r} is missing")
+        found.rows_where(text[name].codes == BLANK, name, "missing_value", missing(name))
     for name in NUMBER_FIELDS:
         problem = number[name].problem
         required = name in ("temperature_k", "pressure", "loading")
         sent = rows.column_names.get(name, name)
         if required:
-            found.rows_where(problem == MISSING, name, "missing_value",
-                             lambda i, n=sent: f"{n!r} is missing")
+            found.rows_where(problem == MISSING, name, "missing_value", missing(sent))
         found.rows_where(problem == NOT_NUMBER, name, "not_a_number", not_a_number(name))
         found.rows_where(problem == NOT_FINITE, name, "not_finite",
-                         lambda i, r=raw(name): f"{r(i)} is not finite (NaN or infinity)")
+                         raw_then(name, "is not finite (NaN or infinity)"))
     for name in ("pressure", "loading"):
         found.rows_where(number[name].value < 0, name, "negative_value",
-                         lambda i, r=raw(name): f"{r(i)} is negative")
+                         raw_then(name, "is negative"))
     for name in ("temperature_k", "saturation_pressure", "sample_mass_g", "loading_sigma",
                  "surface_area_m2_per_g"):
         found.rows_where(number[name].value <= 0, name, "non_positive_value",
-                         lambda i, r=raw(name): f"{r(i)} must be greater than zero")
+                         raw_then(name, "must be greater than zero"))
     found.rows_where(is_relative & (number["pressure"].value > 1.0), "pressure",
                      "relative_pressure_above_one",
                      lambda i: f"relative pressure p/p0 = {short(number['pressure'].raw(i))} "
@@ -108,25 +127,21 @@ def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relati
         column = text[name]
         problems = [id_problem(v) for v in column.values]
         bad_value = per_row(column.codes, [p is not None for p in problems], False, bool)
-        found.rows_where(bad_value, name, "invalid_id",
-                         lambda i, c=column, p=problems, n=name:
-                         f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+        found.rows_where(bad_value, name, "invalid_id", bad_value_of(name, column, problems),
+                         once=True)
         # an id the CSV formula guard would rewrite is refused, so that every export
         # (JSON, CSV, Parquet, Arrow) carries it byte for byte
         formula = [None if p is not None else formula_problem(v)
                    for v, p in zip(column.values, problems)]
         found.rows_where(per_row(column.codes, [f is not None for f in formula], False, bool),
-                         name, "formula_start",
-                         lambda i, c=column, f=formula, n=name:
-                         f"{n} {short(c.values[c.codes[i]])!r} {f[c.codes[i]]}", once=True)
-    bad_text = {}
+                         name, "formula_start", bad_value_of(name, column, formula), once=True)
+    bad_text: dict[str, BoolArray] = {}
     for name in ("adsorbate", "branch"):
         column = text[name]
         problems = [character_problem(v, format_characters=False) for v in column.values]
         bad_text[name] = per_row(column.codes, [p is not None for p in problems], False, bool)
         found.rows_where(bad_text[name], name, "invalid_text",
-                         lambda i, c=column, p=problems, n=name:
-                         f"{n} {short(c.values[c.codes[i]])!r} {p[c.codes[i]]}", once=True)
+                         bad_value_of(name, column, problems), once=True)
     adsorbate = text["adsorbate"]
     found.rows_where((ads == UNKNOWN_ADSORBATE) & ~bad_text["adsorbate"], "adsorbate", "unknown_adsorbate",
                      lambda i: unknown_adsorbate(adsorbate.values[adsorbate.codes[i]]), once=True)
@@ -139,7 +154,8 @@ def row_checks(found: Findings, rows: Rows, text, number, branch, ads, is_relati
 UNKNOWN_ADSORBATE, NO_ADSORBATE = -1, -2
 
 
-def lookup_adsorbate(name: str, declared: list):
+def lookup_adsorbate(name: str, declared: list[adsorbates.Adsorbate]
+                     ) -> adsorbates.Adsorbate | None:
     """The Adsorbate called ``name``: a gas declared for this batch or one of the table."""
     return adsorbates.lookup(name, declared=declared) if declared else adsorbates.lookup(name)
 

@@ -8,6 +8,7 @@ import math
 from typing import Any
 
 from .. import units
+from ..adsorbates import Adsorbate
 from ..csvcodec import formula_problem
 from ..isotherm import Conditions, MixtureRequest
 from .checks import lookup_adsorbate, unknown_adsorbate
@@ -26,8 +27,8 @@ MAX_REFERENCE_PRESSURES = 32
 CONDITION_TEMPERATURES = ("adsorption_temperature_k", "desorption_temperature_k")
 
 
-def pressure_keys(raw: dict, bases: tuple, others: tuple, settings: dict, where: str, label: str,
-                   code: str) -> dict[str, tuple[Any, float]]:
+def pressure_keys(raw: object, bases: tuple[str, ...], others: tuple[str, ...],
+                  settings: dict[str, Any], where: str, label: str, code: str) -> dict[str, tuple[Any, float]]:
     """{base: (value, Pa per unit)} for keys ``base`` (in the declared pressure unit) or
     ``base_<token>``; any other key outside ``others`` is an error."""
     if not isinstance(raw, dict):
@@ -69,13 +70,13 @@ def pressure_keys(raw: dict, bases: tuple, others: tuple, settings: dict, where:
     return out
 
 
-def read_conditions(raw: Any, settings: dict, label: str) -> Conditions:
+def read_conditions(raw: Any, settings: dict[str, Any], label: str) -> Conditions:
     if raw is None:
         return Conditions()
     where = "conditions"
     pressures = pressure_keys(raw, CONDITION_PRESSURES, CONDITION_TEMPERATURES, settings, where,
                                label, "invalid_conditions")
-    out = {}
+    out: dict[str, float | tuple[float, ...]] = {}
     for key, minimum in (("adsorption_pressure", "positive"), ("desorption_pressure", "non_negative")):
         if key in pressures:
             value, pa_per_unit = pressures[key]
@@ -104,7 +105,8 @@ def read_conditions(raw: Any, settings: dict, label: str) -> Conditions:
     return conditions
 
 
-def read_mixtures(raw: Any, settings: dict, declared: list, label: str) -> list[MixtureRequest]:
+def read_mixtures(raw: Any, settings: dict[str, Any], declared: list[Adsorbate],
+                  label: str) -> list[MixtureRequest]:
     if raw is None:
         return []
     if not isinstance(raw, list):

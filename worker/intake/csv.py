@@ -112,10 +112,10 @@ def wrong_delimiter(header_line: str, delimiter: str, given: bool, label: str) -
     """An error naming the delimiter the header seems to use, when that is why the
     required columns are missing; None when the split itself looks right."""
     others = {d: header_line.count(d) for d in (",", ";", "\t", "|")}
-    seen = max(others, key=others.get)
+    seen = max(others, key=others.__getitem__)
     if others[seen] == 0 or seen == delimiter or others[seen] <= header_line.count(delimiter):
         return None
-    def name(d):
+    def name(d: str) -> str:
         return CSV_DELIMITERS.get(d, repr(d))
     n_fields = len(header_names(header_line, delimiter))
     if given:
@@ -180,7 +180,7 @@ def rows_from_csv(data: bytes, text: str, label: str, limits: Limits,
     blank_skipped = [0]
     bad_rows: list[str] = []
 
-    def on_invalid_row(row) -> str:
+    def on_invalid_row(row: pcsv.InvalidRow) -> str:
         if not row.text.strip():
             blank_skipped[0] += 1
             return "skip"

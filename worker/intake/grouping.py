@@ -7,10 +7,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from ..arrays import BoolArray, FloatArray, IntArray
 from .rows import BLANK, BRANCHES, OK, Rows, Text, per_row
 
 
-def group_range(values: np.ndarray, given: np.ndarray, gid: np.ndarray, n_groups: int):
+def group_range(values: FloatArray, given: BoolArray, gid: IntArray,
+                n_groups: int) -> tuple[FloatArray, FloatArray]:
     """Per-group (min, max) of ``values`` over rows where ``given``; (inf, -inf) if none."""
     low = np.full(n_groups, np.inf)
     high = np.full(n_groups, -np.inf)
@@ -19,20 +21,20 @@ def group_range(values: np.ndarray, given: np.ndarray, gid: np.ndarray, n_groups
     return low, high
 
 
-def codes_by_appearance(values: np.ndarray) -> tuple[np.ndarray, int]:
+def codes_by_appearance(values: FloatArray | IntArray) -> tuple[IntArray, int]:
     """Small integer codes for ``values`` numbered by first appearance (nan -> -1)."""
     encoded = pc.dictionary_encode(pa.array(values, from_pandas=True))
     codes = encoded.indices.fill_null(-1).to_numpy(zero_copy_only=False).astype(np.int64)
     return codes, len(encoded.dictionary)
 
 
-def grouping(rows: Rows, branch_key: np.ndarray) -> tuple[np.ndarray, int]:
+def grouping(rows: Rows, branch_key: IntArray) -> tuple[IntArray, int]:
     """Group index per row (groups numbered by first appearance) and group count."""
     if rows.group is not None:
         return rows.group, rows.n_groups
     n = rows.n_rows
     temperature_code, _ = codes_by_appearance(rows.numbers["temperature_k"].value)
-    key = np.zeros(n, dtype=np.int64)
+    key: IntArray = np.zeros(n, dtype=np.int64)
     for column in (rows.text["sorbent_id"].codes, rows.text["adsorbate"].codes,
                    temperature_code, branch_key):
         # re-coding after each step keeps the combined key below n: no overflow
@@ -43,7 +45,7 @@ def grouping(rows: Rows, branch_key: np.ndarray) -> tuple[np.ndarray, int]:
     return codes_by_appearance(key)
 
 
-def branch_codes(column: Text) -> tuple[np.ndarray, np.ndarray]:
+def branch_codes(column: Text) -> tuple[IntArray, IntArray]:
     """Per row: index into BRANCHES (blank means adsorption, -1 unknown) and the
     grouping key (unknown values keep a key of their own)."""
     branch = per_row(column.codes, [BRANCHES.index(v.lower()) if v.lower() in BRANCHES else -1
@@ -55,7 +57,7 @@ def branch_codes(column: Text) -> tuple[np.ndarray, np.ndarray]:
 MIN_BRANCH_PRESSURES = 3
 
 
-def split_at_turning_point(rows: Rows, text: dict, gid: np.ndarray) -> Text:
+def split_at_turning_point(rows: Rows, text: dict[str, Text], gid: IntArray) -> Text:
     """The branch column with "desorption" on the rows after the pressure turning point
     of every isotherm that qualifies (module docstring: branches from the pressure
     sequence); the column as it was where none does."""
@@ -96,7 +98,8 @@ def split_at_turning_point(rows: Rows, text: dict, gid: np.ndarray) -> Text:
     return Text(codes, values)
 
 
-def duplicate_ids(text, gid, n_groups: int, ids_per_group: bool) -> np.ndarray:
+def duplicate_ids(text: dict[str, Text], gid: IntArray, n_groups: int,
+                  ids_per_group: bool) -> BoolArray:
     """Groups whose given isotherm_id an earlier group already used (JSON only:
     CSV rows with one id form one group by construction)."""
     duplicate = np.zeros(n_groups, dtype=bool)

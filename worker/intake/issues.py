@@ -4,10 +4,12 @@ package docstring).
 """
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any, Callable
+from collections.abc import Iterable
+from typing import TYPE_CHECKING, Any, Callable, SupportsInt
 
 import numpy as np
 
+from ..arrays import BoolArray, IntArray
 from ..isotherm import IntakeError, Issue
 from .rows import MAX_ISSUES_PER_ISOTHERM, OLD_SPELLINGS, Rows
 
@@ -43,7 +45,7 @@ def echo(value: str, limit: int = 80) -> str:
     return f"{value[:limit]!r}... ({len(value)} characters)"
 
 
-def nearest(name: str, choices) -> str | None:
+def nearest(name: str, choices: Iterable[str]) -> str | None:
     import difflib
     match = difflib.get_close_matches(str(name), list(choices), n=1, cutoff=0.6)
     return match[0] if match else None
@@ -58,14 +60,14 @@ def old_spelling(name: str, where: str, label: str) -> IntakeError:
 class Findings:
     """Problems found so far: per row (arrays) and per isotherm."""
 
-    def __init__(self, rows: Rows, gid: np.ndarray, n_groups: int):
+    def __init__(self, rows: Rows, gid: IntArray, n_groups: int) -> None:
         self.rows = rows
         self.gid = gid
         self.n_groups = n_groups
-        self.row_checks: list[tuple[np.ndarray, str, str, Callable[[int], str], bool]] = []
+        self.row_checks: list[tuple[IntArray, str, str, Callable[[int], str], bool]] = []
         self.group_checks: list[tuple[int, str | None, str, str]] = []
 
-    def rows_where(self, mask: np.ndarray, fld: str, code: str, detail: Callable[[int], str],
+    def rows_where(self, mask: BoolArray, fld: str, code: str, detail: Callable[[int], str],
                    once: bool = False) -> None:
         """Record ``code`` for every row in ``mask`` (only the first per isotherm if ``once``)."""
         index = np.flatnonzero(mask)
@@ -76,12 +78,12 @@ class Findings:
             index = index[first]
         self.row_checks.append((index, fld, code, detail, once))
 
-    def groups_where(self, mask: np.ndarray, fld: str | None, code: str,
+    def groups_where(self, mask: BoolArray, fld: str | None, code: str,
                      detail: Callable[[int], str]) -> None:
         for g in np.flatnonzero(mask):
             self.group_checks.append((int(g), fld, code, detail(int(g))))
 
-    def bad_groups(self) -> np.ndarray:
+    def bad_groups(self) -> BoolArray:
         bad = np.zeros(self.n_groups, dtype=bool)
         for index, *_ in self.row_checks:
             bad[self.gid[index]] = True
@@ -90,7 +92,8 @@ class Findings:
         return bad
 
 
-def issue(label: str, isotherm: str, row, fld, code: str, detail: str) -> Issue:
+def issue(label: str, isotherm: str, row: SupportsInt | None, fld: str | None, code: str,
+          detail: str) -> Issue:
     isotherm, fld = printable(isotherm), None if fld is None else printable(fld)
     where = [f"batch {label!r}", f"isotherm {isotherm!r}"]
     if row is not None:
@@ -106,17 +109,16 @@ def issue_list(found: Findings, names: GroupNames, label: str) -> list[Issue]:
     per_group: dict[int, list[Issue]] = {}
     total = np.zeros(found.n_groups, dtype=np.int64)
 
-    def add(g: int, row, fld, code, detail_fn) -> None:
+    def add(g: int, fld: str | None, code: str, text: str) -> None:
         total[g] += 1
         bucket = per_group.setdefault(g, [])
         if len(bucket) < MAX_ISSUES_PER_ISOTHERM:
-            bucket.append(issue(label, names[g], row, found.rows.field_name(fld, g), code,
-                                 detail_fn()))
+            bucket.append(issue(label, names[g], None, found.rows.field_name(fld, g), code, text))
 
-    for g, fld, code, detail in found.rows.group_issues:
-        add(g, None, fld, code, lambda d=detail: d)
-    for g, fld, code, detail in found.group_checks:
-        add(g, None, fld, code, lambda d=detail: d)
+    for g, fld, code, text in found.rows.group_issues:
+        add(g, fld, code, text)
+    for g, fld, code, text in found.group_checks:
+        add(g, fld, code, text)
     for index, fld, code, detail, once in found.row_checks:
         per_isotherm = fld in found.rows.isotherm_level
         # keep only rows that still fit under the cap, without a loop over all of them

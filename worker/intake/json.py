@@ -5,11 +5,13 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Callable
 from typing import Any
 
 import numpy as np
 
 from .. import units
+from ..arrays import FloatArray, IntArray
 from .issues import batch_error, nearest, old_spelling, short
 from .rows import (
     BLANK,
@@ -100,7 +102,7 @@ def json_number(value: Any) -> tuple[float, int]:
     return (number, OK) if math.isfinite(number) else (math.nan, NOT_FINITE)
 
 
-def json_numbers(values: list) -> tuple[np.ndarray, np.ndarray]:
+def json_numbers(values: list[Any]) -> tuple[FloatArray, IntArray]:
     if set(map(type, values)) <= {int, float}:  # bool is excluded: its type is bool
         try:
             array = np.array(values, dtype=float)
@@ -125,7 +127,7 @@ class JsonRows:
     ARRAYS = ("pressure", "loading", "loading_sigma")
     UNIT_TEXT = tuple(UNIT_FIELD.values())
 
-    def __init__(self, limits: Limits, label: str):
+    def __init__(self, limits: Limits, label: str) -> None:
         self.limits = limits
         self.label = label
         self.total_points = 0
@@ -133,9 +135,9 @@ class JsonRows:
         self.text_code: dict[str, list[int]] = {f: [] for f in self.text_fields}
         self.text_values: dict[str, dict[str, int]] = {f: {} for f in self.text_fields}
         self.scalar: dict[str, list[tuple[float, int]]] = {f: [] for f in self.SCALAR_NUMBERS}
-        self.scalar_raw: dict[str, list] = {f: [] for f in self.SCALAR_NUMBERS}
-        self.array: dict[str, list[tuple[np.ndarray, np.ndarray]]] = {f: [] for f in self.ARRAYS}
-        self.array_raw: dict[str, list] = {f: [] for f in self.ARRAYS}
+        self.scalar_raw: dict[str, list[Any]] = {f: [] for f in self.SCALAR_NUMBERS}
+        self.array: dict[str, list[tuple[FloatArray, IntArray]]] = {f: [] for f in self.ARRAYS}
+        self.array_raw: dict[str, list[list[Any]]] = {f: [] for f in self.ARRAYS}
         self.n_points: list[int] = []
         self.names: list[str] = []
         self.column_names: list[dict[str, str]] = []
@@ -195,14 +197,17 @@ class JsonRows:
         own_units = {**self._own_units(index, item), **key_units}
         arrays = {q: self._array(index, q, keys.get(q), item) for q in self.ARRAYS}
         pressure_key = keys.get("pressure", "pressure")
-        n = min(len(arrays["pressure"]), len(arrays["loading"]))
+        pressures = arrays["pressure"] or []    # only loading_sigma is ever None
+        n = min(len(pressures), len(arrays["loading"] or []))
         for q in ("loading", "loading_sigma"):
-            if arrays[q] is not None and len(arrays[q]) != len(arrays["pressure"]):
+            given = arrays[q]
+            if given is not None and len(given) != len(pressures):
                 self.issues.append((index, q, "length_mismatch",
-                                    f"{keys.get(q, q)!r} has {len(arrays[q])} values, "
-                                    f"{pressure_key!r} has {len(arrays['pressure'])}"))
-        if arrays["loading_sigma"] is not None:
-            n = min(n, len(arrays["loading_sigma"]))
+                                    f"{keys.get(q, q)!r} has {len(given)} values, "
+                                    f"{pressure_key!r} has {len(pressures)}"))
+        sigmas = arrays["loading_sigma"]
+        if sigmas is not None:
+            n = min(n, len(sigmas))
         if n > self.limits.max_points_per_isotherm:
             self.issues.append((index, None, "too_many_points",
                                 f"{n} points, limit {self.limits.max_points_per_isotherm}"))
@@ -232,7 +237,8 @@ class JsonRows:
                 self.array[key].append(json_numbers(values))
             self.array_raw[key].append(values)
 
-    def _array(self, index: int, quantity: str, key: str | None, item: dict) -> list | None:
+    def _array(self, index: int, quantity: str, key: str | None, item: dict[str, Any]
+               ) -> list[Any] | None:
         value = item.get(key) if key is not None else None
         if isinstance(value, list):
             return value
@@ -266,19 +272,26 @@ class JsonRows:
         point = np.arange(group.size) - np.repeat(np.cumsum(counts) - counts, counts)
         text = {k: Text(np.repeat(np.array(self.text_code[k], dtype=np.int64), counts),
                          list(self.text_values[k])) for k in self.text_fields}
+
+        def scalar_as_sent(raw: list[Any]) -> Callable[[int], str]:
+            return lambda i: json_text(raw[group[i]])
+
+        def point_as_sent(raw: list[list[Any]]) -> Callable[[int], str]:
+            return lambda i: json_text(raw[group[i]][point[i]])
+
         numbers = {}
         for k in self.SCALAR_NUMBERS:
             pairs = self.scalar[k]
             numbers[k] = Numbers(
                 np.repeat(np.array([v for v, _ in pairs], dtype=float), counts),
                 np.repeat(np.array([c for _, c in pairs], dtype=np.int8), counts),
-                lambda i, r=self.scalar_raw[k]: json_text(r[group[i]]))
+                scalar_as_sent(self.scalar_raw[k]))
         for k in self.ARRAYS:
             parts = self.array[k]
             numbers[k] = Numbers(
                 np.concatenate([v for v, _ in parts]) if parts else np.empty(0),
                 np.concatenate([c for _, c in parts]) if parts else np.empty(0, np.int8),
-                lambda i, r=self.array_raw[k]: json_text(r[group[i]][point[i]]))
+                point_as_sent(self.array_raw[k]))
         return Rows(source="json", n_rows=int(group.size), text=text, numbers=numbers,
                      row_label=point, group=group, n_groups=len(self.names), group_names=self.names,
                      isotherm_level=frozenset(TEXT_FIELDS + self.SCALAR_NUMBERS + self.UNIT_TEXT),
@@ -293,7 +306,7 @@ def json_text(value: Any) -> str:
         return "(unprintable value)"
 
 
-def read_json(data: bytes, label: str, limits: Limits, options: dict) -> Rows:
+def read_json(data: bytes, label: str, limits: Limits, options: dict[str, Any]) -> Rows:
     return rows_from_json(parsed_json(decoded(data, label), label, limits), label, limits)
 
 

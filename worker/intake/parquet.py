@@ -3,6 +3,8 @@ read, then the known columns go through the table reader.
 """
 from __future__ import annotations
 
+from typing import Any
+
 import pyarrow as pa
 import pyarrow.parquet as pq
 
@@ -41,7 +43,7 @@ def arrow_message(exc: Exception) -> str:
     return short(str(exc).strip().split("\n", 1)[0], 200)
 
 
-def read_parquet(data: bytes, label: str, limits: Limits, options: dict) -> Rows:
+def read_parquet(data: bytes, label: str, limits: Limits, options: dict[str, Any]) -> Rows:
     return rows_from_parquet(data, label, limits)
 
 

@@ -16,11 +16,13 @@ rows without a value an explicit ``missing`` entry.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any, Callable
+from collections.abc import Sequence
+from typing import Any, Callable, overload
 
 import numpy as np
 
 from .. import units
+from ..arrays import BoolArray, FloatArray, IntArray, ObjectArray
 
 
 @dataclass(frozen=True)
@@ -117,7 +119,17 @@ OK, MISSING, NOT_NUMBER, NOT_FINITE = 0, 1, 2, 3
 BLANK, WRONG_TYPE = -1, -3
 
 
-def per_row(codes: np.ndarray, per_value, missing, dtype) -> np.ndarray:
+@overload
+def per_row(codes: IntArray, per_value: Sequence[bool], missing: bool,
+            dtype: type[bool]) -> BoolArray: ...
+@overload
+def per_row(codes: IntArray, per_value: Sequence[int], missing: int,
+            dtype: type[np.int64]) -> IntArray: ...
+@overload
+def per_row(codes: IntArray, per_value: Sequence[float], missing: float,
+            dtype: type[float]) -> FloatArray: ...
+def per_row(codes: IntArray, per_value: Sequence[float], missing: float,
+            dtype: type[bool] | type[np.int64] | type[float]) -> BoolArray | IntArray | FloatArray:
     """Per row: ``per_value[code]``, and ``missing`` where the code is negative (no value:
     ``BLANK``, ``WRONG_TYPE``, or -1 for "none" in an index array)."""
     table = np.append(np.asarray(per_value, dtype=dtype), np.asarray(missing, dtype=dtype))
@@ -126,14 +138,14 @@ def per_row(codes: np.ndarray, per_value, missing, dtype) -> np.ndarray:
 
 @dataclass
 class Text:
-    codes: np.ndarray          # per row: index into values, BLANK or WRONG_TYPE
+    codes: IntArray            # per row: index into values, BLANK or WRONG_TYPE
     values: list[str]
 
 
 @dataclass
 class Numbers:
-    value: np.ndarray          # float64, nan unless problem == OK
-    problem: np.ndarray        # int8 problem code per row
+    value: FloatArray          # nan unless problem == OK
+    problem: IntArray          # int8 problem code per row
     raw: Callable[[int], Any]  # row -> value as sent, for messages
 
 
@@ -143,11 +155,11 @@ class Rows:
     n_rows: int
     text: dict[str, Text]
     numbers: dict[str, Numbers]
-    row_label: np.ndarray
-    group: np.ndarray | None = None            # JSON: isotherm index per row
+    row_label: IntArray | ObjectArray
+    group: IntArray | None = None              # JSON: isotherm index per row
     n_groups: int = 0
     group_names: list[str] | None = None
-    isotherm_level: frozenset = frozenset()    # fields reported with row None
+    isotherm_level: frozenset[str] = frozenset()    # fields reported with row None
     group_issues: list[tuple[int, str | None, str, str]] = field(default_factory=list)
     settings: dict[str, Any] = field(default_factory=dict)
     column_names: dict[str, str] = field(default_factory=dict)   # internal name -> as sent
@@ -156,6 +168,10 @@ class Rows:
     # JSON: the top-level conditions and mixtures as sent, read after assembly
     requests: dict[str, Any] | None = None
 
+    @overload
+    def field_name(self, fld: str, g: int) -> str: ...
+    @overload
+    def field_name(self, fld: None, g: int) -> None: ...
     def field_name(self, fld: str | None, g: int) -> str | None:
         """The column (or JSON key) the sender used for internal field ``fld``."""
         if fld is None:

@@ -9,6 +9,7 @@ import math
 import unicodedata
 from dataclasses import dataclass
 from pathlib import Path
+from collections.abc import Sequence
 from typing import Any, Callable
 
 import pyarrow as pa
@@ -18,8 +19,11 @@ from ..csvcodec import formula_problem
 from .issues import batch_error, echo, nearest, old_spelling, short
 from .rows import MAX_ID_CHARS, OLD_SPELLINGS, SETTINGS, Limits, Rows
 
+# what ``read_batch`` reads (anything else is refused as unsupported_source)
+Source = bytes | bytearray | memoryview | str | Path | pa.Table
 
-def source_bytes(source, batch_label: str | None, limits: Limits) -> bytes:
+
+def source_bytes(source: object, batch_label: str | None, limits: Limits) -> bytes:
     label = batch_label or "(unlabelled)"
     if isinstance(source, Path):
         try:
@@ -89,7 +93,7 @@ def register_reader(reader: Reader) -> Reader:
     return reader
 
 
-def format_of(source, data: bytes, fmt: str | None, label: str) -> str:
+def format_of(source: object, data: bytes, fmt: str | None, label: str) -> str:
     """The name of the registered file format ``data`` is in: ``fmt`` if given, else
     by the path's suffix, else by content."""
     file_readers = [r for r in READERS.values() if r.from_bytes]
@@ -163,9 +167,9 @@ def units_setting(value: Any, where: str, fld: str, label: str) -> dict[str, str
         raise batch_error(label, "invalid_setting", f"{where}: {exc}", fld=fld)
 
 
-def declared_gases(raw: list, label: str) -> list:
+def declared_gases(raw: Sequence[object], label: str) -> list[adsorbates.Adsorbate]:
     """The Adsorbates declared for this batch (argument first, then the file's)."""
-    declared = []
+    declared: list[adsorbates.Adsorbate] = []
     for i, item in enumerate(raw):
         fld = f"gases[{i}]"
         if not isinstance(item, dict):

@@ -4,6 +4,7 @@ that the CSV and Parquet readers share.
 from __future__ import annotations
 
 import json
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -148,7 +149,7 @@ def numbers_from_strings(strings: pa.Array, decimal: str = ".") -> Numbers:
     problem[finite & ~np.isfinite(value)] = NOT_FINITE          # e.g. 1e999
     problem[pc.equal(strings, "").to_numpy(zero_copy_only=False)] = MISSING
     value[problem != OK] = np.nan
-    return Numbers(value, problem, lambda i, s=strings: s[i].as_py())
+    return Numbers(value, problem, lambda i: strings[i].as_py())
 
 
 def numbers_from_arrow_numeric(column: pa.Array) -> Numbers:
@@ -159,7 +160,7 @@ def numbers_from_arrow_numeric(column: pa.Array) -> Numbers:
     problem[~np.isfinite(value)] = NOT_FINITE
     problem[column.is_null().to_numpy(zero_copy_only=False)] = MISSING
     value[problem != OK] = np.nan
-    return Numbers(value, problem, lambda i, c=column: c[i].as_py())
+    return Numbers(value, problem, lambda i: column[i].as_py())
 
 
 def rows_from_arrow_table(table: pa.Table, source: str, label: str, limits: Limits) -> Rows:
@@ -193,7 +194,7 @@ def rows_from_arrow_table(table: pa.Table, source: str, label: str, limits: Limi
     return rows
 
 
-def read_table(table: pa.Table, label: str, limits: Limits, options: dict) -> Rows:
+def read_table(table: pa.Table, label: str, limits: Limits, options: dict[str, Any]) -> Rows:
     return rows_from_arrow_table(table, "table", label, limits)
 
 
