@@ -10,7 +10,7 @@ import posixpath
 import re
 import secrets
 from datetime import datetime, timezone
-from pathlib import Path, PurePosixPath
+from pathlib import Path, PurePath, PurePosixPath
 from typing import Any, Callable
 
 import orjson
@@ -104,7 +104,7 @@ def _json_default(value: Any) -> Any:
     raise TypeError(f"cannot store {type(value).__name__} as JSON")
 
 
-def original_json(original: dict) -> str:
+def original_json(original: dict[str, Any]) -> str:
     """An isotherm's as-sent values as JSON text (keys sorted; NaN as null).
 
     orjson writes numpy arrays from their buffers; the standard library's
@@ -120,9 +120,9 @@ def _json_bytes(obj: Any) -> bytes:
 
 
 
-def nan_to_none(rows: list[dict]) -> list[dict]:
+def nan_to_none(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
     """JSON has no NaN/inf: report them as null."""
-    def clean(value):
+    def clean(value: Any) -> Any:
         if isinstance(value, float) and (value != value or value in (float("inf"), float("-inf"))):
             return None
         if isinstance(value, list):
@@ -141,35 +141,36 @@ class StoreLayout:
     a local path, a URI pyarrow.fs understands, or a path inside an explicitly
     given ``filesystem``."""
 
-    def __init__(self, root: str | os.PathLike, filesystem: pafs.FileSystem | None = None):
+    def __init__(self, root: str | os.PathLike[str],
+                 filesystem: pafs.FileSystem | None = None) -> None:
         self.fs, self.base = fs.open_root(root, filesystem)
         local = fs.is_local(self.fs)
         # local stores hand out real Paths; elsewhere paths are pure names
-        self._path_type = Path if local else PurePosixPath
+        self._path_type: type[PurePath] = Path if local else PurePosixPath
         # what recreates this store in another process (str(root))
         self.root = Path(self.base) if local else os.fspath(root)
         self._accepted: set[str] = set()  # batch ids whose manifest was seen
         # batch id -> (adsorption, desorption pressure) from its manifest, written once
         self._batch_pressures: dict[str, tuple[float, float] | None] = {}
 
-    def _join(self, *parts: str):
+    def _join(self, *parts: str) -> PurePath:
         return self._path_type(posixpath.join(self.base, *parts))
 
     # paths: every one is built from a validated batch id and an int
-    def table_path(self, table: str, batch_id: str, chunk_index: int) -> Path:
+    def table_path(self, table: str, batch_id: str, chunk_index: int) -> PurePath:
         if table not in TABLES:
             raise ValueError(f"unknown table {table!r}")
         return self._join(table, f"batch_id={_check_batch_id(batch_id)}",
                           f"chunk-{int(chunk_index):05d}.parquet")
 
-    def batch_dir(self, batch_id: str) -> Path:
+    def batch_dir(self, batch_id: str) -> PurePath:
         return self._join("batches", _check_batch_id(batch_id))
 
-    def _write_json(self, path, obj: Any) -> None:
+    def _write_json(self, path: PurePath | str, obj: Any) -> None:
         data = _json_bytes(obj)
         fs.atomic_write(self.fs, str(path), lambda fh: fh.write(data))
 
-    def _read_json(self, path) -> Any | None:
+    def _read_json(self, path: PurePath | str) -> Any | None:
         data = fs.read_bytes(self.fs, str(path))
         return None if data is None else json.loads(data)
 
@@ -256,13 +257,13 @@ class StoreLayout:
         return False
 
     # manifests and chunk status
-    def write_manifest(self, manifest: dict) -> None:
+    def write_manifest(self, manifest: dict[str, Any]) -> None:
         self._write_json(self.batch_dir(manifest["batch_id"]) / "manifest.json", manifest)
 
-    def read_manifest(self, batch_id: str) -> dict | None:
+    def read_manifest(self, batch_id: str) -> dict[str, Any] | None:
         return self._read_json(self.batch_dir(batch_id) / "manifest.json")
 
-    def write_chunk_status(self, batch_id: str, chunk_index: int, status: dict) -> None:
+    def write_chunk_status(self, batch_id: str, chunk_index: int, status: dict[str, Any]) -> None:
         self._write_json(self.batch_dir(batch_id) / f"chunk-{int(chunk_index):05d}.json", status)
 
     def remove_chunk_status(self, batch_id: str, chunk_index: int) -> None:
@@ -303,7 +304,7 @@ class StoreLayout:
             return found
         return self._batch_pressures[batch_id]
 
-    def read_chunk_statuses(self, batch_id: str) -> dict[int, dict]:
+    def read_chunk_statuses(self, batch_id: str) -> dict[int, dict[str, Any]]:
         out = {}
         names = sorted(info.base_name for info in fs.list_dir(self.fs, str(self.batch_dir(batch_id)))
                        if _CHUNK_STATUS_PATTERN.fullmatch(info.base_name))
@@ -313,10 +314,10 @@ class StoreLayout:
                 out[int(name[len("chunk-"):-len(".json")])] = status
         return out
 
-    def write_final(self, batch_id: str, final: dict) -> None:
+    def write_final(self, batch_id: str, final: dict[str, Any]) -> None:
         self._write_json(self.batch_dir(batch_id) / "final.json", final)
 
-    def read_final(self, batch_id: str) -> dict | None:
+    def read_final(self, batch_id: str) -> dict[str, Any] | None:
         return self._read_json(self.batch_dir(batch_id) / "final.json")
 
     def batch_ids(self) -> list[str]:
@@ -336,23 +337,25 @@ class StoreLayout:
                    if info.type == pafs.FileType.File)
 
     # idempotency keys (stored by hash: a key is client text, never a path)
-    def _key_path(self, key_hash: str) -> Path:
+    def _key_path(self, key_hash: str) -> PurePath:
         if not _KEY_HASH_PATTERN.fullmatch(key_hash):
             raise ValueError("idempotency key hash must be 64 hex digits")
         return self._join("idempotency", f"{key_hash}.json")
 
-    def read_idempotency(self, key_hash: str) -> dict | None:
+    def read_idempotency(self, key_hash: str) -> dict[str, Any] | None:
         return self._read_json(self._key_path(key_hash))
 
-    def write_idempotency(self, key_hash: str, record: dict) -> None:
+    def write_idempotency(self, key_hash: str, record: dict[str, Any]) -> None:
         self._write_json(self._key_path(key_hash), record)
 
-    def claim_idempotency(self, key_hash: str, record: dict) -> dict:
+    def claim_idempotency(self, key_hash: str, record: dict[str, Any]) -> dict[str, Any] | None:
         """Store ``record`` for the key unless one is there; return the one that holds.
 
         On a local filesystem the complete file is linked into place, and a link
         never replaces an existing name: of two processes racing with one key,
-        exactly one wins (elsewhere see ``fs.create_if_absent``).
+        exactly one wins (elsewhere see ``fs.create_if_absent``). None only when
+        the record that won was deleted before it could be read (the store never
+        deletes one).
         """
         path = str(self._key_path(key_hash))
         if fs.create_if_absent(self.fs, path, json.dumps(record, sort_keys=True).encode()):

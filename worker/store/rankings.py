@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
-from typing import Callable, Iterator
+from typing import Any, Callable, Iterator
 
 import numpy as np
 import pyarrow as pa
@@ -10,6 +10,7 @@ import pyarrow.compute as pc
 import pyarrow.dataset as ds
 
 from .. import adsorbates
+from ..arrays import BoolArray, IntArray
 from .reliability import (_RELIABILITY_RULES, RELIABILITY_OF_SORT, _column_list, condition_sets,
                           conditions_of_sort, reliable_rows, rows_with_flag,
                           with_ranking_columns)
@@ -125,7 +126,7 @@ def _rank(store: "Store", query: RankingQuery) -> tuple[pa.Table, int, pa.Table]
 def _rank_snapshot(snap: TableSnapshot, query: RankingQuery
                    ) -> tuple[pa.Table, int, pa.Table]:
     keys = _rank_keys(snap, query)
-    if keys is not None:
+    if keys is not None and snap.dataset is not None:  # keys imply a dataset
         page, total, ranked = keys
         rows = _whole_rows(snap, page) if page.num_rows else snap.dataset.schema.empty_table()
         if rows is not None:
@@ -161,9 +162,9 @@ def _rank_by_whole_rows(snap: TableSnapshot, query: RankingQuery
     data = snap.dataset
     if data is None:
         return pa.table({}), 0, pa.table({})
-    where = None
+    where: ds.Expression | None = None
 
-    def both(expr):
+    def both(expr: ds.Expression) -> ds.Expression:
         return expr if where is None else where & expr
 
     if query.batch_id is not None:
@@ -179,7 +180,7 @@ def _rank_by_whole_rows(snap: TableSnapshot, query: RankingQuery
     return _ranked_whole_rows(data.to_table(filter=where), query)
 
 
-def _latest_rows(table: pa.Table) -> np.ndarray | None:
+def _latest_rows(table: pa.Table) -> IntArray | None:
     """Latest wins: row indices of one row per sorbent, adsorbate,
     temperature (nearest 1 K) and branch -- the one accepted last, then of
     the larger batch id, then of the smaller isotherm id; nulls lose.
@@ -247,7 +248,7 @@ def _latest_rows(table: pa.Table) -> np.ndarray | None:
     return np.concatenate([order[first & ~has_tie[group_no]], small["row"].to_numpy()[lead]])
 
 
-def _codes(column: pa.Array, ranked: bool = False) -> tuple[np.ndarray, int]:
+def _codes(column: pa.Array, ranked: bool = False) -> tuple[IntArray, int]:
     """Integer code per row (a null gets the largest, ``size``) and the number
     of distinct non-null values; ``ranked``: codes follow the values' order."""
     encoded = pc.dictionary_encode(column)
@@ -329,7 +330,7 @@ def _ranked_whole_rows(table: pa.Table, query: RankingQuery
     return page, total, ranked
 
 
-def _page_of(table: pa.Table, rows: np.ndarray | None, query: RankingQuery) -> tuple[pa.Table, int]:
+def _page_of(table: pa.Table, rows: IntArray | None, query: RankingQuery) -> tuple[pa.Table, int]:
     """The requested page of ``table`` (of its ``rows`` only, when given) in
     ranking order, and how many rows were ranked.
 
@@ -364,6 +365,8 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
     """Rank on the kept key columns: the page as key columns with ``_file``
     and ``_row``; None when the store needs the whole-row path."""
     data, fragments = snap.dataset, snap.fragments
+    if data is None:  # _rank_keys has checked: never here
+        return None
     if snap.own_batch_column:
         return None  # a file carrying its own batch_id: let the dataset reconcile it
     names = [n for n in _RANKING_KEYS if n != "batch_id"]
@@ -377,13 +380,15 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
         values, _ = _RELIABILITY_RULES[reliability]
         names += [n for n in (*values, "quality_flags") if n in data.schema.names and n not in names]
     columns = snap.key_columns(names)
-    lengths = snap.lengths
+    lengths = snap.lengths  # set by key_columns
+    if lengths is None:
+        return None
     file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)
 
     # the filters that choose the competitors, as one mask (null counts as false)
-    mask = None
+    mask: BoolArray | None = None
 
-    def both(condition):
+    def both(condition: pa.Array | pa.ChunkedArray | BoolArray) -> BoolArray:
         condition = np.asarray(condition.fill_null(False).to_numpy(zero_copy_only=False)
                                if not isinstance(condition, np.ndarray) else condition, bool)
         return condition if mask is None else mask & condition
@@ -419,18 +424,21 @@ def _whole_rows(snap: TableSnapshot, page: pa.Table) -> pa.Table | None:
     row groups that hold them, in the page's order; None when the files
     changed under the query."""
     data, fragments = snap.dataset, snap.fragments
+    if data is None:
+        return None
     file_no = page["_file"].to_numpy()
     row_no = page["_row"].to_numpy()
-    subsets, expected = [], []
+    subsets = []
+    pieces: list[IntArray] = []
     for f in np.unique(file_no):
         fragment = fragments[f]
         sizes = np.array([rg.num_rows for rg in fragment.row_groups], dtype=np.int64)
         bounds = np.concatenate([[0], np.cumsum(sizes)])
         groups = np.unique(np.searchsorted(bounds, row_no[file_no == f], side="right") - 1)
         subsets.append(fragment.subset(row_group_ids=[int(g) for g in groups]))
-        expected.extend(f * (1 << 32) + np.arange(bounds[g], bounds[g + 1]) for g in groups)
+        pieces.extend(f * (1 << 32) + np.arange(bounds[g], bounds[g + 1]) for g in groups)
     rows = ds.FileSystemDataset(subsets, data.schema, data.format, data.filesystem).to_table()
-    expected = np.concatenate(expected)
+    expected = np.concatenate(pieces)
     wanted = file_no * (1 << 32) + row_no
     if rows.num_rows != len(expected):
         return None  # the files changed under the query: rank again over whole rows
@@ -452,7 +460,7 @@ class Ranking:
     reliability_column: str | None    # the column that demotes rows for this sort
     # distinct conditions of the sorted figure over every ranked row (not only
     # the page), most rows first: the condition columns and "rows"
-    condition_sets: list[dict]
+    condition_sets: list[dict[str, Any]]
     # the query as applied: its adsorbate in the canonical form intake stores
     query: RankingQuery | None = None
 
@@ -466,7 +474,7 @@ def _readers_page(store: "Store", page: pa.Table) -> pa.Table:
     return with_ranking_columns(page, pressures)
 
 
-def _condition_sets(store: "Store", ranked: pa.Table, query: RankingQuery) -> list[dict]:
+def _condition_sets(store: "Store", ranked: pa.Table, query: RankingQuery) -> list[dict[str, Any]]:
     return condition_sets(ranked, store.batch_pressures, conditions_of_sort(query.sort),
                           abs(query.temperature_tolerance_k))
 
@@ -506,7 +514,7 @@ class RankingStream:
     schema: pa.Schema
     query: RankingQuery       # as applied (canonical adsorbate)
     reliability_column: str | None
-    condition_sets: list[dict]
+    condition_sets: list[dict[str, Any]]
     parts: Iterator[pa.Table]
 
     @property

@@ -1,11 +1,13 @@
 """Which ranked figures the data supports, and the conditions behind them."""
 from __future__ import annotations
 
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+
+from ..arrays import BoolArray, FloatArray
 
 # a saturation capacity whose standard error exceeds this share of it is not
 # ranked on (common practice for "poorly determined", no published source)
@@ -45,7 +47,7 @@ def conditions_of_sort(sort: str) -> tuple[str, ...]:
     return CONDITIONS_OF_SORT.get(sort, ())
 
 
-def rows_with_flag(flags, name: str) -> np.ndarray:
+def rows_with_flag(flags: pa.Array | pa.ChunkedArray, name: str) -> BoolArray:
     """(n,) bool: which rows of a flags column (list of strings, or "a;b" text) hold ``name``."""
     flags = flags.combine_chunks() if isinstance(flags, pa.ChunkedArray) else flags
     if (pa.types.is_list(flags.type) or pa.types.is_large_list(flags.type)) and (
@@ -61,7 +63,7 @@ def rows_with_flag(flags, name: str) -> np.ndarray:
     return np.array([name in _row_flags(f) for f in flags.to_pylist()], dtype=bool)
 
 
-def _float_values(table: pa.Table, name: str) -> np.ndarray:
+def _float_values(table: pa.Table, name: str) -> FloatArray:
     """A column as float64 (null -> NaN); all NaN when the table lacks it."""
     if name not in table.column_names:
         return np.full(table.num_rows, np.nan)
@@ -73,7 +75,7 @@ def _float_values(table: pa.Table, name: str) -> np.ndarray:
                       dtype=np.float64)
 
 
-def reliable_rows(table: pa.Table, reliability: str) -> np.ndarray:
+def reliable_rows(table: pa.Table, reliability: str) -> BoolArray:
     """(n,) bool: the rows whose figure the ``reliability`` rule accepts.
 
     A figure is reliable when it is a finite number, no flag marks it as an
@@ -93,7 +95,7 @@ def reliable_rows(table: pa.Table, reliability: str) -> np.ndarray:
     return ok
 
 
-def _row_flags(value) -> set[str]:
+def _row_flags(value: str | list[str] | None) -> set[str]:
     if value is None:
         return set()
     if isinstance(value, str):  # tolerate flags stored as "a;b"
@@ -102,7 +104,7 @@ def _row_flags(value) -> set[str]:
 
 
 
-def _column_list(table: pa.Table, name: str) -> list:
+def _column_list(table: pa.Table, name: str) -> list[Any]:
     return table[name].to_pylist() if name in table.column_names else [None] * table.num_rows
 
 
@@ -135,8 +137,10 @@ def with_ranking_columns(table: pa.Table, pressures: list[tuple[float, float] | 
     return table
 
 
-def condition_sets(ranked: pa.Table, pressures_of_batch: Callable[[str | None], tuple | None],
-                   names: tuple[str, ...], temperature_tolerance_k: float) -> list[dict]:
+def condition_sets(ranked: pa.Table,
+                   pressures_of_batch: Callable[[str | None], tuple[float, float] | None],
+                   names: tuple[str, ...], temperature_tolerance_k: float
+                   ) -> list[dict[str, Any]]:
     """The distinct values of the condition columns ``names`` over the ranked
     rows (batch_id, temperature_k), with how many rows each holds, most first.
 
@@ -154,14 +158,15 @@ def condition_sets(ranked: pa.Table, pressures_of_batch: Callable[[str | None], 
     if known.size:
         order = known[np.argsort(temperature[known], kind="stable")]
         start = None
+        runs: list[list[float]] = []
         for i in order:
             if start is None or temperature[i] - start > temperature_tolerance_k:
                 start = temperature[i]
-                means.append([])
-            means[-1].append(temperature[i])
-            cluster[i] = len(means) - 1
-        means = [round(float(np.mean(m)), 2) for m in means]
-    counts: dict[tuple, int] = {}
+                runs.append([])
+            runs[-1].append(temperature[i])
+            cluster[i] = len(runs) - 1
+        means = [round(float(np.mean(m)), 2) for m in runs]
+    counts: dict[tuple[float | None, ...], int] = {}
     for batch, c in zip(batches, cluster):
         p = pressures.get(batch)
         values = {"adsorption_pressure_pa": None if p is None else p[0],
