@@ -32,7 +32,7 @@ from .rows import (
 from .source import Reader, decoded, id_problem, register_reader
 
 
-def parsed_json(text: str, label: str, limits: Limits) -> dict:
+def parsed_json(text: str, label: str, limits: Limits) -> dict[str, Any]:
     if len(text) > limits.max_json_bytes:  # characters >= bytes / 4: a cheap, safe bound first
         raise batch_error(label, "input_too_large",
                            f"a JSON batch may hold at most {limits.max_json_bytes} bytes "
@@ -74,7 +74,7 @@ def check_depth(text: str, label: str, max_depth: int) -> None:
                            f"JSON nests deeper than {max_depth} levels")
 
 
-def rows_from_json(doc: dict, label: str, limits: Limits) -> Rows:
+def rows_from_json(doc: dict[str, Any], label: str, limits: Limits) -> Rows:
     items = doc["isotherms"]
     if len(items) > limits.max_isotherms:
         raise batch_error(label, "too_many_isotherms",
@@ -143,7 +143,7 @@ class JsonRows:
         self.column_names: list[dict[str, str]] = []
         self.issues: list[tuple[int, str | None, str, str]] = []
 
-    def _quantity_keys(self, index: int, item: dict) -> tuple[dict[str, str], dict[str, str]]:
+    def _quantity_keys(self, index: int, item: dict[str, Any]) -> tuple[dict[str, str], dict[str, str]]:
         """Per quantity: the key this isotherm uses, and the unit its name carries."""
         keys: dict[str, str] = {}
         key_units: dict[str, str] = {}
@@ -171,7 +171,7 @@ class JsonRows:
                 key_units[quantity] = unit
         return keys, key_units
 
-    def _own_units(self, index: int, item: dict) -> dict[str, str]:
+    def _own_units(self, index: int, item: dict[str, Any]) -> dict[str, str]:
         raw = item.get("units")
         if raw is None:
             return {}

@@ -123,7 +123,7 @@ def decoded(data: bytes, label: str) -> str:
                            f"input is not UTF-8 (invalid byte at offset {exc.start})")
 
 
-def checked_settings(raw: dict, where: str, label: str) -> dict[str, Any]:
+def checked_settings(raw: dict[str, Any], where: str, label: str) -> dict[str, Any]:
     """Return the batch-wide settings in ``raw`` checked and typed: units as
     {quantity: canonical unit}, gases as a list of dicts."""
     if not isinstance(raw, dict):
