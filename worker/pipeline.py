@@ -12,10 +12,13 @@ from __future__ import annotations
 import os
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 import pyarrow as pa
+from numpy.typing import ArrayLike
+
+from .arrays import FloatArray
 
 from .engine import SolverOptions, check_weighting, fit_models, resolve_models
 from .isotherm import DEFAULT_CHUNK_SIZE, Batch
@@ -43,7 +46,7 @@ class FitOptions:
     # the fit engine's tolerances and switches; every caller keeps the defaults
     solver: SolverOptions = field(default_factory=SolverOptions)
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if self.criterion not in CRITERIA:
             raise ValueError(f"criterion must be one of {', '.join(CRITERIA)}; got {self.criterion!r}")
         if not isinstance(self.absolute_sigma, bool):
@@ -72,9 +75,9 @@ class BatchResult:
     packed: Packed
     fits: dict[str, ModelFits]
     selection: Selection
-    linearized: dict[str, np.ndarray]        # q_sat_mol_per_kg, affinity_per_pa (double reciprocal)
+    linearized: dict[str, FloatArray]        # q_sat_mol_per_kg, affinity_per_pa (double reciprocal)
     summary: dict[str, np.ndarray] = field(default_factory=dict)   # metric columns, length n
-    sorbent_rows: list[dict] = field(default_factory=list)
+    sorbent_rows: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def n(self) -> int:
@@ -87,12 +90,12 @@ class BatchResult:
             out[i].append("ambiguous_model")
         metric_flags = self.summary.get("flags")
         if metric_flags is not None:
-            for i, extra in enumerate(metric_flags):
-                out[i].extend(f for f in (extra or []) if f not in out[i])
+            for row, extra in enumerate(metric_flags):
+                out[row].extend(f for f in (extra or []) if f not in out[row])
         return out
 
     # -- JSON view ----------------------------------------------------------
-    def isotherm_records(self) -> list[dict]:
+    def isotherm_records(self) -> list[dict[str, Any]]:
         """One JSON-ready dict per isotherm (the ``sorbrank fit`` contract).
 
         Numbers are in canonical units; NaN and +-inf become None.
@@ -128,7 +131,7 @@ class BatchResult:
             })
         return records
 
-    def to_json(self) -> dict:
+    def to_json(self) -> dict[str, Any]:
         """The whole batch as a JSON-ready dict (valid JSON: no NaN)."""
         return {
             "batch": self.batch.label,
@@ -161,7 +164,7 @@ class BatchResult:
         n, n_models = p.n, len(ids)
         rep = lambda values: np.repeat(np.asarray(values, dtype=object), n_models)  # noqa: E731
 
-        def stacked(get) -> np.ndarray:
+        def stacked(get: Callable[[str, ModelFits], ArrayLike]) -> np.ndarray:
             return np.stack([np.asarray(get(mid, self.fits[mid])) for mid in ids], axis=1).ravel() \
                 if n_models else np.zeros(0)
 
@@ -238,7 +241,7 @@ class BatchResult:
         # the declared columns, in their order and types (accepted_at: the store's)
         return conform("summaries", pa.table(columns)).drop_columns(["accepted_at"])
 
-    def _reference_columns(self) -> tuple[dict[str, np.ndarray], set[str]]:
+    def _reference_columns(self) -> tuple[dict[str, FloatArray], set[str]]:
         """The figures at the batch's reference pressures as (n, k) arrays, one
         per list column of the summaries, and the per-pressure names of the
         metric columns they gather (their values go to the lists)."""
@@ -305,7 +308,7 @@ def fit_and_select(packed: Packed, options: FitOptions) -> tuple[dict[str, Model
     return fits, select(fits, options.criterion, packed)
 
 
-def _renamed_flags(row: dict) -> dict:
+def _renamed_flags(row: dict[str, Any]) -> dict[str, Any]:
     """A metrics row with its flags under the stored name (one vocabulary for
     the tables, the JSON and the Python API)."""
     if "flags" in row:
@@ -313,7 +316,9 @@ def _renamed_flags(row: dict) -> dict:
     return row
 
 
-def _fit_and_select_chunks(packed, options, workers, chunk_size, progress):
+def _fit_and_select_chunks(packed: Packed, options: FitOptions, workers: int, chunk_size: int,
+                           progress: Progress | None
+                           ) -> tuple[dict[str, ModelFits], Selection]:
     bounds = list(range(0, packed.n, max(int(chunk_size), 1))) or [0]
     chunks = [np.arange(start, min(start + chunk_size, packed.n)) for start in bounds]
     done = 0
@@ -338,7 +343,7 @@ def _fit_and_select_chunks(packed, options, workers, chunk_size, progress):
 
 
 def _concat_fits(parts: list[dict[str, ModelFits]]) -> dict[str, ModelFits]:
-    out = {}
+    out: dict[str, ModelFits] = {}
     for mid, first in parts[0].items():
         pieces = [p[mid] for p in parts]
         arrays = {name: np.concatenate([getattr(f, name) for f in pieces], axis=0)
@@ -364,12 +369,12 @@ def _concat_selections(parts: list[Selection]) -> Selection:
 # ---------------------------------------------------------------------------
 # conversions
 
-def _float_array(values) -> pa.Array:
+def _float_array(values: ArrayLike) -> pa.Array:
     values = np.asarray(values, dtype=float)
     return pa.array(values, pa.float64(), mask=np.isnan(values))
 
 
-def _float_lists(values: np.ndarray) -> pa.Array:
+def _float_lists(values: FloatArray) -> pa.Array:
     """(n, k) floats -> list<double> of k values per row, NaN as null."""
     values = np.asarray(values, dtype=float)
     n, k = values.shape
@@ -378,7 +383,7 @@ def _float_lists(values: np.ndarray) -> pa.Array:
     return pa.ListArray.from_arrays(offsets, pa.array(flat, pa.float64(), mask=np.isnan(flat)))
 
 
-def _json_list(values) -> list:
+def _json_list(values: ArrayLike) -> list[Any]:
     """Array -> list with None for NaN/inf (JSON has neither)."""
     values = np.asarray(values)
     if values.dtype.kind in "fc":
@@ -390,7 +395,7 @@ def _json_list(values) -> list:
     return values.tolist()
 
 
-def _json_clean(value):
+def _json_clean(value: Any) -> Any:
     # numpy scalars first: numpy.float64 is also a float, and orjson refuses it
     if isinstance(value, np.generic):
         return _json_clean(value.item())
@@ -405,13 +410,13 @@ def _json_clean(value):
     return value
 
 
-def _param_column(fits: ModelFits, values: np.ndarray, name: str) -> np.ndarray:
+def _param_column(fits: ModelFits, values: FloatArray, name: str) -> FloatArray:
     if name not in fits.param_names:
         return np.full(fits.n, np.nan)
     return values[:, fits.param_names.index(name)]
 
 
-def _fit_lists(f: ModelFits, weight: np.ndarray) -> dict:
+def _fit_lists(f: ModelFits, weight: FloatArray) -> dict[str, Any]:
     """A model's fits as plain lists (one conversion per array, not per value)."""
     return {
         "names": f.param_names,
@@ -425,7 +430,7 @@ def _fit_lists(f: ModelFits, weight: np.ndarray) -> dict:
     }
 
 
-def _fit_record(model_id: str, lists: dict, i: int) -> dict:
+def _fit_record(model_id: str, lists: dict[str, Any], i: int) -> dict[str, Any]:
     names = lists["names"]
     return {
         "model": model_id,
