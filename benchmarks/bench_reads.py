@@ -283,6 +283,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--compaction", action="store_true")
     parser.add_argument("--build-jobs", type=int, default=2)
     parser.add_argument("--build-only", action="store_true")
+    parser.add_argument("--no-disk", action="store_true", help="skip measuring the disk used")
     parser.add_argument("--dir", type=Path, default=None,
                         help="the store (extended to --batches when it holds fewer)")
     args = parser.parse_args(argv)
@@ -290,7 +291,8 @@ def main(argv: list[str] | None = None) -> int:
 
     print(f"machine  : {os.cpu_count()} cores; {cpu_flags()}")
     build(root, args.batches, args.build_jobs)
-    print(f"disk     : {disk(root)}")
+    if not args.no_disk:
+        print(f"disk     : {disk(root)}")
     if args.build_only:
         return 0
 
@@ -332,6 +334,22 @@ def main(argv: list[str] | None = None) -> int:
                      f" | same answer: {'yes' if same else 'NO'}")
         print(line, flush=True)
 
+    # a plot is mostly drawing: its read alone (what the index changes)
+    from sorbrank.worker.store import readmodel
+    for label, read in (("plot's read    :", lambda st: readmodel.load_isotherm(st, isotherm_id)),
+                        ("record's read  :", lambda st: readmodel.sorbent_tables(st, sorbent))):
+        line = label
+        for on, client in apps.items():
+            store_of_app = client.application.extensions["sorbrank"].store
+            with index_setting(on):
+                times = []
+                for _ in range(max(args.repeats if on else args.old_repeats, 1)):
+                    started = time.perf_counter()
+                    read(store_of_app)
+                    times.append(time.perf_counter() - started)
+            line += (f" {'index' if on else 'no index'} median "
+                     f"{statistics.median(times) * 1000:.1f} ms;")
+        print(line.rstrip(";") + " (the rest of a request is drawing or JSON)", flush=True)
     # a batch landing is seen by the next read (its seal is a new index file)
     index_new_batch(root, apps[True], sorbent)
     if args.compaction:

@@ -25,7 +25,7 @@ from __future__ import annotations
 import logging
 import threading
 from collections import Counter
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable, Iterator
 
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
@@ -66,6 +66,41 @@ def batch_figures(store: Store, batch_id: str) -> BatchFigures:
                         store.batch_size_bytes(batch_id))
 
 
+def _from_record(record: dict) -> BatchFigures:
+    return BatchFigures(record["state"], dict(record["fitted_by_model"]),
+                        tuple(record["chunk_durations_s"]), int(record["size_bytes"]))
+
+
+@dataclass
+class Totals:
+    """Sums of BatchFigures over batches: what a scrape reports."""
+
+    batches: int = 0
+    states: Counter = field(default_factory=Counter)
+    fitted: Counter = field(default_factory=Counter)
+    buckets: list = field(default_factory=lambda: [0] * len(DURATION_BUCKETS_S))
+    chunks: int = 0
+    duration_sum_s: float = 0.0
+    size_bytes: int = 0
+
+    def add(self, b: BatchFigures) -> None:
+        self.batches += 1
+        if b.state is not None:
+            self.states[b.state] += 1
+        self.fitted.update(b.fitted_by_model)
+        for d in b.chunk_durations_s:
+            for i, le in enumerate(DURATION_BUCKETS_S):
+                if d <= le:
+                    self.buckets[i] += 1
+        self.chunks += len(b.chunk_durations_s)
+        self.duration_sum_s += sum(b.chunk_durations_s)
+        self.size_bytes += b.size_bytes
+
+    def copy(self) -> "Totals":
+        return Totals(self.batches, Counter(self.states), Counter(self.fitted),
+                      list(self.buckets), self.chunks, self.duration_sum_s, self.size_bytes)
+
+
 class StoreCollector:
     """A prometheus_client custom collector reading the store on each scrape."""
 
@@ -73,6 +108,7 @@ class StoreCollector:
         self.store = store
         self.queue_depth = queue_depth
         self._settled: dict[str, BatchFigures] = {}
+        self._finished_totals: tuple[int, Totals] | None = None  # (index version, sums)
         self._lock = threading.Lock()  # one scan at a time per process
 
     def figures(self) -> list[BatchFigures]:
@@ -86,47 +122,64 @@ class StoreCollector:
             for batch_id in ids:
                 record = finished.get(batch_id)
                 if record is not None:  # a sealed batch: its figures, kept in the index
-                    out.append(BatchFigures(record["state"], dict(record["fitted_by_model"]),
-                                            tuple(record["chunk_durations_s"]),
-                                            int(record["size_bytes"])))
+                    out.append(_from_record(record))
                     continue
-                figures = self._settled.get(batch_id)
-                if figures is None:
-                    figures = batch_figures(self.store, batch_id)
-                    if figures.state is not None:
-                        self._settled[batch_id] = figures
-                out.append(figures)
+                out.append(self._live(batch_id))
             return out
 
+    def _live(self, batch_id: str) -> BatchFigures:
+        figures = self._settled.get(batch_id)
+        if figures is None:
+            figures = batch_figures(self.store, batch_id)
+            if figures.state is not None:
+                self._settled[batch_id] = figures
+        return figures
+
+    def totals(self) -> "Totals":
+        """The sums a scrape reports: those of the finished batches in the read
+        index are added up once per change of the index, then the others'."""
+        with self._lock:
+            index = read_index(self.store)
+            if index is None:
+                ids, done = self.store.batch_ids(), Totals()
+            else:
+                ids = index.unfinished_ids()
+                if self._finished_totals is None or self._finished_totals[0] != index.version:
+                    done = Totals()
+                    for record in index.finished().values():
+                        done.add(_from_record(record))
+                    self._finished_totals = (index.version, done)
+                done = self._finished_totals[1]
+            totals = done.copy()
+            for batch_id in ids:
+                totals.add(self._live(batch_id))
+            return totals
+
     def collect(self) -> Iterator[Metric]:
-        batches = self.figures()
+        totals = self.totals()
         yield CounterMetricFamily("sorbrank_batches_accepted", "Batches accepted (on disk)",
-                                  value=len(batches))
+                                  value=totals.batches)
         for state in FINAL_STATES:
             yield CounterMetricFamily(f"sorbrank_batches_{state}",
                                       f"Batches finished in state {state!r}",
-                                      value=sum(b.state == state for b in batches))
+                                      value=totals.states.get(state, 0))
 
-        fitted: Counter = Counter()
-        for b in batches:
-            fitted.update(b.fitted_by_model)
         per_model = CounterMetricFamily("sorbrank_isotherms_fitted",
                                         "Isotherms each model was fitted to (where it applies)",
                                         labels=["model"])
-        for model, count in sorted(fitted.items()):
+        for model, count in sorted(totals.fitted.items()):
             per_model.add_metric([model], count)
         yield per_model
 
-        durations = [d for b in batches for d in b.chunk_durations_s]
-        buckets = [(str(le), sum(d <= le for d in durations)) for le in DURATION_BUCKETS_S]
+        buckets = [(str(le), n) for le, n in zip(DURATION_BUCKETS_S, totals.buckets)]
         yield HistogramMetricFamily("sorbrank_chunk_fit_duration_seconds",
                                     "Wall time of each finished chunk: read, fit, write",
-                                    buckets=buckets + [("+Inf", len(durations))],
-                                    sum_value=sum(durations))
+                                    buckets=buckets + [("+Inf", totals.chunks)],
+                                    sum_value=totals.duration_sum_s)
 
         yield GaugeMetricFamily("sorbrank_store_size_bytes",
                                 "Bytes of the store's batch files (tables, manifests, statuses)",
-                                value=sum(b.size_bytes for b in batches))
+                                value=totals.size_bytes)
         yield GaugeMetricFamily("sorbrank_quarantined_files",
                                 "Damaged data files moved to the store's quarantine folder",
                                 value=self.store.quarantined_count())

@@ -59,6 +59,10 @@ class ReadIndex:
         self.waiting: set[str] = set()              # batch directories without a manifest yet
         self.dir_times: dict[str, int | None] = {}  # local directory -> mtime at the last look
         self.parts_loaded = False
+        self.version = 0
+        self._finished: dict[str, dict] | None = None
+        self._unfinished: list[str] | None = None
+        self._batch_ids: list[str] | None = None
         self._combined: pa.Table | None = None
         self._listings: dict[str, list] = {}
         self._schemas: dict[str, pa.Schema | None] = {}
@@ -323,6 +327,8 @@ class ReadIndex:
         self._schemas = {t: _unify(s) for t, s in schemas.items()}
         self._listings = {}
         self._choices = None
+        self._finished = self._unfinished = self._batch_ids = None
+        self.version += 1   # what callers keeping sums over the index compare
 
     # reads -------------------------------------------------------------------
     @property
@@ -382,12 +388,25 @@ class ReadIndex:
     def batch_ids(self) -> list[str]:
         """Accepted batches, newest first (as ``Store.batch_ids``)."""
         with self.lock:
-            return sorted(self.known_batches, reverse=True)
+            if self._batch_ids is None or len(self._batch_ids) != len(self.known_batches):
+                self._batch_ids = sorted(self.known_batches, reverse=True)
+                self._unfinished = None
+            return self._batch_ids
 
     def finished(self) -> dict[str, dict]:
-        """Records of the sealed batches that are not open again."""
+        """Records of the sealed batches that are not open again (do not change it)."""
         with self.lock:
-            return {b: r for b, r in self.records.items() if b not in self.open}
+            if self._finished is None:
+                self._finished = {b: r for b, r in self.records.items() if b not in self.open}
+            return self._finished
+
+    def unfinished_ids(self) -> list[str]:
+        """Accepted batches without a trusted seal, newest first."""
+        with self.lock:
+            if self._unfinished is None:
+                finished = self.finished()
+                self._unfinished = [b for b in self.batch_ids() if b not in finished]
+            return self._unfinished
 
 
 def _iso_ns(text: str | None) -> int:
