@@ -355,7 +355,7 @@ def main(argv: list[str] | None = None) -> int:
     if args.compaction:
         compaction_probe(root)
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    print(f"memory   : peak RSS {rss_mb:,.0f} MB (both apps in one process)")
+    print(f"memory   : peak RSS {rss_mb:,.0f} MB ({len(apps)} app(s) in one process)")
     print(f"result   : {'OK' if ok else 'MISMATCH'}")
     return 0 if ok else 1
 
