@@ -18,6 +18,7 @@ from sorbrank.service.client import DEFAULT_URL
 from sorbrank.service.config import load_settings
 from sorbrank.worker.intake import Limits
 from sorbrank.worker.models import CATALOGUE
+from sorbrank.worker.store import index as read_index
 from sorbrank.worker.units import COLUMN_TOKENS
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -108,6 +109,7 @@ def actual_defaults() -> dict[str, object]:
     out["SORBRANK_TOKENS"] = out["SORBRANK_TOKENS_FILE"] = None if not settings.tokens else "set"
     out["SORBRANK_URL"] = DEFAULT_URL
     out["SORBRANK_TOKEN"] = None  # the client sends no token unless given one
+    out["SORBRANK_READ_INDEX"] = int(read_index.enabled())
     return out
 
 
