@@ -83,7 +83,10 @@ def fit_entry(row: dict) -> dict:
 
 
 _PARTITION = pa.schema([("batch_id", pa.string())])
-_FORMAT = ds.ParquetFileFormat()
+# page checksums verified, as the table reads do: a damaged page raises here
+# (and the scan then quarantines the file) instead of reading as other values
+_FORMAT = ds.ParquetFileFormat(default_fragment_scan_options=ds.ParquetFragmentScanOptions(
+    page_checksum_verification=True))
 
 
 class _IndexMiss(Exception):
