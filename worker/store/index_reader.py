@@ -38,6 +38,7 @@ class _Part:
     kind: str                                # "seal" (seals, segments) or "entry"
     stamp: int                               # entry: when written (ns)
     batches: set[str] = field(default_factory=set)
+    keys: pa.Table | None = None             # rows without the batch records (seals)
 
 
 class ReadIndex:
@@ -303,14 +304,18 @@ class ReadIndex:
         each open batch from its files."""
         tables = []
         schemas: dict[str, list] = {t: [] for t in TABLES}
+        trusted: dict[str, set] = {}   # index file -> the batches read from it
+        for batch_id, record in self.records.items():
+            if batch_id not in self.open:
+                trusted.setdefault(record["_from"], set()).add(batch_id)
         for path, part in self.parts.items():
-            if part.kind != "seal":
+            mine = trusted.get(path)
+            if part.kind != "seal" or not mine:
                 continue
-            mine = {b for b, r in self.records.items() if r["_from"] == path and b not in self.open}
-            if not mine:
-                continue
-            rows = part.rows
-            if mine != set(part.records):
+            if part.keys is None:  # the key rows without the batch records, made once
+                part.keys = part.rows.filter(pc.not_equal(part.rows["table"], BATCH_ROW))
+            rows = part.keys
+            if len(mine) != len(part.records):
                 rows = rows.filter(pc.is_in(rows["batch_id"], pa.array(sorted(mine))))
             tables.append(rows)
             for table, schema in part.schemas.items():
@@ -321,9 +326,8 @@ class ReadIndex:
                 tables.append(rows)
                 for table, schema in part_schemas.items():
                     schemas[table].append(schema)
-        combined = pa.concat_tables(tables) if tables else _empty_rows()
-        combined = combined.filter(pc.not_equal(combined["table"], BATCH_ROW))
-        self._combined = combined
+        # (an open batch's rows come from its files: no batch records among them)
+        self._combined = pa.concat_tables(tables) if tables else _empty_rows()
         self._schemas = {t: _unify(s) for t, s in schemas.items()}
         self._listings = {}
         self._choices = None
