@@ -274,7 +274,8 @@ class ReadIndex:
             self.file_cache[path] = (size, mtime, mine, part.schemas.get(table))
 
     def _rows_from_files(self, batch_id: str, known: dict):
-        parts, schemas, paths = [], {}, []
+        parts, paths = [], []
+        schemas: dict[str, pa.Schema] = {}
         for table in TABLES:
             folder = str(self.store._join(table, f"batch_id={batch_id}"))
             for info in fs.list_dir(self.store.fs, folder):
@@ -330,7 +331,7 @@ class ReadIndex:
         self._combined = pa.concat_tables(tables) if tables else _empty_rows()
         self._schemas = {t: _unify(s) for t, s in schemas.items()}
         self._listings = {}
-        self._choices = None
+        self._choices: dict[str, list] | None = None
         self._finished = self._unfinished = self._batch_ids = None
         self.version += 1   # what callers keeping sums over the index compare
 
@@ -377,7 +378,7 @@ class ReadIndex:
             mask = pc.and_(pc.equal(self.rows["table"], table), pc.equal(self.rows[column], value))
             return int(pc.sum(pc.cast(mask.fill_null(False), pa.int64())).as_py() or 0)
 
-    def choices(self) -> dict:
+    def choices(self) -> dict[str, list]:
         """Values the overview's filter form offers, from every summaries row."""
         with self.lock:
             if self._choices is None:
