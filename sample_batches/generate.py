@@ -10,6 +10,11 @@ heterogeneity exponents that do not depend on temperature, so each
 single-site sorbent/gas pair has an isosteric heat of exactly Q at every
 loading. Output is deterministic for a seed: CSV and JSON byte-identical,
 Parquet identical in content.
+
+One file on purpose (about 800 lines): it is a script, not a module anything
+imports, and the campaign reads top to bottom (families, truth parameters,
+each batch's quirks, writers), so a reader checks the demo's ground truth
+in one place.
 """
 from __future__ import annotations
 
