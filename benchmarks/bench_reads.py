@@ -27,6 +27,12 @@ they were before it, side by side in one run.
 3. --compaction: what merging the small chunk files would save: reading the
    summaries' ranking columns from the per-batch files (what the first
    ranking of a process does) against from the same rows in one file.
+4. --rankings: the overview and GET /api/v1/rankings with compacted
+   summaries (worker/store/compaction.py; the store is compacted first,
+   timed, when it has no compacted files), with the index alone (compacted
+   files moved aside) and without the index, each in a fresh process of its
+   own (cold, then --repeats warm, median; its peak RSS), answers compared.
+   With --skip overview, the main loop leaves the overview to this section.
 
 Targets (issue 19): sorbent record <= 0.5 s, plot <= 0.5 s, overview <= 1 s,
 /metrics <= 0.5 s at 100,000 batches. Nothing here asserts a time.
@@ -273,6 +279,92 @@ def compaction_probe(root: Path) -> None:
           f"(its columns are kept in memory)")
 
 
+RANKING_URLS = (("overview", "/", 1.0), ("rankings", "/api/v1/rankings", 1.0))
+
+
+def _ranking_probe(root: Path, mode: str, repeats: int) -> None:
+    """In its own process (its peak memory is its own): the overview and
+    GET /api/v1/rankings on a fresh app, cold then warm; one JSON line."""
+    import hashlib
+    import json
+
+    out: dict = {"mode": mode}
+    with index_setting(mode != "old"):
+        client = app_for(root).test_client()
+        for name, url, _ in RANKING_URLS:
+            cold, status, body = timed_get(client, url, mode != "old")
+            assert status == 200, (url, status, body[:300])
+            warm = [timed_get(client, url, mode != "old")[0] for _ in range(max(repeats, 1))]
+            out[name] = {"cold": cold, "warm": statistics.median(warm),
+                         "body": hashlib.sha256(_VOLATILE.sub(b"", body)).hexdigest()}
+    out["rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    print(json.dumps(out), flush=True)
+
+
+def rankings_side_by_side(root: Path, repeats: int, old: bool) -> bool:
+    """The overview and /api/v1/rankings, each way in a process of its own:
+    with the read index and compacted summaries, with the index alone (the
+    compacted files moved aside), and without the index (``old``). Compacts
+    the store first when it has no compacted files (timed)."""
+    import json
+
+    from sorbrank.worker.store import Store, compaction
+
+    folder = Path(compaction.folder(Store(root)))
+    aside = folder.with_name(folder.name + ".aside")
+    if aside.exists() and not folder.exists():
+        aside.rename(folder)
+    if not folder.exists() or not any(folder.iterdir()):
+        with index_setting(True):
+            started = time.perf_counter()
+            done = compaction.compact(Store(root), min_batches=1)
+            elapsed = time.perf_counter() - started
+        size_mb = sum(p.stat().st_size for p in folder.iterdir()) / 1e6
+        print(f"compact  : the summaries of {done:,} batches into "
+              f"{len(list(folder.iterdir()))} file(s), {size_mb:,.1f} MB, in {elapsed:.1f} s "
+              f"(one process, from nothing; a worker compacts {compaction.COMPACT_BATCHES} "
+              f"new batches at a time)", flush=True)
+
+    def probe(mode: str) -> dict:
+        proc = subprocess.run([sys.executable, __file__, "--dir", str(root), "--batches", "0",
+                               "--repeats", str(repeats), "--ranking-probe", mode],
+                              capture_output=True, text=True)
+        if proc.returncode != 0:
+            return {"mode": mode, "error": proc.stderr.strip().splitlines()[-1:]}
+        return json.loads(proc.stdout.strip().splitlines()[-1])
+
+    results = {"compacted": probe("compacted")}
+    folder.rename(aside)
+    try:
+        results["index"] = probe("index")
+        if old:
+            results["old"] = probe("old")
+    finally:
+        aside.rename(folder)
+    ok = True
+    for name, _, target in RANKING_URLS:
+        line = f"{name:<15}:"
+        base = results["compacted"].get(name)
+        for mode, found in results.items():
+            got = found.get(name)
+            if got is None:
+                line += f" {mode}: {found.get('error')} |"
+                continue
+            line += (f" {mode} cold {got['cold'] * 1000:,.0f} ms, warm {got['warm'] * 1000:,.1f} ms"
+                     f" ({found['rss_mb']:,.0f} MB peak) |")
+        if base is not None:
+            line += f" target {target * 1000:.0f} ms warm: {'met' if base['warm'] <= target else 'MISSED'}"
+            for mode in ("index", "old"):
+                other = results.get(mode, {}).get(name)
+                if other is not None:
+                    same = other["body"] == base["body"]
+                    ok &= same
+                    line += (f"; {mode}/compacted cold {other['cold'] / base['cold']:,.1f}x, "
+                             f"same answer: {'yes' if same else 'NO'}")
+        print(line, flush=True)
+    return ok
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--batches", type=int, default=100_000)
@@ -287,10 +379,19 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--skip", action="append", default=[], metavar="REQUEST",
                         help="leave out a request by name, e.g. --skip overview (its first "
                              "ranking needs memory that grows with the summaries files)")
+    parser.add_argument("--rankings", action="store_true",
+                        help="also the overview and /api/v1/rankings with compacted summaries "
+                             "(compacting the store first), with the index alone and without it, "
+                             "each in a process of its own")
+    parser.add_argument("--ranking-probe", choices=("compacted", "index", "old"),
+                        help=argparse.SUPPRESS)
     parser.add_argument("--dir", type=Path, default=None,
                         help="the store (extended to --batches when it holds fewer)")
     args = parser.parse_args(argv)
     root = args.dir or Path(tempfile.gettempdir()) / "sorbrank-bench-reads"
+    if args.ranking_probe:
+        _ranking_probe(root, args.ranking_probe, args.repeats)
+        return 0
 
     print(f"machine  : {os.cpu_count()} cores; {cpu_flags()}")
     build(root, args.batches, args.build_jobs)
@@ -358,6 +459,8 @@ def main(argv: list[str] | None = None) -> int:
     index_new_batch(root, apps[True], sorbent)
     if args.compaction:
         compaction_probe(root)
+    if args.rankings:
+        ok &= rankings_side_by_side(root, args.repeats, "old-rankings" not in args.skip)
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"memory   : peak RSS {rss_mb:,.0f} MB ({len(apps)} app(s) in one process)")
     print(f"result   : {'OK' if ok else 'MISMATCH'}")

@@ -9,6 +9,7 @@ from __future__ import annotations
 from flask import Blueprint, current_app, request
 
 from sorbrank.worker.store import DEFAULT_RANKING_SORT, LATEST_WINS_RULE, RankingQuery, nan_to_none, ranking
+from sorbrank.worker.store.readmodel import attach
 from sorbrank.worker.store.rankings import UnknownAdsorbate, ranking_stream
 
 from ..auth import require
@@ -52,6 +53,7 @@ def _bad_query(exc: ValueError) -> Problem:
 def get_rankings():
     fmt = negotiate()
     store = current_app.extensions["sorbrank"].store
+    attach(store)  # the ranking lists the summaries through the read index (and compacted files)
     # machine formats: every matching row unless limit is given; JSON: pages
     query = ranking_query(None if fmt != "json" else JSON_PAGE_ROWS)
     rule = "all results" if query.all_results else LATEST_WINS_RULE

@@ -361,10 +361,14 @@ def consolidate_quietly(store) -> int:
     """``consolidate`` for a job: a failure is logged, never raised (the loose
     files stay, and the next completion tries again)."""
     try:
-        return consolidate(store)
+        merged = consolidate(store)
     except (OSError, pa.ArrowException) as exc:
         log.warning("read index: consolidation failed (%s); it is tried again", exc)
         return 0
+    if merged:  # the seals just merged: their summaries merged for the rankings too
+        from .compaction import compact_quietly
+        compact_quietly(store)
+    return merged
 
 
 def _names(store, folder: str) -> list[str]:
@@ -495,6 +499,8 @@ def main(argv: list[str] | None = None) -> int:
         print(f"sealed {rebuild(store)} finished batch(es)")
     else:
         print(f"merged {consolidate(store, min_seals=1)} file(s)")
+        from .compaction import compact
+        print(f"compacted the summaries of {compact(store, min_batches=1)} batch(es)")
     return 0
 
 

@@ -14,6 +14,7 @@ from ..arrays import BoolArray, IntArray
 from .reliability import (_RELIABILITY_RULES, RELIABILITY_OF_SORT, _column_list, condition_sets,
                           conditions_of_sort, reliable_rows, rows_with_flag,
                           with_ranking_columns)
+from . import compaction
 from .tables import Store, TableSnapshot
 
 LATEST_WINS_RULE = (
@@ -120,14 +121,28 @@ def _rank(store: "Store", query: RankingQuery) -> tuple[pa.Table, int, pa.Table]
     the row groups that hold them. Where that does not apply, the whole-row
     path (``_rank_whole_rows`` over a dataset scan) gives the same result.
     """
-    return _rank_snapshot(*_snapshot_for(store, query))
+    return _rank_snapshot(*_snapshot_for(store, query), store)
 
 
-def _rank_snapshot(snap: TableSnapshot, query: RankingQuery
+def _rank_snapshot(snap: TableSnapshot, query: RankingQuery, store: "Store | None" = None
                    ) -> tuple[pa.Table, int, pa.Table]:
+    if compaction.is_compacted(snap):  # through compacted summaries (compaction.py)
+        try:
+            found = _rank_keys(snap, query)
+            if found is not None and snap.dataset is not None:
+                page, total, ranked, rows_snap = found
+                rows = _whole_rows(rows_snap, page) if page.num_rows else \
+                    snap.dataset.schema.empty_table()
+                if rows is not None:
+                    return rows, total, ranked
+        except FileNotFoundError:
+            pass  # a compacted file merged away under the query
+        if store is None:
+            raise ValueError("a ranking over compacted summaries needs its store to fall back on")
+        snap = store.snapshot("summaries")   # the full scan: slower, the same rows
     keys = _rank_keys(snap, query)
     if keys is not None and snap.dataset is not None:  # keys imply a dataset
-        page, total, ranked = keys
+        page, total, ranked, _ = keys
         rows = _whole_rows(snap, page) if page.num_rows else snap.dataset.schema.empty_table()
         if rows is not None:
             return rows, total, ranked
@@ -137,7 +152,7 @@ def _rank_snapshot(snap: TableSnapshot, query: RankingQuery
 def _snapshot_for(store: "Store", query: RankingQuery) -> tuple[TableSnapshot, RankingQuery]:
     """The summaries as one listing found them, and the query with its
     adsorbate in canonical form and its sort column checked."""
-    snap = store.snapshot("summaries")
+    snap = compaction.snapshot(store) or store.snapshot("summaries")
     query = _resolved(query, snap)
     data = snap.dataset
     if data is not None and query.sort not in sortable_columns(data.schema):
@@ -147,10 +162,10 @@ def _snapshot_for(store: "Store", query: RankingQuery) -> tuple[TableSnapshot, R
 
 
 def _rank_keys(snap: TableSnapshot, query: RankingQuery
-               ) -> tuple[pa.Table, int, pa.Table] | None:
+               ) -> tuple[pa.Table, int, pa.Table, TableSnapshot] | None:
     """The ranked page as key columns with each row's ``_file`` and ``_row``
-    (``_whole_rows`` reads them whole), the total and the ranked rows; None
-    where only the whole-row path applies."""
+    (``_whole_rows`` reads them whole from the snapshot returned last), the
+    total and the ranked rows; None where only the whole-row path applies."""
     data = snap.dataset
     if data is None or not all(name in data.schema.names for name in _RANKING_KEYS):
         return None
@@ -361,9 +376,11 @@ def _page_of(table: pa.Table, rows: IntArray | None, query: RankingQuery) -> tup
 
 
 def _rank_cached(snap: TableSnapshot, query: RankingQuery
-                 ) -> tuple[pa.Table, int, pa.Table] | None:
+                 ) -> tuple[pa.Table, int, pa.Table, TableSnapshot] | None:
     """Rank on the kept key columns: the page as key columns with ``_file``
-    and ``_row``; None when the store needs the whole-row path."""
+    and ``_row``, and the snapshot they number the files of; None when the
+    store needs the whole-row path. A compacted snapshot's key columns come
+    from its compacted and per-batch files (``compaction.key_source``)."""
     data, fragments = snap.dataset, snap.fragments
     if data is None:  # _rank_keys has checked: never here
         return None
@@ -379,11 +396,22 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
     if reliability is not None:  # what the sorted figure's reliability is judged on
         values, _ = _RELIABILITY_RULES[reliability]
         names += [n for n in (*values, "quality_flags") if n in data.schema.names and n not in names]
-    columns = snap.key_columns(names)
-    lengths = snap.lengths  # set by key_columns
-    if lengths is None:
-        return None
-    file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)
+    source = compaction.key_source(snap, names)
+    if source is not None:
+        columns = source.columns
+        file_of_row, row_in_file, batch_of_row = (source.file_of_row, source.row_in_file,
+                                                  source.batch_of_row)
+        rows_snap = source.snapshot
+    else:
+        columns = snap.key_columns(names)
+        lengths = snap.lengths  # set by key_columns
+        if lengths is None:
+            return None
+        file_of_row = np.repeat(np.arange(len(fragments), dtype=np.int64), lengths)
+        starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+        row_in_file = np.arange(len(file_of_row), dtype=np.int64) - starts[file_of_row]
+        batch_of_row = None
+        rows_snap = snap
 
     # the filters that choose the competitors, as one mask (null counts as false)
     mask: BoolArray | None = None
@@ -393,7 +421,9 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
                                if not isinstance(condition, np.ndarray) else condition, bool)
         return condition if mask is None else mask & condition
 
-    if query.batch_id is not None:  # a partition value: decided per file
+    if query.batch_id is not None and batch_of_row is not None:
+        mask = both(pc.equal(batch_of_row, query.batch_id))
+    elif query.batch_id is not None:  # a partition value: decided per file
         mask = both(np.array([b == query.batch_id for b in snap.batch_of_file], bool)[file_of_row])
     if query.sorbent_id is not None:
         mask = both(pc.equal(columns["sorbent_id"], query.sorbent_id))
@@ -404,19 +434,20 @@ def _rank_cached(snap: TableSnapshot, query: RankingQuery
         temperature = columns["temperature_k"]
         mask = both(pc.and_(pc.greater_equal(temperature, query.temperature_k - tol),
                             pc.less_equal(temperature, query.temperature_k + tol)))
-    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
     if mask is None:
         chosen = np.arange(len(file_of_row))
-        table = pa.table(columns)
+        table = pa.table({name: columns[name] for name in names})
     else:
         chosen = np.flatnonzero(mask)
         picks = pa.array(chosen)
         table = pa.table({name: columns[name].take(picks) for name in names})
     files = file_of_row[chosen]
+    batch_ids = pa.array(snap.batch_of_file, pa.string()).take(pa.array(files)) \
+        if batch_of_row is None else (batch_of_row if mask is None
+                                      else batch_of_row.take(pa.array(chosen)))
     table = table.append_column("_file", pa.array(files)).append_column(
-        "_row", pa.array(chosen - starts[files])).append_column(
-        "batch_id", pa.array(snap.batch_of_file, pa.string()).take(pa.array(files)))
-    return _ranked_whole_rows(table, query)
+        "_row", pa.array(row_in_file[chosen])).append_column("batch_id", batch_ids)
+    return (*_ranked_whole_rows(table, query), rows_snap)
 
 
 def _whole_rows(snap: TableSnapshot, page: pa.Table) -> pa.Table | None:
@@ -484,7 +515,7 @@ def ranking(store: "Store", query: RankingQuery) -> Ranking:
     working capacity and the reliability columns; and which condition sets
     the ranked rows span for the sorted figure."""
     snap, query = _snapshot_for(store, query)
-    page, total, ranked = _rank_snapshot(snap, query)
+    page, total, ranked = _rank_snapshot(snap, query, store)
     return Ranking(_readers_page(store, page), total, query.sort, query.unreliable_last,
                    RELIABILITY_OF_SORT.get(query.sort), _condition_sets(store, ranked, query),
                    query)
@@ -531,7 +562,7 @@ def ranking_stream(store: "Store", query: RankingQuery,
     snap, query = _snapshot_for(store, query)
     empty = snap.dataset.schema.empty_table() if snap.dataset is not None else pa.table({})
     schema = _readers_page(store, empty).schema
-    rows, total, ranked = _rank_snapshot(snap, query)
+    rows, total, ranked = _rank_snapshot(snap, query, store)
 
     def parts() -> Iterator[pa.Table]:
         for start in range(0, max(rows.num_rows, 1), part_rows):
