@@ -18,7 +18,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from . import fs
-from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, MixtureRequest
+from .isotherm import DEFAULT_CHUNK_SIZE, Batch, Conditions, Isotherm, MixtureRequest
 from .pipeline import FitOptions, process_batch
 from .store import index as read_index
 from .store import DamagedFile, Store, isotherms_to_table, iso_utc, new_batch_id, table_to_isotherms, utc_now
@@ -117,10 +117,13 @@ def _statuses(store: Store, batch_id: str) -> dict[int, ChunkStatus]:
             for index, status in store.read_chunk_statuses(batch_id).items()}
 
 
-def _batch_from_manifest(manifest: Manifest, isotherms) -> Batch:
+def _batch_from_manifest(manifest: Manifest, isotherms: list[Isotherm]) -> Batch:
     conditions = dict(manifest.conditions)
     conditions["reference_pressures_pa"] = tuple(conditions["reference_pressures_pa"])
-    return Batch(label=manifest.label, isotherms=isotherms,
+    # accept_batch always writes the batch's label; a null one comes only from a
+    # hand-edited manifest, and the batch id names the batch just as well
+    label = manifest.label if manifest.label is not None else manifest.batch_id
+    return Batch(label=label, isotherms=isotherms,
                  conditions=Conditions(**conditions),
                  mixtures=[MixtureRequest(**m) for m in manifest.mixtures])
 

@@ -21,6 +21,7 @@ import pyarrow.dataset as ds
 
 from ..models import CATALOGUE
 from . import index as read_index
+from .index_reader import ReadIndex
 from .layout import nan_to_none
 from .rankings import RankingQuery, _rank_whole_rows, rankings
 from .tables import Store
@@ -74,7 +75,8 @@ class StoredIsotherm:
 
 def fit_entry(row: dict) -> dict:
     """A fits-table row as a record fit: parameters gathered under ``params``."""
-    model = CATALOGUE.get(row.get("model"))
+    model_id = row.get("model")
+    model = CATALOGUE.get(model_id) if isinstance(model_id, str) else None
     names = model.param_names() if model is not None else []
     entry = {name: row.get(name) for name in FIT_FIELDS}
     entry["params"] = {name: row.get(f"param_{name}") for name in names}
@@ -93,11 +95,11 @@ class _IndexMiss(Exception):
     """An indexed file could not be read (moved, damaged): scan instead."""
 
 
-def _index(store: Store) -> read_index.ReadIndex | None:
+def _index(store: Store) -> ReadIndex | None:
     return read_index.read_index(store)
 
 
-def _indexed(store: Store, index: read_index.ReadIndex, table: str, column: str, value: str,
+def _indexed(store: Store, index: ReadIndex, table: str, column: str, value: str,
              where: ds.Expression) -> pa.Table:
     """``store.query(table, where)`` over the files the index says hold a row
     with ``column == value`` (``where`` must imply it); same columns, same order."""
