@@ -32,7 +32,9 @@ they were before it, side by side in one run.
    timed, when it has no compacted files), with the index alone (compacted
    files moved aside) and without the index, each in a fresh process of its
    own (cold, then --repeats warm, median; its peak RSS), answers compared.
-   With --skip overview, the main loop leaves the overview to this section.
+   With --skip overview, the main loop leaves the overview to this section;
+   --skip index-rankings leaves out both baselines, --skip old-rankings the
+   one without the index (each needs memory growing with the batches).
 
 Targets (issue 19): sorbent record <= 0.5 s, plot <= 0.5 s, overview <= 1 s,
 /metrics <= 0.5 s at 100,000 batches. Nothing here asserts a time.
@@ -282,6 +284,18 @@ def compaction_probe(root: Path) -> None:
 RANKING_URLS = (("overview", "/", 1.0), ("rankings", "/api/v1/rankings", 1.0))
 
 
+def peak_rss_mb() -> float:
+    """This process's peak RSS: VmHWM (ru_maxrss on Linux keeps the high-water
+    mark of the process that exec'd it, here the benchmark's own)."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
 def _ranking_probe(root: Path, mode: str, repeats: int) -> None:
     """In its own process (its peak memory is its own): the overview and
     GET /api/v1/rankings on a fresh app, cold then warm; one JSON line."""
@@ -297,15 +311,16 @@ def _ranking_probe(root: Path, mode: str, repeats: int) -> None:
             warm = [timed_get(client, url, mode != "old")[0] for _ in range(max(repeats, 1))]
             out[name] = {"cold": cold, "warm": statistics.median(warm),
                          "body": hashlib.sha256(_VOLATILE.sub(b"", body)).hexdigest()}
-    out["rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    out["rss_mb"] = peak_rss_mb()
     print(json.dumps(out), flush=True)
 
 
-def rankings_side_by_side(root: Path, repeats: int, old: bool) -> bool:
+def rankings_side_by_side(root: Path, repeats: int, old: bool, baselines: bool = True) -> bool:
     """The overview and /api/v1/rankings, each way in a process of its own:
     with the read index and compacted summaries, with the index alone (the
-    compacted files moved aside), and without the index (``old``). Compacts
-    the store first when it has no compacted files (timed)."""
+    compacted files moved aside; with ``baselines``) and without the index
+    (``old`` too). Compacts the store first when it has no compacted files
+    (timed)."""
     import json
 
     from sorbrank.worker.store import Store, compaction
@@ -334,13 +349,14 @@ def rankings_side_by_side(root: Path, repeats: int, old: bool) -> bool:
         return json.loads(proc.stdout.strip().splitlines()[-1])
 
     results = {"compacted": probe("compacted")}
-    folder.rename(aside)
-    try:
-        results["index"] = probe("index")
-        if old:
-            results["old"] = probe("old")
-    finally:
-        aside.rename(folder)
+    if baselines:
+        folder.rename(aside)
+        try:
+            results["index"] = probe("index")
+            if old:
+                results["old"] = probe("old")
+        finally:
+            aside.rename(folder)
     ok = True
     for name, _, target in RANKING_URLS:
         line = f"{name:<15}:"
@@ -460,7 +476,8 @@ def main(argv: list[str] | None = None) -> int:
     if args.compaction:
         compaction_probe(root)
     if args.rankings:
-        ok &= rankings_side_by_side(root, args.repeats, "old-rankings" not in args.skip)
+        ok &= rankings_side_by_side(root, args.repeats, "old-rankings" not in args.skip,
+                                    "index-rankings" not in args.skip)
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(f"memory   : peak RSS {rss_mb:,.0f} MB ({len(apps)} app(s) in one process)")
     print(f"result   : {'OK' if ok else 'MISMATCH'}")

@@ -93,6 +93,7 @@ def test_rankings_through_compacted_files_equal_a_scan(tmp_path, monkeypatch):
     monkeypatch.setenv("SORBRANK_READ_INDEX", "1")
     assert compaction.compact(store, min_batches=10) == 0  # not worth a file yet
     assert compaction.compact(store, min_batches=1) == 3
+    assert store.listing_source is None   # a worker's own listings stay directory listings
     files = sorted((tmp_path / "compacted" / "summaries").iterdir())
     assert len(files) == 1
     assert compaction.compact(store, min_batches=1) == 0   # idempotent: all held already

@@ -145,6 +145,21 @@ def _batch_rows(store, paths: list[str], batch_id: str) -> pa.Table | None:
     return pa.concat_tables(parts, promote_options="permissive") if parts else None
 
 
+def _index_of(store):
+    """The store's read index, refreshed: the one its reads attached, or one
+    kept for compaction only, so that a worker's own table listings stay
+    directory listings (None with SORBRANK_READ_INDEX=0)."""
+    from .index import enabled
+    from .index_reader import ReadIndex
+    if not enabled():
+        return None
+    index = getattr(store, "_read_index", None) or getattr(store, "_compaction_index", None)
+    if index is None:
+        index = store._compaction_index = ReadIndex(store)
+    index.refresh()
+    return index
+
+
 def compact(store, min_batches: int = COMPACT_BATCHES, merge_files: int = MERGE_FILES) -> int:
     """Copy the summaries of trusted finished batches that no compacted file
     holds into a new one once there are ``min_batches`` of them; merge the
@@ -152,8 +167,7 @@ def compact(store, min_batches: int = COMPACT_BATCHES, merge_files: int = MERGE_
     they hold that is still current: stale batches are dropped), deleting
     the merged files after the merged one is written. Returns the number of
     batches written. Needs the read index (with SORBRANK_READ_INDEX=0: 0)."""
-    from .index_reader import read_index
-    index = read_index(store)
+    index = _index_of(store)
     if index is None:
         return 0
     current, batch_paths = _listed_signatures(store, index.listing("summaries"))

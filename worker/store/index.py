@@ -44,8 +44,10 @@ segments are merged the same way. Readers list ``loose/`` before
 ``segments/``, and a consolidation writes its segment before deleting, so a
 reader always sees every batch at least once; duplicates resolve to the
 newest seal. Two consolidations at once write the same or overlapping
-segments: harmless. Set SORBRANK_READ_INDEX=0 to read by scanning instead
-(what the benchmark compares against).
+segments: harmless. A consolidation that merged seals also compacts the
+summaries of finished batches for the rankings (``compaction.py``). Set
+SORBRANK_READ_INDEX=0 to read by scanning instead (what the benchmark
+compares against).
 """
 from __future__ import annotations
 
