@@ -70,8 +70,10 @@ def test_bench_start_prints_the_ratio_and_the_json_shares():
 
 def test_bench_reads_builds_a_store_and_compares_both_read_paths(tmp_path):
     out = run("bench_reads.py", "--batches", "10", "--repeats", "1", "--old-repeats", "1",
-              "--build-jobs", "1", "--compaction", "--dir", str(tmp_path / "store"))
+              "--build-jobs", "1", "--compaction", "--rankings", "--dir", str(tmp_path / "store"))
     for word in ("build    :", "disk     :", "sorbent record :", "plot           :",
                  "overview       :", "metrics        :", "ratio warm", "fresh    : a new sealed "
-                 "batch is in the next sorbent record: yes", "compact  :", "result   : OK"):
+                 "batch is in the next sorbent record: yes", "compact  :", "result   : OK",
+                 "the summaries of 10 batches into 1 file(s)", "rankings       : compacted cold",
+                 "index/compacted cold", "old/compacted cold", "same answer: yes"):
         assert word in out, out
