@@ -359,7 +359,10 @@ class _Reader:
         schema = pa.unify_schemas(physical[len(fragments):] + physical[:len(fragments)]
                                   + [pa.schema([("batch_id", pa.string())])],
                                   promote_options="permissive")
-        data = ds.FileSystemDataset(every, schema, fmt, store.fs)
+        # the page's whole rows: page checksums verified, as the table reads verify theirs
+        verified = ds.ParquetFileFormat(default_fragment_scan_options=ds.ParquetFragmentScanOptions(
+            page_checksum_verification=True))
+        data = ds.FileSystemDataset(every, schema, verified, store.fs)
         view.combined = TableSnapshot(("compacted", key), data, every,
                                       [None] * len(fragments) + rest.batch_of_file, False, {},
                                       _Columns(self, view))  # type: ignore[arg-type]
@@ -368,7 +371,8 @@ class _Reader:
     def _column(self, store, path: str, name: str) -> pa.Array:
         held = self.file_columns[path]
         if name not in held:
-            column = pq.read_table(path, filesystem=store.fs, columns=[name])[name]
+            column = pq.read_table(path, filesystem=store.fs, columns=[name],
+                                   page_checksum_verification=True)[name]
             held[name] = column.combine_chunks()
         return held[name]
 
@@ -384,7 +388,8 @@ class _Reader:
                 for path, rows, _ in view.compacted:
                     held = self.file_columns.setdefault(path, {})
                     if name not in held:
-                        column = pq.read_table(path, filesystem=store_fs, columns=[name])[name]
+                        column = pq.read_table(path, filesystem=store_fs, columns=[name],
+                                           page_checksum_verification=True)[name]
                         held[name] = column.combine_chunks()
                     parts.append(held[name].take(pa.array(rows)))
                 if name in rest_columns:

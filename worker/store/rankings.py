@@ -135,8 +135,8 @@ def _rank_snapshot(snap: TableSnapshot, query: RankingQuery, store: "Store | Non
                     snap.dataset.schema.empty_table()
                 if rows is not None:
                     return rows, total, ranked
-        except FileNotFoundError:
-            pass  # a compacted file merged away under the query
+        except (OSError, pa.ArrowException):
+            pass  # a compacted file merged away under the query (or damaged)
         if store is None:
             raise ValueError("a ranking over compacted summaries needs its store to fall back on")
         snap = store.snapshot("summaries")   # the full scan: slower, the same rows
