@@ -217,15 +217,14 @@ def _merge(store, existing: dict[str, dict[str, Signature]], current: dict[str, 
         except FileNotFoundError:
             return 0  # another compaction merged them: its file holds the same
         read.append(path)
+        if not metadata:  # from the table already read: another compaction may delete the file
+            metadata = {k: v for k, v in (data.schema.metadata or {}).items() if k != SOURCES_KEY}
         if keep:
             parts.append(data.filter(pc.is_in(data["batch_id"], pa.array(keep, pa.string())))
                          .replace_schema_metadata(None))
             sources.update({b: existing[path][b] for b in keep})
     target = None
     if parts:
-        if not metadata:
-            metadata = {k: v for k, v in (pq.read_schema(read[0], filesystem=store.fs).metadata
-                                          or {}).items() if k != SOURCES_KEY}
         rows = pa.concat_tables(parts, promote_options="permissive")
         target = _write(store, rows, sources, metadata)
     for path in read:
