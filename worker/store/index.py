@@ -58,7 +58,7 @@ import os
 import posixpath
 import secrets
 import time
-from typing import Iterable
+from typing import Any, Iterable
 
 import numpy as np
 import pyarrow as pa
@@ -143,7 +143,7 @@ def key_rows(table: str, batch_id: str, chunk: int, data: pa.Table, size: int | 
 
 
 def _batch_row(batch_id: str, record: dict) -> pa.Table:
-    row = {name: [None] for name in ROW_SCHEMA.names}
+    row: dict[str, list[Any]] = {name: [None] for name in ROW_SCHEMA.names}
     row.update(table=[BATCH_ROW], batch_id=[batch_id],
                record_json=[json.dumps(record, sort_keys=True)])
     return pa.table(row, schema=ROW_SCHEMA)
@@ -311,7 +311,8 @@ def seal_batch(store, batch_id: str, known: dict | None = None) -> str | None:
 def _batch_rows_from_files(store, batch_id: str, known: dict
                            ) -> tuple[pa.Table, dict[str, pa.Schema]]:
     """Key rows of every data file of the batch as its directories list them now."""
-    parts, schemas = [], {}
+    parts: list[pa.Table] = []
+    schemas: dict[str, pa.Schema] = {}
     for table in TABLES:
         folder = str(store._join(table, f"batch_id={batch_id}"))
         for info in fs.list_dir(store.fs, folder):
@@ -380,7 +381,8 @@ def _names(store, folder: str) -> list[str]:
 
 
 def _merge(store, paths: list[str], consumed_loose: list[str] | None = None) -> int:
-    tables, refs, read = [], {}, []
+    tables, read = [], []
+    refs: dict[str, set[str]] = {}
     for path in paths:
         try:
             data = pq.read_table(path, filesystem=store.fs)
@@ -427,7 +429,7 @@ def _loose_name_parts(name: str) -> tuple[str, int | None]:
 def _seal_times(rows: pa.Table) -> dict[str, int]:
     """batch id -> sealed_at_ns of its record rows."""
     records = rows.filter(pc.equal(rows["table"], BATCH_ROW))
-    out = {}
+    out: dict[str, int] = {}
     for batch_id, text in zip(records["batch_id"].to_pylist(), records["record_json"].to_pylist()):
         stamp = int(json.loads(text).get("sealed_at_ns") or 0)
         out[batch_id] = max(out.get(batch_id, 0), stamp)

@@ -8,7 +8,7 @@ import posixpath
 import re
 import threading
 from dataclasses import dataclass, replace
-from pathlib import Path, PurePosixPath
+from pathlib import PurePath, PurePosixPath
 from typing import Callable, NamedTuple
 
 import numpy as np
@@ -50,7 +50,7 @@ class Store(StoreLayout):
         self.listing_source: Callable[[str], list | None] | None = None
 
     # tables
-    def write_table(self, table: str, batch_id: str, chunk_index: int, data: pa.Table) -> Path:
+    def write_table(self, table: str, batch_id: str, chunk_index: int, data: pa.Table) -> PurePath:
         """Write one chunk file of ``table``, conformed to its declared schema
         (``schema.conform``: SchemaMismatch for a column it does not declare);
         the partition directory carries the batch id. StoreError on a store at
@@ -351,6 +351,7 @@ class _TableIndex:
     def key_columns(self, snap: TableSnapshot, names: list[str]) -> dict[str, pa.Array]:
         """``names`` over every file of the snapshot, in its file and row order."""
         dataset, fragments = snap.dataset, snap.fragments
+        assert dataset is not None, "a snapshot whose files are read has a dataset"
         with self.lock:
             if self.column_schema is None or not self.column_schema.equals(dataset.schema):
                 self.columns = {}  # a type was widened by a new file: read everything again
