@@ -431,7 +431,7 @@ def test_latest_wins_on_integer_codes_picks_the_rows_the_full_sort_picks(seed):
     several rows of one group in one batch, equal isotherm ids, nulls in
     every key (common practice for checking an optimisation: same rows,
     any input)."""
-    from sorbrank.worker.store.rankings import _latest_rows, _latest_wins_by_sorting
+    from sorbrank.worker.store.latest import latest_rows, latest_wins_by_sorting
 
     rng = np.random.default_rng(seed)
     n = 3000
@@ -453,9 +453,9 @@ def test_latest_wins_on_integer_codes_picks_the_rows_the_full_sort_picks(seed):
         "isotherm_id": pa.array(pick([f"i{i}" for i in range(60)])),
         "row": pa.array(np.arange(n)),
     })
-    fast = _latest_rows(table)
+    fast = latest_rows(table)
     assert fast is not None
-    expected = _latest_wins_by_sorting(table)["row"].to_numpy()
+    expected = latest_wins_by_sorting(table)["row"].to_numpy()
     assert sorted(table["row"].to_numpy()[fast].tolist()) == sorted(expected.tolist())
     assert len(fast) == len(expected) and 0 < len(expected) < n
 
