@@ -12,6 +12,7 @@ from flask import Blueprint, Response, current_app, request
 
 from sorbrank.worker.store import is_batch_id
 from sorbrank.worker.store.readmodel import load_isotherm, qst_rows
+from sorbrank.worker.store.rankings import UnknownAdsorbate, canonical_adsorbate
 
 from ..auth import require
 from ..problems import Problem
@@ -80,7 +81,16 @@ def isotherm_plot(isotherm_id: str):
 def qst_plot(sorbent_id: str):
     fmt = choice_arg("format", "svg", tuple(IMAGE_TYPES))
     adsorbate = request.args.get("adsorbate") or None
-    rows = qst_rows(current_app.extensions["sorbrank"].store, sorbent_id, adsorbate)
+    rows = qst_rows(current_app.extensions["sorbrank"].store, sorbent_id)
+    if adsorbate is not None:
+        # the gas name as intake stores it (co2, carbon dioxide -> CO2), as the rankings match it
+        try:
+            adsorbate = canonical_adsorbate(adsorbate, stored=lambda: [r["adsorbate"] for r in rows])
+        except UnknownAdsorbate as exc:
+            raise Problem(400, "Bad Request", str(exc), slug="unknown-adsorbate",
+                          parameter="adsorbate", adsorbate=exc.name,
+                          suggestions=exc.suggestions) from None
+        rows = [r for r in rows if r["adsorbate"] == adsorbate]
     if not rows:
         gas = f" for {adsorbate}" if adsorbate else ""
         raise Problem(404, "Not Found", f"no isosteric heat for sorbent {sorbent_id!r}{gas} "

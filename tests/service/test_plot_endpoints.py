@@ -197,6 +197,14 @@ def test_qst_svg_for_a_gas_at_three_temperatures(service, stored):
     found = groups(svg_of(resp))
     assert {"qst-0", "qst-0-errorbars"} <= set(found)
     assert "qst-1" not in found  # one gas asked for, one curve drawn
+    # the gas name in the form intake stores it, as the rankings match it
+    for name in ("co2", "carbon dioxide"):
+        same = stored["reader"].get(f"{service.api}/sorbents/PLOT-A/qst-plot",
+                                    params={"adsorbate": name}, timeout=60)
+        assert set(groups(svg_of(same))) == set(found)
+    doc = assert_problem(stored["reader"].get(f"{service.api}/sorbents/PLOT-A/qst-plot",
+                                              params={"adsorbate": "C02"}, timeout=10), 400)
+    assert doc["adsorbate"] == "C02" and "CO2" in doc["suggestions"]
     png = stored["reader"].get(f"{service.api}/sorbents/PLOT-A/qst-plot",
                                params={"format": "png"}, timeout=60)
     assert png.status_code == 200 and png.content[:8] == PNG_SIGNATURE
