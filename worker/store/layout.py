@@ -200,6 +200,15 @@ class StoreLayout:
         if self.fs.get_file_info(str(self._join(VERSION_1_TABLE))).type != pafs.FileType.NotFound:
             return str(version_1_error(f"{self.root}: the store", self.root))
         marker = self._read_json(self._join(SCHEMA_MARKER))
+        if marker is None and self._has_data_files():
+            # a writer writes the marker before its first data file: data seen now
+            # means a concurrent first write made the marker after our first look
+            # (without this second look, a new store under concurrent intakes
+            # looked like an old one: a 500 on POST /batches under load)
+            marker = self._read_json(self._join(SCHEMA_MARKER))
+            if marker is None:
+                return str(older_version_error(f"{self.root}: the store (no {SCHEMA_MARKER})",
+                                               self.root))
         if marker is not None:
             version = str(marker.get("schema_version"))
             if version == SCHEMA_VERSION:
@@ -208,9 +217,6 @@ class StoreLayout:
                 return str(older_version_error(f"{self.root}: the store", self.root, version))
             return (f"{self.root}: the store is at schema version {version}; this sorbrank "
                     f"reads version {SCHEMA_VERSION} (a newer sorbrank wrote it?)")
-        if self._has_data_files():
-            return str(older_version_error(f"{self.root}: the store (no {SCHEMA_MARKER})",
-                                           self.root))
         return None
 
     def _has_data_files(self) -> bool:
